@@ -1,0 +1,257 @@
+"""The bundle: one file that carries everything the runtime needs for one rig.
+
+A bundle is a ZIP archive (stored, not compressed) with these members:
+
+- ``manifest.json``   format tag and version, control schema, sizes, normalisation, training
+                      figures, fingerprints, package versions and the SHA-256 of every member;
+- ``arrays.npz``      ``neutral`` (V, 3) float32, ``faces`` (F, 3) int32,
+                      ``stable_indices`` (S,) int64, ``input_indices`` (K,) int64;
+- ``inverse.onnx``    input ``mesh`` float32 (N, K, 3): absolute positions of ``input_indices``
+                      in the neutral's frame (after head stabilisation);
+                      output ``controls`` float32 (N, C), always within the schema's bounds;
+- ``forward.onnx``    input ``controls`` float32 (N, C); output ``vertices`` float32 (N, V, 3).
+
+Normalisation is baked into both graphs; the manifest records it for inspection only.
+The writer lives here too, so that the format is defined in one place.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import json
+import logging
+import zipfile
+import zlib
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from rigcast.runtime.schema import ControlSchema, SchemaError
+
+log = logging.getLogger(__name__)
+
+FORMAT_TAG = "rigcast-bundle"
+FORMAT_VERSION = 1
+INVERSE_INPUT = "mesh"
+INVERSE_OUTPUT = "controls"
+FORWARD_INPUT = "controls"
+FORWARD_OUTPUT = "vertices"
+_MEMBERS = ("manifest.json", "arrays.npz", "inverse.onnx", "forward.onnx")
+
+
+class BundleError(Exception):
+    """A bundle is missing, corrupt, or inconsistent; the message says which part and why."""
+
+
+@dataclass(frozen=True)
+class Bundle:
+    """A loaded, validated bundle. Arrays are read-only."""
+
+    path: Path | None
+    manifest: Mapping[str, Any]
+    schema: ControlSchema
+    neutral: np.ndarray  # (V, 3) float32
+    faces: np.ndarray  # (F, 3) int32
+    stable_indices: np.ndarray  # (S,) int64
+    input_indices: np.ndarray  # (K,) int64
+    inverse_onnx: bytes = field(repr=False)
+    forward_onnx: bytes = field(repr=False)
+
+    @property
+    def name(self) -> str:
+        return str(self.manifest.get("name", ""))
+
+    @property
+    def vertex_count(self) -> int:
+        return int(self.neutral.shape[0])
+
+    @property
+    def control_count(self) -> int:
+        return len(self.schema)
+
+    @property
+    def fingerprint(self) -> str:
+        """One hex digest over the rig and dataset fingerprints and the two graphs."""
+        fp = self.manifest.get("fingerprint", {})
+        h = hashlib.sha256()
+        h.update(json.dumps(fp, sort_keys=True).encode())
+        h.update(hashlib.sha256(self.inverse_onnx).digest())
+        h.update(hashlib.sha256(self.forward_onnx).digest())
+        return h.hexdigest()[:16]
+
+
+def _sha(data: bytes) -> str:
+    return hashlib.sha256(data).hexdigest()
+
+
+def write_bundle(
+    path: str | Path,
+    *,
+    name: str,
+    schema: ControlSchema,
+    neutral: np.ndarray,
+    faces: np.ndarray,
+    stable_indices: np.ndarray,
+    input_indices: np.ndarray,
+    inverse_onnx: bytes,
+    forward_onnx: bytes,
+    extra: Mapping[str, Any] | None = None,
+) -> Path:
+    """Write a bundle atomically (temp file + rename) and return its path.
+
+    ``extra`` is merged into the manifest (training figures, fingerprints, versions, ...); it may
+    not override the keys this function owns.
+    """
+    path = Path(path)
+    neutral = np.ascontiguousarray(neutral, dtype=np.float32)
+    faces = np.ascontiguousarray(faces, dtype=np.int32).reshape(-1, 3)
+    stable = np.ascontiguousarray(stable_indices, dtype=np.int64)
+    inputs = np.ascontiguousarray(input_indices, dtype=np.int64)
+    buf = io.BytesIO()
+    np.savez(buf, neutral=neutral, faces=faces, stable_indices=stable, input_indices=inputs)
+    arrays = buf.getvalue()
+    manifest: dict[str, Any] = dict(extra or {})
+    owned = {
+        "format": FORMAT_TAG,
+        "format_version": FORMAT_VERSION,
+        "name": name,
+        "schema": schema.to_dict(),
+        "vertex_count": int(neutral.shape[0]),
+        "face_count": int(faces.shape[0]),
+        "control_count": len(schema),
+        "stable_count": int(stable.shape[0]),
+        "input_count": int(inputs.shape[0]),
+        "members": {
+            "arrays.npz": _sha(arrays),
+            "inverse.onnx": _sha(inverse_onnx),
+            "forward.onnx": _sha(forward_onnx),
+        },
+    }
+    clash = set(manifest) & set(owned)
+    if clash:
+        raise BundleError(f"manifest extras may not set {sorted(clash)}")
+    manifest.update(owned)
+    # Validate before writing, so a bad bundle never reaches disk.
+    _check_arrays(manifest, neutral, faces, stable, inputs)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(path.name + ".partial")
+    with zipfile.ZipFile(tmp, "w", compression=zipfile.ZIP_STORED) as zf:
+        zf.writestr("manifest.json", json.dumps(manifest, indent=2, sort_keys=True))
+        zf.writestr("arrays.npz", arrays)
+        zf.writestr("inverse.onnx", inverse_onnx)
+        zf.writestr("forward.onnx", forward_onnx)
+    tmp.replace(path)
+    log.info("wrote bundle %s (%d vertices, %d controls)", path, neutral.shape[0], len(schema))
+    return path
+
+
+def load_bundle(path: str | Path) -> Bundle:
+    """Read and validate a bundle. Raises BundleError naming the file and what is wrong."""
+    path = Path(path)
+    if not path.exists():
+        raise BundleError(f"bundle {path} does not exist")
+    if not path.is_file():
+        raise BundleError(f"bundle {path} is not a file")
+    try:
+        with zipfile.ZipFile(path) as zf:
+            names = set(zf.namelist())
+            missing = [m for m in _MEMBERS if m not in names]
+            if missing:
+                raise BundleError(f"bundle {path} is missing {', '.join(missing)}")
+            blobs = {m: zf.read(m) for m in _MEMBERS}
+    except zipfile.BadZipFile as exc:
+        raise BundleError(f"bundle {path} is not a rigcast bundle (not a ZIP archive: {exc})") from None
+    except (OSError, EOFError, zipfile.LargeZipFile) as exc:
+        raise BundleError(f"bundle {path} could not be read: {exc}") from None
+    except RuntimeError as exc:  # zipfile raises this for encrypted members
+        raise BundleError(f"bundle {path} could not be read: {exc}") from None
+    except zlib.error as exc:
+        raise BundleError(f"bundle {path} is corrupt: {exc}") from None
+    return parse_bundle(blobs, path)
+
+
+def parse_bundle(blobs: Mapping[str, bytes], path: Path | None = None) -> Bundle:
+    where = f"bundle {path}" if path else "bundle"
+    try:
+        manifest = json.loads(blobs["manifest.json"].decode("utf-8"))
+    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise BundleError(f"{where}: manifest.json is not valid JSON ({exc})") from None
+    if not isinstance(manifest, dict):
+        raise BundleError(f"{where}: manifest.json must be an object")
+    if manifest.get("format") != FORMAT_TAG:
+        raise BundleError(f"{where}: not a rigcast bundle (format tag {manifest.get('format')!r})")
+    version = manifest.get("format_version")
+    if version != FORMAT_VERSION:
+        raise BundleError(
+            f"{where}: format version {version!r} is not supported (this rigcast reads "
+            f"{FORMAT_VERSION}); rebuild the bundle with this version"
+        )
+    members = manifest.get("members")
+    if not isinstance(members, dict):
+        raise BundleError(f"{where}: manifest has no member checksums")
+    for member in ("arrays.npz", "inverse.onnx", "forward.onnx"):
+        if members.get(member) != _sha(blobs[member]):
+            raise BundleError(f"{where}: {member} is corrupt (checksum mismatch)")
+    try:
+        schema = ControlSchema.from_dict(manifest.get("schema", {}))
+    except SchemaError as exc:
+        raise BundleError(f"{where}: bad control schema: {exc}") from None
+    try:
+        with np.load(io.BytesIO(blobs["arrays.npz"]), allow_pickle=False) as npz:
+            arrays = {k: npz[k] for k in ("neutral", "faces", "stable_indices", "input_indices")}
+    except (KeyError, ValueError, OSError) as exc:
+        raise BundleError(f"{where}: arrays.npz is unreadable ({exc})") from None
+    neutral = arrays["neutral"].astype(np.float32, copy=False)
+    faces = arrays["faces"].astype(np.int32, copy=False)
+    stable = arrays["stable_indices"].astype(np.int64, copy=False)
+    inputs = arrays["input_indices"].astype(np.int64, copy=False)
+    if manifest.get("control_count") != len(schema):
+        raise BundleError(
+            f"{where}: manifest says {manifest.get('control_count')} controls, schema has {len(schema)}"
+        )
+    _check_arrays(manifest, neutral, faces, stable, inputs, where)
+    for a in (neutral, faces, stable, inputs):
+        a.setflags(write=False)
+    return Bundle(
+        path=path,
+        manifest=manifest,
+        schema=schema,
+        neutral=neutral,
+        faces=faces,
+        stable_indices=stable,
+        input_indices=inputs,
+        inverse_onnx=blobs["inverse.onnx"],
+        forward_onnx=blobs["forward.onnx"],
+    )
+
+
+def _check_arrays(
+    manifest: Mapping[str, Any],
+    neutral: np.ndarray,
+    faces: np.ndarray,
+    stable: np.ndarray,
+    inputs: np.ndarray,
+    where: str = "bundle",
+) -> None:
+    if neutral.ndim != 2 or neutral.shape[1] != 3 or neutral.shape[0] < 3:
+        raise BundleError(f"{where}: neutral mesh must be (V, 3) with V >= 3, got {neutral.shape}")
+    n_vertices = neutral.shape[0]
+    if manifest.get("vertex_count") != n_vertices:
+        raise BundleError(
+            f"{where}: manifest says {manifest.get('vertex_count')} vertices, neutral has {n_vertices}"
+        )
+    if not np.all(np.isfinite(neutral)):
+        raise BundleError(f"{where}: neutral mesh has NaN or Inf")
+    if faces.size and (faces.min() < 0 or faces.max() >= n_vertices):
+        raise BundleError(f"{where}: faces index outside 0..{n_vertices - 1}")
+    for label, idx, minimum in (("stable_indices", stable, 3), ("input_indices", inputs, 1)):
+        if idx.ndim != 1 or idx.shape[0] < minimum:
+            raise BundleError(f"{where}: {label} must be 1-D with at least {minimum} entries")
+        if idx.min() < 0 or idx.max() >= n_vertices:
+            raise BundleError(f"{where}: {label} index outside 0..{n_vertices - 1}")
+        if np.unique(idx).shape[0] != idx.shape[0]:
+            raise BundleError(f"{where}: {label} has repeated entries")
