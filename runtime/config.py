@@ -1,0 +1,332 @@
+"""The server's configuration: typed, frozen dataclasses defined once, loaded from TOML + overrides.
+
+A config object only stores values; :func:`load_config` turns a TOML file (``tomllib``) and a
+mapping of overrides (from command-line flags) into one, and every check lives in the dataclasses'
+``__post_init__``. Each field that has a ``help`` in its metadata is also a command-line flag
+(``runtime/serve_main.py`` derives the flags from these fields, so the option list exists once).
+
+TOML layout::
+
+    input = "tcp://127.0.0.1:5570"
+    output = "tcp://127.0.0.1:5571"
+    fit_error = "after_publish"          # or "every_n" / "off"
+
+    [streams.actor1]
+    bundle = "face.rcb"                  # relative paths are relative to the TOML file
+    min_cutoff = 1.0
+    beta = 0.5
+
+    [streams.actor1.groups.brow]         # per-group One Euro overrides
+    min_cutoff = 0.5
+
+Unknown streams are rejected with reason ``unknown_stream`` unless ``accept_any_stream`` is set;
+then the first frame of a new stream id creates that stream with the settings and bundle of the
+first configured stream (own filter state), up to ``max_streams`` streams in all.
+"""
+
+from __future__ import annotations
+
+import ipaddress
+import math
+import tomllib
+import types
+import typing
+from collections.abc import Mapping
+from dataclasses import MISSING, dataclass, field, fields, replace
+from pathlib import Path
+from typing import Any, Literal, get_args, get_origin
+from urllib.parse import urlsplit
+
+FitErrorMode = Literal["after_publish", "every_n", "off"]
+
+
+class ConfigError(ValueError):
+    """A config value is missing, unknown, or bad; the message names the key."""
+
+
+def _flag(help_text: str, default: Any) -> Any:
+    return field(default=default, metadata={"help": help_text})
+
+
+@dataclass(frozen=True)
+class GroupFilter:
+    """One Euro parameters for the controls of one schema group."""
+
+    group: str
+    min_cutoff: float
+    beta: float
+    d_cutoff: float
+
+
+@dataclass(frozen=True)
+class StreamConfig:
+    """One stream (actor): its bundle, its filter and its stabilisation."""
+
+    stream: str
+    bundle: Path
+    # One Euro defaults are a starting point of ours for controls spanning about 0..1 (tune them
+    # with the procedure in the README); d_cutoff = 1 Hz follows Casiez et al. 2012.
+    min_cutoff: float = _flag("One Euro minimum cutoff in Hz (lower = smoother when slow)", 1.0)
+    beta: float = _flag("One Euro speed coefficient (higher = less lag when fast)", 0.5)
+    d_cutoff: float = _flag("One Euro cutoff for the derivative, in Hz", 1.0)
+    passthrough: bool = _flag("publish the solved controls unfiltered (still clamped)", False)
+    gap_ms: float = _flag("reset the filter after this long without frames, in ms", 250.0)
+    stabilise: bool = _flag("remove rigid head motion using the bundle's stable vertices", True)
+    stabilise_scale: bool = _flag("also remove uniform scale when stabilising (Umeyama)", False)
+    off_manifold_threshold: float | None = _flag(
+        "fit RMS (mesh units) above which a frame is off-manifold; default from the bundle", None
+    )
+    groups: tuple[GroupFilter, ...] = ()
+
+    def __post_init__(self) -> None:
+        where = f"streams.{self.stream}"
+        if not self.stream or not isinstance(self.stream, str):
+            raise ConfigError(f"stream id must be a non-empty string, got {self.stream!r}")
+        if len(self.stream.encode()) > 64:
+            raise ConfigError(f"{where}: stream id longer than 64 bytes")
+        for name in ("min_cutoff", "d_cutoff", "gap_ms"):
+            _positive(getattr(self, name), f"{where}.{name}")
+        _non_negative(self.beta, f"{where}.beta")
+        if self.off_manifold_threshold is not None:
+            _positive(self.off_manifold_threshold, f"{where}.off_manifold_threshold")
+        for g in self.groups:
+            _positive(g.min_cutoff, f"{where}.groups.{g.group}.min_cutoff")
+            _positive(g.d_cutoff, f"{where}.groups.{g.group}.d_cutoff")
+            _non_negative(g.beta, f"{where}.groups.{g.group}.beta")
+
+
+@dataclass(frozen=True)
+class ServerConfig:
+    """Everything ``rigcast serve`` needs; see the module docstring for the TOML layout."""
+
+    streams: tuple[StreamConfig, ...]
+    input: str = _flag("endpoint of the ROUTER socket that receives mesh frames",
+                       "tcp://127.0.0.1:5570")
+    output: str = _flag("endpoint of the PUB socket for controls, telemetry and events",
+                        "tcp://127.0.0.1:5571")
+    allow_remote: bool = _flag("allow binding a non-loopback address (closed stage network only)",
+                               False)
+    accept_any_stream: bool = _flag(
+        "serve unconfigured stream ids with the first stream's bundle and settings", False
+    )
+    max_streams: int = _flag("most streams one server holds", 16)
+    threads: int = _flag("onnxruntime intra-op threads per session", 1)
+    fit_error: FitErrorMode = _flag(  # noqa: RUF009
+        "when to compute the fit error: after_publish, every_n, off",
+        "after_publish")
+    fit_error_every: int = _flag("with fit_error=every_n, compute it on every Nth frame", 10)
+    off_manifold_factor: float = _flag(
+        "default off-manifold threshold = this x the bundle's training fit RMS", 3.0
+    )
+    telemetry_hz: float = _flag("telemetry messages per second per stream", 10.0)
+    window: int = _flag("sliding window for latency percentiles, in frames", 1000)
+    max_message_bytes: int = _flag("largest accepted mesh payload, in bytes", 16 * 1024 * 1024)
+    max_header_bytes: int = 4096
+    max_drain: int = 256
+    input_hwm: int = 32
+    output_hwm: int = 1000
+    linger_ms: int = 200
+
+    def __post_init__(self) -> None:
+        if not self.streams:
+            raise ConfigError("no streams configured: give at least one bundle (streams.<id>)")
+        ids = [s.stream for s in self.streams]
+        dupes = sorted({s for s in ids if ids.count(s) > 1})
+        if dupes:
+            raise ConfigError(f"stream ids configured twice: {dupes}")
+        for name in ("input", "output"):
+            _check_endpoint(getattr(self, name), name, self.allow_remote)
+        if self.input == self.output:
+            raise ConfigError(f"input and output endpoints are the same ({self.input})")
+        if self.fit_error not in get_args(FitErrorMode):
+            raise ConfigError(f"fit_error must be one of {get_args(FitErrorMode)}, "
+                              f"got {self.fit_error!r}")
+        for name in ("threads", "fit_error_every", "window", "max_message_bytes",
+                     "max_header_bytes", "max_drain", "input_hwm", "output_hwm", "max_streams"):
+            value = getattr(self, name)
+            if value < 1:
+                raise ConfigError(f"{name} must be at least 1, got {value}")
+        if self.linger_ms < 0:
+            raise ConfigError(f"linger_ms must be >= 0, got {self.linger_ms}")
+        _positive(self.telemetry_hz, "telemetry_hz")
+        _positive(self.off_manifold_factor, "off_manifold_factor")
+
+    def stream(self, stream_id: str) -> StreamConfig | None:
+        for s in self.streams:
+            if s.stream == stream_id:
+                return s
+        return None
+
+
+def is_loopback(endpoint: str) -> bool:
+    """True when a ZeroMQ endpoint cannot be reached from another machine."""
+    scheme = endpoint.split("://", 1)[0]
+    if scheme in ("ipc", "inproc"):
+        return True
+    host = urlsplit(endpoint).hostname or ""
+    if host == "localhost":
+        return True
+    try:
+        return ipaddress.ip_address(host).is_loopback
+    except ValueError:
+        return False  # "*", an interface name, or a host name: reachable as far as we can tell
+
+
+def _check_endpoint(endpoint: str, key: str, allow_remote: bool) -> None:
+    if not isinstance(endpoint, str) or "://" not in endpoint:
+        raise ConfigError(f"{key} must be a ZeroMQ endpoint like tcp://127.0.0.1:5570, "
+                          f"got {endpoint!r}")
+    scheme = endpoint.split("://", 1)[0]
+    if scheme not in ("tcp", "ipc", "inproc"):
+        raise ConfigError(f"{key}: transport {scheme!r} is not supported (tcp, ipc, inproc)")
+    if not is_loopback(endpoint) and not allow_remote:
+        raise ConfigError(
+            f"{key} {endpoint} is not a loopback address; the server would be reachable from the "
+            "network. Pass allow_remote (--allow-remote) to do this on a closed stage network"
+        )
+
+
+def _positive(value: float, key: str) -> None:
+    if not (isinstance(value, int | float) and math.isfinite(value) and value > 0):
+        raise ConfigError(f"{key} must be a positive number, got {value!r}")
+
+
+def _non_negative(value: float, key: str) -> None:
+    if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
+        raise ConfigError(f"{key} must be a number >= 0, got {value!r}")
+
+
+def flag_fields(cls: type) -> list[Any]:
+    """The dataclass fields of ``cls`` that are also command-line flags."""
+    return [f for f in fields(cls) if "help" in f.metadata]
+
+
+def _coerce(value: Any, hint: Any, key: str) -> Any:
+    """Check a TOML value against a field's type hint and convert it (str -> Path, int -> float)."""
+    origin = get_origin(hint)
+    if origin in (typing.Union, types.UnionType):
+        options = get_args(hint)
+        if value is None and type(None) in options:
+            return None
+        inner = [o for o in options if o is not type(None)]
+        return _coerce(value, inner[0], key)
+    if origin is Literal:
+        if value not in get_args(hint):
+            raise ConfigError(f"{key} must be one of {list(get_args(hint))}, got {value!r}")
+        return value
+    if hint is bool:
+        if not isinstance(value, bool):
+            raise ConfigError(f"{key} must be true or false, got {value!r}")
+        return value
+    if hint is int:
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise ConfigError(f"{key} must be an integer, got {value!r}")
+        return value
+    if hint is float:
+        if isinstance(value, bool) or not isinstance(value, int | float):
+            raise ConfigError(f"{key} must be a number, got {value!r}")
+        return float(value)
+    if hint is str:
+        if not isinstance(value, str):
+            raise ConfigError(f"{key} must be a string, got {value!r}")
+        return value
+    if hint is Path:
+        if not isinstance(value, str | Path):
+            raise ConfigError(f"{key} must be a path, got {value!r}")
+        return Path(value)
+    raise ConfigError(f"{key}: unsupported config type {hint!r}")  # pragma: no cover
+
+
+def _fields_from(cls: type, data: Mapping[str, Any], where: str, skip: set[str]) -> dict[str, Any]:
+    hints = typing.get_type_hints(cls)
+    known = {f.name for f in fields(cls)} - skip
+    unknown = sorted(set(data) - known)
+    if unknown:
+        prefix = f"{where}." if where else ""
+        raise ConfigError(f"unknown config key {prefix}{unknown[0]} "
+                          f"(known: {', '.join(sorted(known))})")
+    out = {}
+    for name, value in data.items():
+        key = f"{where}.{name}" if where else name
+        out[name] = _coerce(value, hints[name], key)
+    return out
+
+
+def _stream_from(stream_id: str, data: Mapping[str, Any], base_dir: Path | None) -> StreamConfig:
+    where = f"streams.{stream_id}"
+    if not isinstance(data, Mapping):
+        raise ConfigError(f"{where} must be a table")
+    data = dict(data)
+    groups_raw = data.pop("groups", {})
+    values = _fields_from(StreamConfig, data, where, skip={"stream", "groups"})
+    if "bundle" not in values:
+        raise ConfigError(f"{where}.bundle is missing")
+    bundle = values["bundle"]
+    if base_dir is not None and not bundle.is_absolute():
+        values["bundle"] = base_dir / bundle
+    groups = []
+    if not isinstance(groups_raw, Mapping):
+        raise ConfigError(f"{where}.groups must be a table")
+    for gname, gdata in groups_raw.items():
+        gwhere = f"{where}.groups.{gname}"
+        if not isinstance(gdata, Mapping):
+            raise ConfigError(f"{gwhere} must be a table")
+        gvals = _fields_from(GroupFilter, gdata, gwhere, skip={"group"})
+        defaults = {k: values.get(k, _default(StreamConfig, k))
+                    for k in ("min_cutoff", "beta", "d_cutoff")}
+        groups.append(GroupFilter(group=str(gname), **{**defaults, **gvals}))
+    return StreamConfig(stream=stream_id, groups=tuple(groups), **values)
+
+
+def _default(cls: type, name: str) -> Any:
+    for f in fields(cls):
+        if f.name == name:
+            return f.default if f.default is not MISSING else None
+    raise KeyError(name)  # pragma: no cover
+
+
+def load_config(path: Path | None, overrides: Mapping[str, Any] | None = None) -> ServerConfig:
+    """Build a ServerConfig from a TOML file (or none) and overrides.
+
+    ``overrides`` holds top-level ServerConfig keys, plus ``streams`` ({id: {key: value}}, merged
+    into the file's streams, adding new ones; give absolute bundle paths there, since relative
+    ones resolve against the TOML file's folder) and ``stream_overrides`` ({key: value} applied to
+    every stream, e.g. the filter flags). Raises ConfigError naming the bad key.
+    """
+    data: dict[str, Any] = {}
+    base_dir: Path | None = None
+    if path is not None:
+        path = Path(path)
+        try:
+            with path.open("rb") as fh:
+                data = tomllib.load(fh)
+        except FileNotFoundError:
+            raise ConfigError(f"config file {path} does not exist") from None
+        except tomllib.TOMLDecodeError as exc:
+            raise ConfigError(f"config file {path} is not valid TOML: {exc}") from None
+        base_dir = path.parent
+    overrides = dict(overrides or {})
+    streams_raw: dict[str, dict[str, Any]] = {}
+    file_streams = data.pop("streams", {})
+    if not isinstance(file_streams, Mapping):
+        raise ConfigError("streams must be a table of [streams.<id>] tables")
+    for sid, sdata in file_streams.items():
+        if not isinstance(sdata, Mapping):
+            raise ConfigError(f"streams.{sid} must be a table")
+        streams_raw[str(sid)] = dict(sdata)
+    for sid, sdata in dict(overrides.pop("streams", {}) or {}).items():
+        streams_raw.setdefault(str(sid), {}).update(sdata)
+    every = dict(overrides.pop("stream_overrides", {}) or {})
+    top = {**data, **{k: v for k, v in overrides.items() if v is not None}}
+    values = _fields_from(ServerConfig, top, "", skip={"streams"})
+    streams = []
+    for sid, sdata in streams_raw.items():
+        merged = {**sdata, **{k: v for k, v in every.items() if v is not None}}
+        streams.append(_stream_from(sid, merged, base_dir))
+    return ServerConfig(streams=tuple(streams), **values)
+
+
+def with_stream(config: ServerConfig, stream: StreamConfig) -> ServerConfig:
+    """A copy of ``config`` with ``stream`` added (or replacing the stream of the same id)."""
+    kept = tuple(s for s in config.streams if s.stream != stream.stream)
+    return replace(config, streams=(*kept, stream))
