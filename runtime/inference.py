@@ -1,0 +1,119 @@
+"""onnxruntime sessions for a bundle's two graphs, with explicit thread settings.
+
+A live server runs one frame at a time, so each session gets one intra-op thread by default and
+sequential execution: extra threads cost more in wake-ups than they save on graphs this small
+(common practice for latency-bound single-sample inference). Shapes are checked against the
+bundle when the session opens, so a mismatched graph fails at startup, not on the first frame.
+"""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import Sequence
+
+import numpy as np
+import onnxruntime as ort
+from rigcast.runtime.bundle import (
+    FORWARD_INPUT,
+    FORWARD_OUTPUT,
+    INVERSE_INPUT,
+    INVERSE_OUTPUT,
+    Bundle,
+    BundleError,
+)
+
+log = logging.getLogger(__name__)
+
+# What onnxruntime raises from a session's run(): its own exception types live in a private
+# module, so the public aliases are listed here once.
+try:
+    from onnxruntime.capi.onnxruntime_pybind11_state import Fail as _OrtFail
+    from onnxruntime.capi.onnxruntime_pybind11_state import (
+        InvalidArgument as _OrtInvalidArgument,
+    )
+    from onnxruntime.capi.onnxruntime_pybind11_state import RuntimeException as _OrtRuntime
+
+    ORT_ERRORS: tuple[type[BaseException], ...] = (_OrtFail, _OrtInvalidArgument, _OrtRuntime)
+except ImportError:  # pragma: no cover - layout of other onnxruntime builds
+    ORT_ERRORS = (RuntimeError,)
+
+
+def open_session(onnx_bytes: bytes, *, threads: int) -> ort.InferenceSession:
+    """An InferenceSession on the CPU provider with explicit threading; BundleError if invalid."""
+    opts = ort.SessionOptions()
+    opts.intra_op_num_threads = threads
+    opts.inter_op_num_threads = 1
+    opts.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
+    opts.graph_optimization_level = ort.GraphOptimizationLevel.ORT_ENABLE_ALL
+    # Spinning threads burn the core the other process needs on a 2-core machine.
+    opts.add_session_config_entry("session.intra_op.allow_spinning", "0")
+    opts.log_severity_level = 3
+    try:
+        return ort.InferenceSession(onnx_bytes, sess_options=opts,
+                                    providers=["CPUExecutionProvider"])
+    except ORT_ERRORS as exc:
+        raise BundleError(f"onnxruntime cannot load the graph: {exc}") from None
+
+
+def _check_io(
+    sess: ort.InferenceSession, graph: str, in_name: str, in_tail: Sequence[int],
+    out_name: str, out_tail: Sequence[int],
+) -> None:
+    inputs, outputs = sess.get_inputs(), sess.get_outputs()
+    if [i.name for i in inputs] != [in_name]:
+        raise BundleError(f"{graph} graph must have one input {in_name!r}, "
+                          f"has {[i.name for i in inputs]}")
+    if out_name not in [o.name for o in outputs]:
+        raise BundleError(f"{graph} graph has no output {out_name!r} "
+                          f"(outputs: {[o.name for o in outputs]})")
+    for label, arg, tail in (("input", inputs[0], in_tail),
+                             ("output", next(o for o in outputs if o.name == out_name), out_tail)):
+        if arg.type != "tensor(float)":
+            raise BundleError(f"{graph} graph {label} {arg.name!r} must be float32, is {arg.type}")
+        shape = list(arg.shape)
+        if len(shape) != 1 + len(tail):
+            raise BundleError(f"{graph} graph {label} {arg.name!r} has shape {shape}, "
+                              f"expected (N, {', '.join(map(str, tail))})")
+        for got, want in zip(shape[1:], tail, strict=True):
+            if isinstance(got, int) and got != want:
+                raise BundleError(f"{graph} graph {label} {arg.name!r} has shape {shape}, "
+                                  f"expected (N, {', '.join(map(str, tail))})")
+
+
+class InverseModel:
+    """The bundle's inverse graph: mesh subset (N, K, 3) -> controls (N, C)."""
+
+    def __init__(self, bundle: Bundle, *, threads: int = 1) -> None:
+        self.k = int(bundle.input_indices.shape[0])
+        self.c = bundle.control_count
+        self.session = open_session(bundle.inverse_onnx, threads=threads)
+        _check_io(self.session, "inverse", INVERSE_INPUT, (self.k, 3), INVERSE_OUTPUT, (self.c,))
+        self._outputs = [INVERSE_OUTPUT]
+        out = self.solve(np.asarray(bundle.neutral[bundle.input_indices], np.float32)[None])
+        if out.shape != (1, self.c):
+            raise BundleError(f"inverse graph returned shape {out.shape}, expected (1, {self.c})")
+
+    def solve(self, mesh_subset: np.ndarray) -> np.ndarray:
+        """mesh_subset (N, K, 3) float32 -> controls (N, C) float32."""
+        result: np.ndarray = self.session.run(self._outputs, {INVERSE_INPUT: mesh_subset})[0]
+        return result
+
+
+class ForwardModel:
+    """The bundle's forward graph: controls (N, C) -> vertices (N, V, 3)."""
+
+    def __init__(self, bundle: Bundle, *, threads: int = 1) -> None:
+        self.c = bundle.control_count
+        self.v = bundle.vertex_count
+        self.session = open_session(bundle.forward_onnx, threads=threads)
+        _check_io(self.session, "forward", FORWARD_INPUT, (self.c,), FORWARD_OUTPUT, (self.v, 3))
+        self._outputs = [FORWARD_OUTPUT]
+        out = self.evaluate(bundle.schema.defaults[None])
+        if out.shape != (1, self.v, 3):
+            raise BundleError(f"forward graph returned shape {out.shape}, "
+                              f"expected (1, {self.v}, 3)")
+
+    def evaluate(self, controls: np.ndarray) -> np.ndarray:
+        """controls (N, C) float32 -> vertices (N, V, 3) float32."""
+        result: np.ndarray = self.session.run(self._outputs, {FORWARD_INPUT: controls})[0]
+        return result
