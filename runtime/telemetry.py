@@ -1,0 +1,167 @@
+"""Per-stream telemetry: sliding-window latency percentiles, fps, counters, fit error, pose.
+
+The percentiles are linear-interpolated order statistics (numpy's default ``linear`` method,
+Hyndman & Fan 1996 definition 7) over the last ``window`` samples. The fast path keeps a ring
+buffer and selects only the order statistics it needs with ``np.partition``; its naive twin sorts
+the full history with ``np.percentile``, and the tests check they agree.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+from collections import Counter
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+import numpy as np
+
+log = logging.getLogger(__name__)
+
+STAGES = ("decode", "align", "infer", "filter", "publish", "total")
+QUANTILES = (50.0, 95.0, 99.0)
+
+
+def percentiles_fast(values: np.ndarray, qs: Sequence[float] = QUANTILES) -> np.ndarray:
+    """values (n,) -> (len(qs),) float64 linear-interpolated percentiles; n >= 1.
+
+    Same definition as ``np.percentile(values, qs)``: position p = q/100 * (n-1), value
+    x[floor p] + frac(p) * (x[ceil p] - x[floor p]) of the sorted data, via partial selection.
+    """
+    n = values.shape[0]
+    pos = np.asarray(qs, dtype=np.float64) / 100.0 * (n - 1)
+    lo = np.floor(pos).astype(np.intp)
+    hi = np.minimum(lo + 1, n - 1)
+    part = np.partition(values, np.unique(np.concatenate([lo, hi])))
+    a = part[lo].astype(np.float64)
+    b = part[hi].astype(np.float64)
+    out: np.ndarray = a + (pos - lo) * (b - a)
+    return out
+
+
+def percentiles_naive(history: Sequence[float], window: int,
+                      qs: Sequence[float] = QUANTILES) -> np.ndarray:
+    """Twin of the ring-buffer path: np.percentile over the last ``window`` of the full history."""
+    return np.percentile(np.asarray(list(history)[-window:], dtype=np.float64), qs)
+
+
+class RingWindow:
+    """The last ``size`` samples of one quantity, in a pre-allocated buffer (no growth)."""
+
+    def __init__(self, size: int, dtype: type = np.int64) -> None:
+        self.buf: np.ndarray = np.zeros(size, dtype=dtype)
+        self.size = size
+        self.count = 0
+
+    def push(self, value: float) -> None:
+        self.buf[self.count % self.size] = value
+        self.count += 1
+
+    def __len__(self) -> int:
+        return min(self.count, self.size)
+
+    def values(self) -> np.ndarray:
+        """The samples held (n,), in no particular order."""
+        return self.buf[: len(self)]
+
+    def last(self) -> float:
+        return float(self.buf[(self.count - 1) % self.size]) if self.count else math.nan
+
+    def percentiles(self, qs: Sequence[float] = QUANTILES) -> np.ndarray:
+        if not self.count:
+            return np.full(len(qs), np.nan)
+        return percentiles_fast(self.values().copy(), qs)
+
+    def mean(self) -> float:
+        return float(self.values().mean()) if self.count else math.nan
+
+
+class StreamTelemetry:
+    """Counters and windows for one stream, turned into a plain dict by :meth:`snapshot`."""
+
+    def __init__(self, stream: str, window: int) -> None:
+        self.stream = stream
+        self.window = window
+        self.stages = {name: RingWindow(window) for name in STAGES}
+        self.arrivals = RingWindow(256)
+        self.fit_rms = RingWindow(window, np.float64)
+        self.fit_max = RingWindow(window, np.float64)
+        self.processed = 0
+        self.dropped = 0
+        self.stale = 0
+        self.rejected: Counter[str] = Counter()
+        self.off_manifold = 0
+        self.last_off_manifold_frame: int | None = None
+        self.last_fit_frame: int | None = None
+        self.clamped = 0
+        self.filter_resets = 0
+        self.last_frame: int | None = None
+        self.pose: Mapping[str, Any] | None = None
+        self.stabilise_rms = math.nan
+        self.bundle = ""
+
+    def arrival(self, t_recv_ns: int) -> None:
+        self.arrivals.push(t_recv_ns)
+
+    def record(self, stage_ns: Sequence[int], frame: int) -> None:
+        """stage_ns: durations in STAGES order (ns), total last."""
+        for ring, value in zip(self.stages.values(), stage_ns, strict=True):
+            ring.push(value)
+        self.processed += 1
+        self.last_frame = frame
+
+    def record_fit(self, frame: int, rms: float, max_err: float, off_manifold: bool) -> None:
+        self.fit_rms.push(rms)
+        self.fit_max.push(max_err)
+        self.last_fit_frame = frame
+        if off_manifold:
+            self.off_manifold += 1
+            self.last_off_manifold_frame = frame
+
+    def input_fps(self, now_ns: int, span_ns: int = 2_000_000_000) -> float:
+        """Frames received per second over the last ``span_ns`` (0 when idle)."""
+        t = self.arrivals.values()
+        recent = t[t >= now_ns - span_ns]
+        if recent.shape[0] < 2:
+            return 0.0
+        spread = int(recent.max() - recent.min())
+        return (recent.shape[0] - 1) * 1e9 / spread if spread > 0 else 0.0
+
+    def snapshot(self, now_ns: int) -> dict[str, Any]:
+        latency = {}
+        for name, ring in self.stages.items():
+            p = ring.percentiles() / 1e6
+            latency[name] = {"p50_ms": _f(p[0]), "p95_ms": _f(p[1]), "p99_ms": _f(p[2])}
+        return {
+            "stream": self.stream,
+            "bundle": self.bundle,
+            "t_ns": now_ns,
+            "latency": latency,
+            "window": len(self.stages["total"]),
+            "input_fps": self.input_fps(now_ns),
+            "processed": self.processed,
+            "dropped": self.dropped,
+            "stale": self.stale,
+            "rejected": sum(self.rejected.values()),
+            "rejected_by_reason": dict(self.rejected),
+            "clamped": self.clamped,
+            "filter_resets": self.filter_resets,
+            "last_frame": self.last_frame,
+            "fit_error": {
+                "frame": self.last_fit_frame,
+                "rms": _f(self.fit_rms.last()),
+                "max": _f(self.fit_max.last()),
+                "rms_mean": _f(self.fit_rms.mean()),
+                "max_mean": _f(self.fit_max.mean()),
+                "off_manifold": self.off_manifold,
+                "last_off_manifold_frame": self.last_off_manifold_frame,
+            },
+            "pose": dict(self.pose) if self.pose is not None else None,
+            "stabilise_rms": _f(self.stabilise_rms),
+        }
+
+
+def _f(x: float) -> float | None:
+    """NaN (no data yet) goes out as nil, which every msgpack reader understands."""
+    x = float(x)
+    return None if math.isnan(x) else x
