@@ -1,0 +1,264 @@
+"""The One Euro filter, vectorised over C controls, plus a zero-phase smoother for batch use.
+
+Exactly as in Casiez, Roussel & Vogel, "1€ Filter: A Simple Speed-based Low-pass Filter for
+Noisy Input in Interactive Systems", CHI 2012:
+
+    te       = t_i - t_{i-1}                          (seconds, from the sender's timestamps)
+    alpha(te, fc) = 1 / (1 + tau / te),  tau = 1 / (2 pi fc)
+    dx_i     = (x_i - x̂_{i-1}) / te                  (x̂ is the previous *filtered* value)
+    dx̂_i    = alpha(te, d_cutoff) dx_i + (1 - alpha(te, d_cutoff)) dx̂_{i-1}
+    fc       = min_cutoff + beta |dx̂_i|
+    x̂_i     = alpha(te, fc) x_i + (1 - alpha(te, fc)) x̂_{i-1}
+
+The first sample passes through with dx̂ = 0.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+from collections.abc import Mapping
+from dataclasses import dataclass
+
+import numpy as np
+from rigcast.runtime.schema import ControlSchema
+
+log = logging.getLogger(__name__)
+
+_TWO_PI = 2.0 * math.pi
+
+
+class FilterError(ValueError):
+    """Bad filter parameters or input shapes; the message names the value."""
+
+
+@dataclass(frozen=True)
+class OneEuroParams:
+    """Per-control parameters: min_cutoff (C,) Hz > 0, beta (C,) >= 0, d_cutoff (C,) Hz > 0."""
+
+    min_cutoff: np.ndarray
+    beta: np.ndarray
+    d_cutoff: np.ndarray
+
+    def __post_init__(self) -> None:
+        arrays = {}
+        for name in ("min_cutoff", "beta", "d_cutoff"):
+            a = np.array(getattr(self, name), dtype=np.float64).reshape(-1)
+            a.setflags(write=False)
+            arrays[name] = a
+            object.__setattr__(self, name, a)
+        sizes = {a.shape[0] for a in arrays.values()}
+        if len(sizes) != 1:
+            raise FilterError(f"min_cutoff, beta, d_cutoff differ in length: {sorted(sizes)}")
+        for name in ("min_cutoff", "d_cutoff"):
+            a = arrays[name]
+            if not np.all(np.isfinite(a) & (a > 0)):
+                raise FilterError(f"{name} must be finite and > 0 Hz, got {a[~(a > 0)][:3]}")
+        b = arrays["beta"]
+        if not np.all(np.isfinite(b) & (b >= 0)):
+            raise FilterError(f"beta must be finite and >= 0, got {b[~(b >= 0)][:3]}")
+
+    def __len__(self) -> int:
+        return int(self.min_cutoff.shape[0])
+
+    @classmethod
+    def uniform(
+        cls, count: int, min_cutoff: float = 1.0, beta: float = 0.0, d_cutoff: float = 1.0
+    ) -> OneEuroParams:
+        if count < 1:
+            raise FilterError(f"control count must be >= 1, got {count}")
+        return cls(
+            np.full(count, min_cutoff), np.full(count, beta), np.full(count, d_cutoff)
+        )
+
+    @classmethod
+    def per_group(
+        cls,
+        schema: ControlSchema,
+        settings: Mapping[str, tuple[float, float, float]],
+        default: tuple[float, float, float] = (1.0, 0.0, 1.0),
+    ) -> OneEuroParams:
+        """Parameters from ``{group or control name: (min_cutoff, beta, d_cutoff)}``.
+
+        A control name wins over its group; controls matched by neither get ``default``.
+        A key that is neither a group nor a control is an error (it is almost always a typo).
+        """
+        names = set(schema.names)
+        groups = set(schema.groups)
+        unknown = [k for k in settings if k not in names and k not in groups]
+        if unknown:
+            raise FilterError(f"filter settings name no group or control: {sorted(unknown)}")
+        rows = []
+        for c in schema.controls:
+            if c.name in settings:
+                rows.append(tuple(settings[c.name]))
+            elif c.group in settings:
+                rows.append(tuple(settings[c.group]))
+            else:
+                rows.append(tuple(default))
+        if any(len(r) != 3 for r in rows):
+            raise FilterError("each filter setting must be (min_cutoff, beta, d_cutoff)")
+        table = np.array(rows, dtype=np.float64)
+        return cls(table[:, 0], table[:, 1], table[:, 2])
+
+
+@dataclass(frozen=True)
+class OneEuroState:
+    """x_prev (C,) last filtered value, dx_prev (C,) last filtered derivative, t_prev_ns."""
+
+    x_prev: np.ndarray
+    dx_prev: np.ndarray
+    t_prev_ns: int
+
+
+def _alpha(te: float, cutoff: np.ndarray) -> np.ndarray:
+    # alpha = 1 / (1 + tau / te) with tau = 1 / (2 pi fc), i.e. 1 / (1 + 1 / (2 pi fc te)).
+    return 1.0 / (1.0 + 1.0 / (_TWO_PI * te * cutoff))
+
+
+def one_euro_step(
+    state: OneEuroState | None, x: np.ndarray, t_ns: int, params: OneEuroParams
+) -> tuple[np.ndarray, OneEuroState]:
+    """One filter update. x (C,) -> (y (C,) float64, new state).
+
+    ``state=None`` starts the filter: y = x. A timestamp not after the previous one (te <= 0) is a
+    repeat: the previous output is held and the state is unchanged.
+    """
+    xv = np.asarray(x, dtype=np.float64)
+    if xv.shape != params.min_cutoff.shape:
+        raise FilterError(f"x has shape {xv.shape}, filter has {len(params)} controls")
+    if state is None:
+        y = xv.copy()
+        return y, OneEuroState(y, np.zeros_like(y), int(t_ns))
+    te = (int(t_ns) - state.t_prev_ns) * 1e-9
+    if te <= 0.0:
+        return state.x_prev.copy(), state
+    dx = (xv - state.x_prev) / te
+    a_d = _alpha(te, params.d_cutoff)
+    dx_hat = a_d * dx + (1.0 - a_d) * state.dx_prev
+    cutoff = params.min_cutoff + params.beta * np.abs(dx_hat)
+    a = _alpha(te, cutoff)
+    y = a * xv + (1.0 - a) * state.x_prev
+    return y, OneEuroState(y, dx_hat, int(t_ns))
+
+
+def one_euro_step_naive(
+    state: OneEuroState | None, x: np.ndarray, t_ns: int, params: OneEuroParams
+) -> tuple[np.ndarray, OneEuroState]:
+    """Twin of one_euro_step: a scalar loop over controls, written from the paper's pseudocode."""
+    xs = [float(v) for v in np.asarray(x).reshape(-1)]
+    if state is None:
+        y0 = np.array(xs)
+        return y0, OneEuroState(y0, np.zeros(len(xs)), int(t_ns))
+    te = (int(t_ns) - state.t_prev_ns) / 1e9
+    if te <= 0.0:
+        return state.x_prev.copy(), state
+    ys, dxs = [], []
+    for c, xc in enumerate(xs):
+        rate = 1.0 / te
+        tau_d = 1.0 / (2.0 * math.pi * float(params.d_cutoff[c]))
+        alpha_d = 1.0 / (1.0 + tau_d * rate)
+        dx = (xc - float(state.x_prev[c])) * rate
+        edx = alpha_d * dx + (1.0 - alpha_d) * float(state.dx_prev[c])
+        fc = float(params.min_cutoff[c]) + float(params.beta[c]) * abs(edx)
+        tau = 1.0 / (2.0 * math.pi * fc)
+        alpha = 1.0 / (1.0 + tau * rate)
+        ys.append(alpha * xc + (1.0 - alpha) * float(state.x_prev[c]))
+        dxs.append(edx)
+    y = np.array(ys)
+    return y, OneEuroState(y, np.array(dxs), int(t_ns))
+
+
+class OneEuroFilter:
+    """Stateful wrapper around one_euro_step for one stream.
+
+    ``gap_ns``: a sample more than this after the previous one restarts the filter (the new sample
+    passes through). ``frame``, when given, also restarts it if the frame number goes backwards or
+    jumps forward by more than ``max_frame_jump`` (None: forward jumps are allowed, since the
+    server's newest-frame-wins policy skips frames under load). ``passthrough`` returns x as is.
+    After each call, ``filtered`` says whether the output was actually smoothed.
+    """
+
+    def __init__(
+        self,
+        params: OneEuroParams,
+        *,
+        passthrough: bool = False,
+        gap_ns: int | None = 250_000_000,
+        max_frame_jump: int | None = None,
+    ) -> None:
+        self.params = params
+        self.passthrough = passthrough
+        self.gap_ns = gap_ns
+        self.max_frame_jump = max_frame_jump
+        self.state: OneEuroState | None = None
+        self.last_frame: int | None = None
+        self.resets = 0
+        self.filtered = False
+
+    def reset(self) -> None:
+        self.state = None
+        self.last_frame = None
+
+    def _gap(self, t_ns: int, frame: int | None) -> bool:
+        if self.state is None:
+            return False
+        if self.gap_ns is not None and t_ns - self.state.t_prev_ns > self.gap_ns:
+            return True
+        if frame is not None and self.last_frame is not None:
+            jump = frame - self.last_frame
+            if jump < 0 or (self.max_frame_jump is not None and jump > self.max_frame_jump):
+                return True
+        return False
+
+    def __call__(self, x: np.ndarray, t_ns: int, frame: int | None = None) -> np.ndarray:
+        """x (C,) -> y (C,) float64."""
+        if self.passthrough:
+            self.filtered = False
+            return np.array(x, dtype=np.float64)
+        if self._gap(t_ns, frame):
+            log.debug("filter reset at t=%d frame=%s", t_ns, frame)
+            self.reset()
+            self.resets += 1
+        self.filtered = self.state is not None
+        y, self.state = one_euro_step(self.state, x, t_ns, self.params)
+        if frame is not None:
+            self.last_frame = frame
+        return y
+
+
+def zero_phase_smooth(x: np.ndarray, times_s: np.ndarray, cutoff_hz: float) -> np.ndarray:
+    """Non-causal smoothing for batch use: a first-order low pass run forward, then backward.
+
+    x (T, C), times_s (T,) increasing seconds (irregular spacing allowed), cutoff_hz > 0.
+    Each interval uses alpha(te, fc) as in the One Euro filter with beta = 0; the backward pass
+    reuses the same per-interval alphas, so a uniformly sampled signal gets the same result as
+    ``filtfilt`` with b = [alpha], a = [1, alpha - 1] and steady-state edges.
+    Returns (T, C) float64.
+    """
+    xv = np.asarray(x, dtype=np.float64)
+    t = np.asarray(times_s, dtype=np.float64)
+    if xv.ndim != 2 or t.shape != (xv.shape[0],):
+        raise FilterError(f"x must be (T, C) and times_s (T,), got {xv.shape} and {t.shape}")
+    if not cutoff_hz > 0:
+        raise FilterError(f"cutoff_hz must be > 0, got {cutoff_hz}")
+    if xv.shape[0] < 2:
+        return xv.copy()
+    te = np.diff(t)
+    if not np.all(te > 0):
+        raise FilterError("times_s must be strictly increasing")
+    alphas = _alpha_series(te, cutoff_hz)
+    fwd = np.empty_like(xv)
+    fwd[0] = xv[0]
+    for i, a in enumerate(alphas, start=1):
+        fwd[i] = a * xv[i] + (1.0 - a) * fwd[i - 1]
+    out = np.empty_like(xv)
+    out[-1] = fwd[-1]
+    for i in range(xv.shape[0] - 2, -1, -1):
+        a = alphas[i]
+        out[i] = a * fwd[i] + (1.0 - a) * out[i + 1]
+    return out
+
+
+def _alpha_series(te: np.ndarray, cutoff_hz: float) -> list[float]:
+    return [float(a) for a in 1.0 / (1.0 + 1.0 / (_TWO_PI * te * cutoff_hz))]

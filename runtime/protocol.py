@@ -1,0 +1,477 @@
+"""The wire format between mesh senders, the server and control subscribers (docs/protocol.md).
+
+Pure encode/decode over bytes and buffers; no sockets here. Every message is a msgpack map header
+(one ZeroMQ frame) plus, for meshes and controls, one raw little-endian float32 payload frame.
+Decoding a mesh never copies the vertex buffer.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import msgpack
+import numpy as np
+from rigcast.runtime.schema import ControlSchema
+
+log = logging.getLogger(__name__)
+
+PROTOCOL_VERSION = 1
+SUPPORTED_VERSIONS: tuple[int, ...] = (1,)
+
+FLAG_FILTERED = 1
+FLAG_CLAMPED = 2
+FLAG_OFF_MANIFOLD = 4
+FLAG_STALE = 8
+FLAGS = {"filtered": FLAG_FILTERED, "clamped": FLAG_CLAMPED,
+         "off_manifold": FLAG_OFF_MANIFOLD, "stale": FLAG_STALE}
+
+REASONS: tuple[str, ...] = (
+    "bad_vertex_count",
+    "non_finite",
+    "malformed",
+    "unknown_version",
+    "unsupported_version",
+    "oversize",
+    "unknown_stream",
+    "unknown_type",
+    "bad_bundle",
+)
+
+TOPIC_CONTROLS = b"ctl."
+TOPIC_TELEMETRY = b"tel."
+TOPIC_EVENTS = b"evt"
+MAX_STREAM_BYTES = 255
+MAX_HEADER_BYTES = 4096
+_U64 = 2**64
+_I64 = 2**63
+_F32 = np.dtype("<f4")
+
+
+class FrameError(ValueError):
+    """A message that is rejected; ``reason`` is one of REASONS and goes on the wire."""
+
+    def __init__(
+        self, reason: str, message: str, *, stream: str | None = None, frame: int | None = None
+    ) -> None:
+        if reason not in REASONS:
+            raise ValueError(f"unknown rejection reason {reason!r}")
+        super().__init__(message)
+        self.reason = reason
+        self.message = message
+        self.stream = stream
+        self.frame = frame
+
+
+@dataclass(frozen=True)
+class MeshFrame:
+    """A decoded mesh frame; ``vertices`` (V, 3) float32 is a read-only view on the payload."""
+
+    stream: str
+    frame: int
+    t_send_ns: int
+    vertices: np.ndarray
+
+
+@dataclass(frozen=True)
+class ControlsMessage:
+    """A decoded controls message; ``values`` (C,) float32 is read-only."""
+
+    stream: str
+    frame: int
+    t_send_ns: int
+    t_recv_ns: int
+    t_pub_ns: int
+    flags: int
+    values: np.ndarray
+
+    def has(self, flag: int) -> bool:
+        return bool(self.flags & flag)
+
+
+def flag_names(flags: int) -> tuple[str, ...]:
+    return tuple(name for name, bit in FLAGS.items() if flags & bit)
+
+
+# --- encoding ---------------------------------------------------------------------------------
+
+def _plain(obj: Any) -> Any:
+    """msgpack ``default`` hook: numpy scalars and arrays become plain Python values."""
+    if isinstance(obj, np.generic):
+        return obj.item()
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    if isinstance(obj, tuple | set | frozenset):
+        return list(obj)
+    raise TypeError(f"cannot encode {type(obj).__name__} in a message header")
+
+
+def pack(header: Mapping[str, Any]) -> bytes:
+    """A header map as msgpack bytes (str as UTF-8 str, bin for bytes, ints as ints)."""
+    return msgpack.packb(header, use_bin_type=True, default=_plain)
+
+
+def _topic(prefix: bytes, stream: str) -> bytes:
+    return prefix + stream.encode("utf-8")
+
+
+def encode_mesh(
+    stream: str, frame: int, t_send_ns: int, vertices: np.ndarray
+) -> list[bytes | memoryview]:
+    """[header, payload] for a mesh frame. vertices (V, 3); sent without a copy when it is
+    already C-contiguous little-endian float32 (send the list with ``copy=False``)."""
+    v = np.asarray(vertices)
+    if v.ndim != 2 or v.shape[1] != 3:
+        raise ValueError(f"vertices must be (V, 3), got {v.shape}")
+    if v.dtype != _F32 or not v.flags.c_contiguous:
+        v = np.ascontiguousarray(v, dtype=_F32)
+    header = pack({"v": PROTOCOL_VERSION, "type": "mesh", "stream": stream, "frame": int(frame),
+                   "t_send_ns": int(t_send_ns), "vertices": int(v.shape[0])})
+    return [header, v.data.cast("B")]
+
+
+def encode_controls(
+    stream: str,
+    frame: int,
+    t_send_ns: int,
+    t_recv_ns: int,
+    t_pub_ns: int,
+    values: np.ndarray,
+    flags: int,
+) -> list[bytes]:
+    """[topic, header, payload] for the PUB socket. values (C,) -> C little-endian float32."""
+    vals = np.ascontiguousarray(values, dtype=_F32).reshape(-1)
+    header = pack({"v": PROTOCOL_VERSION, "type": "controls", "stream": stream,
+                   "frame": int(frame), "t_send_ns": int(t_send_ns), "t_recv_ns": int(t_recv_ns),
+                   "t_pub_ns": int(t_pub_ns), "flags": int(flags), "count": int(vals.shape[0])})
+    return [_topic(TOPIC_CONTROLS, stream), header, vals.tobytes()]
+
+
+def encode_error(
+    reason: str, message: str, stream: str | None = None, frame: int | None = None
+) -> bytes:
+    """One-frame error reply (ROUTER -> DEALER). ``versions`` lists what the server speaks."""
+    if reason not in REASONS:
+        raise ValueError(f"unknown rejection reason {reason!r}")
+    return pack({"v": PROTOCOL_VERSION, "type": "error", "reason": reason, "stream": stream,
+                 "frame": frame, "message": message, "versions": list(SUPPORTED_VERSIONS)})
+
+
+def encode_frame_error(err: FrameError) -> bytes:
+    return encode_error(err.reason, err.message, err.stream, err.frame)
+
+
+def encode_schema_request(stream: str, versions: Sequence[int] = SUPPORTED_VERSIONS) -> bytes:
+    return pack({"v": PROTOCOL_VERSION, "type": "schema", "stream": stream,
+                 "versions": [int(x) for x in versions]})
+
+
+def negotiate_version(client_versions: Sequence[int], stream: str | None = None) -> int:
+    """Highest version both sides speak; FrameError("unsupported_version") when there is none."""
+    common = set(SUPPORTED_VERSIONS) & {int(x) for x in client_versions}
+    if not common:
+        raise FrameError(
+            "unsupported_version",
+            f"client speaks protocol versions {list(client_versions)}, server speaks "
+            f"{list(SUPPORTED_VERSIONS)}",
+            stream=stream,
+        )
+    return max(common)
+
+
+def encode_schema_reply(
+    stream: str,
+    schema: ControlSchema,
+    *,
+    bundle: str,
+    bundle_version: int,
+    fingerprint: str,
+    vertices: int,
+    version: int = PROTOCOL_VERSION,
+) -> bytes:
+    """Schema reply; ``version`` is the negotiated protocol version (see negotiate_version)."""
+    controls = [{"name": c.name, "min": float(c.minimum), "max": float(c.maximum),
+                 "default": float(c.default), "group": c.group, "pair": c.pair}
+                for c in schema.controls]
+    return pack({"v": int(version), "type": "schema_reply", "stream": stream,
+                 "protocol_versions": list(SUPPORTED_VERSIONS), "bundle": bundle,
+                 "bundle_version": int(bundle_version), "fingerprint": fingerprint,
+                 "vertices": int(vertices), "controls": controls})
+
+
+def encode_reload_request(stream: str, bundle: str) -> bytes:
+    return pack({"v": PROTOCOL_VERSION, "type": "reload", "stream": stream, "bundle": str(bundle)})
+
+
+def encode_reload_reply(stream: str, ok: bool, message: str, **extra: Any) -> bytes:
+    """Reload reply; ``extra`` may add e.g. ``bundle`` and ``fingerprint``."""
+    header: dict[str, Any] = {"v": PROTOCOL_VERSION, "type": "reload_reply", "stream": stream,
+                              "ok": bool(ok), "message": message}
+    _merge(header, extra)
+    return pack(header)
+
+
+def encode_telemetry(stream: str, fields: Mapping[str, Any]) -> list[bytes]:
+    """[topic, header] telemetry for one stream; ``fields`` are merged into the header map."""
+    header: dict[str, Any] = {"v": PROTOCOL_VERSION, "type": "telemetry", "stream": stream}
+    _merge(header, fields)
+    return [_topic(TOPIC_TELEMETRY, stream), pack(header)]
+
+
+def encode_event(
+    kind: str, stream: str | None = None, fields: Mapping[str, Any] | None = None
+) -> list[bytes]:
+    """[b"evt", header] server event (``kind`` e.g. "reject", "reload"), fields merged in."""
+    header: dict[str, Any] = {"v": PROTOCOL_VERSION, "type": "event", "kind": kind,
+                              "stream": stream}
+    _merge(header, fields or {})
+    return [TOPIC_EVENTS, pack(header)]
+
+
+def encode_reject_event(err: FrameError) -> list[bytes]:
+    return encode_event("reject", err.stream, {"reason": err.reason, "frame": err.frame,
+                                               "message": err.message})
+
+
+def _merge(header: dict[str, Any], fields: Mapping[str, Any]) -> None:
+    clash = set(fields) & set(header)
+    if clash:
+        raise ValueError(f"fields may not override header keys {sorted(clash)}")
+    header.update(fields)
+
+
+# --- decoding ---------------------------------------------------------------------------------
+
+def _is_int(x: Any) -> bool:
+    return isinstance(x, int) and not isinstance(x, bool)
+
+
+def _stream_ok(x: Any) -> bool:
+    return isinstance(x, str) and 0 < len(x.encode("utf-8", "surrogatepass")) <= MAX_STREAM_BYTES
+
+
+def _u64(x: Any) -> bool:
+    return _is_int(x) and 0 <= x < _U64
+
+
+def _i64(x: Any) -> bool:
+    return _is_int(x) and -_I64 <= x < _I64
+
+
+def _int_list(x: Any) -> bool:
+    return isinstance(x, list) and len(x) <= 64 and all(_is_int(i) for i in x)
+
+
+def _opt_str(x: Any) -> bool:
+    return x is None or isinstance(x, str)
+
+
+def _opt_u64(x: Any) -> bool:
+    return x is None or _u64(x)
+
+
+_FIELDS: dict[str, dict[str, Any]] = {
+    "mesh": {"stream": _stream_ok, "frame": _u64, "t_send_ns": _i64, "vertices": _u64},
+    "schema": {"stream": _stream_ok, "versions": _int_list},
+    "reload": {"stream": _stream_ok, "bundle": lambda x: isinstance(x, str) and x != ""},
+    "schema_reply": {"stream": _stream_ok, "protocol_versions": _int_list,
+                     "bundle": lambda x: isinstance(x, str), "vertices": _u64,
+                     "controls": lambda x: isinstance(x, list)},
+    "reload_reply": {"ok": lambda x: isinstance(x, bool), "message": lambda x: isinstance(x, str)},
+    "error": {"reason": lambda x: isinstance(x, str), "message": lambda x: isinstance(x, str),
+              "stream": _opt_str, "frame": _opt_u64},
+    "controls": {"stream": _stream_ok, "frame": _u64, "t_send_ns": _i64, "t_recv_ns": _i64,
+                 "t_pub_ns": _i64, "flags": _u64, "count": _u64},
+    "telemetry": {"stream": _stream_ok},
+    "event": {"kind": lambda x: isinstance(x, str), "stream": _opt_str},
+}
+MESSAGE_TYPES: tuple[str, ...] = tuple(_FIELDS)
+
+
+def decode_header(
+    raw: bytes | memoryview, *, max_header_bytes: int = MAX_HEADER_BYTES
+) -> dict[str, Any]:
+    """Decode and validate a header frame. Raises FrameError ("oversize", "malformed",
+    "unknown_version", "unknown_type"); the error carries stream and frame when they parsed."""
+    size = memoryview(raw).nbytes
+    if size > max_header_bytes:
+        raise FrameError("oversize", f"header is {size} bytes, limit {max_header_bytes}")
+    try:
+        header = msgpack.unpackb(raw, raw=False, strict_map_key=True, use_list=True)
+    except (ValueError, TypeError, msgpack.UnpackException, RecursionError) as exc:
+        raise FrameError(
+            "malformed", f"header is not valid msgpack ({type(exc).__name__}: {exc})"
+        ) from None
+    if not isinstance(header, dict):
+        raise FrameError("malformed", f"header must be a msgpack map, got {type(header).__name__}")
+    stream = header.get("stream")
+    stream = stream if _stream_ok(stream) else None
+    frame = header.get("frame")
+    frame = frame if _u64(frame) else None
+    version = header.get("v")
+    if not _is_int(version):
+        raise FrameError("malformed", f"header field 'v' must be an int, got {version!r}",
+                         stream=stream, frame=frame)
+    if version not in SUPPORTED_VERSIONS:
+        raise FrameError("unknown_version", f"protocol version {version} is not supported "
+                         f"(server speaks {list(SUPPORTED_VERSIONS)})", stream=stream, frame=frame)
+    kind = header.get("type")
+    if not isinstance(kind, str):
+        raise FrameError("malformed", f"header field 'type' must be a str, got {kind!r}",
+                         stream=stream, frame=frame)
+    fields = _FIELDS.get(kind)
+    if fields is None:
+        raise FrameError("unknown_type", f"unknown message type {kind!r}", stream=stream,
+                         frame=frame)
+    for name, check in fields.items():
+        if name not in header:
+            raise FrameError("malformed", f"{kind} header is missing {name!r}", stream=stream,
+                             frame=frame)
+        if not check(header[name]):
+            raise FrameError("malformed", f"{kind} header field {name!r} has bad value "
+                             f"{header[name]!r:.80}", stream=stream, frame=frame)
+    return header
+
+
+_ZEROS: dict[int, np.ndarray] = {}
+
+
+def _all_finite(v: np.ndarray) -> bool:
+    """True when v (contiguous float32) has no NaN or Inf.
+
+    ``v · 0`` is exactly 0 when every value is finite and NaN otherwise (0 * NaN and 0 * Inf are
+    NaN in IEEE 754), and it never overflows. On this machine it measured ~3 µs for 60,000 values
+    against ~5 µs for ``isfinite(v).all()`` and ~9 µs for ``v.sum()``.
+    """
+    flat = v.reshape(-1)
+    zeros = _ZEROS.get(flat.shape[0])
+    if zeros is None:
+        if len(_ZEROS) >= 8:
+            _ZEROS.clear()
+        zeros = _ZEROS[flat.shape[0]] = np.zeros(flat.shape[0], dtype=np.float32)
+    with np.errstate(invalid="ignore"):  # Inf * 0 would warn; the NaN it makes is the answer
+        total = float(flat @ zeros)
+    return math.isfinite(total)
+
+
+def decode_mesh(
+    header: Mapping[str, Any],
+    payload: Any,
+    *,
+    expected_vertices: int | None,
+    max_bytes: int,
+) -> MeshFrame:
+    """Validate a mesh frame and view its payload as (V, 3) float32 without copying.
+
+    header: from decode_header (type "mesh"); payload: bytes, memoryview, zmq.Frame or any
+    buffer. Raises FrameError "oversize", "bad_vertex_count", "malformed" or "non_finite".
+    """
+    stream, frame = header["stream"], header["frame"]
+    if header.get("type") != "mesh":
+        raise FrameError("malformed", f"expected a mesh header, got type {header.get('type')!r}",
+                         stream=stream, frame=frame)
+    count = header["vertices"]
+    try:
+        view = memoryview(payload).cast("B")
+    except TypeError as exc:
+        raise FrameError("malformed", f"mesh payload is not a buffer ({exc})", stream=stream,
+                         frame=frame) from None
+    size = view.nbytes
+    if size > max_bytes or count * 12 > max_bytes:
+        raise FrameError("oversize", f"mesh payload of {size} bytes ({count} vertices declared) "
+                         f"exceeds the limit of {max_bytes} bytes", stream=stream, frame=frame)
+    if expected_vertices is not None and count != expected_vertices:
+        raise FrameError("bad_vertex_count", f"stream {stream!r} expects {expected_vertices} "
+                         f"vertices, frame {frame} has {count}", stream=stream, frame=frame)
+    if size != count * 12:
+        raise FrameError("malformed", f"mesh payload is {size} bytes, {count} vertices need "
+                         f"{count * 12}", stream=stream, frame=frame)
+    vertices = np.frombuffer(view, dtype=_F32).reshape(count, 3)
+    vertices.flags.writeable = False
+    if not _all_finite(vertices):
+        bad = int(np.flatnonzero(~np.isfinite(vertices).all(axis=1))[0])
+        raise FrameError("non_finite", f"frame {frame} of stream {stream!r} has NaN or Inf "
+                         f"(first at vertex {bad})", stream=stream, frame=frame)
+    return MeshFrame(stream, frame, header["t_send_ns"], vertices)
+
+
+def decode_request(
+    frames: Sequence[Any], *, max_header_bytes: int = MAX_HEADER_BYTES
+) -> tuple[dict[str, Any], Any]:
+    """Split a request as the ROUTER sees it after the identity frame: [header] or
+    [header, payload]. Returns (header, payload or None); a mesh needs its payload."""
+    if not 1 <= len(frames) <= 2:
+        raise FrameError("malformed", f"a request has 1 or 2 frames, got {len(frames)}")
+    header = decode_header(frames[0], max_header_bytes=max_header_bytes)
+    payload = frames[1] if len(frames) == 2 else None
+    if (header["type"] == "mesh") != (payload is not None):
+        raise FrameError("malformed", f"{header['type']} message with {len(frames)} frames",
+                         stream=header.get("stream"), frame=header.get("frame"))
+    return header, payload
+
+
+def topic_stream(topic: bytes, prefix: bytes) -> str | None:
+    """The stream named by a topic with this exact prefix, or None."""
+    if not topic.startswith(prefix):
+        return None
+    try:
+        return topic[len(prefix):].decode("utf-8")
+    except UnicodeDecodeError:
+        return None
+
+
+def decode_controls(frames: Sequence[Any]) -> ControlsMessage:
+    """[topic, header, payload] from the PUB socket -> ControlsMessage (values copied: C is
+    small, and the result outlives the received frames)."""
+    if len(frames) != 3:
+        raise FrameError("malformed", f"a controls message has 3 frames, got {len(frames)}")
+    topic = bytes(frames[0])
+    header = decode_header(frames[1])
+    if header["type"] != "controls":
+        raise FrameError("malformed", f"expected controls, got {header['type']!r}")
+    stream = header["stream"]
+    if topic != _topic(TOPIC_CONTROLS, stream):
+        raise FrameError("malformed", f"topic {topic!r} does not match stream {stream!r}",
+                         stream=stream, frame=header["frame"])
+    view = memoryview(frames[2]).cast("B")
+    if view.nbytes != header["count"] * 4:
+        raise FrameError("malformed", f"controls payload is {view.nbytes} bytes, count "
+                         f"{header['count']} needs {header['count'] * 4}", stream=stream,
+                         frame=header["frame"])
+    values = np.frombuffer(view, dtype=_F32).copy()
+    values.flags.writeable = False
+    return ControlsMessage(stream, header["frame"], header["t_send_ns"], header["t_recv_ns"],
+                           header["t_pub_ns"], header["flags"], values)
+
+
+def decode_published(frames: Sequence[Any]) -> ControlsMessage | dict[str, Any]:
+    """Any PUB message: controls -> ControlsMessage; telemetry and events -> header dict."""
+    if len(frames) < 2:
+        raise FrameError("malformed", f"a published message has >= 2 frames, got {len(frames)}")
+    topic = bytes(frames[0])
+    if topic.startswith(TOPIC_CONTROLS):
+        return decode_controls(frames)
+    if len(frames) != 2:
+        raise FrameError("malformed", f"telemetry and events have 2 frames, got {len(frames)}")
+    header = decode_header(frames[1])
+    expected = {"telemetry": lambda h: _topic(TOPIC_TELEMETRY, h["stream"]),
+                "event": lambda h: TOPIC_EVENTS}.get(header["type"])
+    if expected is None or topic != expected(header):
+        raise FrameError("malformed", f"topic {topic!r} does not fit a {header['type']!r} message")
+    return header
+
+
+def decode_reply(raw: bytes | memoryview) -> dict[str, Any]:
+    """A one-frame reply on the DEALER (schema_reply, reload_reply or error)."""
+    header = decode_header(raw)
+    if header["type"] not in ("schema_reply", "reload_reply", "error"):
+        raise FrameError("malformed", f"expected a reply, got {header['type']!r}")
+    return header
+
+
+def schema_from_reply(reply: Mapping[str, Any]) -> ControlSchema:
+    """The ControlSchema carried by a schema reply (raises SchemaError when it is malformed)."""
+    return ControlSchema.from_dict({"controls": reply["controls"]})
