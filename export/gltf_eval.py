@@ -1,0 +1,152 @@
+"""Pure math of glTF 2.0 rig evaluation: morph targets, node transforms and linear blend skinning.
+
+Everything here is a function over numpy arrays; loading files lives in ``export/gltf_rig.py``.
+The formulas follow the glTF 2.0 specification, sections "Morph Targets" (3.7.2.2) and
+"Skins" / "Joint Hierarchy" (3.7.3):
+
+- morphed position = base + sum_i w_i * target_i.POSITION
+- jointMatrix_j = inverse(globalTransform(meshNode)) * globalTransform(joint_j)
+                  * inverseBindMatrix_j
+- skinned position = sum_k weight_k * jointMatrix_{joint_k} * (morphed position, 1)
+
+The demo rigs reuse ``skin_points`` and ``euler_xyz_matrices`` for their own joints.
+"""
+
+from __future__ import annotations
+
+import logging
+
+import numpy as np
+
+log = logging.getLogger(__name__)
+
+
+def morph_positions(base: np.ndarray, targets: np.ndarray, weights: np.ndarray) -> np.ndarray:
+    """Apply morph targets.
+
+    base: (V, 3); targets: (T, V, 3) POSITION displacements; weights: (B, T).
+    returns: (B, V, 3) = base + sum_t weights[b, t] * targets[t].
+    """
+    v = base.shape[0]
+    t = targets.shape[0]
+    if t == 0:
+        return np.broadcast_to(base, (weights.shape[0], v, 3)).copy()
+    # (B, T) @ (T, V*3) -> (B, V*3)
+    flat = weights @ targets.reshape(t, v * 3)
+    return base[None] + flat.reshape(-1, v, 3)
+
+
+def morph_positions_naive(base: np.ndarray, targets: np.ndarray, weights: np.ndarray) -> np.ndarray:
+    """Loop twin of ``morph_positions``: one pose and one target at a time."""
+    out = np.zeros((weights.shape[0], base.shape[0], 3))
+    for b in range(weights.shape[0]):
+        p = base.astype(np.float64).copy()
+        for i in range(targets.shape[0]):
+            p = p + weights[b, i] * targets[i]
+        out[b] = p
+    return out
+
+
+def quat_xyzw_to_matrix(q: np.ndarray) -> np.ndarray:
+    """Unit quaternion (x, y, z, w), the glTF node ``rotation`` order, to a (3, 3) matrix."""
+    x, y, z, w = (float(c) for c in np.asarray(q, dtype=np.float64) / np.linalg.norm(q))
+    return np.array(
+        [
+            [1 - 2 * (y * y + z * z), 2 * (x * y - z * w), 2 * (x * z + y * w)],
+            [2 * (x * y + z * w), 1 - 2 * (x * x + z * z), 2 * (y * z - x * w)],
+            [2 * (x * z - y * w), 2 * (y * z + x * w), 1 - 2 * (x * x + y * y)],
+        ]
+    )
+
+
+def trs_matrix(
+    translation: np.ndarray | None, rotation: np.ndarray | None, scale: np.ndarray | None
+) -> np.ndarray:
+    """glTF node TRS to a (4, 4) matrix M = T * R * S (spec 3.5.3, "Transformations")."""
+    m = np.eye(4)
+    r = np.eye(3) if rotation is None else quat_xyzw_to_matrix(np.asarray(rotation))
+    s = np.ones(3) if scale is None else np.asarray(scale, dtype=np.float64)
+    m[:3, :3] = r * s[None, :]
+    if translation is not None:
+        m[:3, 3] = np.asarray(translation, dtype=np.float64)
+    return m
+
+
+def euler_xyz_matrices(angles: np.ndarray) -> np.ndarray:
+    """Intrinsic X-then-Y-then-Z rotations, R = Rx(a) @ Ry(b) @ Rz(c).
+
+    This is SciPy's ``Rotation.from_euler("XYZ", [a, b, c])`` (upper case = intrinsic).
+    angles: (B, 3) radians. returns: (B, 3, 3).
+    """
+    a, b, c = angles[:, 0], angles[:, 1], angles[:, 2]
+    ca, sa, cb, sb, cc, sc = np.cos(a), np.sin(a), np.cos(b), np.sin(b), np.cos(c), np.sin(c)
+    out = np.empty((angles.shape[0], 3, 3), dtype=angles.dtype)
+    # Rx @ Ry @ Rz written out
+    out[:, 0, 0] = cb * cc
+    out[:, 0, 1] = -cb * sc
+    out[:, 0, 2] = sb
+    out[:, 1, 0] = ca * sc + sa * sb * cc
+    out[:, 1, 1] = ca * cc - sa * sb * sc
+    out[:, 1, 2] = -sa * cb
+    out[:, 2, 0] = sa * sc - ca * sb * cc
+    out[:, 2, 1] = sa * cc + ca * sb * sc
+    out[:, 2, 2] = ca * cb
+    return out
+
+
+def skin_points(points: np.ndarray, joint_mats: np.ndarray, weights: np.ndarray) -> np.ndarray:
+    """Linear blend skinning with dense weights.
+
+    points: (B, V, 3), or (V, 3) shared by every pose; joint_mats: (B, J, 4, 4) skinning matrices;
+    weights: (V, J), rows summing to 1.
+    returns: (B, V, 3) = sum_j weights[v, j] * (joint_mats[b, j] @ (points[b, v], 1))[:3].
+    """
+    bsz, j = joint_mats.shape[:2]
+    dtype = np.result_type(points.dtype, np.float32)
+    w = weights.astype(dtype)
+    if points.ndim == 2:
+        # q[v, (j, n)] = w[v, j] * (p[v], 1)[n]; out[v, (b, m)] = sum_{j, n} q[v, jn] M[b, j, m, n]
+        v = points.shape[0]
+        hom = np.concatenate([points.astype(dtype), np.ones((v, 1), dtype)], axis=1)
+        q = (w[:, :, None] * hom[:, None, :]).reshape(v, j * 4)
+        mats = joint_mats[:, :, :3, :].astype(dtype).transpose(1, 3, 0, 2).reshape(j * 4, bsz * 3)
+        return (q @ mats).reshape(v, bsz, 3).transpose(1, 0, 2).copy()
+    top = joint_mats[:, :, :3, :].reshape(bsz, j, 12).astype(dtype)
+    # blended[b, v, :] = sum_j w[v, j] * top[b, j, :]  -> (B, V, 3, 4)
+    blended = np.matmul(w[None], top).reshape(bsz, -1, 3, 4)
+    p = points.astype(dtype)
+    out = blended[..., 3].copy()
+    for n in range(3):
+        out += blended[..., n] * p[..., n : n + 1]
+    return out
+
+
+def skin_points_naive(
+    points: np.ndarray, joint_mats: np.ndarray, weights: np.ndarray
+) -> np.ndarray:
+    """Loop twin of ``skin_points``: per pose, vertex and joint, in float64."""
+    bsz = joint_mats.shape[0]
+    p = np.broadcast_to(points, (bsz, *points.shape[-2:])).astype(np.float64)
+    out = np.zeros_like(p)
+    for b in range(bsz):
+        for v in range(p.shape[1]):
+            h = np.append(p[b, v], 1.0)
+            for j in range(weights.shape[1]):
+                if weights[v, j] != 0.0:
+                    out[b, v] += weights[v, j] * (joint_mats[b, j] @ h)[:3]
+    return out
+
+
+def dense_weights(joints: np.ndarray, weights: np.ndarray, joint_count: int) -> np.ndarray:
+    """glTF JOINTS_0/WEIGHTS_0 (V, 4) to dense (V, J) weights, each row normalised to sum 1.
+
+    The spec requires the weights to sum to one; exporters round, so we renormalise. A vertex with
+    all-zero weights stays on the mesh node (weight 1 on no joint is not expressible), which we
+    reject in the loader.
+    """
+    v = joints.shape[0]
+    out = np.zeros((v, joint_count))
+    rows = np.repeat(np.arange(v), joints.shape[1])
+    np.add.at(out, (rows, joints.reshape(-1).astype(np.int64)), weights.reshape(-1))
+    total = out.sum(axis=1, keepdims=True)
+    return out / np.where(total > 0, total, 1.0)
