@@ -257,8 +257,10 @@ def _jaw_weights(neutral: np.ndarray) -> np.ndarray:
 
     Weights under 1e-6 are set to exactly 0 so evaluation can skip those vertices.
     """
-    y, z = neutral[:, 1], neutral[:, 2]
-    w = (1 / (1 + np.exp((y + 0.43) / 0.03))) * (1 / (1 + np.exp(-(z + 0.05) / 0.1)))
+    x, y, z = neutral[:, 0], neutral[:, 1], neutral[:, 2]
+    # sharp at the lips, widening past the mouth corners so the cheeks stretch, not split
+    width = 0.03 + 0.25 * np.clip(np.abs(x) - 0.22, 0.0, None)
+    w = (1 / (1 + np.exp((y + 0.43) / width))) * (1 / (1 + np.exp(-(z + 0.05) / 0.1)))
     return np.where(w < 1e-6, 0.0, w)
 
 
