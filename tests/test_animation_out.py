@@ -1,0 +1,175 @@
+"""Animation writers: CSV and JSON round trips, glTF 2.0 checked by the Khronos glTF validator."""
+
+from __future__ import annotations
+
+import base64
+import json
+import struct
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from rigcast.animation_out import (
+    AnimationError,
+    MorphBasis,
+    morph_basis,
+    read_csv,
+    read_json,
+    write_controls,
+    write_csv,
+    write_gltf,
+    write_json,
+)
+from rigcast.runtime.schema import Control, ControlSchema
+from tests.gltf_validator import assert_valid, errors, validate
+
+
+def _rig(v: int = 60, c: int = 5, seed: int = 0):
+    rng = np.random.default_rng(seed)
+    neutral = rng.normal(size=(v, 3)).astype(np.float32)
+    deltas = (0.1 * rng.normal(size=(c, v, 3))).astype(np.float32)
+    faces = np.array([[i, i + 1, i + 2] for i in range(v - 2)], np.int32)
+    schema = ControlSchema(tuple(Control(f"shape_{i}", 0.0, 1.0, 0.0) for i in range(c)))
+
+    def evaluate(w: np.ndarray) -> np.ndarray:
+        # mesh[b, v] = neutral[v] + sum_c w[b, c] deltas[c, v]
+        return neutral[None] + np.einsum("bc,cvx->bvx", np.asarray(w, np.float64), deltas)
+
+    return schema, neutral, faces, deltas, evaluate
+
+
+def _take(t: int, c: int, seed: int = 1) -> tuple[np.ndarray, np.ndarray]:
+    rng = np.random.default_rng(seed)
+    return rng.random((t, c)), np.arange(t) / 30.0
+
+
+def test_csv_round_trip(tmp_path: Path) -> None:
+    schema, *_ = _rig()
+    controls, times = _take(20, len(schema))
+    path = write_csv(tmp_path / "a.csv", schema.names, controls, times)
+    header = path.read_text().splitlines()[0]
+    assert header == "frame,time_s," + ",".join(schema.names)
+    names, back, t_back = read_csv(path)
+    assert names == schema.names
+    np.testing.assert_array_equal(back, controls)
+    np.testing.assert_array_equal(t_back, times)
+
+
+def test_json_round_trip(tmp_path: Path) -> None:
+    schema, *_ = _rig()
+    controls, times = _take(15, len(schema))
+    path = write_controls(tmp_path / "a.json", schema, controls, times, fps=30.0)
+    doc = json.loads(path.read_text())
+    assert doc["fps"] == 30.0 and doc["frames"] == list(range(15))
+    assert list(doc["controls"]) == list(schema.names)
+    back_schema, back, t_back = read_json(path)
+    assert back_schema == schema
+    np.testing.assert_array_equal(back, controls)
+    np.testing.assert_array_equal(t_back, times)
+
+
+def test_bad_takes_are_refused(tmp_path: Path) -> None:
+    schema, *_ = _rig()
+    controls, times = _take(5, len(schema))
+    with pytest.raises(AnimationError, match="strictly increasing"):
+        write_json(tmp_path / "a.json", schema, controls, times[::-1])
+    bad = controls.copy()
+    bad[2, 1] = np.nan
+    with pytest.raises(AnimationError, match="NaN"):
+        write_csv(tmp_path / "a.csv", schema.names, bad, times)
+    with pytest.raises(AnimationError, match="unknown output format"):
+        write_controls(tmp_path / "a.txt", schema, controls, times)
+
+
+def test_morph_basis_recovers_deltas_and_omits_nonlinear() -> None:
+    schema, neutral, faces, deltas, evaluate = _rig()
+    schema = ControlSchema((*schema.controls, Control("twist", -1.0, 1.0, 0.0)))
+
+    def with_twist(w: np.ndarray) -> np.ndarray:
+        out = evaluate(w[:, :-1])
+        ang = np.asarray(w[:, -1], np.float64)
+        # a rotation about z of the whole mesh: not a blendshape
+        c, s = np.cos(ang)[:, None], np.sin(ang)[:, None]
+        x, y = out[..., 0].copy(), out[..., 1].copy()
+        out[..., 0], out[..., 1] = c * x - s * y, s * x + c * y
+        return out
+
+    basis = morph_basis("r", schema, neutral, faces, with_twist)
+    assert basis.omitted == ("twist",)
+    assert basis.control_indices == (0, 1, 2, 3, 4)
+    np.testing.assert_allclose(basis.targets, deltas, atol=1e-5)
+
+
+def test_non_blendshape_rig_is_refused() -> None:
+    schema = ControlSchema((Control("bend", -1.0, 1.0, 0.0),))
+    neutral = np.eye(3, dtype=np.float32)
+
+    def bend(w: np.ndarray) -> np.ndarray:
+        return neutral[None] * np.cos(np.asarray(w, np.float64))[:, :, None]
+
+    with pytest.raises(AnimationError, match="not a blendshape rig"):
+        morph_basis("arm", schema, neutral, np.zeros((0, 3), np.int32), bend)
+
+
+def _gltf_json(path: Path) -> tuple[dict, bytes]:
+    if path.suffix == ".glb":
+        data = path.read_bytes()
+        magic, version, total = struct.unpack_from("<III", data, 0)
+        assert (magic, version, total) == (0x46546C67, 2, len(data))
+        jlen, _ = struct.unpack_from("<II", data, 12)
+        doc = json.loads(data[20 : 20 + jlen])
+        blen, _ = struct.unpack_from("<II", data, 20 + jlen)
+        return doc, data[28 + jlen : 28 + jlen + blen]
+    doc = json.loads(path.read_text())
+    uri = doc["buffers"][0]["uri"]
+    return doc, base64.b64decode(uri.split(",", 1)[1])
+
+
+@pytest.mark.parametrize("suffix", [".gltf", ".glb"])
+def test_gltf_output_passes_khronos_validator(tmp_path: Path, suffix: str) -> None:
+    schema, neutral, faces, deltas, evaluate = _rig()
+    basis = morph_basis("face", schema, neutral, faces, evaluate)
+    controls, times = _take(40, len(schema))
+    path = write_gltf(tmp_path / f"solve{suffix}", basis, controls, times)
+    report = assert_valid(path)
+    assert report["info"]["animationCount"] == 1
+    assert report["info"]["hasMorphTargets"] is True
+    assert report["info"]["totalVertexCount"] == neutral.shape[0]
+    doc, blob = _gltf_json(path)
+    # The animation's weights, read back from the buffer, are the controls (glTF 2.0 spec,
+    # "Animations": output count = input count x morph target count for the weights path).
+    sampler = doc["animations"][0]["samplers"][0]
+    out_acc = doc["accessors"][sampler["output"]]
+    view = doc["bufferViews"][out_acc["bufferView"]]
+    weights = np.frombuffer(blob, np.float32, out_acc["count"], view["byteOffset"])
+    np.testing.assert_allclose(weights.reshape(40, -1), controls, atol=1e-6)
+    prim = doc["meshes"][0]["primitives"][0]
+    assert len(prim["targets"]) == len(doc["meshes"][0]["weights"]) == len(schema)
+    assert doc["meshes"][0]["extras"]["targetNames"] == list(schema.names)
+
+
+def test_validator_catches_a_broken_file(tmp_path: Path) -> None:
+    """The validator check can fail: a wrong POSITION max is an error it must report."""
+    schema, neutral, faces, deltas, evaluate = _rig()
+    basis = morph_basis("face", schema, neutral, faces, evaluate)
+    controls, times = _take(10, len(schema))
+    path = write_gltf(tmp_path / "solve.gltf", basis, controls, times)
+    doc = json.loads(path.read_text())
+    pos = doc["meshes"][0]["primitives"][0]["attributes"]["POSITION"]
+    doc["accessors"][pos]["max"] = [99.0, 99.0, 99.0]
+    path.write_text(json.dumps(doc))
+    codes = {e["code"] for e in errors(validate(path))}
+    assert "ACCESSOR_MAX_MISMATCH" in codes
+
+
+def test_gltf_needs_basis_and_valid_extension(tmp_path: Path) -> None:
+    schema, neutral, faces, deltas, evaluate = _rig()
+    controls, times = _take(5, len(schema))
+    with pytest.raises(AnimationError, match="morph targets"):
+        write_controls(tmp_path / "a.glb", schema, controls, times)
+    basis = MorphBasis("r", neutral, faces, deltas, schema.names, tuple(range(len(schema))))
+    with pytest.raises(AnimationError, match=r"\.gltf or \.glb"):
+        write_gltf(tmp_path / "a.obj", basis, controls, times)
+    with pytest.raises(AnimationError, match=">= 0"):
+        write_gltf(tmp_path / "a.gltf", basis, controls, times - 1.0)
