@@ -9,6 +9,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from rigcast.runtime.schema import Control, ControlSchema
 
 from rigcast.animation_out import (
     AnimationError,
@@ -21,7 +22,6 @@ from rigcast.animation_out import (
     write_gltf,
     write_json,
 )
-from rigcast.runtime.schema import Control, ControlSchema
 from tests.gltf_validator import assert_valid, errors, validate
 
 
@@ -128,7 +128,7 @@ def _gltf_json(path: Path) -> tuple[dict, bytes]:
 
 @pytest.mark.parametrize("suffix", [".gltf", ".glb"])
 def test_gltf_output_passes_khronos_validator(tmp_path: Path, suffix: str) -> None:
-    schema, neutral, faces, deltas, evaluate = _rig()
+    schema, neutral, faces, _deltas, evaluate = _rig()
     basis = morph_basis("face", schema, neutral, faces, evaluate)
     controls, times = _take(40, len(schema))
     path = write_gltf(tmp_path / f"solve{suffix}", basis, controls, times)
@@ -151,7 +151,7 @@ def test_gltf_output_passes_khronos_validator(tmp_path: Path, suffix: str) -> No
 
 def test_validator_catches_a_broken_file(tmp_path: Path) -> None:
     """The validator check can fail: a wrong POSITION max is an error it must report."""
-    schema, neutral, faces, deltas, evaluate = _rig()
+    schema, neutral, faces, _deltas, evaluate = _rig()
     basis = morph_basis("face", schema, neutral, faces, evaluate)
     controls, times = _take(10, len(schema))
     path = write_gltf(tmp_path / "solve.gltf", basis, controls, times)
@@ -164,7 +164,7 @@ def test_validator_catches_a_broken_file(tmp_path: Path) -> None:
 
 
 def test_gltf_needs_basis_and_valid_extension(tmp_path: Path) -> None:
-    schema, neutral, faces, deltas, evaluate = _rig()
+    schema, neutral, faces, deltas, _evaluate = _rig()
     controls, times = _take(5, len(schema))
     with pytest.raises(AnimationError, match="morph targets"):
         write_controls(tmp_path / "a.glb", schema, controls, times)
