@@ -1,0 +1,185 @@
+"""User-facing errors: one readable line on stderr and an exit code, never a traceback.
+
+Every error a user can cause ends up here, once, as
+
+    rigcast: error: <what is wrong> — <what to do>
+
+Exit codes (documented in ``rigcast --help``):
+
+- ``0``   success;
+- ``1``   the work failed: a missing or unreadable file, a corrupt bundle, a take or a server that
+          does not match the bundle's rig, a port already in use, a server that does not answer;
+- ``2``   usage: bad arguments, a bad config, a bad rig spec or control schema;
+- ``130`` interrupted with Ctrl-C.
+
+Library modules raise their own narrow types (``BundleError``, ``RigError``, ``ConfigError``,
+``TakeError``, ...). This module matches them by type without importing them: an exception of a
+type can only exist if that type's module was imported, so it looks the classes up in
+``sys.modules``. That keeps ``rigcast serve`` from paying for torch just to know ``RigError``.
+"""
+
+from __future__ import annotations
+
+import errno
+import logging
+import sys
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import TextIO
+
+log = logging.getLogger(__name__)
+
+EXIT_OK = 0
+EXIT_FAILURE = 1
+EXIT_USAGE = 2
+EXIT_INTERRUPTED = 130
+
+
+class UserError(Exception):
+    """An error found by the CLI layer itself; carries its advice and exit code."""
+
+    def __init__(self, what: str, todo: str = "", code: int = EXIT_FAILURE) -> None:
+        super().__init__(what)
+        self.what = what
+        self.todo = todo
+        self.code = code
+
+
+class MismatchError(UserError):
+    """A take, a bundle or a server that were made for different rigs."""
+
+    def __init__(self, what: str, todo: str = "") -> None:
+        super().__init__(
+            what,
+            todo or "use the bundle built for this rig, or rebuild the bundle with `rigcast build`",
+        )
+
+
+class NoAnswerError(UserError):
+    """A server that did not answer in time."""
+
+    def __init__(self, what: str, todo: str = "") -> None:
+        super().__init__(
+            what, todo or "start one with `rigcast serve`, or check the endpoint you gave"
+        )
+
+
+@dataclass(frozen=True)
+class _Known:
+    module: str
+    name: str
+    todo: str
+    code: int
+
+
+# Most specific first: the first entry whose class matches wins.
+_KNOWN = (
+    _Known("rigcast.runtime.bundle", "BundleError",
+           "rebuild the bundle with `rigcast build`, or give the path of a good one", EXIT_FAILURE),
+    _Known("rigcast.runtime.config", "ConfigError",
+           "fix that setting; `rigcast serve --help` lists them all", EXIT_USAGE),
+    _Known("rigcast.export.rig", "RigError",
+           "check the rig spec; `rigcast build --help` lists the sources and their forms",
+           EXIT_USAGE),
+    _Known("rigcast.takes", "TakeError",
+           "check the take's path and format; `rigcast solve --help` lists the formats",
+           EXIT_FAILURE),
+    _Known("rigcast.animation_out", "AnimationError",
+           "choose another output path or format; `rigcast solve --help` lists them", EXIT_FAILURE),
+    _Known("rigcast.runtime.schema", "SchemaError",
+           "fix the control schema (each control needs name, min and max)", EXIT_USAGE),
+)
+
+
+def _one_line(text: str) -> str:
+    return " ".join(str(text).split())
+
+
+def _compose(what: str, todo: str) -> str:
+    what = _one_line(what).rstrip(".")
+    if not todo or " — " in what:
+        return what
+    return f"{what} — {todo}"
+
+
+def _zmq_line(exc: BaseException) -> tuple[str, int] | None:
+    zmq = sys.modules.get("zmq")
+    if zmq is None or not isinstance(exc, zmq.ZMQError):
+        return None
+    code = getattr(exc, "errno", None)
+    if code == errno.EADDRINUSE:
+        return (
+            _compose(
+                f"address already in use ({exc})",
+                "another server (maybe another rigcast) holds that port; pick another port "
+                "or stop the other process",
+            ),
+            EXIT_FAILURE,
+        )
+    if code in (errno.EINVAL, errno.ENODEV, errno.EPROTONOSUPPORT, errno.EADDRNOTAVAIL):
+        return (
+            _compose(
+                f"bad endpoint ({exc})",
+                "write endpoints as tcp://HOST:PORT, e.g. tcp://127.0.0.1:5701",
+            ),
+            EXIT_USAGE,
+        )
+    return _compose(f"network error ({exc})", "check the endpoints and retry"), EXIT_FAILURE
+
+
+def _os_line(exc: OSError) -> tuple[str, int]:
+    name = exc.filename
+    reason = exc.strerror or str(exc)
+    if isinstance(exc, FileNotFoundError):
+        what = f"{name}: no such file or directory" if name else _one_line(str(exc))
+        return _compose(what, "check the path"), EXIT_FAILURE
+    if isinstance(exc, PermissionError):
+        return _compose(f"{name}: permission denied", "check the file's permissions"), EXIT_FAILURE
+    if isinstance(exc, IsADirectoryError | NotADirectoryError):
+        return _compose(f"{name}: {reason.lower()}", "check the path"), EXIT_FAILURE
+    what = f"{name}: {reason}" if name else reason
+    return _compose(what, "check the path and the disk"), EXIT_FAILURE
+
+
+def explain(exc: BaseException) -> tuple[str, int] | None:
+    """The one line (without the ``rigcast: error:`` prefix) and exit code for a known error.
+
+    Returns None for anything else: an unknown exception is a bug and keeps its traceback.
+    """
+    if isinstance(exc, UserError):
+        return _compose(exc.what, exc.todo), exc.code
+    for known in _KNOWN:
+        module = sys.modules.get(known.module)
+        cls = getattr(module, known.name, None) if module is not None else None
+        if isinstance(cls, type) and isinstance(exc, cls):
+            return _compose(str(exc), known.todo), known.code
+    zmq_line = _zmq_line(exc)
+    if zmq_line is not None:
+        return zmq_line
+    if isinstance(exc, OSError):
+        return _os_line(exc)
+    return None
+
+
+def report(line: str, stream: TextIO | None = None) -> None:
+    """Write one error line to stderr."""
+    out = stream if stream is not None else sys.stderr
+    out.write(f"rigcast: error: {line}\n")
+    out.flush()
+
+
+def run_guarded(action: Callable[[], int]) -> int:
+    """Run a subcommand and turn every known error into one line and an exit code."""
+    try:
+        return action()
+    except KeyboardInterrupt:
+        sys.stderr.write("rigcast: interrupted\n")
+        return EXIT_INTERRUPTED
+    except Exception as exc:
+        explained = explain(exc)
+        if explained is None:
+            raise
+        line, code = explained
+        log.debug("error shown to the user", exc_info=True)
+        report(line)
+        return code
