@@ -130,7 +130,10 @@ def _fit(
     b = tgt - mu_t
     wb = b * w[:, None] if weights is not None else b * (1.0 / n)
     cov = wb.T @ src  # cov[i, j] = Σ_n w_n b[n, i] s[n, j]
-    var_s = float(w @ np.einsum("ij,ij->i", src, src)) - float(mu_s @ mu_s)
+    second = float(w @ np.einsum("ij,ij->i", src, src))
+    var_s = second - float(mu_s @ mu_s)
+    if var_s <= 1e-12 * second:  # cancellation residue: the points coincide
+        var_s = 0.0
     var_t = float(wb.ravel() @ b.ravel())
     transform, trace_ds = _from_covariance(cov, mu_s, mu_t, var_s, scale)
     # Residual in closed form (Umeyama eq. 41 and its scale-free analogue), no second pass.
