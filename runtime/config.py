@@ -136,7 +136,7 @@ class ServerConfig:
             raise ConfigError(f"stream ids configured twice: {dupes}")
         for name in ("input", "output"):
             _check_endpoint(getattr(self, name), name, self.allow_remote)
-        if self.input == self.output:
+        if self.input == self.output and not self.input.endswith(":*"):
             raise ConfigError(f"input and output endpoints are the same ({self.input})")
         if self.fit_error not in get_args(FitErrorMode):
             raise ConfigError(f"fit_error must be one of {get_args(FitErrorMode)}, "

@@ -133,7 +133,6 @@ class StreamTelemetry:
             p = ring.percentiles() / 1e6
             latency[name] = {"p50_ms": _f(p[0]), "p95_ms": _f(p[1]), "p99_ms": _f(p[2])}
         return {
-            "stream": self.stream,
             "bundle": self.bundle,
             "t_ns": now_ns,
             "latency": latency,
