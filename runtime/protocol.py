@@ -130,7 +130,7 @@ def encode_mesh(
         v = np.ascontiguousarray(v, dtype=_F32)
     header = pack({"v": PROTOCOL_VERSION, "type": "mesh", "stream": stream, "frame": int(frame),
                    "t_send_ns": int(t_send_ns), "vertices": int(v.shape[0])})
-    return [header, v.data.cast("B")]
+    return [header, v.data.cast("B") if v.size else b""]
 
 
 def encode_controls(

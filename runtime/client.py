@@ -1,0 +1,179 @@
+"""A small client for the rigcast server, and the reference for clients in other languages.
+
+MeshSender (DEALER) sends mesh frames and requests to the server's ROUTER; ControlsSubscriber
+(SUB) reads controls, telemetry and events from its PUB. The wire format is docs/protocol.md.
+"""
+
+from __future__ import annotations
+
+import logging
+import time
+from collections import deque
+from typing import Any
+
+import numpy as np
+import zmq
+from rigcast.runtime import protocol
+
+log = logging.getLogger(__name__)
+
+DEFAULT_INPUT = "tcp://127.0.0.1:5570"
+DEFAULT_OUTPUT = "tcp://127.0.0.1:5571"
+
+
+class ServerError(RuntimeError):
+    """The server answered a request with an error reply; ``reply`` is the decoded header."""
+
+    def __init__(self, reply: dict[str, Any]) -> None:
+        super().__init__(f"{reply.get('reason')}: {reply.get('message')}")
+        self.reason = str(reply.get("reason"))
+        self.reply = reply
+
+
+class MeshSender:
+    """Sends mesh frames and requests. ``send`` never blocks: at the high-water mark the frame
+    is dropped and counted (the newest frame matters, not a backlog)."""
+
+    def __init__(
+        self,
+        endpoint: str = DEFAULT_INPUT,
+        *,
+        context: zmq.Context | None = None,
+        sndhwm: int = 16,
+        rcvhwm: int = 1000,
+    ) -> None:
+        self.socket = (context or zmq.Context.instance()).socket(zmq.DEALER)
+        self.socket.setsockopt(zmq.SNDHWM, sndhwm)
+        self.socket.setsockopt(zmq.RCVHWM, rcvhwm)
+        self.socket.setsockopt(zmq.LINGER, 0)
+        self.socket.connect(endpoint)
+        self.dropped = 0
+        self._replies: deque[dict[str, Any]] = deque(maxlen=10_000)
+
+    def send(
+        self, stream: str, frame: int, vertices: np.ndarray, t_send_ns: int | None = None
+    ) -> bool:
+        """Send one mesh frame (V, 3) float32 without copying it; False when it was dropped."""
+        t = time.time_ns() if t_send_ns is None else t_send_ns
+        try:
+            self.socket.send_multipart(
+                protocol.encode_mesh(stream, frame, t, vertices), zmq.NOBLOCK, copy=False
+            )
+        except zmq.Again:
+            self.dropped += 1
+            return False
+        return True
+
+    def _receive(self, timeout_ms: int) -> dict[str, Any] | None:
+        if not self.socket.poll(max(timeout_ms, 0), zmq.POLLIN):
+            return None
+        frames = self.socket.recv_multipart()
+        try:
+            return protocol.decode_reply(frames[0])
+        except protocol.FrameError as err:
+            log.warning("undecodable reply from the server: %s", err)
+            return None
+
+    def _request(self, body: bytes, stream: str, want: str, timeout_s: float) -> dict[str, Any]:
+        self.socket.send(body)
+        deadline = time.monotonic() + timeout_s
+        while (left := deadline - time.monotonic()) > 0:
+            reply = self._receive(int(left * 1000) + 1)
+            if reply is None:
+                continue
+            if reply.get("stream") == stream and reply["type"] == want:
+                return reply
+            refused = reply["type"] == "error" and reply["frame"] is None
+            if refused and reply.get("stream") == stream:
+                raise ServerError(reply)
+            self._replies.append(reply)  # an error for an earlier mesh frame: keep it
+        raise TimeoutError(f"no {want} for stream {stream!r} within {timeout_s} s")
+
+    def request_schema(self, stream: str, timeout_s: float = 2.0) -> dict[str, Any]:
+        """The stream's schema reply (see protocol.schema_from_reply); ServerError on refusal."""
+        return self._request(protocol.encode_schema_request(stream), stream, "schema_reply",
+                             timeout_s)
+
+    def request_reload(self, stream: str, bundle_path: str, timeout_s: float = 30.0) -> dict:
+        """Ask the server to swap the stream's bundle; returns the reload reply (check "ok")."""
+        return self._request(protocol.encode_reload_request(stream, str(bundle_path)), stream,
+                             "reload_reply", timeout_s)
+
+    def poll_errors(self, timeout_ms: int = 0) -> list[dict[str, Any]]:
+        """Error replies received so far (waiting up to timeout_ms for the first one)."""
+        out = [r for r in self._replies if r["type"] == "error"]
+        self._replies.clear()
+        wait = timeout_ms if not out else 0
+        while (reply := self._receive(wait)) is not None:
+            if reply["type"] == "error":
+                out.append(reply)
+            wait = 0
+        return out
+
+    def close(self) -> None:
+        self.socket.close(linger=0)
+
+    def __enter__(self) -> MeshSender:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+
+class ControlsSubscriber:
+    """Receives one stream's controls and, if asked, its telemetry and the server's events."""
+
+    def __init__(
+        self,
+        stream: str,
+        endpoint: str = DEFAULT_OUTPUT,
+        *,
+        controls: bool = True,
+        telemetry: bool = False,
+        events: bool = False,
+        context: zmq.Context | None = None,
+        rcvhwm: int = 1000,
+    ) -> None:
+        self.stream = stream
+        name = stream.encode("utf-8")
+        self.topics: set[bytes] = set()
+        if controls:
+            self.topics.add(protocol.TOPIC_CONTROLS + name)
+        if telemetry:
+            self.topics.add(protocol.TOPIC_TELEMETRY + name)
+        if events:
+            self.topics.add(protocol.TOPIC_EVENTS)
+        self.socket = (context or zmq.Context.instance()).socket(zmq.SUB)
+        self.socket.setsockopt(zmq.RCVHWM, rcvhwm)
+        self.socket.setsockopt(zmq.LINGER, 0)
+        for topic in self.topics:
+            self.socket.setsockopt(zmq.SUBSCRIBE, topic)
+        self.socket.connect(endpoint)
+
+    def recv(self, timeout_ms: int = 1000) -> protocol.ControlsMessage | dict[str, Any] | None:
+        """The next message for this subscription, or None after timeout_ms.
+
+        Subscriptions are prefix matches ("ctl.a" also receives "ctl.ab"), so the topic is
+        compared exactly here and other streams' messages are skipped.
+        """
+        deadline = time.monotonic() + timeout_ms / 1000
+        while True:
+            left = int((deadline - time.monotonic()) * 1000)
+            if not self.socket.poll(max(left, 0), zmq.POLLIN):
+                return None
+            frames = self.socket.recv_multipart()
+            if frames[0] not in self.topics:
+                continue
+            try:
+                return protocol.decode_published(frames)
+            except protocol.FrameError as err:
+                log.warning("undecodable message on %r: %s", frames[0], err)
+
+    def close(self) -> None:
+        self.socket.close(linger=0)
+
+    def __enter__(self) -> ControlsSubscriber:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
