@@ -83,6 +83,7 @@ def control_trajectories(
     events_per_second: float = 1.2,
     controls_per_event: tuple[int, int] = (1, 3),
     amount: tuple[float, float] = (0.3, 1.0),
+    pick_weights: np.ndarray | None = None,
 ) -> np.ndarray:
     """Sparse, smooth control curves within bounds.
 
@@ -92,6 +93,7 @@ def control_trajectories(
     default to one of the bounds; the curve is
     ``default + sum_events envelope * (target - default)``,
     clipped to the bounds where overlapping events push the same control the same way.
+    ``pick_weights`` (C,) >= 0 makes some controls more likely to be picked (uniform if None).
     """
     lo, hi, d = (np.asarray(a, dtype=np.float64) for a in (lower, upper, defaults))
     c = lo.shape[0]
@@ -100,6 +102,12 @@ def control_trajectories(
     duration = float(t[-1] - t[0]) if t.shape[0] > 1 else 0.0
     n_events = max(1, rng.poisson(events_per_second * max(duration, 1.0)))
     kmin, kmax = controls_per_event
+    p = None
+    if pick_weights is not None:
+        pw = np.asarray(pick_weights, dtype=np.float64)
+        if pw.shape != (c,) or np.any(pw < 0) or not pw.sum() > 0:
+            raise TakeError(f"pick_weights must be (C,) = ({c},) non-negative, got {pw.shape}")
+        p = pw / pw.sum()
     for _ in range(n_events):
         attack, hold, release = (
             rng.uniform(0.12, 0.45),
@@ -108,8 +116,9 @@ def control_trajectories(
         )
         start = rng.uniform(t[0] - attack, t[0] + duration - attack)
         env = envelope(t, start, attack, hold, release)
-        k = int(rng.integers(kmin, min(kmax, c) + 1))
-        for i in rng.choice(c, size=k, replace=False):
+        kcap = min(kmax, c, int(np.count_nonzero(p)) if p is not None else c)
+        k = int(rng.integers(min(kmin, kcap), kcap + 1))
+        for i in rng.choice(c, size=k, replace=False, p=p):
             room_hi, room_lo = hi[i] - d[i], d[i] - lo[i]
             # Push toward the side with room; pick at random when both sides have it.
             up = room_lo <= 0 or (room_hi > 0 and rng.random() < room_hi / (room_hi + room_lo))
@@ -187,12 +196,14 @@ def synth_take(
     bulge_size: float = 0.03,
     head_motion: bool = False,
     events_per_second: float = 1.2,
+    pick_weights: np.ndarray | None = None,
 ) -> SynthTake:
     """Make a synthetic take of ``rig``.
 
     ``noise_sigma``, ``wobble_sigma`` and ``bulge_size`` are fractions of the neutral's bounding-box
     diagonal: per-axis Gaussian noise per vertex and frame, RMS amplitude of the correlated wobble,
-    and peak displacement of an off-manifold bulge (or dent).
+    and peak displacement of an off-manifold bulge (or dent). ``pick_weights`` (C,) biases which
+    controls the expressions use (e.g. more jaw for a speech-like take).
     """
     if frames < 2:
         raise TakeError(f"frames must be at least 2, got {frames}")
@@ -214,7 +225,13 @@ def synth_take(
     schema = rig.schema
     times = np.arange(frames, dtype=np.float64) / fps
     controls = control_trajectories(
-        schema.lower, schema.upper, schema.defaults, times, rng, events_per_second=events_per_second
+        schema.lower,
+        schema.upper,
+        schema.defaults,
+        times,
+        rng,
+        events_per_second=events_per_second,
+        pick_weights=pick_weights,
     ).astype(np.float32)
     clean = rig.evaluate(controls)
     neutral = np.asarray(rig.neutral, dtype=np.float64)

@@ -141,6 +141,16 @@ def test_rotation_matches_scipy() -> None:
     np.testing.assert_allclose(rotation_xyz(angles), expected, atol=1e-12)
 
 
+def test_pick_weights_choose_the_controls(rig: SmallRig) -> None:
+    weights = np.zeros(12)
+    weights[[3, 10]] = 1.0
+    take = synth_take(rig, frames=300, seed=9, pick_weights=weights)
+    moved = np.flatnonzero(np.abs(take.controls_true - rig.schema.defaults).max(axis=0) > 0)
+    assert set(moved) == {3, 10}
+    with pytest.raises(TakeError, match="pick_weights"):
+        synth_take(rig, frames=300, pick_weights=-weights)
+
+
 @pytest.mark.parametrize(
     ("kwargs", "word"),
     [
