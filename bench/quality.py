@@ -265,6 +265,7 @@ def run_rig(name: str, out: Path, sizes: Sizes) -> tuple[dict[str, Any], dict[st
             metrics.active_controls(take.controls_true, s.defaults, s.lower, s.upper).mean()
         ),
         "truth_jitter": metrics.jitter(take.controls_true, s.lower, s.upper),
+        "noise_floor_mean_err": metrics.vertex_error(take.vertices_clean, take.vertices).mean,
         "heldout_truth_active": float(
             metrics.active_controls(truth_h, s.defaults, s.lower, s.upper).mean()
         ),
@@ -400,7 +401,8 @@ def report_md(rigs: dict[str, dict[str, Any]], meta: dict[str, Any]) -> str:
             f"({e['bbox_diagonal']:.4g}).",
             "",
             f"Synthetic take: {e['take_frames']} frames at 60 fps, "
-            f"{e['take_off_manifold_frames']} off-manifold; truth: "
+            f"{e['take_off_manifold_frames']} off-manifold; the clean mesh is "
+            f"{e['noise_floor_mean_err']:.4g} from the observed one (noise floor); truth: "
             f"{e['truth_active']:.2f} active controls/frame, jitter {e['truth_jitter']:.2e}.",
             "",
             "| method | mean err | max err | mean err vs clean | control err (÷range) | "
