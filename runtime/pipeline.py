@@ -4,10 +4,12 @@ Each stage is a small function over numpy arrays; :class:`StreamState` holds wha
 frames (filter state, buffers, counters) and :class:`StreamModel` what comes from a bundle, so a
 reload swaps one object. Timings are ``time.perf_counter_ns`` around each stage.
 
-The fit error (forward model on the published controls against the stabilised input) runs after
-the publish, so it never delays it. A frame found off-manifold therefore cannot carry the flag
-itself: the OFF_MANIFOLD flag goes on the *next* published frame of the stream, and the exact
-frame number goes out at once in an ``off_manifold`` event and in telemetry.
+The fit error (forward model on the solved controls against the stabilised input) runs after
+the publish, so it never delays it. It uses the solved controls before the temporal filter: the
+filter's lag on fast motion is not a property of the mesh, and off-manifold is. A frame found
+off-manifold therefore cannot carry the flag itself: the OFF_MANIFOLD flag goes on the *next*
+published frame of the stream, and the exact frame number goes out at once in an
+``off_manifold`` event and in telemetry.
 """
 
 from __future__ import annotations
@@ -115,7 +117,8 @@ class FrameResult:
     t_send_ns: int
     t_recv_ns: int
     t_pub_ns: int
-    controls: np.ndarray  # (C,) float32
+    controls: np.ndarray  # (C,) float32, as published
+    solved: np.ndarray  # (C,) float32, the inverse's output before the filter
     flags: int
     stage_ns: tuple[int, int, int, int, int, int]
     pose: RigidTransform | None
@@ -211,6 +214,10 @@ class StreamState:
             gather(mesh.vertices, model.bundle.input_indices, subset[0])
         t1 = time.perf_counter_ns()
         raw = model.inverse.solve(subset)[0]
+        if not np.isfinite(raw).all():
+            # Finite but extreme input can overflow inside the graph; never let it into the
+            # filter state, which would stay NaN for the rest of the stream.
+            raise FloatingPointError(f"frame {mesh.frame}: the inverse returned NaN or Inf")
         t2 = time.perf_counter_ns()
         filtered = self.filter(raw, mesh.t_send_ns, mesh.frame)
         values, clipped = clamp(filtered, model.lower, model.upper, self._controls)
@@ -235,7 +242,7 @@ class StreamState:
         self.telemetry.filter_resets = self.filter.resets
         stage_ns = (decode_ns, t1 - t0, t2 - t1, t3 - t2, t4 - t3, t4 - recv_perf_ns)
         return FrameResult(cfg.stream, mesh.frame, mesh.t_send_ns, t_recv_ns, t_pub,
-                           values.copy(), flags, stage_ns, pose, rms)
+                           values.copy(), raw.copy(), flags, stage_ns, pose, rms)
 
     def wants_fit(self, mode: str, every: int) -> bool:
         if mode == "off":
@@ -251,7 +258,7 @@ class StreamState:
     def fit(self, result: FrameResult, vertices: np.ndarray) -> tuple[float, float, bool]:
         """Fit error of a published frame (after its publish); returns (rms, max, off_manifold)."""
         model = self.model
-        predicted = model.forward.evaluate(result.controls[None])[0]
+        predicted = model.forward.evaluate(result.solved[None])[0]
         observed = vertices if result.pose is None else result.pose.apply(vertices)
         rms, worst = fit_error(predicted, observed)
         off = rms > model.threshold

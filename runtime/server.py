@@ -257,7 +257,8 @@ class Server:
         pub = self.pub
         try:
             result = state.process(mesh, t_recv, perf_recv, decode_ns, pub.send_multipart)
-        except (AlignError, np.linalg.LinAlgError, FilterError, *ORT_ERRORS) as exc:
+        except (AlignError, np.linalg.LinAlgError, FilterError, FloatingPointError,
+                *ORT_ERRORS) as exc:
             # Finite input the models cannot handle (degenerate stable vertices, values so large
             # the graph overflows): this frame is lost, the stream goes on.
             state.telemetry.rejected["processing_error"] += 1

@@ -1,0 +1,377 @@
+"""The live server over real sockets on 127.0.0.1: round trips, streams, bad input, load, reload,
+signals and the off-manifold flag."""
+
+from __future__ import annotations
+
+import signal
+import subprocess
+import sys
+import threading
+import time
+from pathlib import Path
+
+import msgpack
+import numpy as np
+import onnxruntime as ort
+import pytest
+from conftest import (
+    OTHER,
+    TINY,
+    TINY_FIT_RMS,
+    Peer,
+    peer_for,
+    rig_mesh,
+    running_server,
+    server_config,
+    server_process,
+    tiny_rig,
+)
+from rigcast.export.synthetic_bundle import build_synthetic_bundle
+from rigcast.runtime import protocol
+from rigcast.runtime.bundle import load_bundle
+from rigcast.runtime.one_euro import OneEuroParams, one_euro_step_naive
+
+pytestmark = pytest.mark.timeout(60)
+
+STEP_NS = 8_333_333  # 120 fps
+
+
+def rotation_z(deg: float) -> np.ndarray:
+    a = np.radians(deg)
+    return np.array([[np.cos(a), -np.sin(a), 0], [np.sin(a), np.cos(a), 0], [0, 0, 1]])
+
+
+def controls_of(peer: Peer, stream: str, count: int, timeout_s: float = 5.0
+                ) -> list[protocol.ControlsMessage]:
+    """The next ``count`` controls messages of ``stream`` (other messages are skipped)."""
+    out: list[protocol.ControlsMessage] = []
+    deadline = time.monotonic() + timeout_s
+    topic = protocol.TOPIC_CONTROLS + stream.encode()
+    while len(out) < count and time.monotonic() < deadline:
+        frames = peer.recv_pub(0.2)
+        if frames is not None and frames[0] == topic:
+            out.append(protocol.decode_controls(frames))
+    return out
+
+
+def telemetry_of(peer: Peer, stream: str, timeout_s: float = 3.0) -> dict:
+    topic = protocol.TOPIC_TELEMETRY + stream.encode()
+    deadline = time.monotonic() + timeout_s
+    while time.monotonic() < deadline:
+        frames = peer.recv_pub(0.2)
+        if frames is not None and frames[0] == topic:
+            return protocol.decode_header(frames[1])
+    raise TimeoutError(f"no telemetry for {stream}")
+
+
+def expected_controls(bundle_path: Path, subsets: list[np.ndarray], times: list[int],
+                      filtered: bool = True) -> np.ndarray:
+    """Reference: the inverse ONNX run directly, then One Euro (naive twin) and clamp."""
+    bundle = load_bundle(bundle_path)
+    sess = ort.InferenceSession(bundle.inverse_onnx, providers=["CPUExecutionProvider"])
+    params = OneEuroParams.uniform(bundle.control_count, 1.0, 0.5, 1.0)  # StreamConfig defaults
+    state = None
+    out = []
+    for subset, t in zip(subsets, times, strict=True):
+        raw = sess.run(None, {"mesh": subset[None].astype(np.float32)})[0][0]
+        if filtered:
+            raw, state = one_euro_step_naive(state, raw, t, params)
+        out.append(np.clip(raw, bundle.schema.lower, bundle.schema.upper))
+    return np.array(out)
+
+
+def test_round_trip_matches_direct_inference_filter_and_clamp(tiny_bundle: Path) -> None:
+    rig = tiny_rig(TINY)
+    rng = np.random.default_rng(3)
+    weights = rng.uniform(0, 1, size=(6, TINY["controls"]))
+    rot, shift = rotation_z(12.0), np.array([0.3, -0.1, 0.05])
+    with running_server(server_config({"a": tiny_bundle})) as server, peer_for(server) as peer:
+        t0 = time.time_ns()
+        times, subsets = [], []
+        for i, w in enumerate(weights):
+            mesh = rig_mesh(rig, w)
+            moved = (mesh.astype(np.float64) @ rot.T + shift).astype(np.float32)
+            times.append(t0 + i * STEP_NS)
+            subsets.append(mesh[rig.input_indices])  # what stabilisation must recover
+            peer.dealer.send_multipart(protocol.encode_mesh("a", i, times[-1], moved))
+            got = controls_of(peer, "a", 1)
+            assert len(got) == 1, f"no controls for frame {i}"
+            msg = got[0]
+            assert (msg.frame, msg.t_send_ns) == (i, times[-1])
+            assert msg.t_recv_ns <= msg.t_pub_ns
+            assert msg.has(protocol.FLAG_FILTERED) == (i > 0)
+            assert not msg.has(protocol.FLAG_OFF_MANIFOLD)
+            np.testing.assert_allclose(msg.values, expected_controls(
+                tiny_bundle, subsets, times)[-1], atol=2e-4)
+        assert peer.recv_reply(0.05) is None, "a valid frame got an error reply"
+
+
+def test_streams_keep_their_own_filter_state_and_bundles(tiny_bundle: Path,
+                                                         other_bundle: Path) -> None:
+    rigs = {"a": tiny_rig(TINY), "b": tiny_rig(TINY), "c": tiny_rig(OTHER)}
+    paths = {"a": tiny_bundle, "b": tiny_bundle, "c": other_bundle}
+    rng = np.random.default_rng(4)
+    sent: dict[str, tuple[list, list]] = {s: ([], []) for s in rigs}
+    received: dict[str, list] = {s: [] for s in rigs}
+    with running_server(server_config(paths, stream_overrides={"stabilise": False})) as server, \
+            peer_for(server) as peer:
+        peer.dealer.send(protocol.encode_schema_request("c"))
+        schema_c = peer.recv_reply()
+        assert schema_c is not None
+        assert len(protocol.decode_reply(schema_c)["controls"]) == OTHER["controls"]
+        t0 = time.time_ns()
+        for i in range(5):
+            for sid, rig in rigs.items():
+                w = rng.uniform(0, 1, size=rig.deltas.shape[0])
+                mesh = rig_mesh(rig, w)
+                t = t0 + i * STEP_NS + hash(sid) % 1000
+                sent[sid][0].append(mesh[rig.input_indices])
+                sent[sid][1].append(t)
+                peer.dealer.send_multipart(protocol.encode_mesh(sid, i, t, mesh))
+                received[sid] += controls_of(peer, sid, 1)
+    for sid in rigs:
+        assert [m.frame for m in received[sid]] == list(range(5))
+        want = expected_controls(paths[sid], *sent[sid])
+        np.testing.assert_allclose(np.array([m.values for m in received[sid]]), want, atol=1e-5)
+
+
+def _valid_header(**changes: object) -> dict:
+    header = {"v": 1, "type": "mesh", "stream": "a", "frame": 7, "t_send_ns": 1,
+              "vertices": TINY["vertices"]}
+    header.update(changes)
+    return header
+
+
+def _bad_messages() -> dict[str, list[bytes]]:
+    neutral = tiny_rig(TINY).neutral
+    good = neutral.tobytes()
+    nan = neutral.copy()
+    nan[5, 1] = np.nan
+    inf = neutral.copy()
+    inf[0, 0] = np.inf
+    packed = msgpack.packb(_valid_header())
+    return {
+        "bad_vertex_count": [msgpack.packb(_valid_header(vertices=299)), neutral[:-1].tobytes()],
+        "non_finite/nan": [packed, nan.tobytes()],
+        "non_finite/inf": [packed, inf.tobytes()],
+        "malformed/truncated": [packed[:-4], good],
+        "malformed/garbage": [b"\xc1\xff\x00", good],
+        "malformed/short_payload": [packed, good[:-12]],
+        "malformed/missing_field": [msgpack.packb({"v": 1, "type": "mesh", "stream": "a"}), good],
+        "unknown_version": [msgpack.packb(_valid_header(v=99)), good],
+        "oversize": [msgpack.packb(_valid_header(vertices=1000)), b"\0" * 12000],
+        "unknown_stream": [msgpack.packb(_valid_header(stream="nobody")), good],
+    }
+
+
+def test_every_bad_input_gets_a_named_rejection_and_serving_goes_on(tiny_bundle: Path) -> None:
+    rig = tiny_rig(TINY)
+    bad = _bad_messages()
+    config = server_config({"a": tiny_bundle}, max_message_bytes=8192)
+    with running_server(config) as server, peer_for(server) as peer:
+        t0 = time.time_ns()
+        for i, (label, frames) in enumerate(bad.items()):
+            reason = label.split("/")[0]
+            peer.dealer.send_multipart(frames)
+            raw = peer.recv_reply()
+            assert raw is not None, f"no reply for {label}"
+            reply = protocol.decode_reply(raw)
+            assert reply["type"] == "error"
+            assert reply["reason"] == reason, (label, reply)
+            assert reply["message"]
+            # The server keeps serving: a valid frame right after comes back.
+            mesh = rig_mesh(rig, np.full(TINY["controls"], 0.3))
+            peer.dealer.send_multipart(protocol.encode_mesh("a", 100 + i, t0 + i * STEP_NS, mesh))
+            assert [m.frame for m in controls_of(peer, "a", 1)] == [100 + i], label
+        events = []
+        deadline = time.monotonic() + 2
+        while time.monotonic() < deadline and len(events) < len(bad):
+            frames = peer.recv_pub(0.1)
+            if frames and frames[0] == protocol.TOPIC_EVENTS:
+                events.append(protocol.decode_header(frames[1]))
+        tel = telemetry_of(peer, "a")
+    assert server.rejected.total() == len(bad)
+    assert tel["server"]["rejected"] == len(bad)
+    assert tel["processed"] == len(bad)
+
+
+def test_events_name_the_reason(tiny_bundle: Path) -> None:
+    with running_server(server_config({"a": tiny_bundle})) as server, peer_for(server) as peer:
+        peer.dealer.send_multipart(_bad_messages()["unknown_stream"])
+        deadline = time.monotonic() + 3
+        event = None
+        while time.monotonic() < deadline and event is None:
+            frames = peer.recv_pub(0.1)
+            if frames and frames[0] == protocol.TOPIC_EVENTS:
+                event = protocol.decode_header(frames[1])
+    assert event is not None
+    assert (event["kind"], event["reason"], event["stream"]) == ("reject", "unknown_stream",
+                                                                  "nobody")
+
+
+def test_newest_frame_wins_under_a_burst(tiny_bundle: Path) -> None:
+    rig = tiny_rig(TINY)
+    mesh = rig_mesh(rig, np.full(TINY["controls"], 0.2))
+    sent = 200
+    with running_server(server_config({"a": tiny_bundle})) as server, peer_for(server) as peer:
+        t0 = time.time_ns()
+        for i in range(sent):
+            peer.dealer.send_multipart(protocol.encode_mesh("a", i, t0 + i, mesh))
+        deadline = time.monotonic() + 10
+        last = None
+        while time.monotonic() < deadline:
+            frames = peer.recv_pub(0.2)
+            if frames and frames[0] == b"ctl.a":
+                last = protocol.decode_controls(frames)
+            if frames and frames[0] == b"tel.a":
+                tel = protocol.decode_header(frames[1])
+                if tel["processed"] + tel["dropped"] + tel["stale"] >= sent:
+                    break
+    assert tel["dropped"] > 0, "the burst never made the server fall behind"
+    assert tel["stale"] == 0
+    assert tel["processed"] + tel["dropped"] == sent
+    assert last is not None and last.frame == sent - 1
+    assert last.has(protocol.FLAG_STALE)  # it followed dropped frames
+
+
+def test_stale_frames_are_counted_not_published(tiny_bundle: Path) -> None:
+    mesh = tiny_rig(TINY).neutral
+    with running_server(server_config({"a": tiny_bundle})) as server, peer_for(server) as peer:
+        t0 = time.time_ns()
+        peer.dealer.send_multipart(protocol.encode_mesh("a", 5, t0, mesh))
+        assert [m.frame for m in controls_of(peer, "a", 1)] == [5]
+        peer.dealer.send_multipart(protocol.encode_mesh("a", 4, t0 - 1000, mesh))  # older
+        peer.dealer.send_multipart(protocol.encode_mesh("a", 6, t0 + STEP_NS, mesh))
+        assert [m.frame for m in controls_of(peer, "a", 1)] == [6]
+        tel = telemetry_of(peer, "a")
+    assert tel["stale"] == 1
+    assert tel["processed"] == 2
+
+
+def test_reload_swaps_atomically_while_frames_flow(tiny_bundle: Path, tmp_path: Path) -> None:
+    new_path = build_synthetic_bundle(tmp_path / "tiny_mlp.rcb", **TINY, inverse="mlp",
+                                      fit_rms=TINY_FIT_RMS)
+    rig = tiny_rig(TINY)
+    rng = np.random.default_rng(5)
+    meshes = [rig_mesh(rig, rng.uniform(0, 1, TINY["controls"])) for _ in range(8)]
+    sessions = {name: ort.InferenceSession(load_bundle(p).inverse_onnx,
+                                           providers=["CPUExecutionProvider"])
+                for name, p in (("old", tiny_bundle), ("new", new_path))}
+    config = server_config({"a": tiny_bundle},
+                           stream_overrides={"passthrough": True, "stabilise": False})
+    stop = threading.Event()
+    sent: list[int] = []
+    with running_server(config) as server, peer_for(server) as peer:
+        def stream_frames() -> None:
+            t0 = time.time_ns()
+            i = 0
+            while not stop.is_set():
+                peer.dealer.send_multipart(protocol.encode_mesh(
+                    "a", i, t0 + i * STEP_NS, meshes[i % len(meshes)]))
+                sent.append(i)
+                i += 1
+                time.sleep(0.004)
+
+        sender = threading.Thread(target=stream_frames)
+        reloader = Peer(server.input_endpoint, server.output_endpoint)
+        try:
+            sender.start()
+            time.sleep(0.1)
+            reloader.dealer.send(protocol.encode_reload_request("a", str(new_path)))
+            reply = reloader.recv_reply(10.0)
+            time.sleep(0.1)
+        finally:
+            stop.set()
+            sender.join()
+            reloader.close()
+        received = controls_of(peer, "a", len(sent), timeout_s=5.0)
+        assert peer.recv_reply(0.05) is None, "a frame was rejected during the reload"
+    assert reply is not None and protocol.decode_reply(reply)["ok"] is True
+    assert [m.frame for m in received] == sent, "frames were lost during the reload"
+    owners = []
+    for m in received:
+        subset = meshes[m.frame % len(meshes)][rig.input_indices][None]
+        match = [name for name, s in sessions.items()
+                 if np.allclose(s.run(None, {"mesh": subset})[0][0], m.values, atol=1e-5)]
+        assert len(match) == 1, f"frame {m.frame} matches {match}"
+        owners.append(match[0])
+    switch = owners.index("new")
+    assert switch > 0 and set(owners[switch:]) == {"new"}, "the swap was not atomic"
+
+
+def test_reload_refuses_bad_or_incompatible_bundles(tiny_bundle: Path, other_bundle: Path,
+                                                    tmp_path: Path) -> None:
+    corrupt = tmp_path / "corrupt.rcb"
+    corrupt.write_bytes(b"not a zip")
+    mesh = tiny_rig(TINY).neutral
+    with running_server(server_config({"a": tiny_bundle})) as server, peer_for(server) as peer:
+        for path, words in ((other_bundle, "vertices"), (corrupt, "not a rigcast bundle"),
+                            (tmp_path / "missing.rcb", "does not exist")):
+            peer.dealer.send(protocol.encode_reload_request("a", str(path)))
+            raw = peer.recv_reply(10.0)
+            assert raw is not None
+            reply = protocol.decode_reply(raw)
+            assert reply["ok"] is False and words in reply["message"], reply
+        peer.dealer.send_multipart(protocol.encode_mesh("a", 1, time.time_ns(), mesh))
+        assert [m.frame for m in controls_of(peer, "a", 1)] == [1]
+        assert len(controls_of(peer, "a", 1, 0.1)) == 0
+    assert server.streams["a"].model.label == str(tiny_bundle)
+
+
+def test_off_manifold_flag_follows_a_mesh_far_from_the_rig(tiny_bundle: Path) -> None:
+    rig = tiny_rig(TINY)
+    good = rig_mesh(rig, np.full(TINY["controls"], 0.4))
+    far = good + np.random.default_rng(6).normal(scale=0.2, size=good.shape).astype(np.float32)
+    with running_server(server_config({"a": tiny_bundle})) as server, peer_for(server) as peer:
+        t0 = time.time_ns()
+        flags: dict[int, bool] = {}
+        events: list[dict] = []
+        for i, mesh in enumerate([good, good, far, good, good]):
+            peer.dealer.send_multipart(protocol.encode_mesh("a", i, t0 + i * STEP_NS, mesh))
+            deadline = time.monotonic() + 3
+            while time.monotonic() < deadline and i not in flags:
+                frames = peer.recv_pub(0.2)
+                if frames and frames[0] == b"ctl.a":
+                    msg = protocol.decode_controls(frames)
+                    flags[msg.frame] = msg.has(protocol.FLAG_OFF_MANIFOLD)
+                elif frames and frames[0] == protocol.TOPIC_EVENTS:
+                    events.append(protocol.decode_header(frames[1]))
+            time.sleep(0.02)  # the fit error of frame i runs after its publish
+        tel = telemetry_of(peer, "a")
+        while (tail := peer.recv_pub(0.05)) is not None:
+            if tail[0] == protocol.TOPIC_EVENTS:
+                events.append(protocol.decode_header(tail[1]))
+    # Computed after the publish: the flag lands on the frame after the far one.
+    assert flags == {0: False, 1: False, 2: False, 3: True, 4: False}
+    off = [e for e in events if e["kind"] == "off_manifold"]
+    assert [e["frame"] for e in off] == [2]
+    assert off[0]["rms"] > off[0]["threshold"] == pytest.approx(3 * TINY_FIT_RMS)
+    assert tel["fit_error"]["last_off_manifold_frame"] == 2
+    assert tel["fit_error"]["rms"] < 1e-4  # the last frame was on the rig
+
+
+def test_sigterm_stops_a_server_process_cleanly(tiny_bundle: Path, tmp_path: Path) -> None:
+    with server_process(["--bundle", f"a={tiny_bundle}"], tmp_path) as (proc, ready):
+        peer = Peer(ready["input"], ready["output"])
+        try:
+            peer.handshake()
+            peer.dealer.send_multipart(protocol.encode_mesh("a", 0, time.time_ns(),
+                                                            tiny_rig(TINY).neutral))
+            assert [m.frame for m in controls_of(peer, "a", 1)] == [0]
+        finally:
+            peer.close()
+        start = time.monotonic()
+        proc.send_signal(signal.SIGTERM)
+        code = proc.wait(5)
+        elapsed = time.monotonic() - start
+    assert code == 0
+    assert elapsed < 3.0
+
+
+def test_non_loopback_bind_without_the_flag_is_refused(tiny_bundle: Path) -> None:
+    proc = subprocess.run(
+        [sys.executable, "-m", "rigcast.runtime.serve_main",
+         "--bundle", str(tiny_bundle), "--input", "tcp://0.0.0.0:0"],
+        capture_output=True, text=True, timeout=60, check=False)
+    assert proc.returncode == 2
+    assert "not a loopback address" in proc.stderr and "--allow-remote" in proc.stderr
