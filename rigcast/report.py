@@ -263,3 +263,44 @@ def inspect_bundle(path: str | Path, *, as_json: bool = False) -> str:
     lines = bundle_summary(bundle.manifest, path=str(path), size_bytes=Path(path).stat().st_size,
                            fingerprint=bundle.fingerprint, member_sizes=sizes)
     return "\n".join(lines)
+
+
+def build_summary(result: Any) -> list[str]:
+    """The lines ``rigcast build`` prints for an ``export.build.BuildResult``."""
+    fwd, inv = result.forward, result.inverse
+    timings = ", ".join(f"{k} {v:.1f} s" for k, v in result.timings.items())
+    how = "reused from the cache" if result.cached else f"built in {result.seconds:.1f} s"
+    return [
+        f"bundle: {result.bundle_path} ({how}; key {result.key})",
+        f"forward model: mean vertex error {fwd.mean_err:.5f} ({fwd.mean_err_pct_diag:.3f}% of "
+        f"the bounding-box diagonal), max {fwd.max_err:.5f} on {fwd.holdout_count} held-out poses",
+        f"inverse network ({inv.mode}): mean vertex error {inv.mean_err:.5f} "
+        f"({inv.mean_err_pct_diag:.3f}% of diagonal) after {inv.steps} steps",
+        f"check through the real rig: mean vertex error {result.check_mean_err:.5f} "
+        f"({result.check_mean_err_pct_diag:.3f}% of diagonal)",
+        f"stages: {timings}" if timings else "stages: -",
+    ]
+
+
+def write_build_report(out_dir: str | Path, result: Any) -> Path:
+    """``report.md`` and ``loss.png`` (the inverse's training loss) for a build."""
+    from matplotlib.figure import Figure
+
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    curve = np.asarray(getattr(result.inverse, "loss_curve", ()) or (), dtype=np.float64)
+    md = ["# rigcast build", "", *[f"- {line}" for line in build_summary(result)], ""]
+    if curve.size:
+        fig = Figure(figsize=(7, 3.5), dpi=100)
+        ax = fig.add_subplot(1, 1, 1)
+        ax.semilogy(np.arange(curve.size), np.maximum(curve, 1e-12))
+        ax.set_xlabel("logged step")
+        ax.set_ylabel("mesh-space loss")
+        ax.set_title("Inverse network training loss")
+        ax.grid(alpha=0.3)
+        fig.tight_layout()
+        fig.savefig(out / "loss.png")
+        md += ["## Training loss", "", "![loss](loss.png)", ""]
+    path = out / REPORT_NAME
+    path.write_text("\n".join(md), encoding="utf-8")
+    return path

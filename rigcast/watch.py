@@ -240,3 +240,157 @@ def build_progress(enabled: bool) -> Iterator[Callable[[str, int, int], None] | 
             progress.update(tasks[stage], completed=done, total=max(total, 1))
 
         yield update
+
+
+class _AllStreams:
+    """A SUB socket on every stream's controls and telemetry and on the events (the client's
+    ControlsSubscriber follows one stream; the view follows them all)."""
+
+    def __init__(self, endpoint: str, *, controls: bool = True) -> None:
+        import zmq
+
+        from rigcast.runtime import protocol
+
+        self._zmq = zmq
+        self._protocol = protocol
+        self.socket: Any = zmq.Context.instance().socket(zmq.SUB)
+        self.socket.setsockopt(zmq.RCVHWM, 1000)
+        self.socket.setsockopt(zmq.LINGER, 0)
+        topics = [protocol.TOPIC_TELEMETRY, protocol.TOPIC_EVENTS]
+        if controls:
+            topics.append(protocol.TOPIC_CONTROLS)
+        for topic in topics:
+            self.socket.setsockopt(zmq.SUBSCRIBE, topic)
+        self.socket.connect(endpoint)
+
+    def recv(self, timeout_ms: int) -> ControlsMessage | dict[str, Any] | None:
+        if not self.socket.poll(max(timeout_ms, 0), self._zmq.POLLIN):
+            return None
+        frames = self.socket.recv_multipart()
+        try:
+            return self._protocol.decode_published(frames)
+        except self._protocol.FrameError as err:
+            log.warning("undecodable message on %r: %s", frames[0], err)
+            return None
+
+    def close(self) -> None:
+        self.socket.close(linger=0)
+
+
+def _fetch_schema(endpoint: str, stream: str, timeout_s: float = 0.5) -> ControlSchema | None:
+    """The stream's schema from the server's input endpoint, or None when it does not answer."""
+    from rigcast.runtime.client import MeshSender, ServerError
+    from rigcast.runtime.protocol import schema_from_reply
+    from rigcast.runtime.schema import SchemaError
+
+    with MeshSender(endpoint) as sender:
+        try:
+            return schema_from_reply(sender.request_schema(stream, timeout_s=timeout_s))
+        except (TimeoutError, ServerError, SchemaError) as exc:
+            log.info("no schema for stream %s from %s (%s); bars show control indices",
+                     stream, endpoint, exc)
+            return None
+
+
+def watch(
+    source: str,
+    *,
+    schema_endpoint: str | None = None,
+    stream: str | None = None,
+    once: bool = False,
+    duration_s: float | None = None,
+    top: int = 8,
+    timeout_s: float = 10.0,
+    plain: bool = False,
+    write: Callable[[str], None] | None = None,
+) -> WatchState:
+    """Run the view until Ctrl-C, ``duration_s``, or (``once``) the first full snapshot.
+
+    ``plain`` (or a stdout that is not a terminal) prints text lines once a second instead of
+    the live view. Raises TimeoutError when ``once`` and no telemetry arrives in ``timeout_s``.
+    """
+    import sys
+
+    from rich.console import Console
+    from rich.live import Live
+
+    def _stdout(text: str) -> None:
+        sys.stdout.write(text + "\n")
+        sys.stdout.flush()
+
+    out = write or _stdout
+    state = WatchState(only_stream=stream)
+    sub = _AllStreams(source)
+    asked: set[str] = set()
+    start = time.monotonic()
+    interactive = sys.stdout.isatty() and not plain and not once
+
+    def pump(budget_s: float) -> None:
+        end = time.monotonic() + budget_s
+        while (left := end - time.monotonic()) > 0:
+            msg = sub.recv(int(left * 1000) + 1)
+            if msg is not None:
+                state.add(msg)
+        if schema_endpoint is not None:
+            for name, view in state.streams.items():
+                if name not in asked:
+                    asked.add(name)
+                    view.schema = _fetch_schema(schema_endpoint, name)
+
+    def done() -> bool:
+        return duration_s is not None and time.monotonic() - start >= duration_s
+
+    try:
+        if once:
+            while state.telemetry_count == 0:
+                if time.monotonic() - start > timeout_s:
+                    raise TimeoutError(f"no telemetry from {source} within {timeout_s:g} s")
+                pump(0.1)
+            pump(0.3)  # let the other streams' telemetry and some controls arrive
+            console = Console(width=140, force_terminal=False, no_color=not sys.stdout.isatty())
+            if plain:
+                for line in plain_lines(state):
+                    out(line)
+            else:
+                console.print(render_view(state, top))
+        elif interactive:
+            with Live(render_view(state, top), refresh_per_second=4, screen=False) as live:
+                while not done():
+                    pump(0.25)
+                    live.update(render_view(state, top))
+        else:
+            while not done():
+                pump(1.0 if duration_s is None else min(1.0, max(duration_s, 0.05)))
+                for line in plain_lines(state):
+                    out(line)
+    except KeyboardInterrupt:
+        pass
+    finally:
+        sub.close()
+    return state
+
+
+def watch_from_args(args: Any) -> int:
+    from rigcast.errors import EXIT_OK, NoAnswerError
+
+    try:
+        watch(args.source, schema_endpoint=args.to, stream=args.stream, once=args.once,
+              duration_s=args.duration, top=args.top, timeout_s=args.timeout, plain=args.plain)
+    except TimeoutError as exc:
+        raise NoAnswerError(str(exc),
+                            "start a server with `rigcast serve`, or check --from") from None
+    return EXIT_OK
+
+
+def discover_stream(source: str, timeout_s: float = 3.0) -> str:
+    """The first stream id named by a server's telemetry on ``source``; TimeoutError if none."""
+    sub = _AllStreams(source, controls=False)
+    try:
+        deadline = time.monotonic() + timeout_s
+        while (left := deadline - time.monotonic()) > 0:
+            msg = sub.recv(int(left * 1000) + 1)
+            if isinstance(msg, Mapping) and msg.get("type") == "telemetry":
+                return str(msg["stream"])
+    finally:
+        sub.close()
+    raise TimeoutError(f"no telemetry from {source} within {timeout_s:g} s to learn a stream id")

@@ -1,0 +1,425 @@
+"""The ``rigcast`` command line: argument parsing, one library call per subcommand.
+
+Nothing here computes anything. Heavy modules are imported inside the subcommand that needs them,
+so ``rigcast serve --help`` never loads torch.
+"""
+
+from __future__ import annotations
+
+import argparse
+import logging
+import sys
+import textwrap
+from collections.abc import Callable, Sequence
+from pathlib import Path
+
+from rigcast import __version__
+from rigcast.errors import EXIT_OK, run_guarded
+
+log = logging.getLogger(__name__)
+
+DEFAULT_INPUT = "tcp://127.0.0.1:5570"
+DEFAULT_OUTPUT = "tcp://127.0.0.1:5571"
+
+_DESCRIPTION = """\
+rigcast turns dense mesh streams (4D capture, generative models) into a character rig's animator
+controls: live on a CPU over ZeroMQ, or in batch over whole takes.
+
+Start with `rigcast demo`: it builds the demo bundle, serves it, streams a take and writes a report.
+"""
+
+_EPILOG = """\
+typical session:
+  rigcast build demo:face -o face.rcb          # rig -> bundle (sample, train, export, check)
+  rigcast inspect face.rcb                     # what is in it
+  rigcast serve --bundle face.rcb              # live server on loopback
+  rigcast send take.npz --fps 60 --loop        # stream a take to it
+  rigcast watch                                # live telemetry in the terminal
+  rigcast record -o live.csv --duration 10     # save the published controls
+  rigcast solve face.rcb take.npz -o take.gltf # the whole take offline
+
+exit codes: 0 success; 1 the work failed (missing or corrupt file, a take or server made for
+another rig, a port in use, no answer); 2 usage (bad arguments, config or rig spec); 130 Ctrl-C.
+Every error is one line on stderr: `rigcast: error: <what is wrong> — <what to do>`.
+"""
+
+
+class _Formatter(argparse.RawDescriptionHelpFormatter):
+    """Keep the hand-wrapped examples; show a default where there is one worth showing."""
+
+    def _get_help_string(self, action: argparse.Action) -> str | None:
+        text = action.help or ""
+        default = action.default
+        quiet = default is None or default is False or default == argparse.SUPPRESS
+        if "default" in text or quiet or not action.option_strings:
+            return text
+        return f"{text} (default: %(default)s)"
+
+
+Handler = Callable[[argparse.Namespace], int]
+
+
+def _wrap(text: str) -> str:
+    """Fill prose paragraphs to 78 columns; keep indented blocks (lists, examples) as written."""
+    paragraphs = text.split("\n\n")
+    return "\n\n".join(p if p.startswith(" ") or "\n " in p else textwrap.fill(p, 78)
+                       for p in paragraphs)
+
+
+def _sub(subs: argparse._SubParsersAction, name: str, summary: str, description: str,
+         examples: str, handler: Handler, *, show_defaults: bool = True) -> argparse.ArgumentParser:
+    formatter = _Formatter if show_defaults else argparse.RawDescriptionHelpFormatter
+    p = subs.add_parser(name, help=summary, description=_wrap(description),
+                        epilog="examples:\n" + examples, formatter_class=formatter)
+    p.set_defaults(handler=handler)
+    return p
+
+
+def _add_build(subs: argparse._SubParsersAction) -> None:
+    p = _sub(
+        subs, "build", "rig source -> bundle (sample, train, export, check)",
+        "Sample a rig as a black box, train the forward approximator and the inverse network, "
+        "export both to ONNX in one bundle, check them and print the quality figures.\n\n"
+        "Rig sources:\n"
+        "  demo:face | demo:face-linear | demo:arm   built-in demo rigs\n"
+        "  gltf:PATH                                 glTF 2.0 morph targets and/or skin joints\n"
+        "  py:MODULE:FUNCTION                        a Python callable, with --schema\n"
+        "  proc:COMMAND                              an external process (NPY over stdin/stdout)\n"
+        "  npz:PATH                                  a dataset someone else sampled",
+        "  rigcast build demo:face -o face.rcb\n"
+        "  rigcast build gltf:hero.glb --bounds hero_joints.json -o hero.rcb\n"
+        "  rigcast build py:myrigs.crab:evaluate --schema crab_schema.json -o crab.rcb\n"
+        "  rigcast build 'proc:mayabatch -script sample_rig.py' --schema s.json -o m.rcb\n"
+        "  rigcast build demo:arm --samples 300 --steps 100 -o arm.rcb   # a tiny, quick build\n",
+        _cmd_build,
+    )
+    p.add_argument("rig", help="rig source spec (see above)")
+    p.add_argument("-o", "--out", type=Path, default=None,
+                   help="bundle path to write (default: <rig name>.rcb)")
+    p.add_argument("--schema", type=Path, help="control schema JSON (py: and proc: sources)")
+    p.add_argument("--bounds", type=Path, help="joint rotation bounds JSON (glTF skins)")
+    p.add_argument("--samples", type=int, help="rig samples to draw (default: the build's own)")
+    p.add_argument("--steps", type=int,
+                   help="inverse-network training steps (default: the build's)")
+    p.add_argument("--epochs", type=int,
+                   help="forward-model training epochs (default: the build's)")
+    p.add_argument("--report", type=Path, default=None,
+                   help="also write a build report (Markdown + loss curve) into this folder")
+    p.add_argument("--workers", type=int, help="local processes that evaluate the rig")
+    p.add_argument("--scheduler", help="dask.distributed scheduler address, to sample on a cluster")
+    p.add_argument("--seed", type=int, help="random seed")
+    p.add_argument("--cache", type=Path, default=None,
+                   help="cache folder: reuse a bundle whose inputs are unchanged, resume sampling")
+    p.add_argument("--quiet", action="store_true", help="no progress bars")
+
+
+def _add_serve(subs: argparse._SubParsersAction) -> None:
+    from rigcast.runtime import serve_main
+
+    p = _sub(
+        subs, "serve", "serve bundles live over ZeroMQ",
+        "Serve one or more bundles: mesh frames in on a ROUTER socket, controls, telemetry and "
+        "events out on a PUB socket (docs/protocol.md). Binds to loopback unless --allow-remote "
+        "is given; put a remote-facing server on a closed stage network only.",
+        "  rigcast serve --bundle face.rcb                 # stream id 'face'\n"
+        "  rigcast serve --bundle actor1=face.rcb --bundle actor2=arm.rcb\n"
+        "  rigcast serve --bundle face.rcb --input tcp://127.0.0.1:6000 "
+        "--output tcp://127.0.0.1:6001\n"
+        "  rigcast serve --config stage.toml\n",
+        _cmd_serve,
+        show_defaults=False,  # the server's flags state their defaults themselves
+    )
+    serve_main.add_serve_arguments(p)
+
+
+def _add_send(subs: argparse._SubParsersAction) -> None:
+    p = _sub(
+        subs, "send", "stream a take to a server, with stage rehearsal options",
+        "Stream a take to a running server at a frame rate. Before sending it asks the server for "
+        "its schema and stops if the take's vertex count is not the bundle's. The rehearsal "
+        "options spoil the take on purpose, to see how a stage setup copes.",
+        "  rigcast send take.npz\n"
+        "  rigcast send frames/ --fps 30 --loop --duration 60\n"
+        "  rigcast send take.npz --head-motion --noise 0.002 --drop-rate 0.05 \\\n"
+        "      --corrupt-rate 0.01\n",
+        _cmd_send,
+    )
+    p.add_argument("take", type=Path, help="take: .npy/.npz, a folder of .obj, or .gltf/.glb")
+    p.add_argument("--to", default=DEFAULT_INPUT, metavar="ENDPOINT",
+                   help="the server's input endpoint")
+    p.add_argument("--from", dest="source", default=DEFAULT_OUTPUT, metavar="ENDPOINT",
+                   help="the server's output endpoint, to learn the stream id when not given")
+    p.add_argument("--stream", default=None,
+                   help="stream (actor) id (default: the first the server publishes)")
+    p.add_argument("--fps", type=float, default=None,
+                   help="frame rate (default: the take's, or 60)")
+    p.add_argument("--loop", action="store_true", help="start over at the end of the take")
+    p.add_argument("--duration", type=float, default=None, help="stop after this many seconds")
+    p.add_argument("--frames", type=int, default=None, help="stop after this many frames")
+    p.add_argument("--head-motion", action="store_true",
+                   help="add smooth rigid head motion (a few degrees, ~2%% of the mesh size)")
+    p.add_argument("--noise", type=float, default=0.0,
+                   help="Gaussian noise per vertex, as a fraction of the bounding-box diagonal")
+    p.add_argument("--drop-rate", type=float, default=0.0, help="fraction of frames not sent")
+    p.add_argument("--corrupt-rate", type=float, default=0.0,
+                   help="fraction of frames sent corrupt (NaN, wrong vertex count, bad header)")
+    p.add_argument("--seed", type=int, default=0, help="seed of the rehearsal's randomness")
+    p.add_argument("--timeout", type=float, default=5.0,
+                   help="seconds to wait for the schema reply")
+
+
+def _add_watch(subs: argparse._SubParsersAction) -> None:
+    p = _sub(
+        subs, "watch", "live telemetry view in the terminal",
+        "Subscribe to a server's telemetry and show it live: per-stage latency p50 and p99, input "
+        "fps, drops and rejects by reason, fit error with off-manifold frames highlighted, and the "
+        "most active controls as bars. Ctrl-C ends it.",
+        "  rigcast watch\n"
+        "  rigcast watch --from tcp://127.0.0.1:6001 --stream actor2\n"
+        "  rigcast watch --once          # one snapshot, then exit (scripts, CI)\n"
+        "  rigcast watch --duration 30   # watch for 30 s\n",
+        _cmd_watch,
+    )
+    p.add_argument("--from", dest="source", default=DEFAULT_OUTPUT, metavar="ENDPOINT",
+                   help="the server's output (PUB) endpoint")
+    p.add_argument("--to", default=DEFAULT_INPUT, metavar="ENDPOINT",
+                   help="the server's input endpoint, asked for the control names")
+    p.add_argument("--stream", default=None, help="show only this stream (default: all)")
+    p.add_argument("--once", action="store_true",
+                   help="print one snapshot after telemetry arrives, then exit")
+    p.add_argument("--duration", type=float, default=None, help="stop after this many seconds")
+    p.add_argument("--top", type=int, default=8,
+                   help="how many of the most active controls to show")
+    p.add_argument("--timeout", type=float, default=10.0,
+                   help="with --once: seconds to wait for the first telemetry")
+    p.add_argument("--plain", action="store_true", help="plain text lines instead of the live view")
+
+
+def _add_record(subs: argparse._SubParsersAction) -> None:
+    p = _sub(
+        subs, "record", "save the published controls of a stream to CSV or JSON",
+        "Subscribe to a server's controls and write the frames of one stream to a file "
+        "(.csv or .json, by extension), until --duration, --frames or Ctrl-C.",
+        "  rigcast record -o live.csv --duration 10\n"
+        "  rigcast record -o actor2.json --stream actor2 --frames 600\n",
+        _cmd_record,
+    )
+    p.add_argument("-o", "--out", type=Path, required=True, help="output file, .csv or .json")
+    p.add_argument("--from", dest="source", default=DEFAULT_OUTPUT, metavar="ENDPOINT",
+                   help="the server's output (PUB) endpoint")
+    p.add_argument("--to", default=DEFAULT_INPUT, metavar="ENDPOINT",
+                   help="the server's input endpoint, asked for the control names")
+    p.add_argument("--stream", default=None,
+                   help="stream id (default: the first the server publishes)")
+    p.add_argument("--duration", type=float, default=None, help="stop after this many seconds")
+    p.add_argument("--frames", type=int, default=None, help="stop after this many frames")
+    p.add_argument("--timeout", type=float, default=5.0,
+                   help="seconds to wait for the schema reply")
+
+
+def _add_solve(subs: argparse._SubParsersAction) -> None:
+    p = _sub(
+        subs, "solve", "solve a whole take offline -> CSV, JSON or glTF",
+        "Solve every frame of a take in batches with onnxruntime, as fast as the CPU allows, and "
+        "write the controls. Takes: .npy/.npz (frames x V x 3), a folder of .obj files (one per "
+        "frame), or a .gltf/.glb with morph-weight or skinned animation. Outputs by extension: "
+        ".csv, .json, or .gltf/.glb (blendshape rigs: the morph targets and their weight "
+        "animation).\n\nFilters: none; causal (the live server's One Euro filter); smooth "
+        "(zero-phase: the filter run forwards and backwards, no lag, offline only).",
+        "  rigcast solve face.rcb take.npz -o take.csv\n"
+        "  rigcast solve face.rcb frames/ --fps 24 -o take.json --filter smooth\n"
+        "  rigcast solve face.rcb capture.glb -o solved.glb --filter causal\n",
+        _cmd_solve,
+    )
+    p.add_argument("bundle", type=Path, help="bundle file")
+    p.add_argument("take", type=Path, help="take: .npy/.npz, a folder of .obj, or .gltf/.glb")
+    p.add_argument("-o", "--out", type=Path, required=True, help=".csv, .json, .gltf or .glb")
+    p.add_argument("--filter", choices=("none", "causal", "smooth"), default="none",
+                   help="temporal filter")
+    p.add_argument("--fps", type=float, default=None,
+                   help="frame rate of the take, when the file does not carry one")
+    p.add_argument("--no-stabilise", action="store_true", help="do not remove rigid head motion")
+    p.add_argument("--min-cutoff", type=float, default=1.0, help="One Euro minimum cutoff, Hz")
+    p.add_argument("--beta", type=float, default=0.5, help="One Euro speed coefficient")
+    p.add_argument("--smooth-hz", type=float, default=3.0,
+                   help="cutoff of the zero-phase smoother (--filter smooth), Hz")
+
+
+def _add_inspect(subs: argparse._SubParsersAction) -> None:
+    p = _sub(
+        subs, "inspect", "show a bundle's schema, sizes, training figures and fingerprint",
+        "Load and validate a bundle and print what it holds.",
+        "  rigcast inspect face.rcb\n  rigcast inspect face.rcb --json | jq .training\n",
+        _cmd_inspect,
+    )
+    p.add_argument("bundle", type=Path, help="bundle file")
+    p.add_argument("--json", action="store_true", help="print the manifest as JSON")
+
+
+def _add_demo(subs: argparse._SubParsersAction) -> None:
+    p = _sub(
+        subs, "demo", "the whole thing in one go, no input needed",
+        "Build the demo face bundle (cached: reused while its inputs are unchanged), start a "
+        "server on free loopback ports, stream an invented take with head motion, noise and a few "
+        "corrupt frames at 60 fps, show the live telemetry, print a summary and write a report "
+        "with plots.",
+        "  rigcast demo\n"
+        "  rigcast demo --seconds 20 --report my-report/\n"
+        "  rigcast demo --quick          # a small build and a short take (a minute or less)\n",
+        _cmd_demo,
+    )
+    p.add_argument("--quick", action="store_true", help="small build and short take")
+    p.add_argument("--seconds", type=float, default=None, help="take length (default 15, quick 4)")
+    p.add_argument("--fps", type=float, default=60.0, help="frame rate of the take")
+    p.add_argument("--cache", type=Path, default=None,
+                   help="bundle cache (default ~/.cache/rigcast, or ./.rigcast-cache)")
+    p.add_argument("--report", type=Path, default=Path("rigcast-demo-report"),
+                   help="report folder")
+    p.add_argument("--plain", action="store_true", help="plain progress lines, no live view")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(prog="rigcast", description=_DESCRIPTION, epilog=_EPILOG,
+                                     formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser.add_argument("--version", action="version", version=f"rigcast {__version__}")
+    parser.add_argument("-v", "--verbose", action="count", default=0,
+                        help="more log output (-vv for debug)")
+    subs = parser.add_subparsers(dest="command", metavar="COMMAND")
+    for add in (_add_demo, _add_build, _add_inspect, _add_serve, _add_send, _add_watch,
+                _add_record, _add_solve):
+        add(subs)
+    return parser
+
+
+def _cmd_build(args: argparse.Namespace) -> int:
+    from dataclasses import replace
+
+    from rigcast.export.build import BuildConfig, build_bundle
+    from rigcast.export.rig_loader import load_rig
+    from rigcast.report import build_summary, write_build_report
+    from rigcast.watch import build_progress
+
+    rig = load_rig(args.rig, schema=args.schema, bounds=args.bounds)
+    config = BuildConfig(workers=args.workers, scheduler=args.scheduler)
+    if args.samples is not None:
+        config = replace(config, samples=args.samples)
+    if args.seed is not None:
+        config = replace(config, seed=args.seed)
+    if args.steps is not None:
+        config = replace(config, inverse=replace(config.inverse, steps=args.steps))
+    if args.epochs is not None:
+        config = replace(config, forward=replace(config.forward, epochs=args.epochs))
+    out = args.out if args.out is not None else Path(f"{rig.name}.rcb")
+    try:
+        with build_progress(not args.quiet and sys.stderr.isatty()) as progress:
+            result = build_bundle(rig, out, config, cache_dir=args.cache, progress=progress)
+    finally:
+        rig.close()
+    for line in build_summary(result):
+        _say(line)
+    if args.report is not None:
+        _say(f"report: {write_build_report(args.report, result)}")
+    return EXIT_OK
+
+
+def _cmd_serve(args: argparse.Namespace) -> int:
+    from rigcast.runtime import serve_main
+
+    return int(serve_main.run(serve_main.config_from_args(args), ready_file=args.ready_file))
+
+
+def _cmd_send(args: argparse.Namespace) -> int:
+    from rigcast.send import send_from_args
+
+    return send_from_args(args)
+
+
+def _cmd_watch(args: argparse.Namespace) -> int:
+    from rigcast.watch import watch_from_args
+
+    return watch_from_args(args)
+
+
+def _cmd_record(args: argparse.Namespace) -> int:
+    from rigcast.record import record_from_args
+
+    return record_from_args(args)
+
+
+def _cmd_solve(args: argparse.Namespace) -> int:
+    import numpy as np
+
+    from rigcast.animation_out import morph_basis, write_controls
+    from rigcast.errors import MismatchError
+    from rigcast.runtime.batch import BatchSolver
+    from rigcast.runtime.bundle import load_bundle
+    from rigcast.runtime.one_euro import OneEuroParams
+    from rigcast.takes import read_take
+
+    bundle = load_bundle(args.bundle)
+    take = read_take(args.take, fps=args.fps)
+    if take.vertices.shape[1] != bundle.vertex_count:
+        raise MismatchError(
+            f"take {args.take} has {take.vertices.shape[1]} vertices but bundle {args.bundle} "
+            f"was built for a rig of {bundle.vertex_count}",
+            "solve it with the bundle built for this take's rig, or rebuild the bundle from it",
+        )
+    solver = BatchSolver(bundle)
+    params = OneEuroParams.uniform(bundle.control_count, min_cutoff=args.min_cutoff,
+                                   beta=args.beta, d_cutoff=1.0)
+    kind = {"none": "none", "causal": "causal", "smooth": "zero_phase"}[args.filter]
+    result = solver.solve(take.vertices, take.times_s, stabilise=not args.no_stabilise,
+                          filter=kind, params=params, smooth_hz=args.smooth_hz)
+    basis = None
+    if args.out.suffix.lower() in (".gltf", ".glb"):
+        # The bundle's forward model stands in for the rig; it is a learned approximation, so
+        # linearity is judged loosely.
+        basis = morph_basis(bundle.name, bundle.schema, bundle.neutral, bundle.faces,
+                            solver.forward.evaluate, linearity_tol=0.05)
+    write_controls(args.out, bundle.schema, result.controls, take.times_s, fps=take.fps,
+                   basis=basis)
+    _say(
+        f"solved {result.controls.shape[0]} frames in {result.seconds:.3f} s "
+        f"({result.frames_per_second:,.0f} frames/s); fit error RMS mean "
+        f"{float(np.nanmean(result.fit_rms)):.5f}, {int(result.off_manifold.sum())} off-manifold "
+        f"frames; wrote {args.out}"
+    )
+    return EXIT_OK
+
+
+def _cmd_inspect(args: argparse.Namespace) -> int:
+    from rigcast.report import inspect_bundle
+
+    _say(inspect_bundle(args.bundle, as_json=args.json))
+    return EXIT_OK
+
+
+def _cmd_demo(args: argparse.Namespace) -> int:
+    from rigcast.demo import demo_from_args
+
+    return demo_from_args(args)
+
+
+def _say(text: str) -> None:
+    sys.stdout.write(text + "\n")
+    sys.stdout.flush()
+
+
+def _setup_logging(verbosity: int) -> None:
+    level = logging.WARNING if verbosity == 0 else logging.INFO if verbosity == 1 else logging.DEBUG
+    logging.basicConfig(level=level, format="%(levelname)s %(name)s: %(message)s")
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if args.command is None:
+        parser.print_help()
+        return EXIT_OK
+    _setup_logging(args.verbose)
+    handler: Handler = args.handler
+    return run_guarded(lambda: handler(args))
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())
