@@ -26,11 +26,15 @@ import struct
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
+from rigcast.runtime.bundle import Bundle
 from rigcast.runtime.schema import ControlSchema
+
+if TYPE_CHECKING:
+    from rigcast.export.rig import Rig
 
 log = logging.getLogger(__name__)
 
@@ -363,3 +367,21 @@ def default_times(frames: int, fps: float) -> np.ndarray:
     if not (math.isfinite(fps) and fps > 0):
         raise AnimationError(f"fps must be a positive number, got {fps}")
     return np.arange(frames, dtype=np.float64) / fps
+
+
+def morph_basis_from_bundle(bundle: Bundle, *, threads: int = 1,
+                            linearity_tol: float = 0.1) -> MorphBasis:
+    """Morph targets read off a bundle's forward model (unit poses), for glTF output.
+
+    The forward model is an approximation, so linearity is tested loosely (``linearity_tol``).
+    """
+    from rigcast.runtime.inference import ForwardModel
+
+    forward = ForwardModel(bundle, threads=threads)
+    return morph_basis(bundle.name, bundle.schema, bundle.neutral, bundle.faces,
+                       forward.evaluate, linearity_tol=linearity_tol)
+
+
+def morph_basis_from_rig(rig: Rig) -> MorphBasis:
+    """Morph targets read off a rig by evaluating unit poses (exact linearity test)."""
+    return morph_basis(rig.name, rig.schema, rig.neutral, rig.faces, rig.evaluate)
