@@ -41,9 +41,10 @@ def rotation_z(deg: float) -> np.ndarray:
     return np.array([[np.cos(a), -np.sin(a), 0], [np.sin(a), np.cos(a), 0], [0, 0, 1]])
 
 
-def controls_of(peer: Peer, stream: str, count: int, timeout_s: float = 5.0
-                ) -> list[protocol.ControlsMessage]:
-    """The next ``count`` controls messages of ``stream`` (other messages are skipped)."""
+def controls_of(peer: Peer, stream: str, count: int, timeout_s: float = 5.0,
+                events: list[dict] | None = None) -> list[protocol.ControlsMessage]:
+    """The next ``count`` controls messages of ``stream``; events seen meanwhile go to
+    ``events``, other messages are skipped."""
     out: list[protocol.ControlsMessage] = []
     deadline = time.monotonic() + timeout_s
     topic = protocol.TOPIC_CONTROLS + stream.encode()
@@ -51,6 +52,8 @@ def controls_of(peer: Peer, stream: str, count: int, timeout_s: float = 5.0
         frames = peer.recv_pub(0.2)
         if frames is not None and frames[0] == topic:
             out.append(protocol.decode_controls(frames))
+        elif frames is not None and frames[0] == protocol.TOPIC_EVENTS and events is not None:
+            events.append(protocol.decode_header(frames[1]))
     return out
 
 
@@ -168,6 +171,7 @@ def test_every_bad_input_gets_a_named_rejection_and_serving_goes_on(tiny_bundle:
     rig = tiny_rig(TINY)
     bad = _bad_messages()
     config = server_config({"a": tiny_bundle}, max_message_bytes=8192)
+    events: list[dict] = []
     with running_server(config) as server, peer_for(server) as peer:
         t0 = time.time_ns()
         for i, (label, frames) in enumerate(bad.items()):
@@ -182,14 +186,15 @@ def test_every_bad_input_gets_a_named_rejection_and_serving_goes_on(tiny_bundle:
             # The server keeps serving: a valid frame right after comes back.
             mesh = rig_mesh(rig, np.full(TINY["controls"], 0.3))
             peer.dealer.send_multipart(protocol.encode_mesh("a", 100 + i, t0 + i * STEP_NS, mesh))
-            assert [m.frame for m in controls_of(peer, "a", 1)] == [100 + i], label
-        events = []
+            got = controls_of(peer, "a", 1, events=events)
+            assert [m.frame for m in got] == [100 + i], label
         deadline = time.monotonic() + 2
         while time.monotonic() < deadline and len(events) < len(bad):
-            frames = peer.recv_pub(0.1)
-            if frames and frames[0] == protocol.TOPIC_EVENTS:
-                events.append(protocol.decode_header(frames[1]))
+            pub = peer.recv_pub(0.1)
+            if pub and pub[0] == protocol.TOPIC_EVENTS:
+                events.append(protocol.decode_header(pub[1]))
         tel = telemetry_of(peer, "a")
+    assert sorted(e["reason"] for e in events) == sorted(k.split("/")[0] for k in bad)
     assert server.rejected.total() == len(bad)
     assert tel["server"]["rejected"] == len(bad)
     assert tel["processed"] == len(bad)
@@ -261,30 +266,36 @@ def test_reload_swaps_atomically_while_frames_flow(tiny_bundle: Path, tmp_path: 
                            stream_overrides={"passthrough": True, "stabilise": False})
     stop = threading.Event()
     sent: list[int] = []
+    received: list[protocol.ControlsMessage] = []
     with running_server(config) as server, peer_for(server) as peer:
         def stream_frames() -> None:
+            """Lockstep: each frame waits for its controls, so none can be superseded."""
             t0 = time.time_ns()
             i = 0
             while not stop.is_set():
                 peer.dealer.send_multipart(protocol.encode_mesh(
                     "a", i, t0 + i * STEP_NS, meshes[i % len(meshes)]))
                 sent.append(i)
+                received.extend(controls_of(peer, "a", 1, timeout_s=2.0))
                 i += 1
-                time.sleep(0.004)
+
+        def wait_for(count: int) -> None:
+            deadline = time.monotonic() + 10
+            while len(received) < count and time.monotonic() < deadline:
+                time.sleep(0.01)
 
         sender = threading.Thread(target=stream_frames)
         reloader = Peer(server.input_endpoint, server.output_endpoint)
         try:
             sender.start()
-            time.sleep(0.1)
+            wait_for(10)
             reloader.dealer.send(protocol.encode_reload_request("a", str(new_path)))
             reply = reloader.recv_reply(10.0)
-            time.sleep(0.1)
+            wait_for(len(received) + 10)
         finally:
             stop.set()
             sender.join()
             reloader.close()
-        received = controls_of(peer, "a", len(sent), timeout_s=5.0)
         assert peer.recv_reply(0.05) is None, "a frame was rejected during the reload"
     assert reply is not None and protocol.decode_reply(reply)["ok"] is True
     assert [m.frame for m in received] == sent, "frames were lost during the reload"
