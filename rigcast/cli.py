@@ -10,6 +10,7 @@ import argparse
 import logging
 import sys
 import textwrap
+import warnings
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
@@ -407,6 +408,9 @@ def _say(text: str) -> None:
 
 def _setup_logging(verbosity: int) -> None:
     level = logging.WARNING if verbosity == 0 else logging.INFO if verbosity == 1 else logging.DEBUG
+    if verbosity == 0:
+        # torch's advisory UserWarnings during training say nothing a user can act on.
+        warnings.filterwarnings("ignore", category=UserWarning, module=r"(torch|rigcast\.export)")
     logging.basicConfig(level=level, format="%(levelname)s %(name)s: %(message)s")
 
 

@@ -19,6 +19,7 @@ from rigcast.errors import EXIT_OK, NoAnswerError, UserError
 from rigcast.runtime.client import ControlsSubscriber, MeshSender, ServerError
 from rigcast.runtime.protocol import ControlsMessage, schema_from_reply
 from rigcast.runtime.schema import ControlSchema
+from rigcast.send import request_schema
 
 log = logging.getLogger(__name__)
 
@@ -116,7 +117,7 @@ def record_controls(
 def fetch_schema(endpoint: str, stream: str, timeout_s: float) -> ControlSchema:
     with MeshSender(endpoint) as sender:
         try:
-            reply = sender.request_schema(stream, timeout_s=timeout_s)
+            reply = request_schema(sender, stream, timeout_s)
         except TimeoutError:
             raise NoAnswerError(
                 f"no server answered at {endpoint} within {timeout_s:g} s") from None

@@ -282,10 +282,11 @@ def _fetch_schema(endpoint: str, stream: str, timeout_s: float = 0.5) -> Control
     from rigcast.runtime.client import MeshSender, ServerError
     from rigcast.runtime.protocol import schema_from_reply
     from rigcast.runtime.schema import SchemaError
+    from rigcast.send import request_schema
 
     with MeshSender(endpoint) as sender:
         try:
-            return schema_from_reply(sender.request_schema(stream, timeout_s=timeout_s))
+            return schema_from_reply(request_schema(sender, stream, timeout_s))
         except (TimeoutError, ServerError, SchemaError) as exc:
             log.info("no schema for stream %s from %s (%s); bars show control indices",
                      stream, endpoint, exc)
