@@ -24,18 +24,21 @@ from rigcast.runtime.bundle import (
 
 log = logging.getLogger(__name__)
 
-# What onnxruntime raises from a session's run(): its own exception types live in a private
-# module, so the public aliases are listed here once.
-try:
-    from onnxruntime.capi.onnxruntime_pybind11_state import Fail as _OrtFail
-    from onnxruntime.capi.onnxruntime_pybind11_state import (
-        InvalidArgument as _OrtInvalidArgument,
-    )
-    from onnxruntime.capi.onnxruntime_pybind11_state import RuntimeException as _OrtRuntime
+# What onnxruntime raises from loading and running a session. Its exception types live in a
+# private module, so they are gathered here once, by name.
+def _ort_errors() -> tuple[type[BaseException], ...]:
+    try:
+        from onnxruntime.capi import onnxruntime_pybind11_state as state
+    except ImportError:  # pragma: no cover - other onnxruntime builds
+        return (RuntimeError,)
+    names = ("Fail", "InvalidArgument", "NoSuchFile", "NoModel", "EngineError",
+             "RuntimeException", "InvalidProtobuf", "ModelLoaded", "NotImplemented",
+             "InvalidGraph", "EPFail")
+    found = tuple(getattr(state, n) for n in names if isinstance(getattr(state, n, None), type))
+    return found or (RuntimeError,)
 
-    ORT_ERRORS: tuple[type[BaseException], ...] = (_OrtFail, _OrtInvalidArgument, _OrtRuntime)
-except ImportError:  # pragma: no cover - layout of other onnxruntime builds
-    ORT_ERRORS = (RuntimeError,)
+
+ORT_ERRORS: tuple[type[BaseException], ...] = _ort_errors()
 
 
 def open_session(onnx_bytes: bytes, *, threads: int) -> ort.InferenceSession:
