@@ -45,6 +45,7 @@ from rigcast.runtime.schema import ControlSchema
 log = logging.getLogger("bench.quality")
 
 METHODS = ("inverse", "inverse_filtered", "lsq", "optim")
+COLOURS = {"inverse": "C0", "inverse_filtered": "C1", "lsq": "C2", "optim": "C3"}
 HEADLINE = "take (synthetic performance, error against the observed noisy mesh)"
 HELDOUT_SEED = 90_001  # far from the build's sampling seeds
 
@@ -338,7 +339,8 @@ def plot_take(
     t = take.times_s
     for ax, c in zip(axes[:-1], top, strict=True):
         ax.plot(t, w[:, c], "k", lw=2.0, label="truth")
-        for m, style in (("inverse", "C0"), ("inverse_filtered", "C2"), ("optim", "C3")):
+        for m in ("inverse", "inverse_filtered", "optim"):
+            style = COLOURS[m]
             if m in solved:
                 ax.plot(t, solved[m].controls[:, c], style, lw=1.0, label=m)
         ax.set_ylabel(rig.schema.names[c], fontsize=8)
@@ -461,8 +463,6 @@ def main(argv: list[str] | None = None) -> int:
     logging.basicConfig(level=logging.WARNING)
     args.out.mkdir(parents=True, exist_ok=True)
     rigs: dict[str, dict[str, Any]] = {}
-    for name in names:
-        rigs[name], _ = run_rig(name, args.out, sizes)
     meta = {
         "when": time.strftime("%Y-%m-%d %H:%M:%S"),
         "quick": args.quick,
@@ -470,7 +470,10 @@ def main(argv: list[str] | None = None) -> int:
         "headline_data": HEADLINE,
         "sizes": sizes.__dict__,
     }
-    (args.out / "quality.json").write_text(json.dumps({"rigs": rigs, "meta": meta}, indent=2))
+    for name in names:
+        rigs[name], _ = run_rig(name, args.out, sizes)
+        # Rewritten after every rig, so a long run shows its figures as they come.
+        (args.out / "quality.json").write_text(json.dumps({"rigs": rigs, "meta": meta}, indent=2))
     plot_errors(args.out / "errors.png", rigs)
     (args.out / "quality.md").write_text(report_md(rigs, meta))
     failed = 0
