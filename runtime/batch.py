@@ -17,6 +17,7 @@ import logging
 import math
 import os
 import time
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Literal
 
@@ -70,7 +71,7 @@ class RigidBatch:
         """points (T, N, 3) -> (T, N, 3) float32."""
         m = (self.scale[:, None, None] * self.rotation).astype(np.float32)
         # out[t, n, i] = sum_j m[t, i, j] * points[t, n, j] + translation[t, i]
-        out = np.matmul(points.astype(np.float32, copy=False), m.transpose(0, 2, 1))
+        out: np.ndarray = np.matmul(points.astype(np.float32, copy=False), m.transpose(0, 2, 1))
         out += self.translation.astype(np.float32)[:, None, :]
         return out
 
@@ -195,32 +196,46 @@ class BatchSolver:
         verts, times = self._check(vertices, times_s, filter, batch_size)
         t = verts.shape[0]
         lo, hi = self.bundle.schema.lower, self.bundle.schema.upper
-        raw = np.empty((t, self.bundle.control_count), np.float32)
-        align_rms = np.zeros(t, np.float32)
-        rigid: list[RigidBatch] = []
+        starts = range(0, t, batch_size)
         idx_in, idx_st = self.bundle.input_indices, self.bundle.stable_indices
-        for i0 in range(0, t, batch_size):
+
+        def infer(i0: int) -> tuple[np.ndarray, RigidBatch | None]:
             chunk = verts[i0 : i0 + batch_size]
             inputs = np.take(chunk, idx_in, axis=1)
+            fit = None
             if stabilise:
                 fit = fit_rigid_batch(np.take(chunk, idx_st, axis=1), self.neutral_stable,
                                       scale=stabilise_scale)
                 inputs = fit.apply(inputs)
-                align_rms[i0 : i0 + batch_size] = np.sqrt(fit.mse)
-                rigid.append(fit)
-            raw[i0 : i0 + batch_size] = self.inverse.solve(np.ascontiguousarray(inputs, np.float32))
-        controls = self._filter(raw, times, filter, params, gap_s, smooth_hz)
-        controls = np.clip(controls, lo, hi).astype(np.float32)
-        fit_rms = np.full(t, np.nan, np.float32)
-        fit_max = np.full(t, np.nan, np.float32)
-        if fit_error:
-            for n, i0 in enumerate(range(0, t, batch_size)):
-                chunk = verts[i0 : i0 + batch_size]
-                mesh = rigid[n].apply(chunk) if stabilise else chunk
-                pred = self.forward.evaluate(controls[i0 : i0 + batch_size])
-                dist2 = np.einsum("bvx,bvx->bv", pred - mesh, pred - mesh)
-                fit_rms[i0 : i0 + batch_size] = np.sqrt(dist2.mean(axis=1))
-                fit_max[i0 : i0 + batch_size] = np.sqrt(dist2.max(axis=1))
+            return self.inverse.solve(np.ascontiguousarray(inputs, np.float32)), fit
+
+        # numpy and onnxruntime release the GIL, so chunks overlap on the cores.
+        with ThreadPoolExecutor(max_workers=self.threads) as pool:
+            solved = list(pool.map(infer, starts))
+            raw = np.concatenate([r for r, _ in solved])
+            rigid = [f for _, f in solved]
+            align_rms = (np.concatenate([np.sqrt(f.mse) for f in rigid if f is not None])
+                         if stabilise else np.zeros(t)).astype(np.float32)
+            controls = self._filter(raw, times, filter, params, gap_s, smooth_hz)
+            controls = np.clip(controls, lo, hi).astype(np.float32)
+            fit_rms = np.full(t, np.nan, np.float32)
+            fit_max = np.full(t, np.nan, np.float32)
+            if fit_error:
+                forward = self.forward
+
+                def error(n: int) -> tuple[np.ndarray, np.ndarray]:
+                    i0 = starts[n]
+                    pred = forward.evaluate(controls[i0 : i0 + batch_size])
+                    fit = rigid[n]
+                    diff = fit.apply(verts[i0 : i0 + batch_size]) if fit is not None else (
+                        verts[i0 : i0 + batch_size].copy())
+                    diff -= pred
+                    dist2 = np.einsum("bvx,bvx->bv", diff, diff)
+                    return np.sqrt(dist2.mean(axis=1)), np.sqrt(dist2.max(axis=1))
+
+                errs = list(pool.map(error, range(len(starts))))
+                fit_rms[:] = np.concatenate([e[0] for e in errs])
+                fit_max[:] = np.concatenate([e[1] for e in errs])
         threshold = off_manifold_threshold or default_off_manifold(self.bundle)
         off = np.asarray(fit_rms > threshold)  # NaN compares False: unknown is not flagged
         seconds = time.perf_counter() - start
