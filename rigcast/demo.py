@@ -333,6 +333,7 @@ def run_demo(config: DemoConfig, write: Callable[[str], None] = _stdout) -> RunS
         fit_times_s=times,
         fit_rms=fit,
         latency_ms=(rec.arrived_ns - rec.t_send_ns).astype(np.float64) / 1e6,
+        planted_off_s=take.times_s[take.off_manifold],
     )
     summary = summarise(collector.telemetry, stats, record,
                         off_manifold=len(collector.off_manifold_frames))

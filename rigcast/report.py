@@ -70,6 +70,7 @@ class RunRecord:
     fit_times_s:   (M,) times of the fit-error samples.
     fit_rms:       (M,) fit error RMS at those times (mesh units).
     latency_ms:    (N,) end-to-end latencies, send to controls received.
+    planted_off_s: (P,) times of frames the take pushed off the manifold on purpose, if known.
     """
 
     control_names: tuple[str, ...]
@@ -79,6 +80,7 @@ class RunRecord:
     fit_times_s: np.ndarray
     fit_rms: np.ndarray
     latency_ms: np.ndarray
+    planted_off_s: np.ndarray = field(default_factory=lambda: np.zeros(0))
 
 
 def most_active(controls: np.ndarray, defaults: np.ndarray | None, top: int) -> np.ndarray:
@@ -123,11 +125,14 @@ def plot_fit_error(path: Path, record: RunRecord) -> Path:
     for k, t in enumerate(off_t):
         ax.axvline(float(t), color="tab:red", alpha=0.35, lw=0.8,
                    label="off-manifold frame" if k == 0 else None)
+    for k, t in enumerate(record.planted_off_s):
+        ax.axvline(float(t), color="tab:orange", ls=":", lw=1.2,
+                   label="pushed off the manifold in the take" if k == 0 else None)
     ax.set_xlabel("time (s)")
     ax.set_ylabel("fit error (mesh units)")
     ax.set_title("Fit error over time (red: frames flagged off-manifold)")
     ax.grid(alpha=0.3)
-    if record.fit_rms.size or off_t.size:
+    if record.fit_rms.size or off_t.size or record.planted_off_s.size:
         ax.legend(loc="upper right", fontsize=8)
     fig.tight_layout()
     fig.savefig(path)
@@ -187,7 +192,8 @@ def write_run_report(
         "## Fit error over time",
         "",
         "The forward model re-renders the solved controls; the error is measured against the "
-        "incoming mesh. Red lines mark frames the server flagged off-manifold.",
+        "incoming mesh. Red lines mark frames the server flagged off-manifold; orange dotted "
+        "lines the frames the take pushed off the manifold on purpose.",
         "",
         f"![fit error]({PLOT_FIT_ERROR})",
         "",

@@ -139,6 +139,12 @@ def stream_lines(view: StreamView, now: float) -> list[str]:
         for s in STAGES if s in lat
     )
     flag = " OFF-MANIFOLD" if view.off_manifold_recent(now) else ""
+    server = t.get("server") or {}
+    unattributed = int(server.get("rejected") or 0) - int(t.get("rejected") or 0)
+    if unattributed > 0:
+        # Frames whose header did not parse name no stream; the server counts them itself.
+        whole = ", ".join(f"{k} {v}" for k, v in sorted(server["rejected_by_reason"].items()))
+        reasons += f"; server-wide {server['rejected']} ({whole})"
     return [
         f"[{view.stream}] fps {_num(t.get('input_fps'), '{:.1f}')}"
         f" processed {t.get('processed', 0)}"
@@ -195,6 +201,11 @@ def render_view(state: WatchState, top: int = 8, now: float | None = None) -> An
                        style="yellow" if t.get("rejected") else None)
         for reason, n in sorted((t.get("rejected_by_reason") or {}).items()):
             counts.add_row(f"  {reason}", str(n), style="yellow")
+        server = t.get("server") or {}
+        if int(server.get("rejected") or 0) > int(t.get("rejected") or 0):
+            counts.add_row("rejected server-wide", str(server["rejected"]), style="yellow")
+            for reason, n in sorted((server.get("rejected_by_reason") or {}).items()):
+                counts.add_row(f"  {reason}", str(n), style="yellow")
         fit = t.get("fit_error") or {}
         hot = view.off_manifold_recent(now)
         counts.add_row("fit error rms", _num(fit.get("rms")), style="bold red" if hot else None)
