@@ -1,0 +1,371 @@
+"""End-to-end latency of the live server: a real server process, a real client process.
+
+For each vertex count (default 5,000 and 20,000) this builds a synthetic bundle of that size
+(export/synthetic_bundle.py: a two-layer MLP inverse on K=256 input vertices, 50 linear
+blendshapes forward), then measures, in one run:
+
+1. the transport floor: the same sockets and message sizes against an echo process that does no
+   work (it receives the mesh and publishes a same-size controls message), paced at 120 fps;
+2. the server, paced at 120 fps for ``--duration`` seconds with the fit error on (after_publish):
+   client send -> controls received, p50/p95/p99 (both ends are perf_counter_ns in the client
+   process, so no cross-process clock is involved); the server's RSS after warm-up and at the end;
+3. flat out, lockstep: the next frame goes when the previous controls arrive -> max_sustained_fps;
+4. flat out, free-running: frames sent as fast as the socket takes them for a few seconds; the
+   server must keep publishing and its RSS must stay bounded (newest frame wins, no queue).
+
+By default the server (or echo) process is pinned to CPU 0 and the client to CPU 1 with
+os.sched_setaffinity, so they do not steal each other's core. ``--out DIR`` writes
+DIR/latency.json as {"runs": [{...}, ...]}.
+
+    python bench/latency.py --duration 60 --out bench/out
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import zmq
+from rigcast.export.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
+from rigcast.runtime import protocol
+from rigcast.runtime.sockets import bind_pub, bind_router, bound_endpoint
+
+CONTROLS, INPUTS, STABLE, HIDDEN, SEED = 50, 256, 128, 256, 7
+STREAM = "bench"
+FPS = 120.0
+WARMUP_S = 3.0
+
+
+# --- echo process: the transport floor -------------------------------------------------------
+
+def echo_main(ready: Path) -> None:
+    """Receive meshes on a ROUTER, publish same-size controls on a PUB; no other work."""
+    ctx = zmq.Context()
+    router = bind_router(ctx, "tcp://127.0.0.1:*", rcvhwm=32, sndhwm=1000, linger_ms=0,
+                         max_message_bytes=16 << 20)
+    pub = bind_pub(ctx, "tcp://127.0.0.1:*", sndhwm=1000, linger_ms=0)
+    ready.write_text(json.dumps({"input": bound_endpoint(router), "output": bound_endpoint(pub),
+                                 "pid": os.getpid()}))
+    values = np.zeros(CONTROLS, np.float32)
+    while True:
+        msg = router.recv_multipart(copy=False)
+        header = protocol.decode_header(msg[1].buffer)
+        if header.get("type") != "mesh":
+            break
+        t = time.time_ns()
+        pub.send_multipart(protocol.encode_controls(STREAM, header["frame"], header["t_send_ns"],
+                                                    t, t, values, 0))
+
+
+# --- client process --------------------------------------------------------------------------
+
+def make_meshes(vertices: int, count: int = 32) -> list[np.ndarray]:
+    """Rig poses with a little rigid head motion, so stabilisation does real work."""
+    rig = make_synthetic_rig(vertices, CONTROLS, inputs=INPUTS, stable=STABLE, seed=SEED)
+    rng = np.random.default_rng(1)
+    out = []
+    for i in range(count):
+        w = np.clip(rng.normal(0.2, 0.15, CONTROLS), 0, 1)
+        a = np.radians(3.0 * np.sin(i / 5))
+        rot = np.array([[np.cos(a), 0, np.sin(a)], [0, 1, 0], [-np.sin(a), 0, np.cos(a)]])
+        mesh = rig.evaluate(w[None])[0].astype(np.float64) @ rot.T + [0.01 * i, 0, 0]
+        out.append(np.ascontiguousarray(mesh, dtype=np.float32))
+    return out
+
+
+class Client:
+    def __init__(self, endpoints: dict[str, str], meshes: list[np.ndarray]) -> None:
+        self.ctx = zmq.Context()
+        self.dealer = self.ctx.socket(zmq.DEALER)
+        self.dealer.setsockopt(zmq.SNDHWM, 16)
+        self.dealer.setsockopt(zmq.LINGER, 0)
+        self.dealer.connect(endpoints["input"])
+        self.sub = self.ctx.socket(zmq.SUB)
+        self.sub.setsockopt(zmq.RCVHWM, 10000)
+        self.sub.setsockopt(zmq.LINGER, 0)
+        self.sub.setsockopt(zmq.SUBSCRIBE, protocol.TOPIC_CONTROLS + STREAM.encode())
+        self.sub.setsockopt(zmq.SUBSCRIBE, protocol.TOPIC_TELEMETRY + STREAM.encode())
+        self.sub.connect(endpoints["output"])
+        self.meshes = meshes
+        self.frame = 0
+        self.telemetry: dict[str, Any] | None = None
+
+    def send(self, block: bool = True) -> bool:
+        self.frame += 1
+        frames = protocol.encode_mesh(STREAM, self.frame, time.time_ns(),
+                                      self.meshes[self.frame % len(self.meshes)])
+        try:
+            self.dealer.send_multipart(frames, 0 if block else zmq.NOBLOCK, copy=False)
+        except zmq.Again:
+            return False
+        return True
+
+    def recv_controls(self, frame: int | None, timeout_ms: int) -> int | None:
+        """perf_counter_ns at the arrival of controls for ``frame`` (any frame if None)."""
+        deadline = time.perf_counter_ns() + timeout_ms * 1_000_000
+        while (left := deadline - time.perf_counter_ns()) > 0:
+            if not self.sub.poll(max(left // 1_000_000, 1)):
+                continue
+            frames = self.sub.recv_multipart()
+            now = time.perf_counter_ns()
+            if frames[0].startswith(protocol.TOPIC_TELEMETRY):
+                self.telemetry = protocol.decode_header(frames[1])
+                continue
+            msg = protocol.decode_controls(frames)
+            if frame is None or msg.frame == frame:
+                return now
+        return None
+
+    def handshake(self) -> None:
+        """Round trips until one comes back: both sockets are connected and subscribed."""
+        for _ in range(200):
+            self.send()
+            if self.recv_controls(self.frame, 50) is not None:
+                return
+        raise TimeoutError("no controls from the server")
+
+    def paced(self, seconds: float, fps: float, warm_marker: Path) -> tuple[list[int], int]:
+        """Latencies (ns) of the frames after the warm-up, and how many got no controls.
+        ``warm_marker`` is written when the warm-up ends (the parent reads the RSS then)."""
+        period = int(1e9 / fps)
+        start = time.perf_counter_ns()
+        warm_end = start + int(WARMUP_S * 1e9)
+        next_t = start
+        lat: list[int] = []
+        lost = 0
+        while next_t < start + int((seconds + WARMUP_S) * 1e9):
+            while (wait := next_t - time.perf_counter_ns()) > 0:
+                time.sleep(wait / 1e9 if wait > 2_000_000 else 0)
+            t0 = time.perf_counter_ns()
+            if t0 >= warm_end and not warm_marker.exists():
+                warm_marker.write_text("warm")
+                t0 = time.perf_counter_ns()
+            self.send()
+            t1 = self.recv_controls(self.frame, 1000)
+            if t0 >= warm_end:
+                if t1 is None:
+                    lost += 1
+                else:
+                    lat.append(t1 - t0)
+            next_t += period
+        if lost:
+            print(f"  warning: {lost} frames got no controls", file=sys.stderr)
+        return lat, lost
+
+    def lockstep(self, seconds: float) -> float:
+        end = time.perf_counter() + seconds
+        done = 0
+        t0 = time.perf_counter()
+        while time.perf_counter() < end:
+            self.send()
+            if self.recv_controls(self.frame, 1000) is not None:
+                done += 1
+        return done / (time.perf_counter() - t0)
+
+    def blast(self, seconds: float) -> dict[str, float]:
+        end = time.perf_counter() + seconds
+        sent = published = 0
+        t0 = time.perf_counter()
+        while time.perf_counter() < end:
+            if self.send(block=False):
+                sent += 1
+            while self.sub.poll(0):
+                frames = self.sub.recv_multipart()
+                if frames[0].startswith(protocol.TOPIC_CONTROLS):
+                    published += 1
+        elapsed = time.perf_counter() - t0
+        while self.recv_controls(None, 300) is not None:  # let the server drain
+            published += 1
+        return {"sent_fps": sent / elapsed, "published_fps": published / elapsed,
+                "sent": sent, "published": published}
+
+
+def client_main(args: argparse.Namespace) -> None:
+    endpoints = json.loads(Path(args.endpoints).read_text())
+    client = Client(endpoints, make_meshes(args.vertices[0]))
+    client.handshake()
+    result: dict[str, Any] = {}
+    lat, lost = client.paced(args.duration, FPS, Path(args.result).with_suffix(".warm"))
+    result["latency_ns"] = lat
+    result["lost"] = lost
+    Path(args.result).with_suffix(".paced").write_text("done")  # the parent reads RSS now
+    if args.mode == "server":
+        client.recv_controls(None, 200)  # pick up a telemetry message of the paced window
+        result["telemetry"] = client.telemetry
+        result["max_sustained_fps"] = client.lockstep(args.flat_seconds)
+        result["blast"] = client.blast(args.flat_seconds)
+        client.send()
+        result["alive_after_blast"] = client.recv_controls(client.frame, 2000) is not None
+    Path(args.result).write_text(json.dumps(result))
+
+
+# --- orchestration ---------------------------------------------------------------------------
+
+def rss_mb(pid: int) -> float:
+    for line in Path(f"/proc/{pid}/status").read_text().splitlines():
+        if line.startswith("VmRSS:"):
+            return int(line.split()[1]) / 1024.0
+    raise RuntimeError(f"no VmRSS for pid {pid}")
+
+
+def pin(pid: int, cpu: int, enabled: bool) -> None:
+    if enabled and cpu < (os.cpu_count() or 1):
+        os.sched_setaffinity(pid, {cpu})
+
+
+def start_and_wait(cmd: list[str], ready: Path, pin_cpu: int, args: argparse.Namespace
+                   ) -> tuple[subprocess.Popen[bytes], dict[str, Any]]:
+    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL)
+    pin(proc.pid, pin_cpu, args.pin)
+    deadline = time.monotonic() + 60
+    while not ready.exists():
+        if proc.poll() is not None or time.monotonic() > deadline:
+            raise RuntimeError(f"{cmd[:4]} did not start")
+        time.sleep(0.05)
+    time.sleep(0.05)
+    return proc, json.loads(ready.read_text())
+
+
+def run_client(mode: str, endpoints_file: Path, vertices: int, duration: float, work: Path,
+               args: argparse.Namespace, server_pid: int) -> tuple[dict[str, Any], float, float]:
+    result = work / f"{mode}-{vertices}.json"
+    cmd = [sys.executable, __file__, "--role", "client", "--mode", mode, "--endpoints",
+           str(endpoints_file), "--vertices", str(vertices), "--duration", str(duration),
+           "--flat-seconds", str(args.flat_seconds), "--result", str(result)]
+    proc = subprocess.Popen(cmd)
+    pin(proc.pid, 1, args.pin)
+    warm = result.with_suffix(".warm")
+    while not warm.exists() and proc.poll() is None:
+        time.sleep(0.02)
+    rss_warm = rss_mb(server_pid)
+    marker = result.with_suffix(".paced")
+    while not marker.exists() and proc.poll() is None:
+        time.sleep(0.05)
+    rss_end = rss_mb(server_pid)
+    if proc.wait(duration + 120) != 0:
+        raise RuntimeError(f"client ({mode}) failed")
+    return json.loads(result.read_text()), rss_warm, rss_end
+
+
+def ms_percentiles(lat_ns: list[int]) -> list[float]:
+    return [float(x) for x in np.percentile(np.array(lat_ns) / 1e6, [50, 95, 99])]
+
+
+def measure(vertices: int, args: argparse.Namespace, work: Path) -> dict[str, Any]:
+    bundle = build_synthetic_bundle(work / f"synthetic-{vertices}.rcb", vertices=vertices,
+                                    controls=CONTROLS, inputs=INPUTS, stable=STABLE,
+                                    inverse="mlp", hidden=HIDDEN, seed=SEED, fit_rms=10.0,
+                                    name=f"synthetic-{vertices}")
+    # Floor: echo process.
+    ready = work / f"echo-{vertices}.ready"
+    echo, _ = start_and_wait([sys.executable, __file__, "--role", "echo", "--ready",
+                                      str(ready)], ready, 0, args)
+    try:
+        floor, _, _ = run_client("echo", ready, vertices, args.floor_duration, work, args,
+                                 echo.pid)
+    finally:
+        echo.kill()
+        echo.wait()
+    # The real server.
+    ready = work / f"server-{vertices}.ready"
+    cmd = [sys.executable, "-m", "rigcast.runtime.serve_main", "--bundle", f"{STREAM}={bundle}",
+           "--input", "tcp://127.0.0.1:*", "--output", "tcp://127.0.0.1:*", "--ready-file",
+           str(ready), "--fit-error", "after_publish", "--telemetry-hz", "10",
+           "--window", "1000", "--log-level", "WARNING"]
+    server, _ = start_and_wait(cmd, ready, 0, args)
+    try:
+        res, rss_warm, rss_end = run_client("server", ready, vertices, args.duration, work,
+                                            args, server.pid)
+        rss_after_blast = rss_mb(server.pid)
+    finally:
+        server.terminate()
+        server.wait(10)
+    f50, _, f99 = ms_percentiles(floor["latency_ns"])
+    p50, p95, p99 = ms_percentiles(res["latency_ns"])
+    tel = res.get("telemetry") or {}
+    stages = {k: v["p50_ms"] for k, v in tel.get("latency", {}).items()}
+    return {
+        "vertices": vertices,
+        "frames": len(res["latency_ns"]),
+        "duration_s": args.duration,
+        "fps": FPS,
+        "fit_error": "after_publish",
+        "floor_p50_ms": f50,
+        "floor_p99_ms": f99,
+        "p50_ms": p50,
+        "p95_ms": p95,
+        "p99_ms": p99,
+        "max_ms": float(np.max(res["latency_ns"]) / 1e6),
+        "ratio_p50_vs_floor": p50 / f50,
+        "lost": res["lost"],
+        "max_sustained_fps": res["max_sustained_fps"],
+        "blast": res["blast"],
+        "alive_after_blast": res["alive_after_blast"],
+        "rss_warm_mb": rss_warm,
+        "rss_end_mb": rss_end,
+        "rss_growth_mb": rss_end - rss_warm,
+        "rss_after_blast_mb": rss_after_blast,
+        "stage_median_ms": stages,
+        "pinned": bool(args.pin),
+    }
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    parser.add_argument("--role", choices=["bench", "echo", "client"], default="bench",
+                        help=argparse.SUPPRESS)
+    parser.add_argument("--vertices", type=int, nargs="+", default=[5000, 20000])
+    parser.add_argument("--duration", type=float, default=60.0,
+                        help="seconds of the paced 120 fps run (after a 3 s warm-up)")
+    parser.add_argument("--floor-duration", type=float, default=None,
+                        help="seconds of the paced echo run (default: a third of --duration)")
+    parser.add_argument("--flat-seconds", type=float, default=5.0,
+                        help="seconds of each flat-out run")
+    parser.add_argument("--no-pin", dest="pin", action="store_false",
+                        help="do not pin server and client to CPUs 0 and 1")
+    parser.add_argument("--out", type=Path, default=None)
+    parser.add_argument("--mode", default="server", help=argparse.SUPPRESS)
+    parser.add_argument("--endpoints", help=argparse.SUPPRESS)
+    parser.add_argument("--ready", type=Path, help=argparse.SUPPRESS)
+    parser.add_argument("--result", help=argparse.SUPPRESS)
+    args = parser.parse_args()
+    if args.role == "echo":
+        echo_main(args.ready)
+        return
+    if args.role == "client":
+        client_main(args)
+        return
+    if args.floor_duration is None:
+        args.floor_duration = max(args.duration / 3, 5.0)
+    runs = []
+    with tempfile.TemporaryDirectory(prefix="rigcast-latency-") as tmp:
+        for v in args.vertices:
+            print(f"V={v}: floor {args.floor_duration:.0f} s, paced {args.duration:.0f} s, "
+                  f"flat out 2 x {args.flat_seconds:.0f} s ...", flush=True)
+            run = measure(v, args, Path(tmp))
+            runs.append(run)
+            print(f"  floor p50 {run['floor_p50_ms']:.3f} ms | server p50 {run['p50_ms']:.3f} "
+                  f"p95 {run['p95_ms']:.3f} p99 {run['p99_ms']:.3f} ms | ratio "
+                  f"{run['ratio_p50_vs_floor']:.2f} | lockstep {run['max_sustained_fps']:.0f} "
+                  f"fps | blast sent {run['blast']['sent_fps']:.0f}/s published "
+                  f"{run['blast']['published_fps']:.0f}/s | RSS growth "
+                  f"{run['rss_growth_mb']:+.2f} MB (after blast {run['rss_after_blast_mb']:.1f}"
+                  f" MB)")
+            print("  stage medians (ms): " + ", ".join(
+                f"{k} {v:.3f}" for k, v in run["stage_median_ms"].items() if v is not None))
+    if args.out is not None:
+        args.out.mkdir(parents=True, exist_ok=True)
+        (args.out / "latency.json").write_text(json.dumps({"runs": runs}, indent=2))
+        print(f"wrote {args.out / 'latency.json'}")
+
+
+if __name__ == "__main__":
+    main()
