@@ -181,14 +181,22 @@ class Server:
             result = self._process(state, identity, mesh, t_recv, perf_recv, decode_ns)
             if result is not None:
                 done.append((state, result, mesh))
-        # The fit error runs after every publish of this drain, so it never delays one.
+        # The fit error runs after every publish of this drain, and only while no input waits,
+        # so it never delays a frame; a skipped one is counted.
         for state, result, mesh in done:
             if state.wants_fit(self.config.fit_error, self.config.fit_error_every):
+                if self._input_waiting():
+                    state.telemetry.fit_skipped += 1
+                    continue
                 rms, worst, off = state.fit(result, mesh.vertices)
                 if off:
                     self._event("off_manifold", state.config.stream,
                                 {"frame": result.frame, "rms": rms, "max": worst,
                                  "threshold": state.model.threshold})
+
+    def _input_waiting(self) -> bool:
+        assert self.router is not None
+        return bool(int(self.router.getsockopt(zmq.EVENTS)) & zmq.POLLIN)
 
     def _handle(self, msg: list[zmq.Frame], pending: dict[str, _Pending]) -> None:
         t_recv = time.time_ns()

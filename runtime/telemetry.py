@@ -93,6 +93,7 @@ class StreamTelemetry:
         self.off_manifold = 0
         self.last_off_manifold_frame: int | None = None
         self.last_fit_frame: int | None = None
+        self.fit_skipped = 0
         self.clamped = 0
         self.filter_resets = 0
         self.last_frame: int | None = None
@@ -148,6 +149,7 @@ class StreamTelemetry:
             "last_frame": self.last_frame,
             "fit_error": {
                 "frame": self.last_fit_frame,
+                "skipped": self.fit_skipped,
                 "rms": _f(self.fit_rms.last()),
                 "max": _f(self.fit_max.last()),
                 "rms_mean": _f(self.fit_rms.mean()),

@@ -13,12 +13,14 @@ from conftest import OTHER, TINY, tiny_rig
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from rigcast.export.synthetic_bundle import forward_graph, inverse_graph
+from rigcast.runtime.align import RigidTransform
 from rigcast.runtime.bundle import BundleError, load_bundle, write_bundle
 from rigcast.runtime.inference import ForwardModel, InverseModel, open_session
 from rigcast.runtime.pipeline import (
     clamp,
     fit_error,
     fit_error_naive,
+    fit_error_posed,
     load_stream_model,
     rotation_to_quaternion,
     training_fit_rms,
@@ -120,3 +122,19 @@ def test_quaternion_of_half_turns() -> None:
         rot = Rotation.from_rotvec(np.pi * axis)
         q = rotation_to_quaternion(rot.as_matrix())
         assert abs(q[0]) < 1e-12 and np.allclose(np.abs(q[1:]), axis)
+
+
+@settings(max_examples=30, deadline=None)
+@given(st.integers(3, 200), st.integers(0, 2**32 - 1), st.booleans())
+def test_posed_fit_error_agrees_with_fit_error_of_the_moved_mesh(n: int, seed: int,
+                                                                 posed: bool) -> None:
+    rng = np.random.default_rng(seed)
+    vertices = rng.normal(size=(n, 3)).astype(np.float32)
+    predicted = rng.normal(size=(n, 3)).astype(np.float32)
+    pose = RigidTransform(Rotation.random(random_state=seed).as_matrix(), rng.normal(size=3),
+                          float(rng.uniform(0.5, 2))) if posed else None
+    observed = vertices if pose is None else pose.apply(vertices.astype(np.float64))
+    want = fit_error_naive(predicted, observed)
+    got = fit_error_posed(predicted, vertices, pose, np.empty((n, 3), np.float32),
+                          np.empty(n, np.float32))
+    assert got == pytest.approx(want, rel=1e-4, abs=1e-5)

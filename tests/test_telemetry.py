@@ -52,6 +52,11 @@ def test_telemetry_arrives_at_the_configured_rate_with_every_field(tiny_bundle: 
         for i in range(30):
             peer.dealer.send_multipart(protocol.encode_mesh("a", i, t0 + i * 8_333_333, mesh))
             time.sleep(0.005)
+        deadline = time.monotonic() + 5
+        while time.monotonic() < deadline:  # the last frame's controls, before the bad message
+            frames = peer.recv_pub(0.2)
+            if frames and frames[0] == b"ctl.a" and protocol.decode_controls(frames).frame == 29:
+                break
         peer.dealer.send_multipart([b"\xc1"])  # one rejection to count
         arrivals, last = [], None
         start = time.monotonic()
