@@ -19,6 +19,7 @@ reload keeps the filter state, since the controls mean the same.
 
 from __future__ import annotations
 
+import gc
 import logging
 import math
 import queue
@@ -135,6 +136,9 @@ class Server:
     def run(self) -> None:
         if not self.started.is_set():
             self.startup()
+        # Everything loaded at startup is long-lived: keep it out of the collector's full passes,
+        # so a gen-2 collection never walks the bundles in the middle of a frame.
+        gc.freeze()
         try:
             self.main_loop()
         finally:
