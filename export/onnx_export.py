@@ -1,0 +1,142 @@
+"""ONNX export of the inverse and forward models, with checks.
+
+We use torch's TorchScript-based exporter (``dynamo=False``): on torch 2.13 it exports these plain
+MLP graphs in under a second with a dynamic batch axis, and it prints nothing to stdout, whereas the
+dynamo exporter takes several seconds and writes its own progress lines. Its deprecation warnings
+are captured and sent to this module's logger, so users' terminals stay quiet.
+
+Every export is checked:
+- ``onnx.checker.check_model(full_check=True)`` (ONNX's own validator, with shape inference);
+- the opset is the pinned ``OPSET``;
+- onnxruntime (CPU) output equals torch within ``PARITY_TOL`` (max abs) on random inputs at
+  several batch sizes, including 1 and 7.
+"""
+
+from __future__ import annotations
+
+import io
+import logging
+import warnings
+from collections.abc import Sequence
+
+import numpy as np
+import onnx
+import onnxruntime as ort
+import torch
+from rigcast.export.models import ForwardApproximator, InverseNetwork
+from rigcast.runtime.bundle import FORWARD_INPUT, FORWARD_OUTPUT, INVERSE_INPUT, INVERSE_OUTPUT
+from torch import nn
+
+log = logging.getLogger(__name__)
+
+#: The ONNX opset every rigcast graph is exported with.
+OPSET = 17
+#: Largest allowed |onnxruntime - torch| on the parity check.
+PARITY_TOL = 1e-4
+PARITY_BATCHES = (1, 7, 32)
+
+
+class ExportError(RuntimeError):
+    """An exported graph failed the checker, the opset pin, or the parity check."""
+
+
+def _export(module: nn.Module, example: torch.Tensor, input_name: str, output_name: str) -> bytes:
+    buf = io.BytesIO()
+    module.eval()
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        torch.onnx.export(
+            module,
+            (example,),
+            buf,  # type: ignore[arg-type]  # file-like objects are accepted at runtime
+            input_names=[input_name],
+            output_names=[output_name],
+            dynamic_axes={input_name: {0: "N"}, output_name: {0: "N"}},
+            opset_version=OPSET,
+            do_constant_folding=True,
+            dynamo=False,
+        )
+    for w in caught:
+        log.debug("torch.onnx: %s", w.message)
+    return buf.getvalue()
+
+
+def check_graph(data: bytes, what: str) -> onnx.ModelProto:
+    """Run onnx.checker (full check) and the opset pin on serialised model bytes."""
+    model = onnx.load_from_string(data)
+    try:
+        onnx.checker.check_model(model, full_check=True)
+    except onnx.checker.ValidationError as exc:
+        raise ExportError(f"{what} graph fails onnx.checker: {exc}") from None
+    opsets = {o.domain or "ai.onnx": o.version for o in model.opset_import}
+    if opsets.get("ai.onnx") != OPSET:
+        raise ExportError(f"{what} graph has opset {opsets.get('ai.onnx')}, expected {OPSET}")
+    return model
+
+
+def session(data: bytes, threads: int = 1) -> ort.InferenceSession:
+    """A CPU onnxruntime session with explicit thread settings."""
+    opts = ort.SessionOptions()
+    opts.intra_op_num_threads = threads
+    opts.inter_op_num_threads = 1
+    opts.log_severity_level = 3
+    return ort.InferenceSession(data, sess_options=opts, providers=["CPUExecutionProvider"])
+
+
+def check_parity(module: nn.Module, data: bytes, inputs: Sequence[np.ndarray], what: str) -> float:
+    """Max |onnxruntime - torch| over input batches; raises ExportError above PARITY_TOL."""
+    sess = session(data)
+    name = sess.get_inputs()[0].name
+    worst = 0.0
+    with torch.no_grad():
+        for x in inputs:
+            x = np.ascontiguousarray(x, dtype=np.float32)
+            ref = module(torch.from_numpy(x)).numpy()
+            got = sess.run(None, {name: x})[0]
+            if got.shape != ref.shape:
+                raise ExportError(f"{what} graph returned shape {got.shape}, torch {ref.shape}")
+            worst = max(worst, float(np.max(np.abs(got - ref))))
+    if not worst <= PARITY_TOL:
+        raise ExportError(f"{what} graph differs from torch by {worst:.3g} (> {PARITY_TOL})")
+    return worst
+
+
+def export_inverse(
+    model: InverseNetwork, example_meshes: np.ndarray | None = None, seed: int = 0
+) -> tuple[bytes, float]:
+    """Export the inverse: input ``mesh`` (N, K, 3) -> output ``controls`` (N, C).
+
+    example_meshes: (M, K, 3) realistic inputs for the parity check (random poses around the
+    neutral are added). returns: (model bytes, worst parity error).
+    """
+    k = model.input_count
+    rng = np.random.default_rng(seed)
+    base = model.neutral_inputs.numpy().reshape(k, 3)
+    scale = 1.0 / float(model.inv_scale)
+    batches = [
+        (base + scale * rng.standard_normal((b, k, 3))).astype(np.float32) for b in PARITY_BATCHES
+    ]
+    if example_meshes is not None and len(example_meshes):
+        batches.append(np.asarray(example_meshes, np.float32))
+    data = _export(model, torch.from_numpy(batches[1]), INVERSE_INPUT, INVERSE_OUTPUT)
+    check_graph(data, "inverse")
+    worst = check_parity(model, data, batches, "inverse")
+    log.info("exported inverse: %d bytes, parity %.2g", len(data), worst)
+    return data, worst
+
+
+def export_forward(model: ForwardApproximator, seed: int = 0) -> tuple[bytes, float]:
+    """Export the forward model: input ``controls`` (N, C) -> output ``vertices`` (N, V, 3).
+
+    Parity inputs are uniform in the bounds. returns: (model bytes, worst parity error).
+    """
+    rng = np.random.default_rng(seed)
+    lo, hi = model.lower.numpy(), model.upper.numpy()
+    batches = [
+        (lo + (hi - lo) * rng.random((b, lo.shape[0]))).astype(np.float32) for b in PARITY_BATCHES
+    ]
+    data = _export(model, torch.from_numpy(batches[1]), FORWARD_INPUT, FORWARD_OUTPUT)
+    check_graph(data, "forward")
+    worst = check_parity(model, data, batches, "forward")
+    log.info("exported forward: %d bytes, parity %.2g", len(data), worst)
+    return data, worst

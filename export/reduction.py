@@ -1,0 +1,172 @@
+"""Vertex selection: the K vertices the inverse reads, and the S that anchor head stabilisation.
+
+The runtime's cost must not grow with the full vertex count, so the inverse network reads a fixed
+subset of K vertices. They are chosen by farthest-point sampling in the neutral pose, weighted by
+how much each vertex moves over the dataset, so that every moving region is covered and static
+regions are skipped; the vertex each control moves most is always included, so no
+control goes unobserved.
+
+The stable vertices are those the controls move least. Taking only the very least-moving ones tends
+to pick one tight cluster (the back of a head), which makes the Kabsch fit ill-conditioned; so we
+take the least-moving fraction and farthest-point sample inside it to spread them out.
+
+All functions are pure numpy.
+"""
+
+from __future__ import annotations
+
+import logging
+
+import numpy as np
+
+log = logging.getLogger(__name__)
+
+
+class ReductionError(ValueError):
+    """A vertex selection was asked for something impossible; the message names the value."""
+
+
+def motion_rms(neutral: np.ndarray, vertices: np.ndarray) -> np.ndarray:
+    """Per-vertex RMS displacement from the neutral over a dataset.
+
+    neutral: (V, 3); vertices: (N, V, 3)
+    returns: (V,) float64 sqrt(mean_n |vertices[n, v] - neutral[v]|^2).
+    """
+    acc = np.zeros(neutral.shape[0], dtype=np.float64)
+    step = 1024
+    for start in range(0, vertices.shape[0], step):
+        d = vertices[start : start + step].astype(np.float64) - neutral[None].astype(np.float64)
+        acc += np.einsum("nvk,nvk->v", d, d)  # sum over samples n and axes k of d^2
+    return np.sqrt(acc / max(vertices.shape[0], 1))
+
+
+def farthest_point_sample(
+    points: np.ndarray, k: int, weights: np.ndarray | None = None, start: int | None = None
+) -> np.ndarray:
+    """Greedy (weighted) farthest-point sampling.
+
+    points: (V, D); weights: (V,) >= 0 or None (all ones); start: first index (default: the
+    highest-weight point, ties to the lowest index). Each step picks argmax_v weights[v] * d(v, S),
+    d being the Euclidean distance to the chosen set S. returns: (k,) int64 indices in pick order.
+    """
+    v = points.shape[0]
+    if not 0 < k <= v:
+        raise ReductionError(f"cannot pick {k} points out of {v}")
+    pts = np.asarray(points, dtype=np.float64)
+    w = np.ones(v) if weights is None else np.asarray(weights, dtype=np.float64)
+    first = int(np.argmax(w)) if start is None else int(start)
+    out = np.empty(k, dtype=np.int64)
+    out[0] = first
+    dist = np.linalg.norm(pts - pts[first], axis=1)
+    for i in range(1, k):
+        nxt = int(np.argmax(w * dist))
+        out[i] = nxt
+        dist = np.minimum(dist, np.linalg.norm(pts - pts[nxt], axis=1))
+    return out
+
+
+def farthest_point_sample_naive(
+    points: np.ndarray, k: int, weights: np.ndarray | None = None, start: int | None = None
+) -> np.ndarray:
+    """Loop twin of ``farthest_point_sample``: recomputes every distance to the set at each step."""
+    v = points.shape[0]
+    w = [1.0] * v if weights is None else [float(x) for x in weights]
+    chosen = [int(np.argmax(w)) if start is None else int(start)]
+    while len(chosen) < k:
+        best, best_score = -1, -1.0
+        for i in range(v):
+            d = min(float(np.sqrt(np.sum((points[i] - points[j]) ** 2))) for j in chosen)
+            if w[i] * d > best_score:
+                best, best_score = i, w[i] * d
+        chosen.append(best)
+    return np.array(chosen, dtype=np.int64)
+
+
+def input_count_for(vertex_count: int) -> int:
+    """Default K: an eighth of the mesh, at least 256 and at most 512 (never more than V)."""
+    return int(min(vertex_count, max(256, min(512, vertex_count // 8))))
+
+
+def stable_count_for(vertex_count: int) -> int:
+    """Default S: a fortieth of the mesh, at least 64 and at most 200 (never more than V)."""
+    return int(min(vertex_count, max(64, min(200, vertex_count // 40))))
+
+
+def select_input_vertices(
+    neutral: np.ndarray,
+    motion: np.ndarray,
+    k: int,
+    must_include: np.ndarray | None = None,
+    moving_fraction: float = 1e-3,
+) -> np.ndarray:
+    """Choose K input vertices covering every moving region.
+
+    neutral: (V, 3); motion: (V,) per-vertex RMS displacement; must_include: (M,) indices that
+    are always taken (e.g. each control's most-moved vertex). Vertices moving less than
+    ``moving_fraction`` x the largest motion count as static and are only used if K exceeds the
+    moving ones. Weighted FPS with weight sqrt(motion / max motion) spreads the rest.
+    returns: (K,) sorted unique int64.
+    """
+    v = neutral.shape[0]
+    if not 0 < k <= v:
+        raise ReductionError(f"cannot pick {k} input vertices out of {v}")
+    peak = float(motion.max())
+    if peak <= 0.0:
+        raise ReductionError("no vertex moves over the dataset; the rig's controls do nothing")
+    moving = np.flatnonzero(motion > moving_fraction * peak)
+    chosen = np.unique(np.asarray(must_include if must_include is not None else [], np.int64))
+    if chosen.size >= k:
+        order = np.argsort(-motion[chosen], kind="stable")
+        return np.sort(chosen[order[:k]])
+    if moving.size <= k:
+        rest = np.setdiff1d(np.arange(v), np.union1d(moving, chosen))
+        extra = rest[
+            np.argsort(-motion[rest], kind="stable")[: k - np.union1d(moving, chosen).size]
+        ]
+        return np.sort(np.union1d(np.union1d(moving, chosen), extra))
+    weights = np.sqrt(motion[moving] / peak)
+    # Start FPS from the already chosen vertices by zeroing their distance up front.
+    pts = neutral[moving].astype(np.float64)
+    picked = set(chosen.tolist())
+    dist = np.full(moving.size, np.inf)
+    for idx in chosen:
+        dist = np.minimum(dist, np.linalg.norm(pts - neutral[idx], axis=1))
+    if not picked:
+        first = int(np.argmax(weights))
+        picked.add(int(moving[first]))
+        dist = np.linalg.norm(pts - pts[first], axis=1)
+    while len(picked) < k:
+        j = int(np.argmax(weights * dist))
+        picked.add(int(moving[j]))
+        dist = np.minimum(dist, np.linalg.norm(pts - pts[j], axis=1))
+    return np.array(sorted(picked), dtype=np.int64)
+
+
+def select_stable_vertices(
+    neutral: np.ndarray, motion: np.ndarray, s: int, fraction: float = 0.2
+) -> np.ndarray:
+    """Choose S well-spread vertices that the controls move least.
+
+    neutral: (V, 3); motion: (V,) per-vertex RMS displacement. Takes the ``fraction`` of vertices
+    with the lowest motion (at least S of them), then farthest-point samples S of those, starting
+    from the least-moving one. returns: (S,) sorted unique int64.
+    """
+    v = neutral.shape[0]
+    if not 3 <= s <= v:
+        raise ReductionError(f"cannot pick {s} stable vertices out of {v} (need 3 <= S <= V)")
+    if not 0.0 < fraction <= 1.0:
+        raise ReductionError(f"stable fraction must be in (0, 1], got {fraction}")
+    pool_size = max(s, round(fraction * v))
+    pool = np.argsort(motion, kind="stable")[:pool_size]
+    picks = farthest_point_sample(neutral[pool], s, start=0)
+    return np.sort(pool[picks])
+
+
+def control_peak_vertices(linear_weight: np.ndarray) -> np.ndarray:
+    """Each control's most-moved vertex.
+
+    linear_weight: (C, 3V) per-control offsets of a linear fit -> (C,) int64 vertex indices.
+    """
+    c = linear_weight.shape[0]
+    mag = np.linalg.norm(linear_weight.reshape(c, -1, 3), axis=2)  # (C, V)
+    return np.argmax(mag, axis=1).astype(np.int64)

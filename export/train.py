@@ -1,0 +1,491 @@
+"""Training: the forward approximator on sampled data, then the inverse through the frozen forward.
+
+Forward (``train_forward``):
+1. hold out a fraction of the samples for the report;
+2. fit the linear blendshape layer by least squares on normalised controls (exact for linear rigs);
+3. PCA of the linear residual (randomised SVD, Halko, Martinsson & Tropp 2011, algorithm 4.4);
+4. train the correction MLP on the residual's PCA coefficients. Because the basis is orthonormal,
+   squared error on coefficients equals squared mesh error within the basis, and it is far cheaper
+   than a loss over all 3V coordinates.
+
+Inverse (``train_inverse``), loss per batch of clean meshes ``x`` (B, V, 3):
+
+    c    = inverse(x[:, K] + noise)            noise ~ N(0, sigma^2), sigma = noise_frac * diagonal
+    loss = mean_v w_v |forward(c)_v - x_v|^2 / scale^2  +  l1 * mean |c - default| / range
+           (+ supervised, general mode only: BCE(u(c), u(c_true)) with a weight decaying to 0)
+
+- general mode: batches mix the rig's sampled meshes with fresh random poses rendered through the
+  frozen forward model (cheap augmentation); labels are known there, so an early, linearly
+  decaying supervised term on normalised controls speeds convergence; it is zero for the last
+  half of training, so the final solution is the mesh-space one.
+- take mode: the user's frames only, no labels; purely self-supervised, starting from a given
+  (general) inverse.
+
+Adam with a one-cycle schedule, fixed seeds, two torch threads (the machine is shared).
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import Literal
+
+import numpy as np
+import torch
+import torch.nn.functional as F
+from rigcast.export.models import ForwardApproximator, InverseNetwork
+
+log = logging.getLogger(__name__)
+
+Progress = Callable[[str, int, int], None]
+TORCH_THREADS = 2
+
+
+class TrainError(ValueError):
+    """Training inputs are unusable; the message names the bad value."""
+
+
+@dataclass(frozen=True)
+class ForwardConfig:
+    hidden: tuple[int, ...] = (256, 256, 256)
+    components: int = 96
+    epochs: int = 60
+    batch: int = 512
+    lr: float = 3e-3
+    holdout: float = 0.1
+    seed: int = 0
+    max_seconds: float = 90.0
+
+
+@dataclass(frozen=True)
+class InverseConfig:
+    hidden: tuple[int, ...] = (512, 512)
+    steps: int = 3000
+    batch: int = 256
+    lr: float = 1.5e-3
+    noise_frac: float = 0.001  # input noise sigma as a fraction of the neutral's bbox diagonal
+    jitter_frac: float = 0.0  # random rigid translation, fraction of diagonal (0 = off)
+    l1: float = 3e-3
+    fresh_fraction: float = 0.5  # share of each general batch rendered through the forward model
+    supervised: float = 1.0  # initial weight of the early supervised term (general mode only)
+    seed: int = 0
+    max_seconds: float = 120.0
+
+
+@dataclass(frozen=True)
+class ForwardReport:
+    """Held-out vertex errors, in mesh units and as % of the neutral's bounding-box diagonal."""
+
+    mean_err: float
+    max_err: float
+    mean_err_pct_diag: float
+    max_err_pct_diag: float
+    linear_only_mean_err: float
+    holdout_count: int
+    seconds: float
+
+
+@dataclass(frozen=True)
+class InverseReport:
+    """Mesh error of forward(inverse(x)) against x (through the forward model), on check meshes."""
+
+    mode: str
+    mean_err: float
+    max_err: float
+    mean_err_pct_diag: float
+    final_loss: float
+    steps: int
+    seconds: float
+    input_scale: float
+    loss_curve: tuple[float, ...] = field(default=(), compare=False)
+
+
+def diagonal(neutral: np.ndarray) -> float:
+    """neutral: (V, 3) -> length of its axis-aligned bounding-box diagonal."""
+    return float(np.linalg.norm(neutral.max(axis=0) - neutral.min(axis=0)))
+
+
+def vertex_errors(pred: np.ndarray, true: np.ndarray) -> np.ndarray:
+    """pred, true: (N, V, 3) -> (N, V) Euclidean distance per vertex."""
+    return np.linalg.norm(np.asarray(pred, np.float64) - np.asarray(true, np.float64), axis=-1)
+
+
+def randomized_pca(
+    x: np.ndarray, k: int, seed: int = 0, oversample: int = 10, power: int = 3
+) -> np.ndarray:
+    """Top-k right singular vectors of x (uncentred), by randomised subspace iteration.
+
+    x: (N, D) -> (k', D) orthonormal rows, k' = min(k, N, D). Halko, Martinsson & Tropp (2011),
+    "Finding structure with randomness", algorithms 4.4 (subspace iteration) and 5.1.
+    """
+    n, d = x.shape
+    k = min(k, n, d)
+    rng = np.random.default_rng(seed)
+    a = np.asarray(x, np.float32)
+    q = np.linalg.qr(a @ rng.standard_normal((d, k + oversample)).astype(np.float32))[0]
+    for _ in range(power):
+        q = np.linalg.qr(a.T @ q)[0]
+        q = np.linalg.qr(a @ q)[0]
+    b = q.T @ a  # (k + p, D)
+    _, _, vt = np.linalg.svd(b.astype(np.float64), full_matrices=False)
+    return vt[:k].astype(np.float32)
+
+
+def randomized_pca_naive(x: np.ndarray, k: int) -> np.ndarray:
+    """Exact twin of ``randomized_pca``: full SVD, top-k right singular vectors."""
+    _, _, vt = np.linalg.svd(np.asarray(x, np.float64), full_matrices=False)
+    return vt[: min(k, *x.shape)]
+
+
+def fit_linear(
+    u: np.ndarray, offsets: np.ndarray, ridge: float = 1e-6
+) -> tuple[np.ndarray, np.ndarray]:
+    """Least-squares affine map from normalised controls to flat offsets.
+
+    u: (N, C); offsets: (N, D) -> weight (C, D), bias (D,) minimising |[u 1] [W; b] - offsets|^2
+    (normal equations, a tiny ridge for controls the data never moves).
+    """
+    n, c = u.shape
+    a = np.concatenate([u, np.ones((n, 1), np.float32)], axis=1).astype(np.float32)
+    ata = (a.T.astype(np.float64) @ a.astype(np.float64)) + ridge * n * np.eye(c + 1)
+    aty = np.zeros((c + 1, offsets.shape[1]), np.float64)
+    for s in range(0, n, 4096):
+        aty += (a[s : s + 4096].T @ offsets[s : s + 4096]).astype(np.float64)
+    sol = np.linalg.solve(ata, aty).astype(np.float32)
+    return sol[:c], sol[c]
+
+
+def _split(n: int, holdout: float, seed: int) -> tuple[np.ndarray, np.ndarray]:
+    order = np.random.default_rng(seed).permutation(n)
+    n_hold = min(max(1, round(holdout * n)), n - 1) if n > 1 else 0
+    return np.sort(order[n_hold:]), np.sort(order[:n_hold])
+
+
+def _schedule(
+    opt: torch.optim.Optimizer, lr: float, total: int
+) -> torch.optim.lr_scheduler.LRScheduler:
+    return torch.optim.lr_scheduler.OneCycleLR(
+        opt, max_lr=lr, total_steps=max(total, 2), pct_start=0.15
+    )
+
+
+def train_forward(
+    controls: np.ndarray,
+    vertices: np.ndarray,
+    neutral: np.ndarray,
+    lower: np.ndarray,
+    upper: np.ndarray,
+    config: ForwardConfig = ForwardConfig(),
+    progress: Progress | None = None,
+) -> tuple[ForwardApproximator, ForwardReport]:
+    """Fit a ForwardApproximator on samples.
+
+    controls: (N, C); vertices: (N, V, 3); neutral: (V, 3); lower, upper: (C,).
+    """
+    t0 = time.perf_counter()
+    torch.set_num_threads(TORCH_THREADS)
+    torch.manual_seed(config.seed)
+    n, v = vertices.shape[0], vertices.shape[1]
+    if controls.shape[0] != n or n < 2:
+        raise TrainError(
+            f"need matching controls and vertices with N >= 2, got {controls.shape} "
+            f"and {vertices.shape}"
+        )
+    lo, hi = np.asarray(lower, np.float32), np.asarray(upper, np.float32)
+    u_all = ((np.asarray(controls, np.float32) - lo) / (hi - lo)).astype(np.float32)
+    train_idx, hold_idx = _split(n, config.holdout, config.seed)
+    flat_neutral = np.asarray(neutral, np.float32).reshape(1, v * 3)
+    offs = (vertices[train_idx].reshape(-1, v * 3) - flat_neutral).astype(np.float32)
+    u = u_all[train_idx]
+    weight, bias = fit_linear(u, offs)
+    offs -= u @ weight + bias  # residual, in place
+    rng = np.random.default_rng(config.seed)
+    sub = rng.choice(offs.shape[0], size=min(offs.shape[0], 6000), replace=False)
+    basis = randomized_pca(offs[sub], config.components, seed=config.seed)
+    targets = (offs @ basis.T).astype(np.float32)  # (N_train, P) residual coefficients
+    del offs
+    model = ForwardApproximator(neutral, lo, hi, weight, bias, basis, hidden=config.hidden)
+    if model.correction is not None:
+        _fit_coefficients(model, u, targets, config, progress)
+    model.eval()
+    for p in model.parameters():
+        p.requires_grad_(False)
+    report = _forward_report(
+        model, controls[hold_idx], vertices[hold_idx], neutral, weight, bias, lo, hi, t0
+    )
+    log.info(
+        "forward: held-out mean %.3g (%.3f%% diag), max %.3g (%.3f%% diag), "
+        "linear-only mean %.3g, %.1fs",
+        report.mean_err,
+        report.mean_err_pct_diag,
+        report.max_err,
+        report.max_err_pct_diag,
+        report.linear_only_mean_err,
+        report.seconds,
+    )
+    return model, report
+
+
+def _fit_coefficients(
+    model: ForwardApproximator,
+    u: np.ndarray,
+    targets: np.ndarray,
+    config: ForwardConfig,
+    progress: Progress | None,
+) -> None:
+    assert model.correction is not None
+    ut, tt = torch.from_numpy(u), torch.from_numpy(targets)
+    n = ut.shape[0]
+    per_epoch = max(1, math.ceil(n / config.batch))
+    total = per_epoch * config.epochs
+    opt = torch.optim.Adam(model.correction.parameters(), lr=config.lr)
+    sched = _schedule(opt, config.lr, total)
+    gen = torch.Generator().manual_seed(config.seed)
+    start, step = time.perf_counter(), 0
+    model.train()
+    for epoch in range(config.epochs):
+        perm = torch.randperm(n, generator=gen)
+        for b in range(per_epoch):
+            idx = perm[b * config.batch : (b + 1) * config.batch]
+            loss = F.mse_loss(model.correction(ut[idx]), tt[idx])
+            opt.zero_grad(set_to_none=True)
+            loss.backward()
+            opt.step()
+            if step < total - 1:
+                sched.step()
+            step += 1
+        if progress is not None:
+            progress("forward", epoch + 1, config.epochs)
+        if time.perf_counter() - start > config.max_seconds:
+            log.info(
+                "forward: time budget %.0fs reached after %d epochs", config.max_seconds, epoch + 1
+            )
+            break
+    log.debug("forward: final coefficient mse %.3g", float(loss.detach()))
+
+
+@torch.no_grad()
+def _forward_report(
+    model: ForwardApproximator,
+    controls: np.ndarray,
+    vertices: np.ndarray,
+    neutral: np.ndarray,
+    weight: np.ndarray,
+    bias: np.ndarray,
+    lo: np.ndarray,
+    hi: np.ndarray,
+    t0: float,
+) -> ForwardReport:
+    diag = diagonal(neutral)
+    errs, lin_errs = [], []
+    for s in range(0, controls.shape[0], 512):
+        c = np.asarray(controls[s : s + 512], np.float32)
+        pred = model(torch.from_numpy(c)).numpy()
+        errs.append(vertex_errors(pred, vertices[s : s + 512]))
+        lin = neutral[None] + (((c - lo) / (hi - lo)) @ weight + bias).reshape(c.shape[0], -1, 3)
+        lin_errs.append(vertex_errors(lin, vertices[s : s + 512]))
+    e, le = np.concatenate(errs), np.concatenate(lin_errs)
+    return ForwardReport(
+        mean_err=float(e.mean()),
+        max_err=float(e.max()),
+        mean_err_pct_diag=100.0 * float(e.mean()) / diag,
+        max_err_pct_diag=100.0 * float(e.max()) / diag,
+        linear_only_mean_err=float(le.mean()),
+        holdout_count=int(controls.shape[0]),
+        seconds=time.perf_counter() - t0,
+    )
+
+
+def activity_rates(
+    controls: np.ndarray, lower: np.ndarray, upper: np.ndarray, defaults: np.ndarray
+) -> np.ndarray:
+    """controls: (N, C) -> (C,) share of samples where |c - default| > 1% of the range."""
+    span = np.asarray(upper, np.float64) - lower
+    return np.mean(np.abs(np.asarray(controls, np.float64) - defaults) > 0.01 * span, axis=0)
+
+
+def random_poses(
+    rng: np.random.Generator,
+    n: int,
+    lower: np.ndarray,
+    upper: np.ndarray,
+    defaults: np.ndarray,
+    rates: np.ndarray,
+) -> np.ndarray:
+    """(n, C) float32 poses: control c is drawn uniformly in bounds with probability rates[c],
+    else left at its default. Matches the sparse training distribution without the rig."""
+    c = lower.shape[0]
+    active = rng.random((n, c)) < rates
+    vals = lower + (upper - lower) * rng.random((n, c))
+    return np.where(active, vals, defaults).astype(np.float32)
+
+
+def input_scale(meshes: np.ndarray, neutral: np.ndarray, input_indices: np.ndarray) -> float:
+    """RMS offset of the input vertices over meshes (N, V, 3), floored to 1e-3 x the diagonal."""
+    sub = np.asarray(meshes[: min(meshes.shape[0], 4096)][:, input_indices], np.float64)
+    rms = float(np.sqrt(np.mean((sub - neutral[input_indices]) ** 2)))
+    return max(rms, 1e-3 * diagonal(neutral))
+
+
+def train_inverse(
+    forward: ForwardApproximator,
+    meshes: np.ndarray,
+    input_indices: np.ndarray,
+    defaults: np.ndarray,
+    config: InverseConfig = InverseConfig(),
+    *,
+    mode: Literal["general", "take"] = "general",
+    controls: np.ndarray | None = None,
+    region_weights: np.ndarray | None = None,
+    init: InverseNetwork | None = None,
+    progress: Progress | None = None,
+) -> tuple[InverseNetwork, InverseReport]:
+    """Train (or, in take mode, fine-tune) an InverseNetwork through the frozen ``forward``.
+
+    meshes: (N, V, 3) clean training meshes in the neutral's frame (the rig's samples in general
+    mode, the user's frames in take mode); input_indices: (K,); defaults: (C,); controls: (N, C)
+    labels of ``meshes`` (general mode only; used for the early supervised term and the activity
+    rates of fresh poses); region_weights: (V,) >= 0 per-vertex loss weights (normalised to mean
+    1); init: a network to start from (required in take mode).
+    """
+    t0 = time.perf_counter()
+    torch.set_num_threads(TORCH_THREADS)
+    torch.manual_seed(config.seed)
+    rng = np.random.default_rng(config.seed)
+    if mode not in ("general", "take"):
+        raise TrainError(f"inverse mode must be 'general' or 'take', got {mode!r}")
+    if mode == "take" and init is None:
+        raise TrainError("take mode fine-tunes an existing inverse; pass init=")
+    neutral = forward.neutral.numpy().reshape(-1, 3)
+    v = neutral.shape[0]
+    if meshes.ndim != 3 or meshes.shape[1:] != (v, 3):
+        raise TrainError(f"meshes must be (N, {v}, 3), got {meshes.shape}")
+    lo, hi = forward.lower.numpy(), forward.upper.numpy()
+    defaults = np.asarray(defaults, np.float32)
+    labelled = mode == "general" and controls is not None
+    n = meshes.shape[0]
+    fit_idx, check_idx = _split(n, 0.05, config.seed) if n >= 20 else (np.arange(n), np.arange(n))
+    if init is None:
+        scale = input_scale(meshes, neutral, input_indices)
+        model = InverseNetwork(
+            neutral[input_indices], scale, lo, hi, defaults, hidden=config.hidden
+        )
+    else:
+        model = init
+        scale = 1.0 / float(model.inv_scale)
+    weights = _region_weights(region_weights, v)
+    diag = diagonal(neutral)
+    sigma, jitter = config.noise_frac * diag, config.jitter_frac * diag
+    rates = (
+        activity_rates(controls, lo, hi, defaults) if labelled and controls is not None else None
+    )
+    fresh = round(config.fresh_fraction * config.batch) if rates is not None else 0
+    idx_t = torch.as_tensor(input_indices, dtype=torch.long)
+    span_t, def_t = torch.from_numpy(hi - lo), torch.from_numpy(defaults)
+    lo_t = torch.from_numpy(lo)
+    opt = torch.optim.Adam(model.parameters(), lr=config.lr)
+    sched = _schedule(opt, config.lr, config.steps)
+    inv_s2 = 1.0 / (scale * scale)
+    curve: list[float] = []
+    model.train()
+    step, loss_val = 0, float("nan")
+    for step in range(config.steps):
+        pick = rng.choice(fit_idx, size=config.batch - fresh, replace=fit_idx.size < config.batch)
+        x = torch.from_numpy(np.asarray(meshes[np.sort(pick)], np.float32))
+        c_true = (
+            torch.from_numpy(np.asarray(controls[np.sort(pick)], np.float32))
+            if labelled and controls is not None
+            else None
+        )
+        if fresh and rates is not None and c_true is not None:
+            c_new = torch.from_numpy(random_poses(rng, fresh, lo, hi, defaults, rates))
+            with torch.no_grad():
+                x = torch.cat([x, forward(c_new)])
+            c_true = torch.cat([c_true, c_new])
+        noisy = x[:, idx_t] + sigma * torch.randn(x.shape[0], idx_t.shape[0], 3)
+        if jitter > 0.0:
+            noisy = noisy + jitter * torch.randn(x.shape[0], 1, 3)
+        z = model.logits(noisy)
+        c = lo_t + span_t * torch.sigmoid(z)
+        diff = forward(c) - x
+        loss = (weights * diff.pow(2).sum(-1)).mean() * inv_s2 / 3.0
+        loss = loss + config.l1 * ((c - def_t).abs() / span_t).mean()
+        ramp = max(0.0, 1.0 - step / (0.5 * config.steps))
+        if c_true is not None and config.supervised > 0.0 and ramp > 0.0:
+            u_true = ((c_true - lo_t) / span_t).clamp(0.0, 1.0)
+            loss = loss + config.supervised * ramp * F.binary_cross_entropy_with_logits(z, u_true)
+        opt.zero_grad(set_to_none=True)
+        loss.backward()
+        opt.step()
+        if step < config.steps - 1:
+            sched.step()
+        loss_val = float(loss)
+        if step % 50 == 0:
+            curve.append(loss_val)
+            if progress is not None:
+                progress(f"inverse-{mode}", step, config.steps)
+            if time.perf_counter() - t0 > config.max_seconds:
+                log.info(
+                    "inverse: time budget %.0fs reached after %d steps",
+                    config.max_seconds,
+                    step + 1,
+                )
+                break
+    if progress is not None:
+        progress(f"inverse-{mode}", config.steps, config.steps)
+    model.eval()
+    for p in model.parameters():
+        p.requires_grad_(False)
+    mean_err, max_err = _inverse_errors(forward, model, meshes[check_idx], input_indices)
+    report = InverseReport(
+        mode=mode,
+        mean_err=mean_err,
+        max_err=max_err,
+        mean_err_pct_diag=100.0 * mean_err / diag,
+        final_loss=loss_val,
+        steps=step + 1,
+        seconds=time.perf_counter() - t0,
+        input_scale=scale,
+        loss_curve=tuple(curve),
+    )
+    log.info(
+        "inverse (%s): mean %.3g (%.3f%% diag), max %.3g, %d steps, %.1fs",
+        mode,
+        mean_err,
+        report.mean_err_pct_diag,
+        max_err,
+        report.steps,
+        report.seconds,
+    )
+    return model, report
+
+
+def _region_weights(region_weights: np.ndarray | None, v: int) -> torch.Tensor:
+    if region_weights is None:
+        return torch.ones(v)
+    w = np.asarray(region_weights, np.float64)
+    if w.shape != (v,) or not np.all(np.isfinite(w)) or np.any(w < 0) or w.sum() <= 0:
+        raise TrainError(
+            f"region weights must be ({v},) finite, >= 0 and not all zero; got shape {w.shape}"
+        )
+    return torch.from_numpy((w / w.mean()).astype(np.float32))
+
+
+@torch.no_grad()
+def _inverse_errors(
+    forward: ForwardApproximator,
+    inverse: InverseNetwork,
+    meshes: np.ndarray,
+    input_indices: np.ndarray,
+) -> tuple[float, float]:
+    """Mean and max vertex error of forward(inverse(x)) against x, over meshes (N, V, 3)."""
+    errs = []
+    for s in range(0, meshes.shape[0], 512):
+        x = torch.from_numpy(np.asarray(meshes[s : s + 512], np.float32))
+        pred = forward(inverse(x[:, torch.as_tensor(input_indices)]))
+        errs.append(vertex_errors(pred.numpy(), x.numpy()))
+    e = np.concatenate(errs)
+    return float(e.mean()), float(e.max())
