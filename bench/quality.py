@@ -280,7 +280,8 @@ def run_rig(name: str, out: Path, sizes: Sizes) -> tuple[dict[str, Any], dict[st
             if k != "per_frame_err":
                 entry[f"heldout_{m}_{k}"] = v
     entry["acceptance"] = acceptance(name, entry)
-    plot_take(out / f"take_{name}.png", name, rig, take, tk, figs_t)
+    influence = np.linalg.norm(lin.jacobian, axis=0)  # (C,) mesh motion per unit of control
+    plot_take(out / f"take_{name}.png", name, rig, take, tk, figs_t, influence)
     return entry, {"take": figs_t, "heldout": figs_h}
 
 
@@ -329,12 +330,13 @@ def plot_take(
     take: SynthTake,
     solved: dict[str, Solved],
     figs: dict[str, Any],
+    influence: np.ndarray,
 ) -> None:
+    """Controls shown: the 6 that move the mesh most over the take, i.e. the largest
+    mean |w - default| x influence (the norm of the control's linearised mesh motion)."""
     plt = _plt()
     w = take.controls_true
-    top = np.argsort(
-        -(np.abs(w - rig.schema.defaults) / (rig.schema.upper - rig.schema.lower)).mean(axis=0)
-    )[:6]
+    top = np.argsort(-(np.abs(w - rig.schema.defaults).mean(axis=0) * influence))[:6]
     fig, axes = plt.subplots(len(top) + 1, 1, figsize=(10, 2.0 * (len(top) + 1)), sharex=True)
     t = take.times_s
     for ax, c in zip(axes[:-1], top, strict=True):
@@ -354,7 +356,9 @@ def plot_take(
     ax.set_ylabel("mean vertex err")
     ax.set_xlabel("time (s); dotted: off-manifold frames")
     ax.legend(loc="upper right", fontsize=7, ncol=4)
-    fig.suptitle(f"{name}: synthetic take, controls (6 most active) and per-frame error")
+    fig.suptitle(
+        f"{name}: synthetic take, the 6 controls that move the mesh most, and per-frame error"
+    )
     fig.tight_layout()
     fig.savefig(path, dpi=90)
     plt.close(fig)
