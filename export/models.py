@@ -34,9 +34,10 @@ from torch import nn
 
 log = logging.getLogger(__name__)
 
-#: Logit of the initial output for a control whose default sits on a bound: sigmoid(-4) ~ 1.8 %
-#: of the range, so controls start (almost) off rather than half on. Common practice for gates.
-BOUND_LOGIT = 4.0
+#: Logit of the initial output for a control whose default sits on a bound: sigmoid(-7) ~ 0.09 %
+#: of the range, well under the 1 % "active" threshold, so controls start off rather than half on
+#: (the early supervised term in general training switches them on where needed).
+BOUND_LOGIT = 7.0
 
 
 def normalise_controls(c: torch.Tensor, lo: torch.Tensor, hi: torch.Tensor) -> torch.Tensor:
@@ -132,6 +133,40 @@ class ForwardApproximator(nn.Module):
     def forward(self, controls: torch.Tensor) -> torch.Tensor:
         flat = self.neutral + self.offsets(controls)
         return flat.reshape(-1, self.vertex_count, 3)
+
+    def restricted(self, indices: np.ndarray) -> VertexSubset:
+        """A view that evaluates only the vertices ``indices`` (L,), for cheaper training losses."""
+        return VertexSubset(self, indices)
+
+
+class VertexSubset(nn.Module):
+    """controls (N, C) -> (N, L, 3): a ForwardApproximator restricted to L vertices.
+
+    Slices the linear layer, bias, neutral and basis columns once; shares the correction MLP.
+    """
+
+    neutral: torch.Tensor
+    weight: torch.Tensor
+    bias: torch.Tensor
+    basis: torch.Tensor
+
+    def __init__(self, full: ForwardApproximator, indices: np.ndarray) -> None:
+        super().__init__()
+        idx = torch.as_tensor(np.asarray(indices, np.int64))
+        cols = (idx[:, None] * 3 + torch.arange(3)).reshape(-1)
+        self.count = int(idx.shape[0])
+        self.full = full
+        self.register_buffer("neutral", full.neutral[cols].clone())
+        self.register_buffer("weight", full.linear_weight.detach()[:, cols].clone())
+        self.register_buffer("bias", full.linear_bias.detach()[cols].clone())
+        self.register_buffer("basis", full.basis[:, cols].clone())
+
+    def forward(self, controls: torch.Tensor) -> torch.Tensor:
+        u = normalise_controls(controls, self.full.lower, self.full.upper)
+        out = self.neutral + u @ self.weight + self.bias
+        if self.full.correction is not None:
+            out = out + self.full.coefficients(u) @ self.basis
+        return out.reshape(-1, self.count, 3)
 
 
 class InverseNetwork(nn.Module):

@@ -71,6 +71,8 @@ class InverseConfig:
     l1: float = 3e-3
     fresh_fraction: float = 0.5  # share of each general batch rendered through the forward model
     supervised: float = 1.0  # initial weight of the early supervised term (general mode only)
+    supervised_until: float = 0.6  # share of the steps over which that weight decays to 0
+    loss_vertices: int = 1536  # mesh loss on this many fixed random moving vertices (0 = all)
     seed: int = 0
     max_seconds: float = 120.0
 
@@ -376,7 +378,10 @@ def train_inverse(
     else:
         model = init
         scale = 1.0 / float(model.inv_scale)
-    weights = _region_weights(region_weights, v)
+    loss_idx = loss_vertex_subset(meshes, neutral, config.loss_vertices, config.seed)
+    weights = _region_weights(region_weights, v)[torch.from_numpy(loss_idx)]
+    fwd_sub = forward.restricted(loss_idx)
+    loss_t = torch.from_numpy(loss_idx)
     diag = diagonal(neutral)
     sigma, jitter = config.noise_frac * diag, config.jitter_frac * diag
     rates = (
@@ -393,10 +398,12 @@ def train_inverse(
     model.train()
     step, loss_val = 0, float("nan")
     for step in range(config.steps):
-        pick = rng.choice(fit_idx, size=config.batch - fresh, replace=fit_idx.size < config.batch)
-        x = torch.from_numpy(np.asarray(meshes[np.sort(pick)], np.float32))
+        pick = np.sort(
+            rng.choice(fit_idx, size=config.batch - fresh, replace=fit_idx.size < config.batch)
+        )
+        x = torch.from_numpy(np.asarray(meshes[pick], np.float32))
         c_true = (
-            torch.from_numpy(np.asarray(controls[np.sort(pick)], np.float32))
+            torch.from_numpy(np.asarray(controls[pick], np.float32))
             if labelled and controls is not None
             else None
         )
@@ -410,10 +417,10 @@ def train_inverse(
             noisy = noisy + jitter * torch.randn(x.shape[0], 1, 3)
         z = model.logits(noisy)
         c = lo_t + span_t * torch.sigmoid(z)
-        diff = forward(c) - x
+        diff = fwd_sub(c) - x[:, loss_t]
         loss = (weights * diff.pow(2).sum(-1)).mean() * inv_s2 / 3.0
         loss = loss + config.l1 * ((c - def_t).abs() / span_t).mean()
-        ramp = max(0.0, 1.0 - step / (0.5 * config.steps))
+        ramp = max(0.0, 1.0 - step / max(1.0, config.supervised_until * config.steps))
         if c_true is not None and config.supervised > 0.0 and ramp > 0.0:
             u_true = ((c_true - lo_t) / span_t).clamp(0.0, 1.0)
             loss = loss + config.supervised * ramp * F.binary_cross_entropy_with_logits(z, u_true)
@@ -461,6 +468,19 @@ def train_inverse(
         report.seconds,
     )
     return model, report
+
+
+def loss_vertex_subset(
+    meshes: np.ndarray, neutral: np.ndarray, count: int, seed: int
+) -> np.ndarray:
+    """(L,) sorted vertex indices for the training loss: all vertices if count is 0 or >= V, else
+    ``count`` drawn uniformly (seeded) from those that move in the first 512 meshes (N, V, 3)."""
+    v = neutral.shape[0]
+    if count <= 0 or count >= v:
+        return np.arange(v)
+    moved = np.abs(np.asarray(meshes[:512], np.float32) - neutral[None]).max(axis=(0, 2)) > 0
+    pool = np.flatnonzero(moved) if moved.sum() >= count else np.arange(v)
+    return np.sort(np.random.default_rng(seed).choice(pool, size=count, replace=False))
 
 
 def _region_weights(region_weights: np.ndarray | None, v: int) -> torch.Tensor:
