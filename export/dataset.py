@@ -26,13 +26,19 @@ import logging
 import os
 from collections.abc import Callable
 from concurrent.futures import FIRST_COMPLETED, Executor, Future, wait
+from concurrent.futures.process import BrokenProcessPool
 from contextlib import ExitStack
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 import numpy as np
-from rigcast.export.executor import SerialExecutor, evaluate_batch, make_executor
+from rigcast.export.executor import (
+    ExecutorError,
+    SerialExecutor,
+    evaluate_batch,
+    make_executor,
+)
 from rigcast.export.rig import Rig
 from rigcast.export.sampling import SamplingConfig, sample_chunk
 from rigcast.runtime.schema import ControlSchema, SchemaError
@@ -370,6 +376,13 @@ def _run_chunks(rig: Rig, executor: Executor, todo: list[int],
             for future in sorted(ready, key=lambda f: pending[f][0]):
                 i, controls = pending.pop(future)
                 finish(i, controls, np.asarray(future.result(), dtype=np.float32))
+    except BrokenProcessPool as exc:
+        # Under 'spawn' a script that samples at import time (no ``if __name__ == "__main__"``
+        # guard) kills its workers this way; so does running out of memory.
+        raise ExecutorError(
+            f"a worker process died while evaluating rig {rig.name!r} ({exc}); scripts that "
+            "sample with local processes need an `if __name__ == \"__main__\":` guard"
+        ) from None
     finally:
         for future in pending:
             future.cancel()
@@ -417,12 +430,3 @@ def load_dataset(out_dir: Path) -> Dataset:
         path=out_dir,
     )
 
-
-__all__ = [
-    "Dataset",
-    "DatasetError",
-    "dataset_fingerprint",
-    "dataset_from_arrays",
-    "load_dataset",
-    "sample_dataset",
-]

@@ -21,8 +21,8 @@ log = logging.getLogger(__name__)
 DEFAULT_WORKERS = 2
 
 
-class ExecutorError(ValueError):
-    """An executor setting is invalid or a scheduler cannot be reached; the message says which."""
+class ExecutorError(Exception):
+    """An executor setting is invalid, a scheduler cannot be reached, or a worker died."""
 
 
 class SerialExecutor(Executor):
