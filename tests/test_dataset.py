@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import os
 from pathlib import Path
 
 import numpy as np
@@ -66,6 +67,19 @@ class ArrayRig(Rig):
 
     def _evaluate(self, controls: np.ndarray) -> np.ndarray:
         raise RigError("an array rig has no evaluator")
+
+
+class DyingRig(CountingRig):
+    """Evaluates in the parent (for the fingerprint) but kills any worker process it runs in."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.parent_pid = os.getpid()
+
+    def _evaluate(self, controls: np.ndarray) -> np.ndarray:
+        if os.getpid() != self.parent_pid:
+            os._exit(3)
+        return super()._evaluate(controls)
 
 
 class Stop(Exception):
@@ -189,6 +203,11 @@ def test_process_pool_gives_the_serial_result(tmp_path: Path, reference: Dataset
         pooled = sample_dataset(CountingRig(log_path), tmp_path / "pool", CONFIG, executor=ex)
     assert sorted(chunk_evaluations(log_path)) == [2] + [8] * 6
     assert_same(pooled, reference)
+
+
+def test_a_dead_worker_is_a_named_error(tmp_path: Path):
+    with make_executor(workers=1) as ex, pytest.raises(ExecutorError, match="worker process died"):
+        sample_dataset(DyingRig(), tmp_path / "dead", CONFIG, executor=ex)
 
 
 @pytest.mark.timeout(60)
