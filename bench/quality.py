@@ -393,8 +393,8 @@ def report_md(rigs: dict[str, dict[str, Any]], meta: dict[str, Any]) -> str:
         "figures (noise-free sparse random poses) are in the second table of each rig. All "
         "errors are re-rendered through the real rig. See docs/quality.md.",
         "",
-        f"Run: {meta['when']}, quick={meta['quick']}, {meta['machine']}. The machine is "
-        "shared, so build and solve times are pessimistic.",
+        f"Run: {meta['when']}, git {meta['git']}, quick={meta['quick']}, {meta['machine']}. "
+        "The machine is shared, so build and solve times are pessimistic.",
         "",
     ]
     for name, e in rigs.items():
@@ -449,6 +449,31 @@ def report_md(rigs: dict[str, dict[str, Any]], meta: dict[str, Any]) -> str:
     return "\n".join(lines)
 
 
+def _git_state() -> str:
+    """HEAD and whether the work tree differs from it: the models change while others work."""
+    import subprocess
+
+    root = Path(__file__).resolve().parent.parent
+    try:
+        head = subprocess.run(
+            ["git", "rev-parse", "--short", "HEAD"],
+            cwd=root,
+            check=True,
+            capture_output=True,
+            text=True,
+        ).stdout.strip()
+        dirty = subprocess.run(
+            ["git", "status", "--porcelain", "--untracked-files=no"],
+            cwd=root,
+            check=True,
+            capture_output=True,
+            text=True,
+        ).stdout
+    except (OSError, subprocess.CalledProcessError):
+        return "unknown"
+    return head + (" (with uncommitted changes)" if dirty.strip() else "")
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--out", type=Path, required=True, help="folder for quality.json/.md and PNGs")
@@ -473,6 +498,7 @@ def main(argv: list[str] | None = None) -> int:
         "machine": f"{platform.machine()}, {platform.python_version()}",
         "headline_data": HEADLINE,
         "sizes": sizes.__dict__,
+        "git": _git_state(),
     }
     for name in names:
         rigs[name], _ = run_rig(name, args.out, sizes)
