@@ -279,7 +279,8 @@ def measure(vertices: int, args: argparse.Namespace, work: Path) -> dict[str, An
     cmd = [sys.executable, "-m", "rigcast.runtime.serve_main", "--bundle", f"{STREAM}={bundle}",
            "--input", "tcp://127.0.0.1:*", "--output", "tcp://127.0.0.1:*", "--ready-file",
            str(ready), "--fit-error", "after_publish", "--telemetry-hz", "10",
-           "--window", "1000", "--log-level", "WARNING"]
+           "--window", "1000", "--log-level", "WARNING",
+           "--busy-poll" if args.busy_poll else "--no-busy-poll"]
     server, _ = start_and_wait(cmd, ready, 0, args)
     try:
         res, rss_warm, rss_end = run_client("server", ready, vertices, args.duration, work,
@@ -315,6 +316,7 @@ def measure(vertices: int, args: argparse.Namespace, work: Path) -> dict[str, An
         "rss_after_blast_mb": rss_after_blast,
         "stage_median_ms": stages,
         "pinned": bool(args.pin),
+        "busy_poll": bool(args.busy_poll),
     }
 
 
@@ -331,6 +333,8 @@ def main() -> None:
                         help="seconds of each flat-out run")
     parser.add_argument("--no-pin", dest="pin", action="store_false",
                         help="do not pin server and client to CPUs 0 and 1")
+    parser.add_argument("--busy-poll", action="store_true",
+                        help="run the server with --busy-poll (spins a core between frames)")
     parser.add_argument("--out", type=Path, default=None)
     parser.add_argument("--mode", default="server", help=argparse.SUPPRESS)
     parser.add_argument("--endpoints", help=argparse.SUPPRESS)

@@ -121,6 +121,9 @@ class ServerConfig:
     telemetry_hz: float = _flag("telemetry messages per second per stream", 10.0)
     window: int = _flag("sliding window for latency percentiles, in frames", 1000)
     max_message_bytes: int = _flag("largest accepted mesh payload, in bytes", 16 * 1024 * 1024)
+    busy_poll: bool = _flag(
+        "spin on the input socket instead of sleeping: lower latency, but it keeps a core busy",
+        False)
     max_header_bytes: int = 4096
     max_drain: int = 256
     input_hwm: int = 32
