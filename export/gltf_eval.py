@@ -1,8 +1,8 @@
 """Pure math of glTF 2.0 rig evaluation: morph targets, node transforms and linear blend skinning.
 
 Everything here is a function over numpy arrays; loading files lives in ``export/gltf_rig.py``.
-The formulas follow the glTF 2.0 specification, sections "Morph Targets" (3.7.2.2) and
-"Skins" / "Joint Hierarchy" (3.7.3):
+The formulas follow the glTF 2.0 specification, sections "Morph Targets" and
+"Skins" (with "Joint Hierarchy" and "Skinned Mesh Attributes"):
 
 - morphed position = base + sum_i w_i * target_i.POSITION
 - jointMatrix_j = inverse(globalTransform(meshNode)) * globalTransform(joint_j)
@@ -62,7 +62,7 @@ def quat_xyzw_to_matrix(q: np.ndarray) -> np.ndarray:
 def trs_matrix(
     translation: np.ndarray | None, rotation: np.ndarray | None, scale: np.ndarray | None
 ) -> np.ndarray:
-    """glTF node TRS to a (4, 4) matrix M = T * R * S (spec 3.5.3, "Transformations")."""
+    """glTF node TRS to a (4, 4) matrix M = T * R * S (spec, "Transformations")."""
     m = np.eye(4)
     r = np.eye(3) if rotation is None else quat_xyzw_to_matrix(np.asarray(rotation))
     s = np.ones(3) if scale is None else np.asarray(scale, dtype=np.float64)
