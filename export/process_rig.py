@@ -57,13 +57,13 @@ class _Deadline(io.RawIOBase):
         return len(data)
 
 
-def _stop(proc: subprocess.Popen[bytes]) -> None:
+def _stop(proc: subprocess.Popen[bytes], grace: float = _EXIT_GRACE) -> None:
     """Close stdin, give the process a grace period, then kill it; close every pipe."""
     if proc.stdin is not None and not proc.stdin.closed:
         with contextlib.suppress(OSError):
             proc.stdin.close()
     try:
-        proc.wait(timeout=_EXIT_GRACE)
+        proc.wait(timeout=grace)
     except subprocess.TimeoutExpired:
         proc.kill()
         proc.wait()
@@ -130,8 +130,10 @@ class _Session:
         except (BrokenPipeError, ConnectionResetError):
             raise self.error("the process closed its stdin") from None
 
-    def close(self) -> None:
-        self._finalizer()
+    def close(self, grace: float = _EXIT_GRACE) -> None:
+        """Stop the process: ``grace`` seconds to exit after stdin closes, then kill."""
+        if self._finalizer.detach() is not None:
+            _stop(self.proc, grace)
         self.drain.join(timeout=1.0)
 
 
@@ -152,7 +154,7 @@ class _Exact:
 
 def _fail(session: _Session, problem: str) -> RigError:
     err = session.error(problem)
-    session.close()
+    session.close(grace=0.2)  # it is misbehaving: no long goodbye
     return err
 
 
@@ -190,7 +192,7 @@ class ProcessRig(Rig):
             neutral = session.read(self.start_timeout)
             faces = session.read(self.start_timeout)
         except RigError:
-            session.close()
+            session.close(grace=0.2)
             raise
         if neutral.ndim != 2 or neutral.shape[1] != 3 or neutral.dtype.kind != "f":
             raise _fail(session, f"hello neutral must be float (V, 3), got {neutral.dtype} "
@@ -221,7 +223,8 @@ class ProcessRig(Rig):
             session.write(np.ascontiguousarray(controls, dtype="<f8"), self.timeout)
             out = session.read(self.timeout)
         except RigError:
-            self.close()  # the stream is out of step; a later call starts afresh
+            self._session = None  # the stream is out of step; a later call starts afresh
+            session.close(grace=0.2)
             raise
         expected = (controls.shape[0], self.vertex_count, 3)
         if out.shape != expected or out.dtype.kind != "f":
