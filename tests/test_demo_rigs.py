@@ -7,6 +7,8 @@ import re
 
 import numpy as np
 import pytest
+from scipy.spatial.transform import Rotation
+
 from rigcast.export.demo_rigs import (
     DEMO_RIGS,
     JAW,
@@ -17,7 +19,6 @@ from rigcast.export.demo_rigs import (
 )
 from rigcast.export.gltf_eval import euler_xyz_matrices, skin_points, skin_points_naive
 from rigcast.export.rig import Rig, RigError
-from scipy.spatial.transform import Rotation
 
 
 def _random_poses(rig: Rig, n: int, seed: int = 0) -> np.ndarray:
