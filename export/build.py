@@ -81,7 +81,7 @@ class BuildConfig:
     ``workers`` / ``scheduler`` choose the sampling executor (see ``executor.make_executor``).
     """
 
-    samples: int = 24000
+    samples: int = 16000
     sparsity: SparsityConfig = field(default_factory=SparsityConfig)
     seed: int = 0
     forward: Any = field(default_factory=_forward_default)  # train.ForwardConfig

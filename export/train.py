@@ -36,6 +36,7 @@ from typing import Literal
 import numpy as np
 import torch
 import torch.nn.functional as F
+
 from rigcast.export.models import ForwardApproximator, InverseNetwork
 
 log = logging.getLogger(__name__)
@@ -52,12 +53,12 @@ class TrainError(ValueError):
 class ForwardConfig:
     hidden: tuple[int, ...] = (256, 256, 256)
     components: int = 96
-    epochs: int = 60
+    epochs: int = 40
     batch: int = 512
     lr: float = 3e-3
     holdout: float = 0.1
     seed: int = 0
-    max_seconds: float = 90.0
+    max_seconds: float = 45.0
 
 
 @dataclass(frozen=True)
@@ -68,13 +69,13 @@ class InverseConfig:
     lr: float = 1.5e-3
     noise_frac: float = 0.001  # input noise sigma as a fraction of the neutral's bbox diagonal
     jitter_frac: float = 0.0  # random rigid translation, fraction of diagonal (0 = off)
-    l1: float = 3e-3
+    l1: float = 1e-2
     fresh_fraction: float = 0.5  # share of each general batch rendered through the forward model
     supervised: float = 1.0  # initial weight of the early supervised term (general mode only)
     supervised_until: float = 0.6  # share of the steps over which that weight decays to 0
     loss_vertices: int = 1536  # mesh loss on this many fixed random moving vertices (0 = all)
     seed: int = 0
-    max_seconds: float = 120.0
+    max_seconds: float = 100.0
 
 
 @dataclass(frozen=True)
@@ -166,6 +167,19 @@ def _split(n: int, holdout: float, seed: int) -> tuple[np.ndarray, np.ndarray]:
     return np.sort(order[n_hold:]), np.sort(order[:n_hold])
 
 
+_PROBE_STEPS = 20
+
+
+def _fit_budget(total: int, done: int, elapsed: float, budget: float) -> int:
+    """Shrink a step count so that the remaining steps, at the pace of the first ``done`` steps
+    (``elapsed`` seconds), fit the ``budget`` seconds left; a schedule must know its length up
+    front, so this runs once, early. Never fewer than 2 x ``done`` steps."""
+    per_step = elapsed / max(done, 1)
+    if per_step * total <= budget:
+        return total
+    return max(2 * done, int(budget / per_step))
+
+
 def _schedule(
     opt: torch.optim.Optimizer, lr: float, total: int
 ) -> torch.optim.lr_scheduler.LRScheduler:
@@ -246,9 +260,16 @@ def _fit_coefficients(
     opt = torch.optim.Adam(model.correction.parameters(), lr=config.lr)
     sched = _schedule(opt, config.lr, total)
     gen = torch.Generator().manual_seed(config.seed)
-    start, step = time.perf_counter(), 0
+    start, step, epochs = time.perf_counter(), 0, config.epochs
     model.train()
-    for epoch in range(config.epochs):
+    epoch = 0
+    while epoch < epochs:
+        if epoch == 1:
+            epochs = _fit_budget(epochs, 1, time.perf_counter() - start, config.max_seconds)
+            if epochs != config.epochs:
+                log.info("forward: %d epochs fit the %.0fs budget", epochs, config.max_seconds)
+                total = per_epoch * epochs
+                sched = _schedule(opt, config.lr, total - step)
         perm = torch.randperm(n, generator=gen)
         for b in range(per_epoch):
             idx = perm[b * config.batch : (b + 1) * config.batch]
@@ -259,13 +280,9 @@ def _fit_coefficients(
             if step < total - 1:
                 sched.step()
             step += 1
+        epoch += 1
         if progress is not None:
-            progress("forward", epoch + 1, config.epochs)
-        if time.perf_counter() - start > config.max_seconds:
-            log.info(
-                "forward: time budget %.0fs reached after %d epochs", config.max_seconds, epoch + 1
-            )
-            break
+            progress("forward", epoch, epochs)
     log.debug("forward: final coefficient mse %.3g", float(loss.detach()))
 
 
@@ -396,8 +413,21 @@ def train_inverse(
     inv_s2 = 1.0 / (scale * scale)
     curve: list[float] = []
     model.train()
-    step, loss_val = 0, float("nan")
-    for step in range(config.steps):
+    loss_val, total, step = float("nan"), config.steps, 0
+    t_loop = time.perf_counter()
+    while step < total:
+        if step == _PROBE_STEPS:
+            total = _fit_budget(
+                total, step, time.perf_counter() - t_loop, config.max_seconds - (t_loop - t0)
+            )
+            if total != config.steps:
+                log.info(
+                    "inverse: %d steps fit the %.0fs budget (asked %d)",
+                    total,
+                    config.max_seconds,
+                    config.steps,
+                )
+                sched = _schedule(opt, config.lr, total - step)
         pick = np.sort(
             rng.choice(fit_idx, size=config.batch - fresh, replace=fit_idx.size < config.batch)
         )
@@ -420,29 +450,23 @@ def train_inverse(
         diff = fwd_sub(c) - x[:, loss_t]
         loss = (weights * diff.pow(2).sum(-1)).mean() * inv_s2 / 3.0
         loss = loss + config.l1 * ((c - def_t).abs() / span_t).mean()
-        ramp = max(0.0, 1.0 - step / max(1.0, config.supervised_until * config.steps))
+        ramp = max(0.0, 1.0 - step / max(1.0, config.supervised_until * total))
         if c_true is not None and config.supervised > 0.0 and ramp > 0.0:
             u_true = ((c_true - lo_t) / span_t).clamp(0.0, 1.0)
             loss = loss + config.supervised * ramp * F.binary_cross_entropy_with_logits(z, u_true)
         opt.zero_grad(set_to_none=True)
         loss.backward()
         opt.step()
-        if step < config.steps - 1:
+        if step < total - 1:
             sched.step()
-        loss_val = float(loss)
+        loss_val = float(loss.detach())
         if step % 50 == 0:
             curve.append(loss_val)
             if progress is not None:
-                progress(f"inverse-{mode}", step, config.steps)
-            if time.perf_counter() - t0 > config.max_seconds:
-                log.info(
-                    "inverse: time budget %.0fs reached after %d steps",
-                    config.max_seconds,
-                    step + 1,
-                )
-                break
+                progress(f"inverse-{mode}", step, total)
+        step += 1
     if progress is not None:
-        progress(f"inverse-{mode}", config.steps, config.steps)
+        progress(f"inverse-{mode}", total, total)
     model.eval()
     for p in model.parameters():
         p.requires_grad_(False)
@@ -453,7 +477,7 @@ def train_inverse(
         max_err=max_err,
         mean_err_pct_diag=100.0 * mean_err / diag,
         final_loss=loss_val,
-        steps=step + 1,
+        steps=step,
         seconds=time.perf_counter() - t0,
         input_scale=scale,
         loss_curve=tuple(curve),
