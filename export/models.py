@@ -69,7 +69,7 @@ def mlp(sizes: list[int], activation: type[nn.Module] = nn.SiLU) -> nn.Sequentia
 
 
 def _f32(a: np.ndarray) -> torch.Tensor:
-    return torch.as_tensor(np.ascontiguousarray(a, dtype=np.float32))
+    return torch.from_numpy(np.array(a, dtype=np.float32, copy=True))
 
 
 class ForwardApproximator(nn.Module):

@@ -67,9 +67,9 @@ class InverseConfig:
     steps: int = 3000
     batch: int = 256
     lr: float = 1.5e-3
-    noise_frac: float = 0.001  # input noise sigma as a fraction of the neutral's bbox diagonal
+    noise_frac: float = 0.0015  # input noise sigma as a fraction of the neutral's bbox diagonal
     jitter_frac: float = 0.0  # random rigid translation, fraction of diagonal (0 = off)
-    l1: float = 1e-2
+    l1: float = 3e-2
     fresh_fraction: float = 0.5  # share of each general batch rendered through the forward model
     supervised: float = 1.0  # initial weight of the early supervised term (general mode only)
     supervised_until: float = 0.6  # share of the steps over which that weight decays to 0
@@ -301,7 +301,7 @@ def _forward_report(
     diag = diagonal(neutral)
     errs, lin_errs = [], []
     for s in range(0, controls.shape[0], 512):
-        c = np.asarray(controls[s : s + 512], np.float32)
+        c = np.array(controls[s : s + 512], np.float32, copy=True)
         pred = model(torch.from_numpy(c)).numpy()
         errs.append(vertex_errors(pred, vertices[s : s + 512]))
         lin = neutral[None] + (((c - lo) / (hi - lo)) @ weight + bias).reshape(c.shape[0], -1, 3)
@@ -528,7 +528,7 @@ def _inverse_errors(
     """Mean and max vertex error of forward(inverse(x)) against x, over meshes (N, V, 3)."""
     errs = []
     for s in range(0, meshes.shape[0], 512):
-        x = torch.from_numpy(np.asarray(meshes[s : s + 512], np.float32))
+        x = torch.from_numpy(np.array(meshes[s : s + 512], np.float32, copy=True))
         pred = forward(inverse(x[:, torch.as_tensor(input_indices)]))
         errs.append(vertex_errors(pred.numpy(), x.numpy()))
     e = np.concatenate(errs)
