@@ -32,13 +32,13 @@ from pathlib import Path
 from typing import Any, Literal
 
 import numpy as np
-
-import rigcast
 from rigcast.export.dataset import sample_dataset
 from rigcast.export.executor import make_executor
 from rigcast.export.rig import Rig
 from rigcast.export.sampling import SamplingConfig, SparsityConfig, sample_controls
 from rigcast.runtime.bundle import Bundle, BundleError, load_bundle, write_bundle
+
+import rigcast
 
 log = logging.getLogger(__name__)
 
@@ -486,7 +486,6 @@ def _check_arrays(
 ) -> dict[str, float]:
     """Solve the check meshes with onnxruntime; parity to torch, real-rig error, fit RMS."""
     import torch
-
     from rigcast.export.onnx_export import PARITY_TOL, session
 
     x_in = np.ascontiguousarray(check_x[:, inputs], np.float32)

@@ -19,7 +19,6 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-
 from rigcast.export.rig import Rig, RigError
 from rigcast.runtime.schema import ControlSchema, SchemaError
 

@@ -19,7 +19,6 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-
 from rigcast.export.callable_rig import parse_schema, read_schema_file
 from rigcast.export.rig import Rig, RigError
 

@@ -21,7 +21,6 @@ from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
-
 from rigcast.export.gltf_eval import euler_xyz_matrices, skin_points
 from rigcast.export.rig import Rig
 from rigcast.runtime.schema import Control, ControlSchema

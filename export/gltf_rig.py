@@ -24,7 +24,6 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-
 from rigcast.export.gltf_eval import (
     dense_weights,
     euler_xyz_matrices,

@@ -23,10 +23,9 @@ import numpy as np
 import onnx
 import onnxruntime as ort
 import torch
-from torch import nn
-
 from rigcast.export.models import ForwardApproximator, InverseNetwork
 from rigcast.runtime.bundle import FORWARD_INPUT, FORWARD_OUTPUT, INVERSE_INPUT, INVERSE_OUTPUT
+from torch import nn
 
 log = logging.getLogger(__name__)
 

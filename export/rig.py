@@ -9,7 +9,6 @@ import logging
 from abc import ABC, abstractmethod
 
 import numpy as np
-
 from rigcast.runtime.schema import ControlSchema
 
 log = logging.getLogger(__name__)

@@ -36,7 +36,6 @@ from typing import Literal
 import numpy as np
 import torch
 import torch.nn.functional as F
-
 from rigcast.export.models import ForwardApproximator, InverseNetwork
 
 log = logging.getLogger(__name__)

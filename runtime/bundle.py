@@ -29,7 +29,6 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-
 from rigcast.runtime.schema import ControlSchema, SchemaError
 
 log = logging.getLogger(__name__)

@@ -7,8 +7,6 @@ import re
 
 import numpy as np
 import pytest
-from scipy.spatial.transform import Rotation
-
 from rigcast.export.demo_rigs import (
     DEMO_RIGS,
     JAW,
@@ -19,6 +17,7 @@ from rigcast.export.demo_rigs import (
 )
 from rigcast.export.gltf_eval import euler_xyz_matrices, skin_points, skin_points_naive
 from rigcast.export.rig import Rig, RigError
+from scipy.spatial.transform import Rotation
 
 
 def _random_poses(rig: Rig, n: int, seed: int = 0) -> np.ndarray:

@@ -15,10 +15,10 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-
 from rigcast.export.gltf_eval import morph_positions, morph_positions_naive
 from rigcast.export.gltf_rig import GltfRig
 from rigcast.export.rig import RigError
+
 from tests.fixtures_rigs import NodeSpec, morph_triangle, two_joint_strip, write_gltf
 
 TIP_Z = {"joints": {"Tip": {"z": [-90, 90]}}}

@@ -7,7 +7,6 @@ import pytest
 import torch
 from hypothesis import given, settings
 from hypothesis import strategies as st
-
 from rigcast.export import reduction, train
 from rigcast.export.models import InverseNetwork, load_checkpoint, save_checkpoint
 from rigcast.export.rig import Rig

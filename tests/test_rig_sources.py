@@ -12,13 +12,13 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-
 from rigcast.export.callable_rig import CallableRig
 from rigcast.export.dataset_rig import DatasetRig, write_dataset_npz
 from rigcast.export.demo_rigs import tamsin_lantern_arm
 from rigcast.export.process_rig import ProcessRig
 from rigcast.export.rig import RigError
 from rigcast.export.rig_loader import load_rig
+
 from tests.fixtures_rigs import morph_triangle
 
 ROOT = Path(__file__).resolve().parents[1]
