@@ -1,4 +1,4 @@
-"""Batch-solve throughput on the demo face rig.
+"""Batch-solve throughput on the demo face model.
 
     python bench/batch.py --out DIR [--frames 20000] [--repeats 5] [--bundle PATH]
 
@@ -129,7 +129,7 @@ def main() -> None:
         "off_manifold_frames": int(result.off_manifold.sum()),
         "build_or_cache_seconds": build_s,
     }
-    print(f"batch solve, demo face rig: V={figures['vertices']} C={figures['controls']} "
+    print(f"batch solve, demo face model: V={figures['vertices']} C={figures['controls']} "
           f"K={figures['input_vertices']}, {args.frames} frames, batch {bs}, {threads} threads")
     print(f"  full pipeline (with fit error): median {fps:,.0f} frames/s "
           f"(p99-low {figures['frames_per_second_p99_low']:,.0f}) over {args.repeats} runs")

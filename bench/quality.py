@@ -209,7 +209,7 @@ def forward_error_pct(bundle: Bundle, rig: Rig, controls: np.ndarray, diag: floa
 
 def take_weights(schema: ControlSchema) -> np.ndarray:
     """(C,) expression pick weights: jaw controls 4x as likely (a speech-like take; a take where
-    the jaw never opens would not exercise the face rig's skinned, non-linear part)."""
+    the jaw never opens would not exercise the face model's skinned, non-linear part)."""
     return np.array([4.0 if g == "jaw" else 1.0 for g in schema.groups])
 
 

@@ -303,7 +303,7 @@ def _fold_jaw(shapes: np.ndarray, neutral: np.ndarray, weights: np.ndarray) -> n
     return m.reshape(3 * g + 2, v * 3)
 
 
-class TamsinFace(Rig):
+class TamsinHead(Rig):
     """Blendshapes + corrective combination shapes + a skinned jaw (``linear=False``),
     or the affine variant (``linear=True``). Build it with ``tamsin_face()``."""
 
@@ -346,7 +346,7 @@ class TamsinFace(Rig):
             shapes[self.jaw_index] = 0.0  # the jaw acts through skinning only
             self._matrix = _fold_jaw(shapes, neutral, _jaw_weights(neutral)).astype(np.float32)
 
-    def __reduce__(self) -> tuple[Callable[..., TamsinFace], tuple[bool, int]]:
+    def __reduce__(self) -> tuple[Callable[..., TamsinHead], tuple[bool, int]]:
         # Rebuild from two arguments instead of shipping ~3 MB of arrays to every worker.
         return (_rebuild_face, self._args)
 
@@ -410,8 +410,8 @@ class TamsinFace(Rig):
         return out
 
 
-def _rebuild_face(linear: bool, seed: int) -> TamsinFace:
-    return TamsinFace(linear=linear, seed=seed)
+def _rebuild_face(linear: bool, seed: int) -> TamsinHead:
+    return TamsinHead(linear=linear, seed=seed)
 
 
 _ARM_JOINTS = ("base", "lower", "middle", "upper", "wrist", "grip")
@@ -514,14 +514,14 @@ def _rebuild_arm(seed: int) -> TamsinLanternArm:
     return TamsinLanternArm(seed=seed)
 
 
-def tamsin_face() -> TamsinFace:
+def tamsin_face() -> TamsinHead:
     """The non-linear demo face: 46 controls, 15 corrective combos, a skinned jaw."""
-    return TamsinFace(linear=False)
+    return TamsinHead(linear=False)
 
 
-def tamsin_face_linear() -> TamsinFace:
+def tamsin_face_linear() -> TamsinHead:
     """The affine demo face: same schema and shapes, no correctives, jaw as a linear shape."""
-    return TamsinFace(linear=True)
+    return TamsinHead(linear=True)
 
 
 def tamsin_lantern_arm() -> TamsinLanternArm:

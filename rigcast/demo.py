@@ -268,7 +268,7 @@ def run_demo(config: DemoConfig, write: Callable[[str], None] = _stdout) -> RunS
     report_dir = config.report_dir
     report_dir.mkdir(parents=True, exist_ok=True)
     rig = tamsin_face()
-    write(f"rigcast demo: the demo face '{rig.name}' ({rig.vertex_count} vertices, "
+    write(f"rigcast demo: the demo character '{rig.name}' ({rig.vertex_count} vertices, "
           f"{rig.control_count} controls); bundle cache {config.cache_dir}")
     bundle_path = report_dir / "demo-face.rcb"
     with build_progress(interactive) as progress:

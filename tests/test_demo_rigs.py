@@ -27,7 +27,7 @@ def _random_poses(rig: Rig, n: int, seed: int = 0) -> np.ndarray:
 
 
 @pytest.fixture(scope="module")
-def face() -> Rig:
+def head() -> Rig:
     return tamsin_face()
 
 
@@ -47,10 +47,10 @@ def test_registry_names() -> None:
     assert not DEMO_RIGS["face"]().linear
 
 
-def test_face_schema(face: Rig) -> None:
-    s = face.schema
+def test_face_schema(head: Rig) -> None:
+    s = head.schema
     assert 40 <= len(s) <= 60
-    assert 3000 <= face.vertex_count <= 4000
+    assert 3000 <= head.vertex_count <= 4000
     for c in s.controls:
         assert re.fullmatch(r"[a-z]+(_[a-z]+)*", c.name), c.name
         assert c.group, c.name
@@ -66,8 +66,8 @@ def test_face_schema(face: Rig) -> None:
     )
 
 
-def test_faces_valid(face: Rig, arm: Rig) -> None:
-    for rig in (face, arm):
+def test_faces_valid(head: Rig, arm: Rig) -> None:
+    for rig in (head, arm):
         assert rig.faces.dtype == np.int32 and rig.faces.shape[1] == 3
         assert rig.faces.min() == 0 and rig.faces.max() == rig.vertex_count - 1
         tri = rig.neutral[rig.faces]
@@ -97,28 +97,28 @@ def test_pickle_round_trip(name: str) -> None:
     assert back.fingerprint() == rig.fingerprint()
 
 
-def test_fast_matches_naive(face: Rig, face_linear: Rig) -> None:
-    for rig in (face, face_linear):
+def test_fast_matches_naive(head: Rig, face_linear: Rig) -> None:
+    for rig in (head, face_linear):
         poses = _random_poses(rig, 5, seed=1)
         fast = rig.evaluate(poses)
         naive = rig.evaluate_naive(poses)
         np.testing.assert_allclose(fast, naive, atol=2e-5)
 
 
-def test_chunked_batch_matches_single_rows(face: Rig) -> None:
-    poses = _random_poses(face, 1100, seed=2)  # crosses the 1024-pose chunk boundary
-    batch = face.evaluate(poses)
+def test_chunked_batch_matches_single_rows(head: Rig) -> None:
+    poses = _random_poses(head, 1100, seed=2)  # crosses the 1024-pose chunk boundary
+    batch = head.evaluate(poses)
     for i in (0, 1023, 1024, 1099):
-        np.testing.assert_allclose(batch[i], face.evaluate(poses[i : i + 1])[0], atol=1e-6)
+        np.testing.assert_allclose(batch[i], head.evaluate(poses[i : i + 1])[0], atol=1e-6)
 
 
-def test_face_is_not_linear(face: Rig) -> None:
-    s = face.schema
+def test_face_is_not_linear(head: Rig) -> None:
+    s = head.schema
     a, b = s.defaults.astype(np.float64).copy(), s.defaults.astype(np.float64).copy()
     a[s.index(JAW)] = 20.0
     b[s.index("lip_pucker")] = 1.0
     b[s.index("lip_funnel")] = 1.0
-    f0, fa, fb, fab = face.evaluate(np.stack([s.defaults, a, b, a + b - s.defaults]))
+    f0, fa, fb, fab = head.evaluate(np.stack([s.defaults, a, b, a + b - s.defaults]))
     assert np.abs(fab - (fa + fb - f0)).max() > 0.01
 
 
@@ -142,21 +142,21 @@ def test_shapes_are_localised_and_mirrored(face_linear: Rig) -> None:
     left, right = face_linear.evaluate(poses) - n
     size = np.linalg.norm(left, axis=1)
     assert size[n[:, 0] < 0].sum() < 0.05 * size.sum()  # a left control moves the left (+x)
-    assert size[n[:, 1] < 0.1].sum() < 0.01 * size.sum()  # and the brow moves the upper face
+    assert size[n[:, 1] < 0.1].sum() < 0.01 * size.sum()  # and the brow moves the upper head
     i = int(np.argmax(np.linalg.norm(left, axis=1)))
     j = int(np.argmin(np.linalg.norm(n - mirrored[i], axis=1)))
     np.testing.assert_allclose(right[j], left[i] * np.array([-1.0, 1.0, 1.0]), atol=2e-3)
 
 
-def test_jaw_rotation_matches_scipy(face: Rig) -> None:
+def test_jaw_rotation_matches_scipy(head: Rig) -> None:
     """The jaw is two-bone LBS: p + w (R (p - c) + c - p), R about +x (SciPy as the reference)."""
     from rigcast.export.demo_rigs import _JAW_PIVOT, _jaw_weights
 
-    s = face.schema
+    s = head.schema
     pose = s.defaults.astype(np.float64)
     pose[s.index(JAW)] = 18.0
-    got = face.evaluate(pose[None])[0]
-    n = face.neutral.astype(np.float64)
+    got = head.evaluate(pose[None])[0]
+    n = head.neutral.astype(np.float64)
     rot = Rotation.from_euler("x", 18.0, degrees=True)
     w = _jaw_weights(n)[:, None]
     want = n + w * (rot.apply(n - _JAW_PIVOT) + _JAW_PIVOT - n)
@@ -202,6 +202,6 @@ def test_arm_tip_joint_moves_only_the_top(arm: Rig) -> None:
     assert delta.max() > 0.1
 
 
-def test_bad_shape_is_rig_error(face: Rig) -> None:
+def test_bad_shape_is_rig_error(head: Rig) -> None:
     with pytest.raises(RigError, match=r"\(B, 46\)"):
-        face.evaluate(np.zeros((2, 3)))
+        head.evaluate(np.zeros((2, 3)))
