@@ -129,17 +129,12 @@ def fetch_schema(endpoint: str, stream: str, timeout_s: float) -> ControlSchema:
 
 def record_from_args(args: argparse.Namespace) -> int:
     from rigcast.animation_out import write_controls
-    from rigcast.watch import discover_stream
+    from rigcast.watch import stream_or_discover
 
     if args.out.suffix.lower() not in (".csv", ".json"):
         raise UserError(f"{args.out}: record writes .csv or .json, not {args.out.suffix!r}",
                         "give an output path ending in .csv or .json", code=2)
-    stream = args.stream
-    if stream is None:
-        try:
-            stream = discover_stream(args.source, timeout_s=args.timeout)
-        except TimeoutError as exc:
-            raise NoAnswerError(str(exc), "start a server, or pass --stream and --from") from None
+    stream = stream_or_discover(args.stream, args.source, args.timeout)
     schema = fetch_schema(args.to, stream, args.timeout)
     with ControlsSubscriber(stream, args.source) as sub:
         rec = record_controls(sub, duration_s=args.duration, max_frames=args.frames)

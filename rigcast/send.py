@@ -274,16 +274,11 @@ def stream_take(
 
 def send_from_args(args: argparse.Namespace) -> int:
     from rigcast.takes import read_take
-    from rigcast.watch import discover_stream
+    from rigcast.watch import stream_or_discover
 
     take = read_take(args.take, fps=args.fps)
     fps = float(args.fps or take.fps)
-    stream = args.stream
-    if stream is None:
-        try:
-            stream = discover_stream(args.source, timeout_s=args.timeout)
-        except TimeoutError as exc:
-            raise NoAnswerError(str(exc), "start a server, or pass --stream and --from") from None
+    stream = stream_or_discover(args.stream, args.source, args.timeout)
     rehearsal = Rehearsal(head_motion=args.head_motion, noise=args.noise,
                           drop_rate=args.drop_rate, corrupt_rate=args.corrupt_rate,
                           seed=args.seed)

@@ -406,3 +406,15 @@ def discover_stream(source: str, timeout_s: float = 3.0) -> str:
     finally:
         sub.close()
     raise TimeoutError(f"no telemetry from {source} within {timeout_s:g} s to learn a stream id")
+
+
+def stream_or_discover(stream: str | None, source: str, timeout_s: float) -> str:
+    """The named stream, or the first one heard on ``source``; one readable error if none."""
+    if stream is not None:
+        return stream
+    from rigcast.errors import NoAnswerError
+
+    try:
+        return discover_stream(source, timeout_s=timeout_s)
+    except TimeoutError as exc:
+        raise NoAnswerError(str(exc), "start a server, or pass --stream and --from") from None
