@@ -1,0 +1,50 @@
+"""The bench scripts run as a user runs them and write the JSON fields the issues name.
+
+These are smoke runs with tiny sizes: they check that each script works end to end and that its
+figures are consistent with each other, not the speed targets themselves (those are met and
+reported by the full bench runs, on a quiet machine).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import subprocess
+import sys
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parent.parent
+STAGES = ("decode", "align", "infer", "filter", "publish", "total")
+
+
+def run_bench(script: str, *args: str, timeout: float = 240.0) -> subprocess.CompletedProcess[str]:
+    proc = subprocess.run([sys.executable, str(ROOT / "bench" / script), *args], cwd=ROOT,
+                          capture_output=True, text=True, timeout=timeout)
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    return proc
+
+
+def test_latency_bench_writes_every_named_field(tmp_path: Path) -> None:
+    proc = run_bench("latency.py", "--vertices", "1500", "--duration", "2", "--floor-duration", "1",
+                     "--flat-seconds", "1", "--no-pin", "--out", str(tmp_path))
+    assert "floor p50" in proc.stdout
+    runs = json.loads((tmp_path / "latency.json").read_text())["runs"]
+    assert [r["vertices"] for r in runs] == [1500]
+    run = runs[0]
+    for key in ("floor_p50_ms", "p50_ms", "p95_ms", "p99_ms", "ratio_p50_vs_floor",
+                "max_sustained_fps", "rss_growth_mb"):
+        assert isinstance(run[key], float) and math.isfinite(run[key]), key
+    assert run["floor_p50_ms"] > 0
+    assert 0 < run["p50_ms"] <= run["p95_ms"] <= run["p99_ms"]
+    assert math.isclose(run["ratio_p50_vs_floor"], run["p50_ms"] / run["floor_p50_ms"], rel_tol=1e-6)
+    assert run["fit_error"] != "off", "the paced run must keep the fit-error telemetry on"
+    assert run["frames"] >= 0.9 * 2 * 120  # paced at 120 fps for 2 s
+    assert run["max_sustained_fps"] > 50
+    assert run["alive_after_blast"] is True
+    assert run["rss_growth_mb"] < 5.0
+    medians = run["stage_median_ms"]
+    assert set(STAGES) <= set(medians)
+    assert all(medians[s] > 0 for s in STAGES)
+    parts = sum(medians[s] for s in STAGES if s != "total")
+    # medians of the parts need not add up exactly to the median of the total; roughly they do
+    assert 0.5 * medians["total"] <= parts <= 2.0 * medians["total"]
