@@ -48,3 +48,24 @@ def test_latency_bench_writes_every_named_field(tmp_path: Path) -> None:
     parts = sum(medians[s] for s in STAGES if s != "total")
     # medians of the parts need not add up exactly to the median of the total; roughly they do
     assert 0.5 * medians["total"] <= parts <= 2.0 * medians["total"]
+
+
+QUALITY_FIELDS = ("inverse_mean_err", "lsq_mean_err", "optim_mean_err", "inverse_jitter",
+                  "optim_jitter", "inverse_active", "truth_active", "forward_mean_err_pct_diag",
+                  "build_seconds")
+
+
+def test_quality_bench_quick_run_writes_report_json_and_plots(tmp_path: Path) -> None:
+    run_bench("quality.py", "--quick", "--rigs", "arm", "--out", str(tmp_path), timeout=280.0)
+    rigs = json.loads((tmp_path / "quality.json").read_text())["rigs"]
+    assert list(rigs) == ["arm"]
+    entry = rigs["arm"]
+    assert entry["linear"] is False
+    for key in QUALITY_FIELDS:
+        assert isinstance(entry[key], float) and math.isfinite(entry[key]) and entry[key] >= 0, key
+    assert entry["truth_active"] > 0 and entry["build_seconds"] > 0
+    report = (tmp_path / "quality.md").read_text()
+    assert "arm" in report
+    pngs = sorted(p.name for p in tmp_path.glob("*.png"))
+    assert len(pngs) >= 2, pngs
+    assert all((tmp_path / p).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" for p in pngs)
