@@ -113,8 +113,12 @@ _SHAPES: list[tuple[str, str, tuple[float, float], list[Term]]] = [
 ]
 
 JAW = "jaw_drop"
-JAW_RANGE_DEG = (0.0, 24.0)
+JAW_RANGE_DEG = (0.0, 30.0)
 _JAW_PIVOT = np.array([0.0, -0.2, -0.15])
+
+#: Correctives are authored at this gain: big enough that the face is clearly non-linear (a rig
+#: linearised at rest misses them), as correctives on a production face often are.
+_COMBO_GAIN = 3.0
 
 # Corrective combination shapes: (driver names, terms). Weights are normalised to [0, 1] by their
 # bounds before multiplying (the jaw angle by its range). "_l" combos are mirrored into "_r".
@@ -333,7 +337,7 @@ class TamsinHead(Rig):
         else:
             for combo_names, terms in _expanded_combos():
                 self.combos.append(tuple(names.index(n) for n in combo_names))
-                combo_deltas.append(_field(dirs, normals, terms))
+                combo_deltas.append(_COMBO_GAIN * _field(dirs, normals, terms))
         self.deltas = deltas.reshape(len(names), v * 3).astype(np.float32)
         self.combo_deltas = np.array(combo_deltas, dtype=np.float32).reshape(
             len(self.combos), v * 3

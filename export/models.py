@@ -19,7 +19,15 @@ Inverse network, for ``x`` (N, K, 3) absolute positions of the K input vertices:
 
     h = (x - neutral[K]) / scale                         (N, 3K)
     z = MLP(h)                                           (N, C)
-    c = lo + (hi - lo) * sigmoid(z)                      never leaves the bounds
+    u = clip((1 + 2m) * sigmoid(z) - m, 0, 1)            m = EDGE_MARGIN
+    c = lo + (hi - lo) * u                               never leaves the bounds
+
+The sigmoid is stretched by a margin m on each side and clipped, so a control can sit *exactly* on
+a bound (a plain sigmoid only approaches it, and a control at rest on its lower bound would then
+hover a little above it on every frame, counting as active and adding jitter). Inside the bounds
+the mapping is a smooth sigmoid, so training gradients behave as for the plain one; in the clipped
+band the mesh loss has no gradient, which is what lets an unused control stay at rest. (The same
+idea as a ReLU's exact zeros; a rule of thumb, with m chosen by measurement on the demo rigs.)
 """
 
 from __future__ import annotations
@@ -34,10 +42,8 @@ from torch import nn
 
 log = logging.getLogger(__name__)
 
-#: Logit of the initial output for a control whose default sits on a bound: sigmoid(-7) ~ 0.09 %
-#: of the range, well under the 1 % "active" threshold, so controls start off rather than half on
-#: (the early supervised term in general training switches them on where needed).
-BOUND_LOGIT = 7.0
+#: Share of the range the sigmoid is stretched past each bound before the clip (see above).
+EDGE_MARGIN = 0.03
 
 
 def normalise_controls(c: torch.Tensor, lo: torch.Tensor, hi: torch.Tensor) -> torch.Tensor:
@@ -45,17 +51,37 @@ def normalise_controls(c: torch.Tensor, lo: torch.Tensor, hi: torch.Tensor) -> t
     return (c - lo) / (hi - lo)
 
 
+def unit_output(z: torch.Tensor) -> torch.Tensor:
+    """z: (N, C) logits -> (N, C) u = clip((1 + 2m) sigmoid(z) - m, 0, 1), m = EDGE_MARGIN."""
+    return ((1.0 + 2.0 * EDGE_MARGIN) * torch.sigmoid(z) - EDGE_MARGIN).clamp(0.0, 1.0)
+
+
+def unit_output_naive(z: np.ndarray) -> np.ndarray:
+    """Element-by-element float64 twin of ``unit_output``. z: (N, C) -> (N, C)."""
+    out = np.empty(np.shape(z), dtype=np.float64)
+    for idx, zi in np.ndenumerate(np.asarray(z, np.float64)):
+        s = 1.0 / (1.0 + math.exp(-zi)) if zi >= -700 else 0.0
+        out[idx] = min(1.0, max(0.0, (1.0 + 2.0 * EDGE_MARGIN) * s - EDGE_MARGIN))
+    return out
+
+
+def sigmoid_target(u: torch.Tensor) -> torch.Tensor:
+    """u: (N, C) normalised controls in [0, 1] -> the sigmoid value that ``unit_output`` maps to
+    u (the target of the supervised logit term)."""
+    return (u + EDGE_MARGIN) / (1.0 + 2.0 * EDGE_MARGIN)
+
+
 def scaled_sigmoid(z: torch.Tensor, lo: torch.Tensor, hi: torch.Tensor) -> torch.Tensor:
-    """z: (N, C) logits; lo, hi: (C,) -> (N, C) = lo + (hi - lo) * sigmoid(z), inside [lo, hi]."""
-    return lo + (hi - lo) * torch.sigmoid(z)
+    """z: (N, C) logits; lo, hi: (C,) -> (N, C) = lo + (hi - lo) * unit_output(z), in [lo, hi]."""
+    return lo + (hi - lo) * unit_output(z)
 
 
 def default_logits(defaults: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
-    """(C,) logits z with lo + (hi - lo) * sigmoid(z) ~ defaults, clipped to +-BOUND_LOGIT."""
+    """(C,) logits z with ``scaled_sigmoid(z)`` == defaults (a default on a bound maps to the
+    edge of the clipped band, so the control starts exactly at rest)."""
     u = (np.asarray(defaults, np.float64) - lo) / (np.asarray(hi, np.float64) - lo)
-    edge = 1.0 / (1.0 + math.exp(BOUND_LOGIT))
-    u = np.clip(u, edge, 1.0 - edge)
-    return np.log(u / (1.0 - u)).astype(np.float32)
+    s = (np.clip(u, 0.0, 1.0) + EDGE_MARGIN) / (1.0 + 2.0 * EDGE_MARGIN)
+    return np.log(s / (1.0 - s)).astype(np.float32)
 
 
 def mlp(sizes: list[int], activation: type[nn.Module] = nn.SiLU) -> nn.Sequential:

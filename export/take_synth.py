@@ -9,6 +9,8 @@ The quality report and the demo use it. Every take is a pure function of the rig
   wobble (a few smooth blobs that drift over time), like the residual of a capture system.
 - A few isolated frames are pushed off the rig's manifold by a localised bulge or dent that no
   combination of controls is meant to produce; ``off_manifold`` marks them.
+- Optional speech: one control (a jaw) opens and closes per syllable, in phrases with pauses, on
+  top of the expressions. This keeps a jaw-driven rig's non-linear part in play most of the take.
 - Optional rigid head motion: a smooth small rotation and translation of the whole mesh.
 """
 
@@ -127,6 +129,41 @@ def control_trajectories(
     return np.clip(out, lo, hi)
 
 
+def speech_track(
+    times_s: np.ndarray,
+    rng: np.random.Generator,
+    *,
+    syllables_hz: tuple[float, float] = (2.5, 4.0),
+    phrase_s: tuple[float, float] = (1.0, 2.5),
+    pause_s: tuple[float, float] = (0.25, 0.7),
+    amount: tuple[float, float] = (0.3, 0.95),
+) -> np.ndarray:
+    """times_s: (T,) -> (T,) in [0, 1]: a syllabic opening curve.
+
+    Phrases of ``phrase_s`` seconds, separated by pauses, hold syllables at a rate drawn from
+    ``syllables_hz``; each syllable is a raised-cosine bump one syllable long with a peak drawn
+    from ``amount``. (A cartoon of speech jaw motion: rates of a few syllables per second are
+    common knowledge, no source.)
+    """
+    t = np.asarray(times_s, dtype=np.float64)
+    out = np.zeros_like(t)
+    if t.size == 0:
+        return out
+    now = float(t[0]) + rng.uniform(*pause_s)
+    while now < t[-1]:
+        end = now + rng.uniform(*phrase_s)
+        rate = rng.uniform(*syllables_hz)
+        width = 1.0 / rate
+        start = now
+        while start + width <= end:
+            x = (t - start) / width
+            bump = np.where((x >= 0) & (x <= 1), 0.5 - 0.5 * np.cos(2 * np.pi * x), 0.0)
+            out = np.maximum(out, rng.uniform(*amount) * bump)
+            start += width * rng.uniform(0.9, 1.1)
+        now = end + rng.uniform(*pause_s)
+    return np.clip(out, 0.0, 1.0)
+
+
 def smooth_noise(
     times_s: np.ndarray, rng: np.random.Generator, n: int, *, max_hz: float
 ) -> np.ndarray:
@@ -197,6 +234,7 @@ def synth_take(
     head_motion: bool = False,
     events_per_second: float = 1.2,
     pick_weights: np.ndarray | None = None,
+    talk_control: int | None = None,
 ) -> SynthTake:
     """Make a synthetic take of ``rig``.
 
@@ -232,7 +270,15 @@ def synth_take(
         rng,
         events_per_second=events_per_second,
         pick_weights=pick_weights,
-    ).astype(np.float32)
+    )
+    if talk_control is not None:
+        if not 0 <= talk_control < len(schema):
+            raise TakeError(f"talk_control must be a control index in [0, {len(schema)}), got {talk_control}")
+        j = talk_control
+        talk = speech_track(times, np.random.default_rng(seed + 104_729))
+        room = float(schema.upper[j] - schema.defaults[j])
+        controls[:, j] = np.clip(controls[:, j] + talk * room, schema.lower[j], schema.upper[j])
+    controls = controls.astype(np.float32)
     clean = rig.evaluate(controls)
     neutral = np.asarray(rig.neutral, dtype=np.float64)
     diag = bbox_diagonal(neutral)

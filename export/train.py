@@ -36,7 +36,12 @@ from typing import Literal
 import numpy as np
 import torch
 import torch.nn.functional as F
-from rigcast.export.models import ForwardApproximator, InverseNetwork
+from rigcast.export.models import (
+    ForwardApproximator,
+    InverseNetwork,
+    sigmoid_target,
+    unit_output,
+)
 
 log = logging.getLogger(__name__)
 
@@ -68,6 +73,7 @@ class InverseConfig:
     lr: float = 1.5e-3
     noise_frac: float = 0.0015  # input noise sigma as a fraction of the neutral's bbox diagonal
     jitter_frac: float = 0.0  # random rigid translation, fraction of diagonal (0 = off)
+    wobble_frac: float = 0.001  # RMS of a smooth random deformation, fraction of diagonal (0 = off)
     l1: float = 5e-2  # measured on face-linear: 1e-2 -> 10.3 active (truth 5.8), 1e-1 -> 2.6
     fresh_fraction: float = 0.5  # share of each general batch rendered through the forward model
     supervised: float = 1.0  # initial weight of the early supervised term (general mode only)
@@ -400,6 +406,13 @@ def train_inverse(
     loss_t = torch.from_numpy(loss_idx)
     diag = diagonal(neutral)
     sigma, jitter = config.noise_frac * diag, config.jitter_frac * diag
+    wobble_bank = (
+        torch.from_numpy(
+            smooth_field_bank(neutral[input_indices], config.wobble_frac * diag, config.seed)
+        )
+        if config.wobble_frac > 0.0
+        else None
+    )
     rates = (
         activity_rates(controls, lo, hi, defaults) if labelled and controls is not None else None
     )
@@ -444,15 +457,20 @@ def train_inverse(
         noisy = x[:, idx_t] + sigma * torch.randn(x.shape[0], idx_t.shape[0], 3)
         if jitter > 0.0:
             noisy = noisy + jitter * torch.randn(x.shape[0], 1, 3)
+        if wobble_bank is not None:
+            amp = torch.randn(x.shape[0], wobble_bank.shape[0], 3)
+            noisy = noisy + torch.einsum("kv,nkx->nvx", wobble_bank, amp)
         z = model.logits(noisy)
-        c = lo_t + span_t * torch.sigmoid(z)
+        c = lo_t + span_t * unit_output(z)
         diff = fwd_sub(c) - x[:, loss_t]
         loss = (weights * diff.pow(2).sum(-1)).mean() * inv_s2 / 3.0
         loss = loss + config.l1 * ((c - def_t).abs() / span_t).mean()
         ramp = max(0.0, 1.0 - step / max(1.0, config.supervised_until * total))
         if c_true is not None and config.supervised > 0.0 and ramp > 0.0:
             u_true = ((c_true - lo_t) / span_t).clamp(0.0, 1.0)
-            loss = loss + config.supervised * ramp * F.binary_cross_entropy_with_logits(z, u_true)
+            loss = loss + config.supervised * ramp * F.binary_cross_entropy_with_logits(
+                z, sigmoid_target(u_true)
+            )
         opt.zero_grad(set_to_none=True)
         loss.backward()
         opt.step()
@@ -491,6 +509,24 @@ def train_inverse(
         report.seconds,
     )
     return model, report
+
+
+def smooth_field_bank(
+    points: np.ndarray, rms: float, seed: int, count: int = 48
+) -> np.ndarray:
+    """(count, K) float32 Gaussian-blob fields on points (K, 3) for the smooth-deformation
+    augmentation: ``sum_k bank[k] * a_k`` with a_k ~ N(0, 1) per axis has RMS ``rms`` per
+    coordinate over the points. Blob radii run from 10 % to 30 % of the points' bbox diagonal
+    (a low-frequency model of capture drift; common practice, no published source)."""
+    rng = np.random.default_rng(seed + 7919)
+    pts = np.asarray(points, np.float64)
+    d = diagonal(pts)
+    centres = pts[rng.choice(pts.shape[0], size=count, replace=pts.shape[0] < count)]
+    radii = d * rng.uniform(0.1, 0.3, size=count)
+    dist2 = ((pts[None] - centres[:, None]) ** 2).sum(-1)  # (count, K)
+    bank = np.exp(-0.5 * dist2 / radii[:, None] ** 2)
+    var = float(np.mean((bank**2).sum(0)))  # per-coordinate variance with unit amplitudes
+    return (bank * (rms / math.sqrt(max(var, 1e-30)))).astype(np.float32)
 
 
 def loss_vertex_subset(

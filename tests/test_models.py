@@ -8,7 +8,15 @@ import torch
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from rigcast.export import reduction, train
-from rigcast.export.models import InverseNetwork, load_checkpoint, save_checkpoint
+from rigcast.export.models import (
+    EDGE_MARGIN,
+    InverseNetwork,
+    load_checkpoint,
+    save_checkpoint,
+    sigmoid_target,
+    unit_output,
+    unit_output_naive,
+)
 from rigcast.export.rig import Rig
 from rigcast.runtime.schema import Control, ControlSchema
 
@@ -247,3 +255,31 @@ def test_region_weights_are_validated(trained: dict) -> None:
             train.InverseConfig(steps=1),
             region_weights=-np.ones(x.shape[1]),
         )
+
+
+def test_unit_output_matches_its_naive_twin_and_reaches_the_bounds_exactly() -> None:
+    z = np.linspace(-12.0, 12.0, 241, dtype=np.float32).reshape(-1, 1) * np.ones((1, 3), np.float32)
+    fast = unit_output(torch.from_numpy(z)).numpy()
+    np.testing.assert_allclose(fast, unit_output_naive(z), atol=1e-6)
+    assert fast.min() == 0.0 and fast.max() == 1.0  # exactly on the bounds, not just near them
+    assert np.all(np.diff(fast[:, 0]) >= 0)  # monotone
+    # Inside the bounds it is the stretched sigmoid; sigmoid_target inverts it there.
+    u = torch.linspace(0.0, 1.0, 11)
+    back = unit_output(torch.logit(sigmoid_target(u)))
+    np.testing.assert_allclose(back.numpy(), u.numpy(), atol=1e-5)
+    assert 0.0 < EDGE_MARGIN < 0.1
+
+
+def test_smooth_field_bank_has_the_asked_rms_and_is_smooth() -> None:
+    rng = np.random.default_rng(0)
+    pts = rng.random((400, 3))
+    bank = train.smooth_field_bank(pts, rms=0.01, seed=3)
+    amp = rng.standard_normal((2000, bank.shape[0], 3))
+    field = np.einsum("kv,nkx->nvx", bank, amp)
+    assert np.sqrt(np.mean(field**2)) == pytest.approx(0.01, rel=0.05)
+    # Smooth in space: the two nearest points move much more alike than two random points.
+    d = np.linalg.norm(pts[:, None] - pts[None], axis=-1) + np.eye(400) * 9
+    a, b = 0, int(np.argmin(d[0]))
+    near = np.mean((field[:, a] - field[:, b]) ** 2)
+    far = np.mean((field[:, a] - field[:, int(np.argmax(d[0] * (d[0] < 9)))]) ** 2)
+    assert near < 0.2 * far

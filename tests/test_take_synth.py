@@ -12,6 +12,7 @@ from rigcast.export.take_synth import (
     envelope,
     rotation_xyz,
     smoothstep,
+    speech_track,
     synth_take,
 )
 from rigcast.runtime.schema import Control, ControlSchema
@@ -163,3 +164,28 @@ def test_pick_weights_choose_the_controls(rig: SmallRig) -> None:
 def test_bad_parameters_are_named(rig: SmallRig, kwargs: dict, word: str) -> None:
     with pytest.raises(TakeError, match=word):
         synth_take(rig, **kwargs)
+
+
+def test_speech_track_is_syllabic_bounded_and_pauses() -> None:
+    t = np.arange(600) / 60.0
+    talk = speech_track(t, np.random.default_rng(1))
+    assert talk.min() >= 0.0 and talk.max() <= 1.0 and talk.max() > 0.3
+    # Syllables at 2.5-4 Hz: the opening crosses half its peak several times per second of
+    # speech, and there are pauses (runs of closed frames) between phrases.
+    opened = talk > 0.15
+    rises = np.count_nonzero(opened[1:] & ~opened[:-1])
+    assert 10 * 1.0 <= rises <= 10 * 4.5
+    closed_runs = np.diff(np.flatnonzero(np.diff(opened.astype(int)) != 0))
+    assert closed_runs.max() >= 0.25 * 60 * 0.9
+
+
+def test_talk_control_moves_only_that_control_and_leaves_the_rest_of_the_take() -> None:
+    rig = SmallRig()
+    plain = synth_take(rig, frames=240, seed=5)
+    talky = synth_take(rig, frames=240, seed=5, talk_control=3)
+    others = [i for i in range(rig.control_count) if i != 3]
+    np.testing.assert_array_equal(plain.controls_true[:, others], talky.controls_true[:, others])
+    assert np.all(talky.controls_true[:, 3] >= plain.controls_true[:, 3])
+    assert talky.controls_true[:, 3].max() > 0.3
+    with pytest.raises(TakeError, match="talk_control"):
+        synth_take(rig, frames=240, talk_control=99)
