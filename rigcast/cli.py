@@ -244,6 +244,12 @@ def _add_solve(subs: argparse._SubParsersAction) -> None:
     p.add_argument("--beta", type=float, default=0.5, help="One Euro speed coefficient")
     p.add_argument("--smooth-hz", type=float, default=3.0,
                    help="cutoff of the zero-phase smoother (--filter smooth), Hz")
+    p.add_argument("--fit-error", choices=("subset", "full", "off"), default="subset",
+                   help="fit error and off-manifold flags: on the bundle's input and stable "
+                        "vertices plus a fixed sample of the others (fast), on every vertex, "
+                        "or not at all")
+    p.add_argument("--batch-size", type=int, default=1024,
+                   help="frames per onnxruntime call")
 
 
 def _add_inspect(subs: argparse._SubParsersAction) -> None:
@@ -352,7 +358,8 @@ def _cmd_solve(args: argparse.Namespace) -> int:
 
     from rigcast.animation_out import morph_basis, write_controls
     from rigcast.errors import MismatchError
-    from rigcast.runtime.batch import BatchSolver
+    from rigcast.forward_subset import slice_forward_graph
+    from rigcast.runtime.batch import BatchSolver, FilterKind, SolveOptions
     from rigcast.runtime.bundle import load_bundle
     from rigcast.runtime.one_euro import OneEuroParams
     from rigcast.takes import read_take
@@ -365,12 +372,15 @@ def _cmd_solve(args: argparse.Namespace) -> int:
             f"was built for a rig of {bundle.vertex_count}",
             "solve it with the bundle built for this take's rig, or rebuild the bundle from it",
         )
-    solver = BatchSolver(bundle)
+    solver = BatchSolver(bundle, subset_graph=slice_forward_graph)
     params = OneEuroParams.uniform(bundle.control_count, min_cutoff=args.min_cutoff,
                                    beta=args.beta, d_cutoff=1.0)
-    kind = {"none": "none", "causal": "causal", "smooth": "zero_phase"}[args.filter]
-    result = solver.solve(take.vertices, take.times_s, stabilise=not args.no_stabilise,
-                          filter=kind, params=params, smooth_hz=args.smooth_hz)
+    kinds: dict[str, FilterKind] = {"none": "none", "causal": "causal", "smooth": "zero_phase"}
+    options = SolveOptions(stabilise=not args.no_stabilise, filter=kinds[args.filter],
+                           params=params,
+                           smooth_hz=args.smooth_hz, fit_error=args.fit_error,
+                           batch_size=args.batch_size)
+    result = solver.solve(take.vertices, take.times_s, options)
     basis = None
     if args.out.suffix.lower() in (".gltf", ".glb"):
         # The bundle's forward model stands in for the rig; it is a learned approximation, so
@@ -379,12 +389,14 @@ def _cmd_solve(args: argparse.Namespace) -> int:
                             solver.forward.evaluate, linearity_tol=0.05)
     write_controls(args.out, bundle.schema, result.controls, take.times_s, fps=take.fps,
                    basis=basis)
-    _say(
-        f"solved {result.controls.shape[0]} frames in {result.seconds:.3f} s "
-        f"({result.frames_per_second:,.0f} frames/s); fit error RMS mean "
-        f"{float(np.nanmean(result.fit_rms)):.5f}, {int(result.off_manifold.sum())} off-manifold "
-        f"frames; wrote {args.out}"
-    )
+    if result.fit_error == "off":
+        fit = "fit error off"
+    else:
+        fit = (f"fit error ({result.fit_error}, {result.fit_vertices} of "
+               f"{bundle.vertex_count} vertices) RMS mean {float(np.nanmean(result.fit_rms)):.5f}, "
+               f"{int(result.off_manifold.sum())} off-manifold frames")
+    _say(f"solved {result.controls.shape[0]} frames in {result.seconds:.3f} s "
+         f"({result.frames_per_second:,.0f} frames/s); {fit}; wrote {args.out}")
     return EXIT_OK
 
 

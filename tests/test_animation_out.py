@@ -242,7 +242,7 @@ def test_round_trip_gltf_rig_to_bundle_to_solve(tmp_path: Path) -> None:
     from rigcast.export.gltf_rig import GltfRig
     from rigcast.export.sampling import SparsityConfig
     from rigcast.export.train import ForwardConfig, InverseConfig
-    from rigcast.runtime.batch import solve_take
+    from rigcast.runtime.batch import SolveOptions, solve_take
     from rigcast.runtime.bundle import load_bundle
 
     from rigcast.animation_out import morph_basis_from_bundle
@@ -263,7 +263,7 @@ def test_round_trip_gltf_rig_to_bundle_to_solve(tmp_path: Path) -> None:
     phase = np.linspace(0, np.pi, ROUND_TRIP_WEIGHTS)
     truth = 0.5 + 0.4 * np.sin(2 * np.pi * 0.5 * times[:, None] + phase[None])
     take = rig.evaluate(truth)
-    solved = solve_take(bundle, take, times, filter="none")
+    solved = solve_take(bundle, take, times, SolveOptions(filter="none"))
     diag = float(np.linalg.norm(rig.neutral.max(0) - rig.neutral.min(0)))
     assert np.abs(solved.controls - truth).mean() < 0.08, np.abs(solved.controls - truth).mean()
     rerendered = rig.evaluate(solved.controls)
