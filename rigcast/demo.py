@@ -201,22 +201,20 @@ def wait_for_telemetry(collector: Collector, timeout_s: float) -> None:
         time.sleep(0.02)
 
 
-def fit_errors(bundle_path: Path, sent: np.ndarray, controls: np.ndarray) -> np.ndarray:
-    """(T,) fit RMS of published controls (T, C) against the sent frames (T, V, 3), after
-    rigid stabilisation as the server does it."""
-    from rigcast.runtime.batch import BatchSolver, fit_rigid_batch
+def fit_errors(bundle_path: Path, sent: np.ndarray, controls: np.ndarray
+               ) -> tuple[np.ndarray, np.ndarray]:
+    """Fit error (RMS (T,), max (T,)) of published controls (T, C) against the sent frames
+    (T, V, 3), on every vertex, after rigid stabilisation as the server does it."""
+    from rigcast.runtime.batch import BatchSolver, fit_error_batch, fit_rigid_batch
     from rigcast.runtime.bundle import load_bundle
 
     if controls.shape[0] == 0:
-        return np.zeros(0)
+        return np.zeros(0), np.zeros(0)
     bundle = load_bundle(bundle_path)
     solver = BatchSolver(bundle)
     fit = fit_rigid_batch(np.take(sent, bundle.stable_indices, axis=1), solver.neutral_stable)
-    mesh = fit.apply(sent)
     pred = solver.forward.evaluate(np.ascontiguousarray(controls, np.float32))
-    d2 = np.einsum("tvx,tvx->tv", pred - mesh, pred - mesh)
-    out: np.ndarray = np.sqrt(d2.mean(axis=1))
-    return out
+    return fit_error_batch(pred, sent, fit)
 
 
 def summarise(telemetry: Mapping[str, Any], stats: Any, record: RunRecord,
@@ -321,7 +319,7 @@ def run_demo(config: DemoConfig, write: Callable[[str], None] = _stdout) -> RunS
 
     rec = collect(collector.controls, collector.arrived_ns, STREAM)
     sent = take.vertices[np.clip(rec.frames, 0, frames - 1)]
-    fit = fit_errors(bundle_path, sent, rec.values)
+    fit, _ = fit_errors(bundle_path, sent, rec.values)
     times = rec.frames.astype(np.float64) / config.fps
     off = np.isin(rec.frames, sorted(collector.off_manifold_frames)) | (
         (rec.flags & FLAG_OFF_MANIFOLD) != 0)
