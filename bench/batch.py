@@ -183,7 +183,8 @@ def main() -> None:
         "ratio_vs_raw_inverse": fps / float(np.median(raw)),
         "baseline_per_frame_fps": live,  # with fit error on every vertex, like the live server
         "ratio_vs_per_frame": fps / live,
-        "mean_fit_rms": float(np.nanmean(result.fit_rms)),
+        "mean_fit_rms": float(np.nanmean(result.fit_rms)) if args.fit_error != "off"
+        else float("nan"),
         "mean_fit_rms_full": float(np.nanmean(full_rms)),
         "fit_rms_subset_vs_full_max_rel_diff": float(np.nanmax(np.abs(sub_rms / full_rms - 1.0)))
         if args.fit_error != "off" else float("nan"),
