@@ -26,7 +26,7 @@ import time
 from collections import Counter
 from collections.abc import Callable, Iterator, Mapping
 from contextlib import contextmanager
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -46,7 +46,7 @@ _READY_TIMEOUT_S = 90.0
 @dataclass(frozen=True)
 class DemoConfig:
     quick: bool = False
-    seconds: float = 15.0
+    seconds: float = 12.0
     fps: float = 60.0
     cache_dir: Path = Path(".rigcast-cache")
     report_dir: Path = Path("rigcast-demo-report")
@@ -201,18 +201,17 @@ def wait_for_telemetry(collector: Collector, timeout_s: float) -> None:
         time.sleep(0.02)
 
 
-def fit_errors(bundle_path: Path, sent: np.ndarray, controls: np.ndarray
+def fit_errors(solver: Any, sent: np.ndarray, controls: np.ndarray
                ) -> tuple[np.ndarray, np.ndarray]:
     """Fit error (RMS (T,), max (T,)) of published controls (T, C) against the sent frames
-    (T, V, 3), on every vertex, after rigid stabilisation as the server does it."""
-    from rigcast.runtime.batch import BatchSolver, fit_error_batch, fit_rigid_batch
-    from rigcast.runtime.bundle import load_bundle
+    (T, V, 3), on every vertex, after rigid stabilisation as the server does it; ``solver`` a
+    ``runtime.batch.BatchSolver`` for the bundle."""
+    from rigcast.runtime.batch import fit_error_batch, fit_rigid_batch
 
     if controls.shape[0] == 0:
         return np.zeros(0), np.zeros(0)
-    bundle = load_bundle(bundle_path)
-    solver = BatchSolver(bundle)
-    fit = fit_rigid_batch(np.take(sent, bundle.stable_indices, axis=1), solver.neutral_stable)
+    fit = fit_rigid_batch(np.take(sent, solver.bundle.stable_indices, axis=1),
+                          solver.neutral_stable)
     pred = solver.forward.evaluate(np.ascontiguousarray(controls, np.float32))
     return fit_error_batch(pred, sent, fit)
 
@@ -254,7 +253,9 @@ def run_demo(config: DemoConfig, write: Callable[[str], None] = _stdout) -> RunS
     from rigcast.export.build import build_bundle
     from rigcast.export.demo_rigs import tamsin_face
     from rigcast.export.take_synth import synth_take
+    from rigcast.forward_subset import slice_forward_graph
     from rigcast.report import build_summary
+    from rigcast.runtime.batch import BatchSolver
     from rigcast.runtime.bundle import load_bundle
     from rigcast.runtime.client import MeshSender
     from rigcast.runtime.protocol import FLAG_OFF_MANIFOLD
@@ -275,6 +276,8 @@ def run_demo(config: DemoConfig, write: Callable[[str], None] = _stdout) -> RunS
     for line in build_summary(built):
         write(f"  {line}")
     bundle = load_bundle(bundle_path)
+    phases = {"build": time.perf_counter() - t_start}
+    t_stream = time.perf_counter()
 
     frames = max(2, round(config.seconds * config.fps))
     take = synth_take(rig, frames=frames, fps=config.fps, seed=config.seed, head_motion=True,
@@ -317,9 +320,14 @@ def run_demo(config: DemoConfig, write: Callable[[str], None] = _stdout) -> RunS
         finally:
             collector.stop()
 
+    phases["serve and stream"] = time.perf_counter() - t_stream
+    t_report = time.perf_counter()
     rec = collect(collector.controls, collector.arrived_ns, STREAM)
     sent = take.vertices[np.clip(rec.frames, 0, frames - 1)]
-    fit, _ = fit_errors(bundle_path, sent, rec.values)
+    solver = BatchSolver(bundle, subset_graph=slice_forward_graph)
+    fit, _ = fit_errors(solver, sent, rec.values)
+    # The same take solved offline, with the batch path's adaptive off-manifold detector.
+    batch = solver.solve(take.vertices, take.times_s)
     times = rec.frames.astype(np.float64) / config.fps
     off = np.isin(rec.frames, sorted(collector.off_manifold_frames)) | (
         (rec.flags & FLAG_OFF_MANIFOLD) != 0)
@@ -333,8 +341,13 @@ def run_demo(config: DemoConfig, write: Callable[[str], None] = _stdout) -> RunS
         latency_ms=(rec.arrived_ns - rec.t_send_ns).astype(np.float64) / 1e6,
         planted_off_s=take.times_s[take.off_manifold],
     )
-    summary = summarise(collector.telemetry, stats, record,
-                        off_manifold=len(collector.off_manifold_frames))
+    summary = replace(
+        summarise(collector.telemetry, stats, record,
+                  off_manifold=len(collector.off_manifold_frames)),
+        planted_off=int(take.off_manifold.sum()),
+        batch_found=int((batch.off_manifold & take.off_manifold).sum()),
+        batch_others=int((batch.off_manifold & ~take.off_manifold).sum()),
+    )
     notes = [
         f"Rig: {rig.name}, {rig.vertex_count} vertices, {rig.control_count} controls. "
         f"Bundle: `{bundle_path.name}` ({'reused from the cache' if built.cached else 'built'}"
@@ -345,13 +358,15 @@ def run_demo(config: DemoConfig, write: Callable[[str], None] = _stdout) -> RunS
         f"(frames {', '.join(str(int(i)) for i in np.flatnonzero(take.off_manifold))}) and "
         f"corrupt frames {', '.join(f'{f} ({k})' for f, k in sorted(corrupt.items()))}.",
     ]
-    report = write_run_report(report_dir, record, summary, title="rigcast demo", notes=notes)
+    report = write_run_report(report_dir, record, replace(summary, phase_seconds=dict(phases)),
+                              title="rigcast demo", notes=notes)
+    phases["report"] = time.perf_counter() - t_report
+    summary = replace(summary, phase_seconds=phases)  # the printed one has the report's time too
     write("")
     write("summary:")
     for line in summary.lines():
         write(f"  {line}")
     write(f"report: {report} (plots: controls.png, fit_error.png, latency.png)")
-    write(f"demo finished in {time.perf_counter() - t_start:.1f} s")
     return summary
 
 
@@ -382,7 +397,7 @@ def _show_while(thread: threading.Thread, interactive: bool, lock: threading.Loc
 
 
 def demo_from_args(args: Any) -> int:
-    seconds = args.seconds if args.seconds is not None else (4.0 if args.quick else 15.0)
+    seconds = args.seconds if args.seconds is not None else (4.0 if args.quick else 12.0)
     config = DemoConfig(
         quick=args.quick,
         seconds=float(seconds),

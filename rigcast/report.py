@@ -8,7 +8,8 @@ backend is switched and no window is opened.
 from __future__ import annotations
 
 import logging
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterator, Mapping, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -40,10 +41,27 @@ class RunSummary:
     stage_p50_ms: Mapping[str, float] = field(default_factory=dict)
     stage_p99_ms: Mapping[str, float] = field(default_factory=dict)
     duration_s: float = 0.0
+    planted_off: int = 0
+    batch_found: int | None = None
+    batch_others: int | None = None
+    phase_seconds: Mapping[str, float] = field(default_factory=dict)
 
     @property
     def rejected_total(self) -> int:
         return int(sum(self.rejected.values()))
+
+    def off_manifold_line(self) -> str:
+        text = f"off-manifold frames: {self.off_manifold} flagged live"
+        if self.planted_off:
+            text += f", {self.planted_off} pushed off the manifold in the take"
+        if self.batch_found is not None:
+            text += (f"; a batch solve of the same take flags {self.batch_found} of them "
+                     f"and {self.batch_others} others")
+        return text
+
+    def phases_line(self) -> str:
+        parts = ", ".join(f"{k} {v:.1f} s" for k, v in self.phase_seconds.items())
+        return f"time: {parts}, total {sum(self.phase_seconds.values()):.1f} s"
 
     def lines(self) -> list[str]:
         """The plain summary lines, each ``label: value``."""
@@ -54,10 +72,10 @@ class RunSummary:
             f"latency end to end: p50 {self.latency_p50_ms:.3f} ms, "
             f"p99 {self.latency_p99_ms:.3f} ms",
             f"mean fit error: {self.fit_rms_mean:.5f} (RMS, mesh units)",
-            f"off-manifold frames: {self.off_manifold}",
+            self.off_manifold_line(),
             f"dropped: {self.dropped}, stale: {self.stale}",
             f"rejected: {self.rejected_total} ({reasons})",
-        ]
+        ] + ([self.phases_line()] if self.phase_seconds else [])
 
 
 @dataclass(frozen=True)
@@ -96,66 +114,63 @@ def most_active(controls: np.ndarray, defaults: np.ndarray | None, top: int) -> 
     return np.argsort(-activity, kind="stable")[: min(top, controls.shape[1])]
 
 
-def plot_controls(path: Path, record: RunRecord, top: int = 8) -> Path:
+@contextmanager
+def _figure(path: Path, size: tuple[float, float], title: str, xlabel: str, ylabel: str
+            ) -> Iterator[Any]:
+    """One titled, labelled axes; saved to ``path`` as PNG when the block ends."""
     from matplotlib.figure import Figure
 
-    fig = Figure(figsize=(10, 4.5), dpi=100)
+    fig = Figure(figsize=size, dpi=100)
     ax = fig.add_subplot(1, 1, 1)
-    for i in most_active(record.controls, None, top):
-        ax.plot(record.frame_times_s, record.controls[:, i], lw=1.2, label=record.control_names[i])
-    ax.set_xlabel("time (s)")
-    ax.set_ylabel("control value")
-    shown = min(top, len(record.control_names))
-    ax.set_title(f"Solved controls over time (the {shown} most active)")
-    if record.controls.size:
-        ax.legend(loc="upper right", fontsize=7, ncol=2)
-    ax.grid(alpha=0.3)
+    yield ax
+    ax.set_title(title)
+    ax.set_xlabel(xlabel)
+    ax.set_ylabel(ylabel)
     fig.tight_layout()
     fig.savefig(path)
+
+
+def plot_controls(path: Path, record: RunRecord, top: int = 8) -> Path:
+    shown = min(top, len(record.control_names))
+    with _figure(path, (10, 4.5), f"Solved controls over time (the {shown} most active)",
+                 "time (s)", "control value") as ax:
+        for i in most_active(record.controls, None, top):
+            ax.plot(record.frame_times_s, record.controls[:, i], lw=1.2,
+                    label=record.control_names[i])
+        if record.controls.size:
+            ax.legend(loc="upper right", fontsize=7, ncol=2)
+        ax.grid(alpha=0.3)
     return path
 
 
 def plot_fit_error(path: Path, record: RunRecord) -> Path:
-    from matplotlib.figure import Figure
-
-    fig = Figure(figsize=(10, 3.5), dpi=100)
-    ax = fig.add_subplot(1, 1, 1)
-    ax.plot(record.fit_times_s, record.fit_rms, lw=1.0, color="tab:blue", label="fit error RMS")
-    off_t = record.frame_times_s[record.off_manifold]
-    for k, t in enumerate(off_t):
-        ax.axvline(float(t), color="tab:red", alpha=0.35, lw=0.8,
-                   label="off-manifold frame" if k == 0 else None)
-    for k, t in enumerate(record.planted_off_s):
-        ax.axvline(float(t), color="tab:orange", ls=":", lw=1.2,
-                   label="pushed off the manifold in the take" if k == 0 else None)
-    ax.set_xlabel("time (s)")
-    ax.set_ylabel("fit error (mesh units)")
-    ax.set_title("Fit error over time (red: frames flagged off-manifold)")
-    ax.grid(alpha=0.3)
-    if record.fit_rms.size or off_t.size or record.planted_off_s.size:
-        ax.legend(loc="upper right", fontsize=8)
-    fig.tight_layout()
-    fig.savefig(path)
+    with _figure(path, (10, 3.5), "Fit error over time (red: frames flagged off-manifold)",
+                 "time (s)", "fit error (mesh units)") as ax:
+        ax.plot(record.fit_times_s, record.fit_rms, lw=1.0, color="tab:blue",
+                label="fit error RMS")
+        off_t = record.frame_times_s[record.off_manifold]
+        for k, t in enumerate(off_t):
+            ax.axvline(float(t), color="tab:red", alpha=0.35, lw=0.8,
+                       label="off-manifold frame" if k == 0 else None)
+        for k, t in enumerate(record.planted_off_s):
+            ax.axvline(float(t), color="tab:orange", ls=":", lw=1.2,
+                       label="pushed off the manifold in the take" if k == 0 else None)
+        ax.grid(alpha=0.3)
+        if record.fit_rms.size or off_t.size or record.planted_off_s.size:
+            ax.legend(loc="upper right", fontsize=8)
     return path
 
 
 def plot_latency(path: Path, record: RunRecord) -> Path:
-    from matplotlib.figure import Figure
-
-    fig = Figure(figsize=(7, 3.5), dpi=100)
-    ax = fig.add_subplot(1, 1, 1)
-    lat = record.latency_ms[np.isfinite(record.latency_ms)]
-    if lat.size:
-        ax.hist(lat, bins=60, color="tab:green", alpha=0.8)
-        for q, style in ((50, "-"), (99, "--")):
-            v = float(np.percentile(lat, q))
-            ax.axvline(v, color="black", ls=style, lw=1, label=f"p{q} {v:.3f} ms")
-        ax.legend(fontsize=8)
-    ax.set_xlabel("end-to-end latency, send to controls received (ms)")
-    ax.set_ylabel("frames")
-    ax.set_title("Latency histogram")
-    fig.tight_layout()
-    fig.savefig(path)
+    with _figure(path, (7, 3.5), "Latency histogram",
+                 "end-to-end latency, send to controls received (ms)", "frames") as ax:
+        lat = record.latency_ms[np.isfinite(record.latency_ms)]
+        if lat.size:
+            ax.hist(lat, bins=60, color="tab:green", alpha=0.8)
+            for q, style in ((50, "-"), (99, "--")):
+                v = float(np.percentile(lat, q))
+                ax.axvline(v, color="black", ls=style, lw=1, label=f"p{q} {v:.3f} ms")
+            ax.legend(fontsize=8)
     return path
 
 
@@ -290,22 +305,15 @@ def build_summary(result: Any) -> list[str]:
 
 def write_build_report(out_dir: str | Path, result: Any) -> Path:
     """``report.md`` and ``loss.png`` (the inverse's training loss) for a build."""
-    from matplotlib.figure import Figure
-
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     curve = np.asarray(getattr(result.inverse, "loss_curve", ()) or (), dtype=np.float64)
     md = ["# rigcast build", "", *[f"- {line}" for line in build_summary(result)], ""]
     if curve.size:
-        fig = Figure(figsize=(7, 3.5), dpi=100)
-        ax = fig.add_subplot(1, 1, 1)
-        ax.semilogy(np.arange(curve.size), np.maximum(curve, 1e-12))
-        ax.set_xlabel("logged step")
-        ax.set_ylabel("mesh-space loss")
-        ax.set_title("Inverse network training loss")
-        ax.grid(alpha=0.3)
-        fig.tight_layout()
-        fig.savefig(out / "loss.png")
+        with _figure(out / "loss.png", (7, 3.5), "Inverse network training loss",
+                     "logged step", "mesh-space loss") as ax:
+            ax.semilogy(np.arange(curve.size), np.maximum(curve, 1e-12))
+            ax.grid(alpha=0.3)
         md += ["## Training loss", "", "![loss](loss.png)", ""]
     path = out / REPORT_NAME
     path.write_text("\n".join(md), encoding="utf-8")

@@ -33,6 +33,9 @@ def test_demo_quick_runs_end_to_end(tmp_path: Path) -> None:
     assert "latency end to end: p50" in out and "p99" in out
     assert "mean fit error:" in out and "off-manifold frames:" in out
     assert "dropped:" in out
+    assert "pushed off the manifold in the take; a batch solve of the same take flags" in out
+    phases = [ln for ln in out.splitlines() if ln.strip().startswith("time: build")]
+    assert phases and "serve and stream" in phases[0] and "report" in phases[0], out[-2000:]
     # Not a terminal: periodic plain telemetry lines instead of the live view.
     assert "[tamsin] latency p50/p99 ms" in out
     # Every corrupt frame the demo sends is rejected for its own reason: 2 of each kind.
