@@ -133,6 +133,26 @@ def _add_serve(subs: argparse._SubParsersAction) -> None:
     serve_main.add_serve_arguments(p)
 
 
+def _add_endpoints(p: argparse.ArgumentParser, *, to_help: str, from_help: str,
+                   stream_help: str) -> None:
+    """--to, --from and --stream: where a client finds the server, and which stream."""
+    p.add_argument("--to", default=DEFAULT_INPUT, metavar="ENDPOINT", help=to_help)
+    p.add_argument("--from", dest="source", default=DEFAULT_OUTPUT, metavar="ENDPOINT",
+                   help=from_help)
+    p.add_argument("--stream", default=None, help=stream_help)
+
+
+def _add_limits(p: argparse.ArgumentParser, *, frames: bool = True) -> None:
+    """--duration (and --frames): when a client stops."""
+    p.add_argument("--duration", type=float, default=None, help="stop after this many seconds")
+    if frames:
+        p.add_argument("--frames", type=int, default=None, help="stop after this many frames")
+
+
+_FIRST_STREAM = "stream (actor) id (default: the first the server publishes)"
+_SCHEMA_TO = "the server's input endpoint, asked for the control names"
+
+
 def _add_send(subs: argparse._SubParsersAction) -> None:
     p = _sub(
         subs, "send", "stream a take to a server, with stage rehearsal options",
@@ -146,17 +166,13 @@ def _add_send(subs: argparse._SubParsersAction) -> None:
         _cmd_send,
     )
     p.add_argument("take", type=Path, help="take: .npy/.npz, a folder of .obj, or .gltf/.glb")
-    p.add_argument("--to", default=DEFAULT_INPUT, metavar="ENDPOINT",
-                   help="the server's input endpoint")
-    p.add_argument("--from", dest="source", default=DEFAULT_OUTPUT, metavar="ENDPOINT",
-                   help="the server's output endpoint, to learn the stream id when not given")
-    p.add_argument("--stream", default=None,
-                   help="stream (actor) id (default: the first the server publishes)")
+    _add_endpoints(p, to_help="the server's input endpoint",
+                   from_help="the server's output endpoint, to learn the stream id when not given",
+                   stream_help=_FIRST_STREAM)
     p.add_argument("--fps", type=float, default=None,
                    help="frame rate (default: the take's, or 60)")
     p.add_argument("--loop", action="store_true", help="start over at the end of the take")
-    p.add_argument("--duration", type=float, default=None, help="stop after this many seconds")
-    p.add_argument("--frames", type=int, default=None, help="stop after this many frames")
+    _add_limits(p)
     p.add_argument("--head-motion", action="store_true",
                    help="add smooth rigid head motion (a few degrees, ~2%% of the mesh size)")
     p.add_argument("--noise", type=float, default=0.0,
@@ -181,14 +197,11 @@ def _add_watch(subs: argparse._SubParsersAction) -> None:
         "  rigcast watch --duration 30   # watch for 30 s\n",
         _cmd_watch,
     )
-    p.add_argument("--from", dest="source", default=DEFAULT_OUTPUT, metavar="ENDPOINT",
-                   help="the server's output (PUB) endpoint")
-    p.add_argument("--to", default=DEFAULT_INPUT, metavar="ENDPOINT",
-                   help="the server's input endpoint, asked for the control names")
-    p.add_argument("--stream", default=None, help="show only this stream (default: all)")
+    _add_endpoints(p, to_help=_SCHEMA_TO, from_help="the server's output (PUB) endpoint",
+                   stream_help="show only this stream (default: all)")
     p.add_argument("--once", action="store_true",
                    help="print one snapshot after telemetry arrives, then exit")
-    p.add_argument("--duration", type=float, default=None, help="stop after this many seconds")
+    _add_limits(p, frames=False)
     p.add_argument("--top", type=int, default=8,
                    help="how many of the most active controls to show")
     p.add_argument("--timeout", type=float, default=10.0,
@@ -206,14 +219,9 @@ def _add_record(subs: argparse._SubParsersAction) -> None:
         _cmd_record,
     )
     p.add_argument("-o", "--out", type=Path, required=True, help="output file, .csv or .json")
-    p.add_argument("--from", dest="source", default=DEFAULT_OUTPUT, metavar="ENDPOINT",
-                   help="the server's output (PUB) endpoint")
-    p.add_argument("--to", default=DEFAULT_INPUT, metavar="ENDPOINT",
-                   help="the server's input endpoint, asked for the control names")
-    p.add_argument("--stream", default=None,
-                   help="stream id (default: the first the server publishes)")
-    p.add_argument("--duration", type=float, default=None, help="stop after this many seconds")
-    p.add_argument("--frames", type=int, default=None, help="stop after this many frames")
+    _add_endpoints(p, to_help=_SCHEMA_TO, from_help="the server's output (PUB) endpoint",
+                   stream_help=_FIRST_STREAM)
+    _add_limits(p)
     p.add_argument("--timeout", type=float, default=5.0,
                    help="seconds to wait for the schema reply")
 
@@ -276,7 +284,7 @@ def _add_demo(subs: argparse._SubParsersAction) -> None:
         _cmd_demo,
     )
     p.add_argument("--quick", action="store_true", help="small build and short take")
-    p.add_argument("--seconds", type=float, default=None, help="take length (default 15, quick 4)")
+    p.add_argument("--seconds", type=float, default=None, help="take length (default 12, quick 4)")
     p.add_argument("--fps", type=float, default=60.0, help="frame rate of the take")
     p.add_argument("--cache", type=Path, default=None,
                    help="bundle cache (default ~/.cache/rigcast, or ./.rigcast-cache)")
