@@ -60,10 +60,9 @@ def synthetic_bundle(out: Path) -> tuple[Bundle, Any, float]:
     """A small synthetic bundle (no training): 900 vertices, 8 controls, exact inverse."""
     from rigcast.export.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
 
-    size = dict(vertices=900, controls=8, inputs=120, stable=40, seed=0)
     start = time.perf_counter()
-    path = build_synthetic_bundle(out / "synthetic.rcb", inverse="lstsq", fit_rms=1e-4,
-                                  **size)  # type: ignore[arg-type]
+    path = build_synthetic_bundle(out / "synthetic.rcb", vertices=900, controls=8, inputs=120,
+                                  stable=40, seed=0, inverse="lstsq", fit_rms=1e-4)
     rig = make_synthetic_rig(900, 8, inputs=120, stable=40, seed=0)
     return load_bundle(path), rig, time.perf_counter() - start
 
@@ -139,7 +138,7 @@ def main() -> None:
     fps_by_mode: dict[str, list[float]] = {m: [] for m in FIT_ERROR_MODES}
     for _ in range(args.repeats):
         for mode in FIT_ERROR_MODES:  # interleaved, so machine noise hits every mode alike
-            options = SolveOptions(batch_size=bs, fit_error=mode)  # type: ignore[arg-type]
+            options = SolveOptions(batch_size=bs, fit_error=mode)
             fps_by_mode[mode].append(solver.solve(verts, times, options).frames_per_second)
     per_batch = [solver.solve(verts[i0 : i0 + bs], times[i0 : i0 + bs], headline)
                  .frames_per_second for i0 in range(0, args.frames - bs + 1, bs)]

@@ -113,9 +113,8 @@ def test_planted_off_manifold_frames_are_found_in_a_batch_solve(tmp_path: Path) 
     isolated frames, solved in batch with the detector's defaults: most bulges are flagged, few
     clean frames are. (The take's correlated wobble is off here: on this small sheet its peaks
     reach the bulges' level of max error; the demo face is where the defaults were tuned.)"""
-    size = dict(vertices=900, controls=8, inputs=120, stable=40, seed=0)
-    path = build_synthetic_bundle(tmp_path / "s.rcb", inverse="lstsq", fit_rms=1e-4,
-                                  **size)  # type: ignore[arg-type]
+    path = build_synthetic_bundle(tmp_path / "s.rcb", vertices=900, controls=8, inputs=120,
+                                  stable=40, seed=0, inverse="lstsq", fit_rms=1e-4)
     bundle = load_bundle(path)
     rig = make_synthetic_rig(900, 8, inputs=120, stable=40, seed=0)
     hits = false = planted = frames = 0
@@ -123,8 +122,7 @@ def test_planted_off_manifold_frames_are_found_in_a_batch_solve(tmp_path: Path) 
         take = synth_take(rig, frames=900, fps=60.0, seed=seed,  # type: ignore[arg-type]
                           head_motion=True, wobble_sigma=0.0, off_manifold_frames=6)
         for mode in ("subset", "full"):
-            options = SolveOptions(filter="causal", fit_error=mode,  # type: ignore[arg-type]
-                                   fit_sample=200)
+            options = SolveOptions(filter="causal", fit_error=mode, fit_sample=200)
             result = solve_take(bundle, take.vertices, take.times_s, options)
             assert result.fit_error == mode
             hits += int((result.off_manifold & take.off_manifold).sum())
