@@ -9,9 +9,15 @@ blendshapes forward), then measures, in one run:
 2. the server, paced at 120 fps for ``--duration`` seconds with the fit error on (after_publish):
    client send -> controls received, p50/p95/p99 (both ends are perf_counter_ns in the client
    process, so no cross-process clock is involved); the server's RSS after warm-up and at the end;
-3. flat out, lockstep: the next frame goes when the previous controls arrive -> max_sustained_fps;
+3. flat out, lockstep: the next frame goes when the previous controls arrive -> max_sustained_fps
+   (frames answered per second, with never more than one frame in flight);
 4. flat out, free-running: frames sent as fast as the socket takes them for a few seconds; the
-   server must keep publishing and its RSS must stay bounded (newest frame wins, no queue).
+   server must keep publishing and its RSS must stay bounded (newest frame wins, no queue). The
+   server's own counters (telemetry before and after) say how many frames it received, processed,
+   dropped as superseded and ignored as stale, so sent, received and published can be compared.
+
+``--busy-poll-us N`` gives the same spin-then-block wait (runtime.server.wait_for_input) to the
+server, the echo process and the client's wait for controls, so floor and server stay comparable.
 
 By default the server (or echo) process is pinned to CPU 0 and the client to CPU 1 with
 os.sched_setaffinity, so they do not steal each other's core. ``--out DIR`` writes
@@ -36,6 +42,7 @@ import numpy as np
 import zmq
 from rigcast.export.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
 from rigcast.runtime import protocol
+from rigcast.runtime.server import wait_for_input
 from rigcast.runtime.sockets import bind_pub, bind_router, bound_endpoint
 
 CONTROLS, INPUTS, STABLE, HIDDEN, SEED = 50, 256, 128, 256, 7
@@ -46,7 +53,7 @@ WARMUP_S = 3.0
 
 # --- echo process: the transport floor -------------------------------------------------------
 
-def echo_main(ready: Path) -> None:
+def echo_main(ready: Path, spin_ns: int) -> None:
     """Receive meshes on a ROUTER, publish same-size controls on a PUB; no other work."""
     ctx = zmq.Context()
     router = bind_router(ctx, "tcp://127.0.0.1:*", rcvhwm=32, sndhwm=1000, linger_ms=0,
@@ -55,7 +62,14 @@ def echo_main(ready: Path) -> None:
     ready.write_text(json.dumps({"input": bound_endpoint(router), "output": bound_endpoint(pub),
                                  "pid": os.getpid()}))
     values = np.zeros(CONTROLS, np.float32)
+    poller = zmq.Poller()
+    poller.register(router, zmq.POLLIN)
+    spin = 0
     while True:
+        if not wait_for_input(poller, 100, spin):
+            spin = 0
+            continue
+        spin = spin_ns  # spin only after a message, as the server does after a drain
         msg = router.recv_multipart(copy=False)
         header = protocol.decode_header(msg[1].buffer)
         if header.get("type") != "mesh":
@@ -82,7 +96,9 @@ def make_meshes(vertices: int, count: int = 32) -> list[np.ndarray]:
 
 
 class Client:
-    def __init__(self, endpoints: dict[str, str], meshes: list[np.ndarray]) -> None:
+    def __init__(self, endpoints: dict[str, str], meshes: list[np.ndarray], spin_ns: int = 0
+                 ) -> None:
+        self.spin_ns = spin_ns
         self.ctx = zmq.Context()
         self.dealer = self.ctx.socket(zmq.DEALER)
         self.dealer.setsockopt(zmq.SNDHWM, 16)
@@ -94,6 +110,8 @@ class Client:
         self.sub.setsockopt(zmq.SUBSCRIBE, protocol.TOPIC_CONTROLS + STREAM.encode())
         self.sub.setsockopt(zmq.SUBSCRIBE, protocol.TOPIC_TELEMETRY + STREAM.encode())
         self.sub.connect(endpoints["output"])
+        self.poller = zmq.Poller()
+        self.poller.register(self.sub, zmq.POLLIN)
         self.meshes = meshes
         self.frame = 0
         self.telemetry: dict[str, Any] | None = None
@@ -111,8 +129,9 @@ class Client:
     def recv_controls(self, frame: int | None, timeout_ms: int) -> int | None:
         """perf_counter_ns at the arrival of controls for ``frame`` (any frame if None)."""
         deadline = time.perf_counter_ns() + timeout_ms * 1_000_000
+        spin = self.spin_ns
         while (left := deadline - time.perf_counter_ns()) > 0:
-            if not self.sub.poll(max(left // 1_000_000, 1)):
+            if not wait_for_input(self.poller, max(left // 1_000_000, 1), spin):
                 continue
             frames = self.sub.recv_multipart()
             now = time.perf_counter_ns()
@@ -170,7 +189,18 @@ class Client:
                 done += 1
         return done / (time.perf_counter() - t0)
 
+    def fresh_telemetry(self, timeout_s: float = 1.0) -> dict[str, Any]:
+        """The next telemetry message (its counters are cumulative)."""
+        self.telemetry = None
+        deadline = time.perf_counter() + timeout_s
+        while self.telemetry is None and time.perf_counter() < deadline:
+            self.recv_controls(-1, 50)  # frame -1 never matches: read until telemetry comes
+        if self.telemetry is None:
+            raise TimeoutError("no telemetry from the server")
+        return self.telemetry
+
     def blast(self, seconds: float) -> dict[str, float]:
+        before = self.fresh_telemetry()
         end = time.perf_counter() + seconds
         sent = published = 0
         t0 = time.perf_counter()
@@ -184,13 +214,18 @@ class Client:
         elapsed = time.perf_counter() - t0
         while self.recv_controls(None, 300) is not None:  # let the server drain
             published += 1
+        after = self.fresh_telemetry()
+        counts = {k: int(after[k]) - int(before[k]) for k in ("processed", "dropped", "stale")}
+        received = sum(counts.values())
         return {"sent_fps": sent / elapsed, "published_fps": published / elapsed,
-                "sent": sent, "published": published}
+                "server_received_fps": received / elapsed, "sent": sent,
+                "server_received": received, **{f"server_{k}": v for k, v in counts.items()},
+                "published": published}
 
 
 def client_main(args: argparse.Namespace) -> None:
     endpoints = json.loads(Path(args.endpoints).read_text())
-    client = Client(endpoints, make_meshes(args.vertices[0]))
+    client = Client(endpoints, make_meshes(args.vertices[0]), args.busy_poll_us * 1000)
     client.handshake()
     result: dict[str, Any] = {}
     lat, lost = client.paced(args.duration, FPS, Path(args.result).with_suffix(".warm"))
@@ -239,7 +274,8 @@ def run_client(mode: str, endpoints_file: Path, vertices: int, duration: float, 
     result = work / f"{mode}-{vertices}.json"
     cmd = [sys.executable, __file__, "--role", "client", "--mode", mode, "--endpoints",
            str(endpoints_file), "--vertices", str(vertices), "--duration", str(duration),
-           "--flat-seconds", str(args.flat_seconds), "--result", str(result)]
+           "--flat-seconds", str(args.flat_seconds), "--busy-poll-us", str(args.busy_poll_us),
+           "--result", str(result)]
     proc = subprocess.Popen(cmd)
     pin(proc.pid, 1, args.pin)
     warm = result.with_suffix(".warm")
@@ -266,8 +302,8 @@ def measure(vertices: int, args: argparse.Namespace, work: Path) -> dict[str, An
                                     name=f"synthetic-{vertices}")
     # Floor: echo process.
     ready = work / f"echo-{vertices}.ready"
-    echo, _ = start_and_wait([sys.executable, __file__, "--role", "echo", "--ready",
-                                      str(ready)], ready, 0, args)
+    echo, _ = start_and_wait([sys.executable, __file__, "--role", "echo", "--ready", str(ready),
+                              "--busy-poll-us", str(args.busy_poll_us)], ready, 0, args)
     try:
         floor, _, _ = run_client("echo", ready, vertices, args.floor_duration, work, args,
                                  echo.pid)
@@ -280,7 +316,7 @@ def measure(vertices: int, args: argparse.Namespace, work: Path) -> dict[str, An
            "--input", "tcp://127.0.0.1:*", "--output", "tcp://127.0.0.1:*", "--ready-file",
            str(ready), "--fit-error", "after_publish", "--telemetry-hz", "10",
            "--window", "1000", "--log-level", "WARNING",
-           "--busy-poll" if args.busy_poll else "--no-busy-poll"]
+           "--busy-poll-us", str(args.busy_poll_us)]
     server, _ = start_and_wait(cmd, ready, 0, args)
     try:
         res, rss_warm, rss_end = run_client("server", ready, vertices, args.duration, work,
@@ -316,7 +352,7 @@ def measure(vertices: int, args: argparse.Namespace, work: Path) -> dict[str, An
         "rss_after_blast_mb": rss_after_blast,
         "stage_median_ms": stages,
         "pinned": bool(args.pin),
-        "busy_poll": bool(args.busy_poll),
+        "busy_poll_us": int(args.busy_poll_us),
     }
 
 
@@ -333,8 +369,8 @@ def main() -> None:
                         help="seconds of each flat-out run")
     parser.add_argument("--no-pin", dest="pin", action="store_false",
                         help="do not pin server and client to CPUs 0 and 1")
-    parser.add_argument("--busy-poll", action="store_true",
-                        help="run the server with --busy-poll (spins a core between frames)")
+    parser.add_argument("--busy-poll-us", type=int, default=0,
+                        help="spin-then-block budget for server, echo and client waits (µs)")
     parser.add_argument("--out", type=Path, default=None)
     parser.add_argument("--mode", default="server", help=argparse.SUPPRESS)
     parser.add_argument("--endpoints", help=argparse.SUPPRESS)
@@ -342,7 +378,7 @@ def main() -> None:
     parser.add_argument("--result", help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.role == "echo":
-        echo_main(args.ready)
+        echo_main(args.ready, args.busy_poll_us * 1000)
         return
     if args.role == "client":
         client_main(args)
@@ -359,7 +395,8 @@ def main() -> None:
             print(f"  floor p50 {run['floor_p50_ms']:.3f} ms | server p50 {run['p50_ms']:.3f} "
                   f"p95 {run['p95_ms']:.3f} p99 {run['p99_ms']:.3f} ms | ratio "
                   f"{run['ratio_p50_vs_floor']:.2f} | lockstep {run['max_sustained_fps']:.0f} "
-                  f"fps | blast sent {run['blast']['sent_fps']:.0f}/s published "
+                  f"fps | blast sent {run['blast']['sent_fps']:.0f}/s server received "
+                  f"{run['blast']['server_received_fps']:.0f}/s published "
                   f"{run['blast']['published_fps']:.0f}/s | RSS growth "
                   f"{run['rss_growth_mb']:+.2f} MB (after blast {run['rss_after_blast_mb']:.1f}"
                   f" MB)")

@@ -121,11 +121,11 @@ class ServerConfig:
     telemetry_hz: float = _flag("telemetry messages per second per stream", 10.0)
     window: int = _flag("sliding window for latency percentiles, in frames", 1000)
     max_message_bytes: int = _flag("largest accepted mesh payload, in bytes", 16 * 1024 * 1024)
-    busy_poll: bool = _flag(
-        "spin on the input socket instead of sleeping: lower latency, but it keeps a core busy",
-        False)
+    busy_poll_us: int = _flag(
+        "after each frame, poll the input without sleeping for this many microseconds "
+        "(yielding the CPU between polls), then block; 0 = always block", 0)
     max_header_bytes: int = 4096
-    max_drain: int = 256
+    max_drain: int = 32
     input_hwm: int = 32
     output_hwm: int = 1000
     linger_ms: int = 200
@@ -149,6 +149,8 @@ class ServerConfig:
             value = getattr(self, name)
             if value < 1:
                 raise ConfigError(f"{name} must be at least 1, got {value}")
+        if not 0 <= self.busy_poll_us <= 1_000_000:
+            raise ConfigError(f"busy_poll_us must be 0..1000000, got {self.busy_poll_us}")
         if self.linger_ms < 0:
             raise ConfigError(f"linger_ms must be >= 0, got {self.linger_ms}")
         _positive(self.telemetry_hz, "telemetry_hz")

@@ -1,15 +1,25 @@
 """The live server: mesh frames in on a ROUTER, controls, telemetry and events out on a PUB.
 
 One thread, one poller, a small loop: startup (load and check every bundle, open the sessions,
-bind), the main loop (drain every queued message, keep the newest mesh per stream, process each
-stream's newest frame, then the fit error), a periodic telemetry tick, and shutdown (driven by a
-flag that SIGINT/SIGTERM set; a second signal forces the exit).
+bind), the main loop (wait, drain the queued messages, keep the newest mesh per stream, process
+each stream's newest frame, then the fit error), a periodic telemetry tick, and shutdown (driven
+by a flag that SIGINT/SIGTERM set; a second signal forces the exit).
 
-Load policy, per drain: every message is decoded and validated; a valid mesh that a newer one of
-the same stream supersedes is counted as *dropped*; a mesh whose sender timestamp is not newer
-than the stream's last processed one is counted as *stale* and dropped; a bad message gets an
-error reply to its sender, an ``evt`` event and a count by reason. Nothing is dropped silently.
-The next published frame after drops carries the STALE flag (it follows skipped input).
+Load policy, per drain: at most ``max_drain`` messages are read (by default the input queue's
+capacity, so a sender faster than the server cannot keep a drain from ever reaching a frame);
+every message read is decoded and validated; a valid mesh that a newer one of the same stream
+supersedes is counted as *dropped*; a mesh whose sender timestamp is not newer than the stream's
+last processed one is counted as *stale* and dropped; a bad message gets an error reply to its
+sender, an ``evt`` event and a count by reason. Nothing is dropped silently. The next published
+frame after drops carries the STALE flag (it follows skipped input).
+
+Off the frame's path: the fit error runs after the drain's publishes and only while no input
+waits; the telemetry tick and the garbage collector's passes run right after a drain (when the
+next frame is furthest away), or on a timer when no frames come.
+
+Waiting: ``busy_poll_us`` > 0 makes the loop poll the input without sleeping for that long after
+each drain, yielding the CPU between polls so the ZeroMQ I/O thread, which shares the core, is
+never starved; then it blocks in the poller as usual.
 
 Reload: a ``reload`` request loads and checks the new bundle on a background thread while frames
 keep flowing; the stream's model is swapped between two frames. A bundle with another vertex count
@@ -22,6 +32,7 @@ from __future__ import annotations
 import gc
 import logging
 import math
+import os
 import queue
 import signal
 import threading
@@ -54,6 +65,7 @@ from rigcast.runtime.sockets import bind_pub, bind_router, bound_endpoint, close
 log = logging.getLogger(__name__)
 
 _TICK_CAP_S = 0.05  # the loop wakes at least this often to see stop flags and reload results
+_FULL_GC_EVERY = 100  # ticks between full collections (10 s at the default 10 Hz)
 _Pending = tuple[bytes, protocol.MeshFrame, int, int, int, Any]
 
 
@@ -77,6 +89,7 @@ class Server:
             queue.SimpleQueue())
         self._reloading: set[str] = set()
         self._next_tick = 0.0
+        self._ticks = 0
 
     # --- lifecycle -------------------------------------------------------------------------
 
@@ -136,12 +149,17 @@ class Server:
     def run(self) -> None:
         if not self.started.is_set():
             self.startup()
-        # Everything loaded at startup is long-lived: keep it out of the collector's full passes,
-        # so a gen-2 collection never walks the bundles in the middle of a frame.
+        # Everything loaded at startup is long-lived: keep it out of the collector's passes.
+        # The automatic collector is off while serving (it would run inside a frame whenever
+        # allocations cross its threshold); tick() collects instead, between frames.
         gc.freeze()
+        was_enabled = gc.isenabled()
+        gc.disable()
         try:
             self.main_loop()
         finally:
+            if was_enabled:
+                gc.enable()
             self.shutdown()
 
     def shutdown(self) -> None:
@@ -156,19 +174,22 @@ class Server:
         poller = zmq.Poller()
         poller.register(self.router, zmq.POLLIN)
         period = 1.0 / self.config.telemetry_hz
+        spin_ns = self.config.busy_poll_us * 1000
         self._next_tick = time.monotonic() + period
+        drained = False
         while not self.should_exit:
-            wait = min(max(self._next_tick - time.monotonic(), 0.0), _TICK_CAP_S)
-            # Busy polling keeps the core awake and its caches warm between frames; a core that
-            # sleeps 8 ms between frames pays several times the frame's work on waking.
-            timeout = 0 if self.config.busy_poll else math.ceil(wait * 1000)
-            events = dict(poller.poll(timeout))
-            if self.router in events:
+            now = time.monotonic()
+            # A due tick waits for the next drain (up to one period), so it runs between frames.
+            due = self._next_tick if now < self._next_tick else self._next_tick + period
+            wait = min(max(due - now, 0.0), _TICK_CAP_S)
+            ready = wait_for_input(poller, math.ceil(wait * 1000), spin_ns if drained else 0)
+            drained = ready
+            if ready:
                 self.drain()
             if self._reloading:
                 self._finish_reloads()
             now = time.monotonic()
-            if now >= self._next_tick:
+            if now >= self._next_tick and (drained or now >= self._next_tick + period):
                 self.tick()
                 self._next_tick = max(self._next_tick + period, now)
 
@@ -189,7 +210,10 @@ class Server:
             if result is not None:
                 done.append((state, result, mesh))
         # The fit error runs after every publish of this drain, and only while no input waits,
-        # so it never delays a frame; a skipped one is counted.
+        # so it never delays a frame; a skipped one is counted. The yield first lets the ZeroMQ
+        # I/O thread (runnable on this core since the publish) send the controls out.
+        if done and self.config.fit_error != "off":
+            os.sched_yield()
         for state, result, mesh in done:
             if state.wants_fit(self.config.fit_error, self.config.fit_error_every):
                 if self._input_waiting():
@@ -372,6 +396,13 @@ class Server:
     # --- telemetry -------------------------------------------------------------------------
 
     def tick(self) -> None:
+        """Telemetry for every stream, then the collector's young generations (a full pass every
+        _FULL_GC_EVERY ticks): bounded work, run between frames."""
+        self.publish_telemetry()
+        self._ticks += 1
+        gc.collect(2 if self._ticks % _FULL_GC_EVERY == 0 else 1)
+
+    def publish_telemetry(self) -> None:
         now = time.time_ns()
         server = {"uptime_s": (now - self.t_start_ns) / 1e9, "streams": len(self.streams),
                   "rejected_by_reason": dict(self.rejected),
@@ -383,3 +414,21 @@ class Server:
             fields = tel.snapshot(now)
             fields["server"] = server
             self._publish(protocol.encode_telemetry(stream, fields))
+
+
+def wait_for_input(poller: zmq.Poller, timeout_ms: int, spin_ns: int) -> bool:
+    """True when the poller's sockets have input; waits up to ``timeout_ms``.
+
+    With ``spin_ns`` > 0 it first polls without blocking for that long, calling sched_yield
+    between polls: a spinner that never yields keeps the ZeroMQ I/O thread, which must run to
+    deliver the message, off a shared core. Then it blocks in the poller for the rest.
+    """
+    if spin_ns > 0:
+        end = time.perf_counter_ns() + spin_ns
+        while True:
+            if poller.poll(0):
+                return True
+            if time.perf_counter_ns() >= end:
+                break
+            os.sched_yield()
+    return bool(poller.poll(timeout_ms))

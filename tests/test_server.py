@@ -239,6 +239,52 @@ def test_newest_frame_wins_under_a_burst(tiny_bundle: Path) -> None:
     assert last.has(protocol.FLAG_STALE)  # it followed dropped frames
 
 
+def test_a_drain_reads_at_most_max_drain_messages(tiny_bundle: Path) -> None:
+    # A sender faster than the server must not keep one drain from ever reaching a frame: each
+    # drain reads at most max_drain messages and publishes the newest of them.
+    rig = tiny_rig(TINY)
+    mesh = rig_mesh(rig, np.full(TINY["controls"], 0.2))
+    sent, limit = 300, 4
+    config = server_config({"a": tiny_bundle}, max_drain=limit)
+    with running_server(config) as server, peer_for(server) as peer:
+        t0 = time.time_ns()
+        for i in range(sent):
+            peer.dealer.send_multipart(protocol.encode_mesh("a", i, t0 + i, mesh))
+        deadline = time.monotonic() + 10
+        tel: dict = {}
+        while time.monotonic() < deadline:
+            frames = peer.recv_pub(0.2)
+            if frames and frames[0] == b"tel.a":
+                tel = protocol.decode_header(frames[1])
+                if tel["processed"] + tel["dropped"] + tel["stale"] >= sent:
+                    break
+    assert tel["processed"] + tel["dropped"] == sent
+    assert tel["processed"] * limit >= sent, tel
+
+
+def test_busy_poll_serves_frames_and_restores_the_collector(tiny_bundle: Path) -> None:
+    import gc
+
+    rig = tiny_rig(TINY)
+    assert gc.isenabled()
+    config = server_config({"a": tiny_bundle}, busy_poll_us=500)
+    with running_server(config) as server, peer_for(server) as peer:
+        t0 = time.time_ns()
+        for i in range(5):
+            mesh = rig_mesh(rig, np.full(TINY["controls"], 0.1 * i))
+            peer.dealer.send_multipart(protocol.encode_mesh("a", i, t0 + i * STEP_NS, mesh))
+            assert [m.frame for m in controls_of(peer, "a", 1)] == [i]
+    assert gc.isenabled(), "the server left the garbage collector disabled"
+
+
+@pytest.mark.parametrize("value", [-1, 2_000_000])
+def test_busy_poll_budget_is_validated(tiny_bundle: Path, value: int) -> None:
+    from rigcast.runtime.config import ConfigError
+
+    with pytest.raises(ConfigError, match=r"busy_poll_us must be 0\.\.1000000"):
+        server_config({"a": tiny_bundle}, busy_poll_us=value)
+
+
 def test_stale_frames_are_counted_not_published(tiny_bundle: Path) -> None:
     mesh = tiny_rig(TINY).neutral
     with running_server(server_config({"a": tiny_bundle})) as server, peer_for(server) as peer:
