@@ -24,7 +24,7 @@ from typing import Any
 
 import numpy as np
 from rigcast.runtime import protocol
-from rigcast.runtime.align import RigidTransform, stabilise
+from rigcast.runtime.align import RigidTransform, StableTarget, stabilise_fast, stable_target
 from rigcast.runtime.bundle import Bundle, BundleError, load_bundle
 from rigcast.runtime.config import StreamConfig
 from rigcast.runtime.inference import ForwardModel, InverseModel
@@ -60,6 +60,7 @@ class StreamModel:
     inverse: InverseModel
     forward: ForwardModel
     neutral_stable: np.ndarray  # (S, 3) float64
+    stable_target: StableTarget  # the neutral's stable statistics, for stabilise_fast
     lower: np.ndarray  # (C,) float32
     upper: np.ndarray  # (C,) float32
     threshold: float
@@ -74,6 +75,7 @@ def load_stream_model(
 ) -> StreamModel:
     """Load, validate and open a bundle; BundleError on any problem (file, graph, shapes)."""
     bundle = load_bundle(path)
+    neutral_stable = bundle.neutral[bundle.stable_indices].astype(np.float64)
     inverse = InverseModel(bundle, threads=threads)
     forward = ForwardModel(bundle, threads=threads)
     if threshold is None:
@@ -90,7 +92,8 @@ def load_stream_model(
         bundle=bundle,
         inverse=inverse,
         forward=forward,
-        neutral_stable=bundle.neutral[bundle.stable_indices].astype(np.float64),
+        neutral_stable=neutral_stable,
+        stable_target=stable_target(neutral_stable),
         lower=bundle.schema.lower,
         upper=bundle.schema.upper,
         threshold=float(threshold),
@@ -128,6 +131,17 @@ class FrameResult:
 def gather(vertices: np.ndarray, indices: np.ndarray, out: np.ndarray) -> np.ndarray:
     """vertices (V, 3), indices (K,), out (K, 3) -> out filled with vertices[indices]."""
     np.take(vertices, indices, axis=0, out=out)
+    return out
+
+
+def transform_subset(vertices: np.ndarray, indices: np.ndarray, pose: RigidTransform,
+                     out: np.ndarray) -> np.ndarray:
+    """pose.apply(vertices[indices]) into out: vertices (V, 3) float32, indices (K,), out (K, 3)
+    float32. Only the K vertices the inverse reads are moved, never all V."""
+    np.take(vertices, indices, axis=0, out=out)
+    # out[k] = s R out[k] + t, as one (K, 3) @ (3, 3) product in place
+    np.matmul(out, (pose.scale * pose.rotation.T).astype(np.float32), out=out)
+    out += pose.translation.astype(np.float32)
     return out
 
 
@@ -230,10 +244,10 @@ class StreamState:
         rms = math.nan
         subset = self._subset
         if cfg.stabilise:
-            pose, rms = stabilise(mesh.vertices, model.bundle.stable_indices,
-                                  model.neutral_stable, scale=cfg.stabilise_scale)
+            pose, rms = stabilise_fast(mesh.vertices, model.bundle.stable_indices,
+                                       model.stable_target, scale=cfg.stabilise_scale)
             # Only the K input vertices are moved on the hot path; the fit error moves the rest.
-            subset[0] = pose.apply(np.take(mesh.vertices, model.bundle.input_indices, axis=0))
+            transform_subset(mesh.vertices, model.bundle.input_indices, pose, subset[0])
         else:
             gather(mesh.vertices, model.bundle.input_indices, subset[0])
         t1 = time.perf_counter_ns()

@@ -12,6 +12,8 @@ from rigcast.runtime.align import (
     fit_rigid,
     fit_rigid_naive,
     stabilise,
+    stabilise_fast,
+    stable_target,
 )
 from scipy.spatial.transform import Rotation
 
@@ -133,6 +135,40 @@ def test_stabilise_maps_frame_onto_neutral_and_reports_residual() -> None:
     aligned = fit_rigid(noisy[stable], neutral[stable]).apply(noisy[stable].astype(np.float64))
     direct = float(np.sqrt(((aligned - neutral[stable]) ** 2).sum(axis=1).mean()))
     assert rms_noisy == pytest.approx(direct, rel=1e-6)
+
+
+@settings(max_examples=40, deadline=None)
+@given(seed=seeds, with_scale=st.booleans(), noise=st.sampled_from([0.0, 0.01, 1.0]))
+def test_stabilise_fast_agrees_with_the_naive_fit(seed: int, with_scale: bool,
+                                                   noise: float) -> None:
+    # The hot-path stabiliser (precomputed neutral statistics) against the loop-based twin and
+    # against stabilise; noise=1.0 makes the point sets nearly unrelated.
+    rng = np.random.default_rng(seed)
+    neutral = rng.normal(size=(300, 3)).astype(np.float32)
+    stable = rng.choice(300, size=40, replace=False)
+    head = _random_transform(rng, with_scale)
+    frame = head.apply(neutral.astype(np.float64))
+    frame[stable] += rng.normal(scale=noise, size=(40, 3))
+    frame = frame.astype(np.float32)
+    target = stable_target(neutral[stable])
+    fast, rms_fast = stabilise_fast(frame, stable, target, scale=with_scale)
+    naive = fit_rigid_naive(frame[stable], neutral[stable], scale=with_scale)
+    _, rms_ref = stabilise(frame, stable, neutral[stable], scale=with_scale)
+    np.testing.assert_allclose(fast.rotation, naive.rotation, atol=1e-8)
+    np.testing.assert_allclose(fast.translation, naive.translation, atol=1e-6)
+    assert fast.scale == pytest.approx(naive.scale, rel=1e-8)
+    moved = naive.apply(frame[stable].astype(np.float64))
+    direct = float(np.sqrt(((moved - neutral[stable]) ** 2).sum(axis=1).mean()))
+    assert rms_fast == pytest.approx(direct, rel=1e-5, abs=1e-6)
+    assert rms_fast == pytest.approx(rms_ref, rel=1e-6, abs=1e-7)
+
+
+def test_stabilise_fast_checks_shapes() -> None:
+    target = stable_target(np.eye(3, dtype=np.float32) + 1.0)
+    with pytest.raises(AlignError, match="do not match"):
+        stabilise_fast(np.zeros((10, 3), np.float32), np.arange(4), target)
+    with pytest.raises(AlignError, match="S >= 3"):
+        stable_target(np.zeros((2, 3)))
 
 
 def test_bad_inputs_are_named() -> None:
