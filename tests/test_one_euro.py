@@ -10,9 +10,11 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from rigcast.runtime.one_euro import (
     FilterError,
+    OneEuroConstants,
     OneEuroFilter,
     OneEuroParams,
     one_euro_step,
+    one_euro_step_fast,
     one_euro_step_naive,
     zero_phase_smooth,
 )
@@ -54,6 +56,37 @@ def test_matches_paper_formulas_by_hand() -> None:
         y, state = one_euro_step(state, np.array([x]), t_ms * MS, params)
         assert y[0] == pytest.approx(want, abs=2e-6)
         assert state.dx_prev[0] == pytest.approx(want_dx, abs=2e-5)
+    # The live filter's fast form against the same hand-worked values.
+    consts = OneEuroConstants.of(params)
+    fast = None
+    for (t_ms, x), want, want_dx in zip(
+        [(0, 0.0), (100, 1.0), (200, 1.0), (350, 2.0)], expected, expected_dx, strict=True
+    ):
+        y, fast = one_euro_step_fast(fast, np.array([x]), t_ms * MS, consts)
+        assert y[0] == pytest.approx(want, abs=2e-6)
+        assert fast.dx_prev[0] == pytest.approx(want_dx, abs=2e-5)
+
+
+@settings(max_examples=40, deadline=None)
+@given(seed=st.integers(min_value=0, max_value=2**32 - 1), steps=st.integers(2, 40))
+def test_fast_and_naive_agree(seed: int, steps: int) -> None:
+    # The live filter's step against the per-control loop, with per-control parameters,
+    # irregular intervals and repeated timestamps (te = 0 holds the output).
+    rng = np.random.default_rng(seed)
+    c = 7
+    params = OneEuroParams(rng.uniform(0.1, 5.0, c), rng.uniform(0.0, 3.0, c),
+                           rng.uniform(0.1, 5.0, c))
+    consts = OneEuroConstants.of(params)
+    fast = naive = None
+    t = 0
+    for _ in range(steps):
+        t += int(rng.choice([0, 1, 8, 30])) * MS
+        x = rng.normal(size=c).astype(np.float32)
+        y_fast, fast = one_euro_step_fast(fast, x, t, consts)
+        y_naive, naive = one_euro_step_naive(naive, x, t, params)
+        np.testing.assert_allclose(y_fast, y_naive, rtol=1e-10, atol=1e-12)
+        np.testing.assert_allclose(fast.dx_prev, naive.dx_prev, rtol=1e-9, atol=1e-9)
+        assert fast.t_prev_ns == naive.t_prev_ns
 
 
 @settings(max_examples=40, deadline=None)
