@@ -19,15 +19,19 @@ Inverse network, for ``x`` (N, K, 3) absolute positions of the K input vertices:
 
     h = (x - neutral[K]) / scale                         (N, 3K)
     z = MLP(h)                                           (N, C)
-    u = clip((1 + 2m) * sigmoid(z) - m, 0, 1)            m = EDGE_MARGIN
+    s = clip((1 + 2m) * sigmoid(z) - m, 0, 1)            m = EDGE_MARGIN
+    u = rest_band(s)                                     exactly the default on [d - b, d + b]
     c = lo + (hi - lo) * u                               never leaves the bounds
 
 The sigmoid is stretched by a margin m on each side and clipped, so a control can sit *exactly* on
 a bound (a plain sigmoid only approaches it, and a control at rest on its lower bound would then
 hover a little above it on every frame, counting as active and adding jitter). Inside the bounds
 the mapping is a smooth sigmoid, so training gradients behave as for the plain one; in the clipped
-band the mesh loss has no gradient, which is what lets an unused control stay at rest. (The same
-idea as a ReLU's exact zeros; a rule of thumb, with m chosen by measurement on the demo rigs.)
+band the mesh loss has no gradient, which is what lets an unused control stay at rest. The rest
+band does the same for a default inside the range (a joint angle at 0 in [-40, 40]): s within b of
+the normalised default d gives exactly d, and each side is stretched linearly back onto [0, d] and
+[d, 1], so the map stays continuous, monotone and onto [0, 1]. (The same idea as a ReLU's exact
+zeros; a rule of thumb, with m and b chosen by measurement on the demo rigs.)
 """
 
 from __future__ import annotations
@@ -44,6 +48,8 @@ log = logging.getLogger(__name__)
 
 #: Share of the range the sigmoid is stretched past each bound before the clip (see above).
 EDGE_MARGIN = 0.03
+#: Half-width of the rest band around each default, as a share of the range (see above).
+REST_BAND = 0.04
 
 
 def normalise_controls(c: torch.Tensor, lo: torch.Tensor, hi: torch.Tensor) -> torch.Tensor:
@@ -51,34 +57,64 @@ def normalise_controls(c: torch.Tensor, lo: torch.Tensor, hi: torch.Tensor) -> t
     return (c - lo) / (hi - lo)
 
 
-def unit_output(z: torch.Tensor) -> torch.Tensor:
-    """z: (N, C) logits -> (N, C) u = clip((1 + 2m) sigmoid(z) - m, 0, 1), m = EDGE_MARGIN."""
-    return ((1.0 + 2.0 * EDGE_MARGIN) * torch.sigmoid(z) - EDGE_MARGIN).clamp(0.0, 1.0)
+def band_coefficients(d: np.ndarray, band: float = REST_BAND) -> np.ndarray:
+    """d: (C,) defaults in [0, 1] -> (4, C) float32 rows (b_lo, b_hi, a_lo, a_hi) of the rest band.
+
+    b_lo, b_hi: half-widths of the band below and above d (at most half the room on that side,
+    0 where d sits on a bound); a_lo, a_hi: slopes that map the rest of each side back onto it.
+    """
+    d = np.clip(np.asarray(d, np.float64), 0.0, 1.0)
+    b_lo, b_hi = np.minimum(band, d / 2), np.minimum(band, (1.0 - d) / 2)
+    a_lo = np.where(d > 0, d / np.maximum(d - b_lo, 1e-12), 1.0)
+    a_hi = np.where(d < 1, (1.0 - d) / np.maximum(1.0 - d - b_hi, 1e-12), 1.0)
+    return np.stack([b_lo, b_hi, a_lo, a_hi]).astype(np.float32)
 
 
-def unit_output_naive(z: np.ndarray) -> np.ndarray:
-    """Element-by-element float64 twin of ``unit_output``. z: (N, C) -> (N, C)."""
-    out = np.empty(np.shape(z), dtype=np.float64)
-    for idx, zi in np.ndenumerate(np.asarray(z, np.float64)):
-        s = 1.0 / (1.0 + math.exp(-zi)) if zi >= -700 else 0.0
-        out[idx] = min(1.0, max(0.0, (1.0 + 2.0 * EDGE_MARGIN) * s - EDGE_MARGIN))
+def unit_output(z: torch.Tensor, d: torch.Tensor, coef: torch.Tensor) -> torch.Tensor:
+    """z: (N, C) logits; d: (C,) defaults in [0, 1]; coef: (4, C) from ``band_coefficients``
+    -> (N, C) u in [0, 1]:
+
+        s = clip((1 + 2m) sigmoid(z) - m, 0, 1)                      m = EDGE_MARGIN
+        u = d + a_hi relu(s - d - b_hi) - a_lo relu(d - b_lo - s)    exactly d on the band
+    """
+    s = ((1.0 + 2.0 * EDGE_MARGIN) * torch.sigmoid(z) - EDGE_MARGIN).clamp(0.0, 1.0)
+    b_lo, b_hi, a_lo, a_hi = coef[0], coef[1], coef[2], coef[3]
+    return d + a_hi * torch.relu(s - d - b_hi) - a_lo * torch.relu(d - b_lo - s)
+
+
+def unit_output_naive(z: np.ndarray, d: np.ndarray, band: float = REST_BAND) -> np.ndarray:
+    """Element-by-element float64 twin of ``unit_output``, from the definition: a stretched,
+    clipped sigmoid, then the rest band [d - b, d + b] sent to d and each side stretched back
+    linearly onto [0, d] and [d, 1]. z: (N, C); d: (C,) -> (N, C)."""
+    z = np.asarray(z, np.float64)
+    out = np.empty(z.shape, dtype=np.float64)
+    for (i, j), zi in np.ndenumerate(z):
+        sig = 1.0 / (1.0 + math.exp(-zi)) if zi >= -700 else 0.0
+        s = min(1.0, max(0.0, (1.0 + 2.0 * EDGE_MARGIN) * sig - EDGE_MARGIN))
+        dj = float(d[j])
+        lo_edge, hi_edge = dj - min(band, dj / 2), dj + min(band, (1 - dj) / 2)
+        if s > hi_edge:
+            out[i, j] = dj + (s - hi_edge) * (1 - dj) / (1 - hi_edge)
+        elif s < lo_edge:
+            out[i, j] = dj - (lo_edge - s) * dj / lo_edge
+        else:
+            out[i, j] = dj
     return out
 
 
-def sigmoid_target(u: torch.Tensor) -> torch.Tensor:
+def sigmoid_target(u: torch.Tensor, d: torch.Tensor, coef: torch.Tensor) -> torch.Tensor:
     """u: (N, C) normalised controls in [0, 1] -> the sigmoid value that ``unit_output`` maps to
-    u (the target of the supervised logit term)."""
-    return (u + EDGE_MARGIN) / (1.0 + 2.0 * EDGE_MARGIN)
-
-
-def scaled_sigmoid(z: torch.Tensor, lo: torch.Tensor, hi: torch.Tensor) -> torch.Tensor:
-    """z: (N, C) logits; lo, hi: (C,) -> (N, C) = lo + (hi - lo) * unit_output(z), in [lo, hi]."""
-    return lo + (hi - lo) * unit_output(z)
+    u (the middle of the band for u == d): the target of the supervised logit term."""
+    b_lo, b_hi, a_lo, a_hi = coef[0], coef[1], coef[2], coef[3]
+    s = torch.where(
+        u > d, d + b_hi + (u - d) / a_hi, torch.where(u < d, d - b_lo - (d - u) / a_lo, d)
+    )
+    return (s + EDGE_MARGIN) / (1.0 + 2.0 * EDGE_MARGIN)
 
 
 def default_logits(defaults: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
-    """(C,) logits z with ``scaled_sigmoid(z)`` == defaults (a default on a bound maps to the
-    edge of the clipped band, so the control starts exactly at rest)."""
+    """(C,) logits z with ``unit_output(z)`` == the defaults: the middle of the rest band (or its
+    edge, for a default on a bound)."""
     u = (np.asarray(defaults, np.float64) - lo) / (np.asarray(hi, np.float64) - lo)
     s = (np.clip(u, 0.0, 1.0) + EDGE_MARGIN) / (1.0 + 2.0 * EDGE_MARGIN)
     return np.log(s / (1.0 - s)).astype(np.float32)
@@ -209,6 +245,8 @@ class InverseNetwork(nn.Module):
     lower: torch.Tensor
     upper: torch.Tensor
     defaults: torch.Tensor
+    default_unit: torch.Tensor
+    band: torch.Tensor
 
     def __init__(
         self,
@@ -232,6 +270,9 @@ class InverseNetwork(nn.Module):
         self.register_buffer("lower", _f32(lower))
         self.register_buffer("upper", _f32(upper))
         self.register_buffer("defaults", _f32(defaults))
+        d_unit = (np.asarray(defaults, np.float64) - lower) / (np.asarray(upper, np.float64) - lower)
+        self.register_buffer("default_unit", _f32(np.clip(d_unit, 0.0, 1.0)))
+        self.register_buffer("band", torch.from_numpy(band_coefficients(d_unit)))
         self.body = mlp([k * 3, *hidden, c])
         last = self.body[-1]
         assert isinstance(last, nn.Linear)
@@ -246,7 +287,17 @@ class InverseNetwork(nn.Module):
         return out
 
     def forward(self, mesh: torch.Tensor) -> torch.Tensor:
-        return scaled_sigmoid(self.logits(mesh), self.lower, self.upper)
+        return self.from_logits(self.logits(mesh))
+
+    def from_logits(self, z: torch.Tensor) -> torch.Tensor:
+        """z: (N, C) logits -> (N, C) controls in [lower, upper]."""
+        c = self.lower + (self.upper - self.lower) * unit_output(z, self.default_unit, self.band)
+        return torch.minimum(torch.maximum(c, self.lower), self.upper)  # float rounding at bounds
+
+    def sigmoid_target(self, controls: torch.Tensor) -> torch.Tensor:
+        """controls: (N, C) in bounds -> (N, C) the sigmoid values that give them."""
+        u = ((controls - self.lower) / (self.upper - self.lower)).clamp(0.0, 1.0)
+        return sigmoid_target(u, self.default_unit, self.band)
 
 
 def save_checkpoint(

@@ -39,8 +39,6 @@ import torch.nn.functional as F
 from rigcast.export.models import (
     ForwardApproximator,
     InverseNetwork,
-    sigmoid_target,
-    unit_output,
 )
 
 log = logging.getLogger(__name__)
@@ -419,7 +417,6 @@ def train_inverse(
     fresh = round(config.fresh_fraction * config.batch) if rates is not None else 0
     idx_t = torch.as_tensor(input_indices, dtype=torch.long)
     span_t, def_t = torch.from_numpy(hi - lo), torch.from_numpy(defaults)
-    lo_t = torch.from_numpy(lo)
     opt = torch.optim.Adam(model.parameters(), lr=config.lr)
     sched = _schedule(opt, config.lr, config.steps)
     inv_s2 = 1.0 / (scale * scale)
@@ -461,15 +458,14 @@ def train_inverse(
             amp = torch.randn(x.shape[0], wobble_bank.shape[0], 3)
             noisy = noisy + torch.einsum("kv,nkx->nvx", wobble_bank, amp)
         z = model.logits(noisy)
-        c = lo_t + span_t * unit_output(z)
+        c = model.from_logits(z)
         diff = fwd_sub(c) - x[:, loss_t]
         loss = (weights * diff.pow(2).sum(-1)).mean() * inv_s2 / 3.0
         loss = loss + config.l1 * ((c - def_t).abs() / span_t).mean()
         ramp = max(0.0, 1.0 - step / max(1.0, config.supervised_until * total))
         if c_true is not None and config.supervised > 0.0 and ramp > 0.0:
-            u_true = ((c_true - lo_t) / span_t).clamp(0.0, 1.0)
             loss = loss + config.supervised * ramp * F.binary_cross_entropy_with_logits(
-                z, sigmoid_target(u_true)
+                z, model.sigmoid_target(c_true)
             )
         opt.zero_grad(set_to_none=True)
         loss.backward()

@@ -11,6 +11,7 @@ from rigcast.export import reduction, train
 from rigcast.export.models import (
     EDGE_MARGIN,
     InverseNetwork,
+    band_coefficients,
     load_checkpoint,
     save_checkpoint,
     sigmoid_target,
@@ -257,16 +258,28 @@ def test_region_weights_are_validated(trained: dict) -> None:
         )
 
 
-def test_unit_output_matches_its_naive_twin_and_reaches_the_bounds_exactly() -> None:
-    z = np.linspace(-12.0, 12.0, 241, dtype=np.float32).reshape(-1, 1) * np.ones((1, 3), np.float32)
-    fast = unit_output(torch.from_numpy(z)).numpy()
-    np.testing.assert_allclose(fast, unit_output_naive(z), atol=1e-6)
-    assert fast.min() == 0.0 and fast.max() == 1.0  # exactly on the bounds, not just near them
-    assert np.all(np.diff(fast[:, 0]) >= 0)  # monotone
-    # Inside the bounds it is the stretched sigmoid; sigmoid_target inverts it there.
-    u = torch.linspace(0.0, 1.0, 11)
-    back = unit_output(torch.logit(sigmoid_target(u)))
-    np.testing.assert_allclose(back.numpy(), u.numpy(), atol=1e-5)
+@pytest.mark.parametrize("d", [0.0, 1.0, 0.5, 0.3, 0.01])
+def test_unit_output_matches_its_naive_twin_and_rests_exactly(d: float) -> None:
+    z = np.linspace(-12.0, 12.0, 481, dtype=np.float32).reshape(-1, 1)
+    dd = np.array([d])
+    fast = unit_output(
+        torch.from_numpy(z), torch.tensor([d], dtype=torch.float32),
+        torch.from_numpy(band_coefficients(dd)),
+    ).numpy()
+    np.testing.assert_allclose(fast, unit_output_naive(z, dd), atol=1e-5)
+    assert fast.min() == pytest.approx(0.0, abs=1e-6)  # both bounds reached (to float rounding)
+    assert fast.max() == pytest.approx(1.0, abs=1e-6)
+    assert np.all(np.diff(fast[:, 0]) >= -1e-7)  # monotone
+    assert np.count_nonzero(np.abs(fast[:, 0] - d) < 1e-7) >= 3  # a band of exact rest
+
+
+def test_sigmoid_target_inverts_unit_output() -> None:
+    d = np.array([0.0, 0.5, 1.0, 0.25], np.float32)
+    coef = torch.from_numpy(band_coefficients(d))
+    u = torch.rand(200, 4, generator=torch.Generator().manual_seed(0))
+    u[:10] = torch.from_numpy(d)
+    back = unit_output(torch.logit(sigmoid_target(u, torch.from_numpy(d), coef)), torch.from_numpy(d), coef)
+    np.testing.assert_allclose(back.numpy(), u.numpy(), atol=1e-4)
     assert 0.0 < EDGE_MARGIN < 0.1
 
 
