@@ -351,6 +351,9 @@ def measure(vertices: int, args: argparse.Namespace, work: Path) -> dict[str, An
         "rss_growth_mb": rss_end - rss_warm,
         "rss_after_blast_mb": rss_after_blast,
         "stage_median_ms": stages,
+        # fits skipped by the end of the paced run (input waiting, or over fit_error_max_share)
+        "fit_error_skipped_paced": (tel.get("fit_error") or {}).get("skipped"),
+        "processed_paced": tel.get("processed"),
         "pinned": bool(args.pin),
         "busy_poll_us": int(args.busy_poll_us),
     }

@@ -115,6 +115,9 @@ class ServerConfig:
         "when to compute the fit error: after_publish, every_n, off",
         "after_publish")
     fit_error_every: int = _flag("with fit_error=every_n, compute it on every Nth frame", 10)
+    fit_error_max_share: float = _flag(
+        "largest share of the server's time the fit error may take; frames past it are "
+        "skipped (counted), so under load it never slows the frames", 0.25)
     off_manifold_factor: float = _flag(
         "default off-manifold threshold = this x the bundle's training fit RMS", 3.0
     )
@@ -154,6 +157,10 @@ class ServerConfig:
         if self.linger_ms < 0:
             raise ConfigError(f"linger_ms must be >= 0, got {self.linger_ms}")
         _positive(self.telemetry_hz, "telemetry_hz")
+        _positive(self.fit_error_max_share, "fit_error_max_share")
+        if self.fit_error_max_share > 1.0:
+            raise ConfigError(f"fit_error_max_share must be at most 1, "
+                              f"got {self.fit_error_max_share}")
         _positive(self.off_manifold_factor, "off_manifold_factor")
 
     def stream(self, stream_id: str) -> StreamConfig | None:

@@ -13,9 +13,11 @@ last processed one is counted as *stale* and dropped; a bad message gets an erro
 sender, an ``evt`` event and a count by reason. Nothing is dropped silently. The next published
 frame after drops carries the STALE flag (it follows skipped input).
 
-Off the frame's path: the fit error runs after the drain's publishes and only while no input
-waits; the telemetry tick and the garbage collector's passes run right after a drain (when the
-next frame is furthest away), or on a timer when no frames come.
+Off the frame's path: the fit error runs after the drain's publishes, only while no input
+waits and within ``fit_error_max_share`` of the time (a fit that took d is followed by at least
+d (1 - share) / share without one; the frames in between are counted as skipped). The
+telemetry tick and the garbage collector's passes run right after a drain (when the next frame
+is furthest away), or on a timer when no frames come.
 
 Waiting: ``busy_poll_us`` > 0 makes the loop poll the input without sleeping for that long after
 each drain, yielding the CPU between polls so the ZeroMQ I/O thread, which shares the core, is
@@ -90,6 +92,7 @@ class Server:
         self._reloading: set[str] = set()
         self._next_tick = 0.0
         self._ticks = 0
+        self._next_fit_ns = 0  # perf_counter_ns before which no fit error starts (time share)
 
     # --- lifecycle -------------------------------------------------------------------------
 
@@ -216,14 +219,22 @@ class Server:
             os.sched_yield()
         for state, result, mesh in done:
             if state.wants_fit(self.config.fit_error, self.config.fit_error_every):
-                if self._input_waiting():
+                t0 = time.perf_counter_ns()
+                if t0 < self._next_fit_ns or self._input_waiting():
                     state.telemetry.fit_skipped += 1
                     continue
                 rms, worst, off = state.fit(result, mesh.vertices)
+                self._space_fits(t0, time.perf_counter_ns())
                 if off:
                     self._event("off_manifold", state.config.stream,
                                 {"frame": result.frame, "rms": rms, "max": worst,
                                  "threshold": state.model.threshold})
+
+    def _space_fits(self, start_ns: int, end_ns: int) -> None:
+        """After a fit that took end - start, wait long enough that fits take at most
+        fit_error_max_share of the time: gap = took * (1 - share) / share."""
+        share = self.config.fit_error_max_share
+        self._next_fit_ns = end_ns + int((end_ns - start_ns) * (1.0 - share) / share)
 
     def _input_waiting(self) -> bool:
         assert self.router is not None

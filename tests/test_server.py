@@ -285,6 +285,34 @@ def test_busy_poll_budget_is_validated(tiny_bundle: Path, value: int) -> None:
         server_config({"a": tiny_bundle}, busy_poll_us=value)
 
 
+def test_fit_error_keeps_to_its_time_share(tiny_bundle: Path) -> None:
+    # With a vanishing share, the first fit pushes the next one far into the future: every
+    # later frame is published, its fit is skipped and counted.
+    rig = tiny_rig(TINY)
+    config = server_config({"a": tiny_bundle}, fit_error_max_share=1e-9)
+    with running_server(config) as server, peer_for(server) as peer:
+        t0 = time.time_ns()
+        for i in range(5):
+            mesh = rig_mesh(rig, np.full(TINY["controls"], 0.1 * i))
+            peer.dealer.send_multipart(protocol.encode_mesh("a", i, t0 + i * STEP_NS, mesh))
+            assert [m.frame for m in controls_of(peer, "a", 1)] == [i]
+            # The next frame goes only once telemetry shows this one processed: no input
+            # waits when its fit is due, so only the time share can skip it.
+            tel = telemetry_of(peer, "a")
+            while tel["processed"] < i + 1:
+                tel = telemetry_of(peer, "a")
+    assert tel["fit_error"]["frame"] == 0, tel["fit_error"]
+    assert tel["fit_error"]["skipped"] == 4
+
+
+@pytest.mark.parametrize("value", [0.0, 1.5])
+def test_fit_error_share_is_validated(tiny_bundle: Path, value: float) -> None:
+    from rigcast.runtime.config import ConfigError
+
+    with pytest.raises(ConfigError, match="fit_error_max_share"):
+        server_config({"a": tiny_bundle}, fit_error_max_share=value)
+
+
 def test_stale_frames_are_counted_not_published(tiny_bundle: Path) -> None:
     mesh = tiny_rig(TINY).neutral
     with running_server(server_config({"a": tiny_bundle})) as server, peer_for(server) as peer:
