@@ -74,7 +74,8 @@ class StreamConfig:
     stabilise: bool = _flag("remove rigid head motion using the bundle's stable vertices", True)
     stabilise_scale: bool = _flag("also remove uniform scale when stabilising (Umeyama)", False)
     off_manifold_threshold: float | None = _flag(
-        "fit RMS (mesh units) above which a frame is off-manifold; default from the bundle", None
+        "a fixed fit RMS (mesh units) above which a frame is off-manifold; default: the "
+        "adaptive rule (running median + 6 MAD of the worst-vertex error)", None
     )
     groups: tuple[GroupFilter, ...] = ()
 
@@ -119,7 +120,7 @@ class ServerConfig:
         "largest share of the server's time the fit error may take; frames past it are "
         "skipped (counted), so under load it never slows the frames", 0.25)
     off_manifold_factor: float = _flag(
-        "default off-manifold threshold = this x the bundle's training fit RMS", 3.0
+        "floor of the adaptive off-manifold rule = this x the bundle's training fit error", 3.0
     )
     telemetry_hz: float = _flag("telemetry messages per second per stream", 10.0)
     window: int = _flag("sliding window for latency percentiles, in frames", 1000)

@@ -17,7 +17,7 @@ from __future__ import annotations
 import logging
 import math
 import time
-from collections.abc import Callable, Mapping
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -28,28 +28,16 @@ from rigcast.runtime.align import RigidTransform, StableTarget, stabilise_fast, 
 from rigcast.runtime.bundle import Bundle, BundleError, load_bundle
 from rigcast.runtime.config import StreamConfig
 from rigcast.runtime.inference import ForwardModel, InverseModel
+from rigcast.runtime.manifold import (
+    ManifoldConfig,
+    ManifoldTracker,
+    floor_for_bundle,
+    training_fit_error,
+)
 from rigcast.runtime.one_euro import OneEuroFilter, OneEuroParams
 from rigcast.runtime.telemetry import StreamTelemetry
 
 log = logging.getLogger(__name__)
-
-# Manifest keys (under "training") that may hold the inverse's fit RMS in mesh units.
-TRAINING_FIT_KEYS = ("inverse_fit_rms", "inverse_mesh_rms", "inverse_rms")
-# With no training figure and no explicit threshold: 2% of the neutral's bounding-box diagonal.
-# This is our own rule, not a published one; set off_manifold_threshold for real rigs.
-FALLBACK_THRESHOLD_OF_DIAGONAL = 0.02
-
-
-def training_fit_rms(manifest: Mapping[str, Any]) -> float | None:
-    training = manifest.get("training")
-    if not isinstance(training, Mapping):
-        return None
-    for key in TRAINING_FIT_KEYS:
-        value = training.get(key)
-        if isinstance(value, int | float) and math.isfinite(value) and value > 0:
-            return float(value)
-    return None
-
 
 @dataclass(frozen=True)
 class StreamModel:
@@ -63,7 +51,8 @@ class StreamModel:
     stable_target: StableTarget  # the neutral's stable statistics, for stabilise_fast
     lower: np.ndarray  # (C,) float32
     upper: np.ndarray  # (C,) float32
-    threshold: float
+    threshold: float  # the fixed RMS threshold if one was set, else the adaptive rule's floor
+    adaptive: bool = True  # no explicit threshold: the running median + k MAD rule of manifold.py
 
     @property
     def vertex_count(self) -> int:
@@ -78,15 +67,15 @@ def load_stream_model(
     neutral_stable = bundle.neutral[bundle.stable_indices].astype(np.float64)
     inverse = InverseModel(bundle, threads=threads)
     forward = ForwardModel(bundle, threads=threads)
+    adaptive = threshold is None
     if threshold is None:
-        fit = training_fit_rms(bundle.manifest)
+        fit = training_fit_error(bundle.manifest)
         if fit is not None:
             threshold = factor * fit
         else:
-            diag = float(np.linalg.norm(np.ptp(bundle.neutral, axis=0)))
-            threshold = FALLBACK_THRESHOLD_OF_DIAGONAL * diag
-            log.info("bundle %s has no training fit figure; off-manifold threshold %.4g "
-                     "(2%% of the bounding-box diagonal)", path, threshold)
+            threshold = floor_for_bundle(bundle.manifest, bundle.neutral)
+            log.info("bundle %s has no training fit figure; off-manifold floor %.4g "
+                     "(0.1%% of the bounding-box diagonal)", path, threshold)
     return StreamModel(
         label=str(path),
         bundle=bundle,
@@ -97,6 +86,7 @@ def load_stream_model(
         lower=bundle.schema.lower,
         upper=bundle.schema.upper,
         threshold=float(threshold),
+        adaptive=adaptive,
     )
 
 
@@ -224,6 +214,10 @@ class StreamState:
         self._fit_buf = np.empty((model.vertex_count, 3), dtype=np.float32)
         self._fit_d2 = np.empty(model.vertex_count, dtype=np.float32)
         self.telemetry.bundle = model.label
+        # A new bundle has its own error level: the adaptive detector starts over.
+        self.manifold = (ManifoldTracker(ManifoldConfig(floor=model.threshold))
+                         if model.adaptive else None)
+        self.last_threshold = model.threshold
 
     def is_stale(self, t_send_ns: int) -> bool:
         """A frame not newer (by the sender's clock) than the last one processed."""
@@ -302,7 +296,12 @@ class StreamState:
             self._fit_d2 = np.empty(predicted.shape[0], np.float32)
         rms, worst = fit_error_posed(predicted, vertices, result.pose, self._fit_buf,
                                      self._fit_d2)
-        off = rms > model.threshold
+        if self.manifold is None:  # an explicit threshold, on the RMS
+            off = rms > model.threshold
+            self.last_threshold = model.threshold
+        else:  # adaptive, on the worst vertex; nothing is flagged during its warm-up
+            off = self.manifold.update(worst)
+            self.last_threshold = self.manifold.threshold
         if off:
             self.pending_off_manifold = True
         self.telemetry.record_fit(result.frame, rms, worst, off)

@@ -228,7 +228,7 @@ class Server:
                 if off:
                     self._event("off_manifold", state.config.stream,
                                 {"frame": result.frame, "rms": rms, "max": worst,
-                                 "threshold": state.model.threshold})
+                                 "threshold": state.last_threshold})
 
     def _space_fits(self, start_ns: int, end_ns: int) -> None:
         """After a fit that took end - start, wait long enough that fits take at most

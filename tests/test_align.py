@@ -160,7 +160,8 @@ def test_stabilise_fast_agrees_with_the_naive_fit(seed: int, with_scale: bool,
     moved = naive.apply(frame[stable].astype(np.float64))
     direct = float(np.sqrt(((moved - neutral[stable]) ** 2).sum(axis=1).mean()))
     assert rms_fast == pytest.approx(direct, rel=1e-5, abs=1e-6)
-    assert rms_fast == pytest.approx(rms_ref, rel=1e-6, abs=1e-7)
+    # abs: the fast RMS comes from moments (float32 frame), so near 0 it can round to 0.
+    assert rms_fast == pytest.approx(rms_ref, rel=1e-6, abs=1e-6)
 
 
 def test_stabilise_fast_checks_shapes() -> None:

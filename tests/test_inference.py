@@ -16,6 +16,7 @@ from rigcast.export.synthetic_bundle import forward_graph, inverse_graph
 from rigcast.runtime.align import RigidTransform
 from rigcast.runtime.bundle import BundleError, load_bundle, write_bundle
 from rigcast.runtime.inference import ForwardModel, InverseModel, open_session
+from rigcast.runtime.manifold import training_fit_error
 from rigcast.runtime.pipeline import (
     clamp,
     fit_error,
@@ -23,7 +24,6 @@ from rigcast.runtime.pipeline import (
     fit_error_posed,
     load_stream_model,
     rotation_to_quaternion,
-    training_fit_rms,
 )
 from scipy.spatial.transform import Rotation
 
@@ -79,11 +79,11 @@ def test_garbage_graph_is_a_bundle_error(tiny_bundle: Path) -> None:
 def test_threshold_comes_from_training_figures_or_the_diagonal(tiny_bundle: Path,
                                                                tmp_path: Path) -> None:
     model = load_stream_model(tiny_bundle, threads=1, threshold=None, factor=3.0)
-    assert training_fit_rms(model.bundle.manifest) == pytest.approx(0.002)
+    assert training_fit_error(model.bundle.manifest) == pytest.approx(0.002)
     assert model.threshold == pytest.approx(0.006)
     explicit = load_stream_model(tiny_bundle, threads=1, threshold=0.5, factor=3.0)
     assert explicit.threshold == 0.5
-    assert training_fit_rms({"training": {"inverse_fit_rms": float("nan")}}) is None
+    assert training_fit_error({"training": {"inverse_fit_rms": float("nan")}}) is None
 
 
 def test_clamp_reports_clipping() -> None:

@@ -403,36 +403,63 @@ def test_reload_refuses_bad_or_incompatible_bundles(tiny_bundle: Path, other_bun
     assert server.streams["a"].model.label == str(tiny_bundle)
 
 
+def _flags_and_events(peer: Peer, meshes: list[np.ndarray]) -> tuple[dict[int, bool], list[dict]]:
+    """Send meshes one at a time (each after the previous frame's controls came back)."""
+    t0 = time.time_ns()
+    flags: dict[int, bool] = {}
+    events: list[dict] = []
+    for i, mesh in enumerate(meshes):
+        peer.dealer.send_multipart(protocol.encode_mesh("a", i, t0 + i * STEP_NS, mesh))
+        deadline = time.monotonic() + 3
+        while time.monotonic() < deadline and i not in flags:
+            frames = peer.recv_pub(0.2)
+            if frames and frames[0] == b"ctl.a":
+                msg = protocol.decode_controls(frames)
+                flags[msg.frame] = msg.has(protocol.FLAG_OFF_MANIFOLD)
+            elif frames and frames[0] == protocol.TOPIC_EVENTS:
+                events.append(protocol.decode_header(frames[1]))
+        time.sleep(0.01)  # the fit error of frame i runs after its publish
+    while (tail := peer.recv_pub(0.05)) is not None:
+        if tail[0] == protocol.TOPIC_EVENTS:
+            events.append(protocol.decode_header(tail[1]))
+    return flags, events
+
+
 def test_off_manifold_flag_follows_a_mesh_far_from_the_rig(tiny_bundle: Path) -> None:
+    # An explicit threshold: a fixed limit on the fit-error RMS.
     rig = tiny_rig(TINY)
     good = rig_mesh(rig, np.full(TINY["controls"], 0.4))
     far = good + np.random.default_rng(6).normal(scale=0.2, size=good.shape).astype(np.float32)
-    with running_server(server_config({"a": tiny_bundle})) as server, peer_for(server) as peer:
-        t0 = time.time_ns()
-        flags: dict[int, bool] = {}
-        events: list[dict] = []
-        for i, mesh in enumerate([good, good, far, good, good]):
-            peer.dealer.send_multipart(protocol.encode_mesh("a", i, t0 + i * STEP_NS, mesh))
-            deadline = time.monotonic() + 3
-            while time.monotonic() < deadline and i not in flags:
-                frames = peer.recv_pub(0.2)
-                if frames and frames[0] == b"ctl.a":
-                    msg = protocol.decode_controls(frames)
-                    flags[msg.frame] = msg.has(protocol.FLAG_OFF_MANIFOLD)
-                elif frames and frames[0] == protocol.TOPIC_EVENTS:
-                    events.append(protocol.decode_header(frames[1]))
-            time.sleep(0.02)  # the fit error of frame i runs after its publish
+    cfg = server_config({"a": tiny_bundle}, stream_overrides={"off_manifold_threshold": 0.006})
+    with running_server(cfg) as server, peer_for(server) as peer:
+        flags, events = _flags_and_events(peer, [good, good, far, good, good])
         tel = telemetry_of(peer, "a")
-        while (tail := peer.recv_pub(0.05)) is not None:
-            if tail[0] == protocol.TOPIC_EVENTS:
-                events.append(protocol.decode_header(tail[1]))
     # Computed after the publish: the flag lands on the frame after the far one.
     assert flags == {0: False, 1: False, 2: False, 3: True, 4: False}
     off = [e for e in events if e["kind"] == "off_manifold"]
     assert [e["frame"] for e in off] == [2]
-    assert off[0]["rms"] > off[0]["threshold"] == pytest.approx(3 * TINY_FIT_RMS)
+    assert off[0]["rms"] > off[0]["threshold"] == pytest.approx(0.006)
     assert tel["fit_error"]["last_off_manifold_frame"] == 2
     assert tel["fit_error"]["rms"] < 1e-4  # the last frame was on the rig
+
+
+def test_adaptive_off_manifold_rule_follows_the_streams_noise(tiny_bundle: Path) -> None:
+    # No explicit threshold: running median + k MAD of the worst-vertex error (runtime/manifold.py).
+    # Sensor noise puts every frame's worst error above the floor (3 x the training fit error,
+    # which a fixed rule would flag on every frame); only the bulge stands out from the stream.
+    rig = tiny_rig(TINY)
+    good = rig_mesh(rig, np.full(TINY["controls"], 0.4))
+    rng = np.random.default_rng(8)
+    meshes = [good + rng.normal(scale=0.004, size=good.shape).astype(np.float32) for _ in range(45)]
+    bulge = meshes[40].copy()
+    bulge[:5] += 0.3  # five vertices pushed where no control can take them
+    meshes[40] = bulge
+    with running_server(server_config({"a": tiny_bundle})) as server, peer_for(server) as peer:
+        flags, events = _flags_and_events(peer, meshes)
+    off = [e for e in events if e["kind"] == "off_manifold"]
+    assert [e["frame"] for e in off] == [40], off
+    assert flags[41] and sum(flags.values()) == 1
+    assert off[0]["max"] > off[0]["threshold"] > 3 * TINY_FIT_RMS
 
 
 def test_sigterm_stops_a_server_process_cleanly(tiny_bundle: Path, tmp_path: Path) -> None:
