@@ -112,12 +112,14 @@ def training_fit_error(manifest: Mapping[str, Any]) -> float | None:
     return None
 
 
-def floor_for_bundle(manifest: Mapping[str, Any], neutral: np.ndarray) -> float:
-    """The detector's floor for a bundle: 3 x its training fit error, else 0.1% of the neutral's
-    (V, 3) bounding-box diagonal."""
+def floor_for_bundle(
+    manifest: Mapping[str, Any], neutral: np.ndarray, factor: float = FLOOR_FACTOR
+) -> float:
+    """The detector's floor for a bundle: ``factor`` (3) x its training fit error, else 0.1% of the
+    neutral's (V, 3) bounding-box diagonal."""
     fit = training_fit_error(manifest)
     if fit is not None:
-        return FLOOR_FACTOR * fit
+        return factor * fit
     span = np.ptp(np.asarray(neutral, dtype=np.float64), axis=0)
     return FALLBACK_FLOOR_OF_DIAGONAL * float(np.linalg.norm(span))
 

@@ -51,8 +51,8 @@ class StreamModel:
     stable_target: StableTarget  # the neutral's stable statistics, for stabilise_fast
     lower: np.ndarray  # (C,) float32
     upper: np.ndarray  # (C,) float32
-    threshold: float  # the fixed RMS threshold if one was set, else the adaptive rule's floor
-    adaptive: bool = True  # no explicit threshold: the running median + k MAD rule of manifold.py
+    floor: float  # the adaptive off-manifold rule's floor (mesh units)
+    fixed_threshold: float | None = None  # a fixed RMS limit instead of the adaptive rule
 
     @property
     def vertex_count(self) -> int:
@@ -67,15 +67,10 @@ def load_stream_model(
     neutral_stable = bundle.neutral[bundle.stable_indices].astype(np.float64)
     inverse = InverseModel(bundle, threads=threads)
     forward = ForwardModel(bundle, threads=threads)
-    adaptive = threshold is None
-    if threshold is None:
-        fit = training_fit_error(bundle.manifest)
-        if fit is not None:
-            threshold = factor * fit
-        else:
-            threshold = floor_for_bundle(bundle.manifest, bundle.neutral)
-            log.info("bundle %s has no training fit figure; off-manifold floor %.4g "
-                     "(0.1%% of the bounding-box diagonal)", path, threshold)
+    floor = floor_for_bundle(bundle.manifest, bundle.neutral, factor)
+    if threshold is None and training_fit_error(bundle.manifest) is None:
+        log.info("bundle %s has no training fit figure; off-manifold floor %.4g "
+                 "(0.1%% of the bounding-box diagonal)", path, floor)
     return StreamModel(
         label=str(path),
         bundle=bundle,
@@ -85,8 +80,8 @@ def load_stream_model(
         stable_target=stable_target(neutral_stable),
         lower=bundle.schema.lower,
         upper=bundle.schema.upper,
-        threshold=float(threshold),
-        adaptive=adaptive,
+        floor=float(floor),
+        fixed_threshold=None if threshold is None else float(threshold),
     )
 
 
@@ -215,9 +210,10 @@ class StreamState:
         self._fit_d2 = np.empty(model.vertex_count, dtype=np.float32)
         self.telemetry.bundle = model.label
         # A new bundle has its own error level: the adaptive detector starts over.
-        self.manifold = (ManifoldTracker(ManifoldConfig(floor=model.threshold))
-                         if model.adaptive else None)
-        self.last_threshold = model.threshold
+        self.manifold = (ManifoldTracker(ManifoldConfig(floor=model.floor))
+                         if model.fixed_threshold is None else None)
+        self.last_threshold = (math.inf if model.fixed_threshold is None
+                               else model.fixed_threshold)
 
     def is_stale(self, t_send_ns: int) -> bool:
         """A frame not newer (by the sender's clock) than the last one processed."""
@@ -296,9 +292,8 @@ class StreamState:
             self._fit_d2 = np.empty(predicted.shape[0], np.float32)
         rms, worst = fit_error_posed(predicted, vertices, result.pose, self._fit_buf,
                                      self._fit_d2)
-        if self.manifold is None:  # an explicit threshold, on the RMS
-            off = rms > model.threshold
-            self.last_threshold = model.threshold
+        if self.manifold is None:  # a fixed RMS limit (set in swap)
+            off = rms > self.last_threshold
         else:  # adaptive, on the worst vertex; nothing is flagged during its warm-up
             off = self.manifold.update(worst)
             self.last_threshold = self.manifold.threshold

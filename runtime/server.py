@@ -110,9 +110,11 @@ class Server:
                                           factor=cfg.off_manifold_factor)
                 models[key] = model
             self.streams[s.stream] = StreamState(s, model, cfg.window)
-            log.info("stream %s: bundle %s (%d vertices, %d controls, off-manifold above %.4g)",
-                     s.stream, s.bundle, model.vertex_count, model.bundle.control_count,
-                     model.threshold)
+            rule = (f"fit RMS above {model.fixed_threshold:.4g}"
+                    if model.fixed_threshold is not None
+                    else f"adaptive, floor {model.floor:.4g}")
+            log.info("stream %s: bundle %s (%d vertices, %d controls, off-manifold: %s)",
+                     s.stream, s.bundle, model.vertex_count, model.bundle.control_count, rule)
         for endpoint in (cfg.input, cfg.output):
             if not is_loopback(endpoint):
                 log.warning("binding %s: the server is reachable from the network; keep it on a "

@@ -16,7 +16,7 @@ from rigcast.export.synthetic_bundle import forward_graph, inverse_graph
 from rigcast.runtime.align import RigidTransform
 from rigcast.runtime.bundle import BundleError, load_bundle, write_bundle
 from rigcast.runtime.inference import ForwardModel, InverseModel, open_session
-from rigcast.runtime.manifold import training_fit_error
+from rigcast.runtime.manifold import floor_for_bundle, training_fit_error
 from rigcast.runtime.pipeline import (
     clamp,
     fit_error,
@@ -80,9 +80,12 @@ def test_threshold_comes_from_training_figures_or_the_diagonal(tiny_bundle: Path
                                                                tmp_path: Path) -> None:
     model = load_stream_model(tiny_bundle, threads=1, threshold=None, factor=3.0)
     assert training_fit_error(model.bundle.manifest) == pytest.approx(0.002)
-    assert model.threshold == pytest.approx(0.006)
+    assert model.floor == pytest.approx(0.006) and model.fixed_threshold is None
     explicit = load_stream_model(tiny_bundle, threads=1, threshold=0.5, factor=3.0)
-    assert explicit.threshold == 0.5
+    assert explicit.fixed_threshold == 0.5
+    # No training figure: the floor is 0.1% of the neutral's bounding-box diagonal.
+    diag = float(np.linalg.norm(np.ptp(model.bundle.neutral, axis=0)))
+    assert floor_for_bundle({}, model.bundle.neutral) == pytest.approx(0.001 * diag)
     assert training_fit_error({"training": {"inverse_fit_rms": float("nan")}}) is None
 
 
