@@ -10,7 +10,8 @@ blendshapes forward), then measures, in one run:
    client send -> controls received, p50/p95/p99 (both ends are perf_counter_ns in the client
    process, so no cross-process clock is involved); the server's RSS after warm-up and at the end;
 3. flat out, lockstep: the next frame goes when the previous controls arrive -> max_sustained_fps
-   (frames answered per second, with never more than one frame in flight);
+   (frames answered per second, with never more than one frame in flight); the same loop against
+   the echo process gives ``floor_max_sustained_fps``, the ceiling the transport alone allows;
 4. flat out, free-running: frames sent as fast as the socket takes them for a few seconds; the
    server must keep publishing and its RSS must stay bounded (newest frame wins, no queue). The
    server's own counters (telemetry before and after) say how many frames it received, processed,
@@ -232,6 +233,9 @@ def client_main(args: argparse.Namespace) -> None:
     result["latency_ns"] = lat
     result["lost"] = lost
     Path(args.result).with_suffix(".paced").write_text("done")  # the parent reads RSS now
+    if args.mode == "echo":
+        # the same lockstep loop against a process that does no work: the transport's own ceiling
+        result["max_sustained_fps"] = client.lockstep(args.flat_seconds)
     if args.mode == "server":
         client.recv_controls(None, 200)  # pick up a telemetry message of the paced window
         result["telemetry"] = client.telemetry
@@ -325,7 +329,7 @@ def measure(vertices: int, args: argparse.Namespace, work: Path) -> dict[str, An
     finally:
         server.terminate()
         server.wait(10)
-    f50, _, f99 = ms_percentiles(floor["latency_ns"])
+    f50, f95, f99 = ms_percentiles(floor["latency_ns"])
     p50, p95, p99 = ms_percentiles(res["latency_ns"])
     tel = res.get("telemetry") or {}
     stages = {k: v["p50_ms"] for k, v in tel.get("latency", {}).items()}
@@ -336,7 +340,9 @@ def measure(vertices: int, args: argparse.Namespace, work: Path) -> dict[str, An
         "fps": FPS,
         "fit_error": "after_publish",
         "floor_p50_ms": f50,
+        "floor_p95_ms": f95,
         "floor_p99_ms": f99,
+        "floor_max_sustained_fps": floor["max_sustained_fps"],
         "p50_ms": p50,
         "p95_ms": p95,
         "p99_ms": p99,
@@ -395,7 +401,9 @@ def main() -> None:
                   f"flat out 2 x {args.flat_seconds:.0f} s ...", flush=True)
             run = measure(v, args, Path(tmp))
             runs.append(run)
-            print(f"  floor p50 {run['floor_p50_ms']:.3f} ms | server p50 {run['p50_ms']:.3f} "
+            print(f"  floor (echo) p50 {run['floor_p50_ms']:.3f} p99 {run['floor_p99_ms']:.3f} ms, "
+                  f"lockstep {run['floor_max_sustained_fps']:.0f} fps")
+            print(f"  server p50 {run['p50_ms']:.3f} "
                   f"p95 {run['p95_ms']:.3f} p99 {run['p99_ms']:.3f} ms | ratio "
                   f"{run['ratio_p50_vs_floor']:.2f} | lockstep {run['max_sustained_fps']:.0f} "
                   f"fps | blast sent {run['blast']['sent_fps']:.0f}/s server received "

@@ -27,14 +27,16 @@ def run_bench(script: str, *args: str, timeout: float = 240.0) -> subprocess.Com
 def test_latency_bench_writes_every_named_field(tmp_path: Path) -> None:
     proc = run_bench("latency.py", "--vertices", "1500", "--duration", "2", "--floor-duration", "1",
                      "--flat-seconds", "1", "--no-pin", "--out", str(tmp_path))
-    assert "floor p50" in proc.stdout
+    assert "floor (echo) p50" in proc.stdout
     runs = json.loads((tmp_path / "latency.json").read_text())["runs"]
     assert [r["vertices"] for r in runs] == [1500]
     run = runs[0]
-    for key in ("floor_p50_ms", "p50_ms", "p95_ms", "p99_ms", "ratio_p50_vs_floor",
-                "max_sustained_fps", "rss_growth_mb"):
+    for key in ("floor_p50_ms", "floor_p95_ms", "floor_p99_ms", "floor_max_sustained_fps",
+                "p50_ms", "p95_ms", "p99_ms", "ratio_p50_vs_floor", "max_sustained_fps",
+                "rss_growth_mb"):
         assert isinstance(run[key], float) and math.isfinite(run[key]), key
-    assert run["floor_p50_ms"] > 0
+    assert 0 < run["floor_p50_ms"] <= run["floor_p95_ms"] <= run["floor_p99_ms"]
+    assert run["floor_max_sustained_fps"] > 50
     assert 0 < run["p50_ms"] <= run["p95_ms"] <= run["p99_ms"]
     assert math.isclose(run["ratio_p50_vs_floor"], run["p50_ms"] / run["floor_p50_ms"], rel_tol=1e-6)
     assert run["fit_error"] != "off", "the paced run must keep the fit-error telemetry on"
@@ -64,6 +66,10 @@ def test_quality_bench_quick_run_writes_report_json_and_plots(tmp_path: Path) ->
     for key in QUALITY_FIELDS:
         assert isinstance(entry[key], float) and math.isfinite(entry[key]) and entry[key] >= 0, key
     assert entry["truth_active"] > 0 and entry["build_seconds"] > 0
+    jitter = entry["acceptance"]["inverse_jitter <= 0.3 x optim_jitter"]
+    assert jitter["limit"] == 0.3 * entry["optim_jitter"]
+    assert jitter["truth"] == entry["truth_jitter"]
+    assert jitter["truth_passes"] is (entry["truth_jitter"] <= jitter["limit"])
     report = (tmp_path / "quality.md").read_text()
     assert "arm" in report
     pngs = sorted(p.name for p in tmp_path.glob("*.png"))
