@@ -46,6 +46,10 @@ TOPIC_TELEMETRY = b"tel."
 TOPIC_EVENTS = b"evt"
 MAX_STREAM_BYTES = 255
 MAX_HEADER_BYTES = 4096
+# Server -> client headers (schema replies, telemetry) grow with the control count: a schema reply
+# for the 46-control demo face is about 4.3 kB. Clients cap them far higher than the server caps
+# what it receives.
+MAX_REPLY_HEADER_BYTES = 1 << 20
 _U64 = 2**64
 _I64 = 2**63
 _F32 = np.dtype("<f4")
@@ -429,7 +433,7 @@ def decode_controls(frames: Sequence[Any]) -> ControlsMessage:
     if len(frames) != 3:
         raise FrameError("malformed", f"a controls message has 3 frames, got {len(frames)}")
     topic = bytes(frames[0])
-    header = decode_header(frames[1])
+    header = decode_header(frames[1], max_header_bytes=MAX_REPLY_HEADER_BYTES)
     if header["type"] != "controls":
         raise FrameError("malformed", f"expected controls, got {header['type']!r}")
     stream = header["stream"]
@@ -456,7 +460,7 @@ def decode_published(frames: Sequence[Any]) -> ControlsMessage | dict[str, Any]:
         return decode_controls(frames)
     if len(frames) != 2:
         raise FrameError("malformed", f"telemetry and events have 2 frames, got {len(frames)}")
-    header = decode_header(frames[1])
+    header = decode_header(frames[1], max_header_bytes=MAX_REPLY_HEADER_BYTES)
     expected = {"telemetry": lambda h: _topic(TOPIC_TELEMETRY, h["stream"]),
                 "event": lambda h: TOPIC_EVENTS}.get(header["type"])
     if expected is None or topic != expected(header):
@@ -466,7 +470,7 @@ def decode_published(frames: Sequence[Any]) -> ControlsMessage | dict[str, Any]:
 
 def decode_reply(raw: bytes | memoryview) -> dict[str, Any]:
     """A one-frame reply on the DEALER (schema_reply, reload_reply or error)."""
-    header = decode_header(raw)
+    header = decode_header(raw, max_header_bytes=MAX_REPLY_HEADER_BYTES)
     if header["type"] not in ("schema_reply", "reload_reply", "error"):
         raise FrameError("malformed", f"expected a reply, got {header['type']!r}")
     return header

@@ -104,6 +104,20 @@ def test_schema_request_reply_and_negotiation() -> None:
     assert P.schema_from_reply(reply) == schema
 
 
+def test_client_reads_schema_replies_larger_than_the_request_cap() -> None:
+    """A schema reply grows with the control count (the 46-control demo face gives about 4.3 kB);
+    the request cap (4,096 bytes) binds what the server reads, not what clients read."""
+    schema = ControlSchema(tuple(Control(f"ctl_{i:03d}_long_descriptive_name", -1.0, 1.0, 0.0,
+                                         group=f"group_{i // 4}") for i in range(120)))
+    raw = P.encode_schema_reply("tamsin", schema, bundle="/bundles/tamsin.rcb", bundle_version=1,
+                                fingerprint="0123456789abcdef", vertices=20_000)
+    assert len(raw) > P.MAX_HEADER_BYTES
+    with pytest.raises(P.FrameError) as info:
+        P.decode_header(raw)
+    assert info.value.reason == "oversize"
+    assert P.schema_from_reply(P.decode_reply(raw)) == schema
+
+
 def test_reload_error_telemetry_event_round_trips() -> None:
     req = P.decode_header(P.encode_reload_request("tamsin", "/tmp/new.rcb"))
     assert (req["type"], req["bundle"]) == ("reload", "/tmp/new.rcb")
