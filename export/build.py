@@ -285,7 +285,11 @@ def _build(
     timings: dict[str, float] = {}
     t = time.perf_counter()
     sconf = SamplingConfig(count=config.samples, sparsity=config.sparsity, seed=config.seed)
-    ds_dir = ds_root / f"{rig.name or 'rig'}-{rig_fp}-{config.samples}-{config.seed}"
+    # The folder is keyed by everything the samples depend on (count, seed, sparsity, method,
+    # chunking), so a changed sampling config resamples instead of refusing the old folder.
+    sconf_key = hashlib.sha256(json.dumps(sconf.to_dict(), sort_keys=True, default=str)
+                               .encode()).hexdigest()[:8]
+    ds_dir = ds_root / f"{rig.name or 'rig'}-{rig_fp}-{config.samples}-{config.seed}-{sconf_key}"
     report = (lambda d, n: progress("sample", d, n)) if progress is not None else None
     with make_executor(config.workers, config.scheduler) as executor:
         dataset = sample_dataset(rig, ds_dir, sconf, executor=executor, progress=report)
@@ -375,7 +379,7 @@ def _finish(
     motion: np.ndarray | None,
 ) -> BuildResult:
     """Export, write, re-load and check; cache the bundle and checkpoint."""
-    from rigcast.export.models import save_checkpoint
+    from rigcast.export.models import EDGE_MARGIN, REST_BAND, save_checkpoint
     from rigcast.export.onnx_export import OPSET, export_forward, export_inverse
 
     t = time.perf_counter()
@@ -408,7 +412,9 @@ def _finish(
         "normalisation": {
             "controls": "u = (c - min) / (max - min) into the forward model",
             "inverse_input": "(mesh - neutral[input_indices]) / input_scale",
-            "inverse_output": "min + (max - min) * sigmoid(z)",
+            "inverse_output": "min + (max - min) * rest_band(clip((1 + 2m) sigmoid(z) - m, 0, 1))",
+            "edge_margin_m": EDGE_MARGIN,
+            "rest_band_b": REST_BAND,
             "input_scale": inv_rep.input_scale,
             "diagonal": diag,
         },

@@ -202,8 +202,18 @@ def parse_bundle(blobs: Mapping[str, bytes], path: Path | None = None) -> Bundle
     try:
         with np.load(io.BytesIO(blobs["arrays.npz"]), allow_pickle=False) as npz:
             arrays = {k: npz[k] for k in ("neutral", "faces", "stable_indices", "input_indices")}
-    except (KeyError, ValueError, OSError) as exc:
+    except (KeyError, ValueError, OSError, EOFError, zipfile.BadZipFile) as exc:
         raise BundleError(f"{where}: arrays.npz is unreadable ({exc})") from None
+    for name, kinds in (("neutral", "fiu"), ("faces", "iu"), ("stable_indices", "iu"),
+                        ("input_indices", "iu")):
+        if arrays[name].dtype.kind not in kinds:
+            wanted = "numbers" if name == "neutral" else "integers"
+            raise BundleError(f"{where}: {name} must hold {wanted}, has dtype {arrays[name].dtype}")
+    if arrays["faces"].size and int(arrays["faces"].max()) > np.iinfo(np.int32).max:
+        raise BundleError(f"{where}: faces index beyond int32")
+    for key in ("fingerprint", "versions"):
+        if key in manifest and not isinstance(manifest[key], dict):
+            raise BundleError(f"{where}: manifest {key!r} must be an object")
     neutral = arrays["neutral"].astype(np.float32, copy=False)
     faces = arrays["faces"].astype(np.int32, copy=False)
     stable = arrays["stable_indices"].astype(np.int64, copy=False)
@@ -245,8 +255,14 @@ def _check_arrays(
         )
     if not np.all(np.isfinite(neutral)):
         raise BundleError(f"{where}: neutral mesh has NaN or Inf")
+    if faces.ndim != 2 or faces.shape[1] != 3:
+        raise BundleError(f"{where}: faces must be (F, 3) triangles, got {faces.shape}")
     if faces.size and (faces.min() < 0 or faces.max() >= n_vertices):
         raise BundleError(f"{where}: faces index outside 0..{n_vertices - 1}")
+    for key, count in (("face_count", faces.shape[0]), ("stable_count", stable.shape[0]),
+                       ("input_count", inputs.shape[0])):
+        if key in manifest and manifest[key] != count:
+            raise BundleError(f"{where}: manifest says {key} {manifest[key]!r}, arrays have {count}")
     for label, idx, minimum in (("stable_indices", stable, 3), ("input_indices", inputs, 1)):
         if idx.ndim != 1 or idx.shape[0] < minimum:
             raise BundleError(f"{where}: {label} must be 1-D with at least {minimum} entries")
@@ -254,3 +270,14 @@ def _check_arrays(
             raise BundleError(f"{where}: {label} index outside 0..{n_vertices - 1}")
         if np.unique(idx).shape[0] != idx.shape[0]:
             raise BundleError(f"{where}: {label} has repeated entries")
+    _check_stable_spread(neutral[stable], where)
+
+
+def _check_stable_spread(points: np.ndarray, where: str) -> None:
+    """points (S, 3): the stable vertices must span a plane at least, or every frame's rigid
+    alignment is undefined (coincident or collinear points leave a rotation free)."""
+    centred = points.astype(np.float64) - points.mean(axis=0)
+    sv = np.linalg.svd(centred, compute_uv=False)
+    if sv[0] == 0.0 or sv[1] < 1e-6 * sv[0]:
+        raise BundleError(f"{where}: stable vertices are coincident or collinear; head "
+                          "stabilisation needs them spread over a surface")

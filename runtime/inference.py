@@ -9,7 +9,7 @@ bundle when the session opens, so a mismatched graph fails at startup, not on th
 from __future__ import annotations
 
 import logging
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 
 import numpy as np
 import onnxruntime as ort
@@ -83,6 +83,36 @@ def _check_io(
                                   f"expected (N, {', '.join(map(str, tail))})")
 
 
+def _warm_up(graph: str, run: Callable[[np.ndarray], np.ndarray], x: np.ndarray) -> np.ndarray:
+    """One run at open: a graph that cannot run (a fixed batch size, a bad kernel) fails here as
+    BundleError, at startup or reload, never on the first frame."""
+    try:
+        return run(x)
+    except ORT_ERRORS as exc:
+        raise BundleError(f"the {graph} graph does not run on a batch of 1: {exc}") from None
+
+
+# Forward graphs are trained to reproduce the neutral at the defaults to well under 1% of the
+# bounding-box diagonal; 5% tells a graph of another rig with the same sizes from a merely
+# imprecise one (a margin of our choosing, no published source).
+REST_TOLERANCE_FRACTION = 0.05
+
+
+def check_forward_rest(rest: np.ndarray, neutral: np.ndarray) -> None:
+    """rest (V, 3): the forward graph at the defaults; neutral (V, 3). BundleError when their mean
+    vertex distance exceeds REST_TOLERANCE_FRACTION of the neutral's bounding-box diagonal."""
+    if not np.isfinite(rest).all():
+        raise BundleError("forward graph returns NaN or Inf at the default controls")
+    diag = float(np.linalg.norm(neutral.max(axis=0) - neutral.min(axis=0)))
+    mean = float(np.linalg.norm(rest.astype(np.float64) - neutral, axis=1).mean())
+    if mean > REST_TOLERANCE_FRACTION * diag:
+        raise BundleError(f"forward graph at the default controls is {mean:.4g} mesh units from "
+                          f"the bundle's neutral on average ({100 * mean / diag:.1f}% of the "
+                          f"diagonal, limit {100 * REST_TOLERANCE_FRACTION:.0f}%): the graph "
+                          "belongs to another rig, or the rig's neutral is not its pose at the "
+                          "defaults")
+
+
 class InverseModel:
     """The bundle's inverse graph: mesh subset (N, K, 3) -> controls (N, C)."""
 
@@ -92,9 +122,12 @@ class InverseModel:
         self.session = open_session(bundle.inverse_onnx, threads=threads)
         _check_io(self.session, "inverse", INVERSE_INPUT, (self.k, 3), INVERSE_OUTPUT, (self.c,))
         self._outputs = [INVERSE_OUTPUT]
-        out = self.solve(np.asarray(bundle.neutral[bundle.input_indices], np.float32)[None])
+        out = _warm_up("inverse", self.solve,
+                       np.asarray(bundle.neutral[bundle.input_indices], np.float32)[None])
         if out.shape != (1, self.c):
             raise BundleError(f"inverse graph returned shape {out.shape}, expected (1, {self.c})")
+        if not np.isfinite(out).all():
+            raise BundleError("inverse graph returns NaN or Inf on the neutral mesh")
 
     def solve(self, mesh_subset: np.ndarray) -> np.ndarray:
         """mesh_subset (N, K, 3) float32 -> controls (N, C) float32."""
@@ -111,10 +144,11 @@ class ForwardModel:
         self.session = open_session(bundle.forward_onnx, threads=threads)
         _check_io(self.session, "forward", FORWARD_INPUT, (self.c,), FORWARD_OUTPUT, (self.v, 3))
         self._outputs = [FORWARD_OUTPUT]
-        out = self.evaluate(bundle.schema.defaults[None])
+        out = _warm_up("forward", self.evaluate, bundle.schema.defaults[None])
         if out.shape != (1, self.v, 3):
             raise BundleError(f"forward graph returned shape {out.shape}, "
                               f"expected (1, {self.v}, 3)")
+        check_forward_rest(out[0], bundle.neutral)
 
     def evaluate(self, controls: np.ndarray) -> np.ndarray:
         """controls (N, C) float32 -> vertices (N, V, 3) float32."""
