@@ -37,6 +37,8 @@ from pathlib import Path
 from typing import Any, Literal, get_args, get_origin
 from urllib.parse import urlsplit
 
+from rigcast.runtime.protocol import MAX_STREAM_BYTES
+
 FitErrorMode = Literal["after_publish", "every_n", "off"]
 
 
@@ -83,8 +85,8 @@ class StreamConfig:
         where = f"streams.{self.stream}"
         if not self.stream or not isinstance(self.stream, str):
             raise ConfigError(f"stream id must be a non-empty string, got {self.stream!r}")
-        if len(self.stream.encode()) > 64:
-            raise ConfigError(f"{where}: stream id longer than 64 bytes")
+        if len(self.stream.encode()) > MAX_STREAM_BYTES:
+            raise ConfigError(f"{where}: stream id longer than {MAX_STREAM_BYTES} bytes (UTF-8)")
         for name in ("min_cutoff", "d_cutoff", "gap_ms"):
             _positive(getattr(self, name), f"{where}.{name}")
         _non_negative(self.beta, f"{where}.beta")

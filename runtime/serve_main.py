@@ -130,9 +130,12 @@ def main(argv: Sequence[str] | None = None) -> int:
     logging.basicConfig(level=args.log_level, format="%(asctime)s %(name)s %(message)s")
     try:
         return run(config_from_args(args), ready_file=args.ready_file)
-    except (ConfigError, BundleError, BindError) as exc:
-        sys.stderr.write(f"rigcast serve: {exc}\n")
+    except ConfigError as exc:  # usage, as in `rigcast serve`
+        sys.stderr.write(f"rigcast: error: serve: {exc}\n")
         return 2
+    except (BundleError, BindError) as exc:  # the work failed
+        sys.stderr.write(f"rigcast: error: serve: {exc}\n")
+        return 1
 
 
 if __name__ == "__main__":

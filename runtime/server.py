@@ -379,6 +379,11 @@ class Server:
                 self._reloads.put((identity, stream, model))
             except (BundleError, SchemaError, OSError, ValueError, KeyError) as exc:
                 self._reloads.put((identity, stream, str(exc)))
+            except Exception as exc:  # the worker must always answer
+                # Without an answer the stream would refuse every later reload as in progress.
+                log.exception("stream %s: reload of %s failed unexpectedly", stream, path)
+                self._reloads.put((identity, stream, f"unexpected {type(exc).__name__} while "
+                                   f"loading {path}: {exc}"))
 
         threading.Thread(target=work, name=f"reload-{stream}", daemon=True).start()
         log.info("stream %s: loading %s in the background", stream, path)

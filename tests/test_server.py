@@ -487,3 +487,24 @@ def test_non_loopback_bind_without_the_flag_is_refused(tiny_bundle: Path) -> Non
         capture_output=True, text=True, timeout=60, check=False)
     assert proc.returncode == 2
     assert "not a loopback address" in proc.stderr and "--allow-remote" in proc.stderr
+
+
+def test_new_streams_are_served_up_to_the_limit_even_with_long_ids(tiny_bundle: Path) -> None:
+    """accept_any_stream: any id the protocol allows (up to 255 bytes) gets its own stream, up to
+    max_streams; one more is refused as unknown_stream, and the server keeps serving."""
+    rig = tiny_rig(TINY)
+    mesh = rig_mesh(rig, np.full(TINY["controls"], 0.3))
+    long_id = "actor-" + "x" * 240  # 246 bytes
+    config = server_config({"a": tiny_bundle}, accept_any_stream=True, max_streams=2)
+    with running_server(config) as server, peer_for(server) as peer:
+        t0 = time.time_ns()
+        peer.dealer.send_multipart(protocol.encode_mesh(long_id, 0, t0, mesh))
+        got = controls_of(peer, long_id, 1)
+        assert len(got) == 1 and got[0].stream == long_id
+        peer.dealer.send_multipart(protocol.encode_mesh("one-too-many", 0, t0, mesh))
+        reply = peer.recv_reply(3.0)
+        assert reply is not None
+        err = protocol.decode_reply(reply)
+        assert err["reason"] == "unknown_stream" and "maximum of 2 streams" in err["message"]
+        peer.dealer.send_multipart(protocol.encode_mesh("a", 0, t0, mesh))
+        assert len(controls_of(peer, "a", 1)) == 1, "server stopped serving after a refusal"
