@@ -193,8 +193,9 @@ def _read_chunk(path: Path, rows: int, c: int, v: int,
             raise DatasetError(
                 f"chunk {path}: {name} is {a.dtype}{a.shape}, expected float32{shape}"
             )
-    if not np.all(np.isfinite(vertices)):
-        raise DatasetError(f"chunk {path}: vertices contain NaN or Inf")
+    for name, a in (("controls", controls), ("vertices", vertices)):
+        if not np.all(np.isfinite(a)):
+            raise DatasetError(f"chunk {path}: {name} contain NaN or Inf")
     return controls, vertices, digest
 
 
@@ -292,7 +293,11 @@ def sample_dataset(rig: Rig, out_dir: Path, config: SamplingConfig | None = None
     if (out_dir / MANIFEST).exists():
         old = _read_manifest(out_dir)
         _check_same_run(out_dir, old, manifest)
-        listed = {int(e["index"]): e for e in old.get("chunks", [])}
+        try:
+            listed = {int(e["index"]): e for e in old.get("chunks", [])}
+        except (KeyError, TypeError, ValueError) as exc:
+            raise DatasetError(f"{out_dir / MANIFEST} has a malformed chunk entry ({exc!r}); "
+                               "delete the folder to resample") from None
     else:
         listed = {}
     for stray in out_dir.glob("*.tmp-*"):

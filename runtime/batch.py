@@ -405,7 +405,13 @@ class BatchSolver:
                                         scale=opts.stabilise_scale)
                 inputs = rigid.apply(inputs)
                 align_rms[i0 : i0 + bs] = np.sqrt(rigid.mse)
-            raw[i0 : i0 + bs] = self.inverse.solve(np.ascontiguousarray(inputs, np.float32))
+            solved = self.inverse.solve(np.ascontiguousarray(inputs, np.float32))
+            if not np.isfinite(solved).all():
+                # Finite but extreme input can overflow inside the graph (as on the live path).
+                bad = int(np.argmin(np.isfinite(solved).all(axis=1)))
+                raise BatchError(f"frame {i0 + bad}: the inverse returned NaN or Inf (the mesh "
+                                 "is far outside anything the bundle was trained on)")
+            raw[i0 : i0 + bs] = solved
             return rigid
 
         def predict(controls: np.ndarray) -> np.ndarray:

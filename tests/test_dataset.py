@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 from pathlib import Path
@@ -252,3 +253,26 @@ def test_make_executor_rejects_bad_settings():
         pass
     with pytest.raises(ExecutorError, match="scheduler"), make_executor(scheduler=""):
         pass
+
+
+def test_a_malformed_manifest_entry_or_nan_controls_are_dataset_errors(reference: Dataset):
+    assert reference.path is not None
+    out = reference.path
+    manifest = json.loads((out / "manifest.json").read_text())
+    entry = manifest["chunks"][1]
+    # NaN controls in a chunk whose checksum matches: caught by the contents check.
+    chunk = out / entry["file"]
+    with np.load(chunk) as z:
+        controls, vertices = z["controls"].copy(), z["vertices"]
+    controls[0, 0] = np.nan
+    np.savez(chunk, controls=controls, vertices=vertices)
+    entry["sha256"] = hashlib.sha256(chunk.read_bytes()).hexdigest()
+    (out / "manifest.json").write_text(json.dumps(manifest))
+    with pytest.raises(DatasetError, match="controls contain NaN or Inf"):
+        load_dataset(out)
+    # A chunk entry without its index: resuming names the manifest instead of a KeyError.
+    del manifest["chunks"][0]["index"]
+    manifest["complete"] = False
+    (out / "manifest.json").write_text(json.dumps(manifest))
+    with pytest.raises(DatasetError, match="malformed chunk entry"):
+        sample_dataset(CountingRig(), out, CONFIG, executor=SerialExecutor())
