@@ -13,9 +13,10 @@ import textwrap
 import warnings
 from collections.abc import Callable, Sequence
 from pathlib import Path
+from typing import NoReturn
 
 from rigcast import __version__
-from rigcast.errors import EXIT_OK, run_guarded
+from rigcast.errors import EXIT_OK, EXIT_USAGE, run_guarded
 
 log = logging.getLogger(__name__)
 
@@ -59,6 +60,17 @@ class _Formatter(argparse.RawDescriptionHelpFormatter):
 
 
 Handler = Callable[[argparse.Namespace], int]
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse with the CLI's one error line instead of a usage block:
+    ``rigcast: error: solve: <what argparse found> — run `rigcast solve --help` for the usage``."""
+
+    def error(self, message: str) -> NoReturn:
+        where = self.prog.removeprefix("rigcast").strip()
+        what = f"{where}: {message}" if where else message
+        self.exit(EXIT_USAGE, f"rigcast: error: {' '.join(what.split())} — run "
+                              f"`{self.prog} --help` for the usage\n")
 
 
 def _wrap(text: str) -> str:
@@ -189,9 +201,9 @@ def _add_send(subs: argparse._SubParsersAction) -> None:
 def _add_watch(subs: argparse._SubParsersAction) -> None:
     p = _sub(
         subs, "watch", "live telemetry view in the terminal",
-        "Subscribe to a server's telemetry and show it live: per-stage latency p50 and p99, input "
-        "fps, drops and rejects by reason, fit error with off-manifold frames highlighted, and the "
-        "most active controls as bars. Ctrl-C ends it.",
+        "Subscribe to a server's telemetry and show it live: per-stage latency p50, p95 and p99 "
+        "(p50 and p99 with --plain), input fps, drops and rejects by reason, fit error with "
+        "off-manifold frames highlighted, and the most active controls as bars. Ctrl-C ends it.",
         "  rigcast watch\n"
         "  rigcast watch --from tcp://127.0.0.1:6001 --stream actor2\n"
         "  rigcast watch --once          # one snapshot, then exit (scripts, CI)\n"
@@ -295,12 +307,12 @@ def _add_demo(subs: argparse._SubParsersAction) -> None:
 
 
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(prog="rigcast", description=_DESCRIPTION, epilog=_EPILOG,
-                                     formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser = _Parser(prog="rigcast", description=_DESCRIPTION, epilog=_EPILOG,
+                     formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--version", action="version", version=f"rigcast {__version__}")
     parser.add_argument("-v", "--verbose", action="count", default=0,
                         help="more log output (-vv for debug)")
-    subs = parser.add_subparsers(dest="command", metavar="COMMAND")
+    subs = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     for add in (_add_demo, _add_build, _add_inspect, _add_serve, _add_send, _add_watch,
                 _add_record, _add_solve):
         add(subs)

@@ -276,12 +276,15 @@ def send_from_args(args: argparse.Namespace) -> int:
     from rigcast.takes import read_take
     from rigcast.watch import stream_or_discover
 
-    take = read_take(args.take, fps=args.fps)
-    fps = float(args.fps or take.fps)
-    stream = stream_or_discover(args.stream, args.source, args.timeout)
+    # Every option is checked before the take is read or a server is asked.
+    if args.fps is not None and not (math.isfinite(args.fps) and args.fps > 0):
+        raise RehearsalError(f"--fps must be a positive number, got {args.fps}")
     rehearsal = Rehearsal(head_motion=args.head_motion, noise=args.noise,
                           drop_rate=args.drop_rate, corrupt_rate=args.corrupt_rate,
                           seed=args.seed)
+    take = read_take(args.take, fps=args.fps)
+    fps = float(args.fps or take.fps)
+    stream = stream_or_discover(args.stream, args.source, args.timeout)
     with MeshSender(args.to) as sender:
         reply = check_server(sender, stream, take.vertex_count, args.timeout, args.to)
         log.info("server at %s serves %s for stream %s", args.to, reply.get("bundle"), stream)

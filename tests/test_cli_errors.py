@@ -172,10 +172,23 @@ def test_bad_rehearsal_option(tmp_path: Path) -> None:
                    f"tcp://127.0.0.1:{free_port()}", "--timeout", "0.3")
     line = error_line(proc, EXIT_USAGE)  # checked before any server is asked
     assert "drop_rate" in line and "1.5" in line
+    # Without --stream the server would be asked for one first; bad options still come first.
+    t0 = time.monotonic()
+    proc = rigcast("send", str(take), "--fps", "0", "--to", f"tcp://127.0.0.1:{free_port()}",
+                   "--timeout", "5")
+    line = error_line(proc, EXIT_USAGE)
+    assert "--fps must be a positive number, got 0" in line
+    assert time.monotonic() - t0 < 4.5, "the option was checked after waiting for a server"
 
 
 def test_usage_error_is_exit_2() -> None:
     proc = rigcast("solve")
     assert proc.returncode == EXIT_USAGE
     assert "Traceback" not in proc.stderr
-    assert "usage: rigcast solve" in proc.stderr
+    # One line, naming what is missing and where the usage is.
+    line = error_line(proc, EXIT_USAGE)
+    assert "solve: the following arguments are required: bundle, take" in line
+    assert "`rigcast solve --help`" in line
+    bad = rigcast("serve", "--max-streams", "abc")
+    line = error_line(bad, EXIT_USAGE)
+    assert "argument --max-streams: invalid int value: 'abc'" in line

@@ -1,4 +1,4 @@
-"""The runtime must never pull in torch or the offline half (DEVELOPERS.md, 'Data flows one way')."""
+"""The runtime must never pull in torch or the offline half (DEVELOPERS.md, 'Layout and data flow')."""
 
 from __future__ import annotations
 
