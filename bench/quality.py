@@ -40,6 +40,7 @@ from rigcast.export.rig import Rig
 from rigcast.export.sampling import SparsityConfig, sample_controls
 from rigcast.export.take_synth import SynthTake, synth_take
 from rigcast.runtime.bundle import INVERSE_INPUT, Bundle, load_bundle
+from rigcast.runtime.config import StreamConfig
 from rigcast.runtime.one_euro import OneEuroFilter, OneEuroParams
 from rigcast.runtime.schema import ControlSchema
 
@@ -127,11 +128,11 @@ def solve_inverse(bundle: Bundle, observed: np.ndarray) -> Solved:
 
 def filter_controls(controls: np.ndarray, times_s: np.ndarray, schema: ControlSchema) -> np.ndarray:
     """(T, C) -> (T, C) through the live server's default One Euro filter (runtime/config.py:
-    min_cutoff 1 Hz, beta 0.5, d_cutoff 1 Hz, for controls spanning about 0..1); beta is divided by
-    each control's range so that controls in degrees get the same filter as weights in 0..1."""
-    span = (schema.upper - schema.lower).astype(np.float64)
-    c = len(schema)
-    filt = OneEuroFilter(OneEuroParams(np.full(c, 1.0), 0.5 / span, np.full(c, 1.0)))
+    min_cutoff 1 Hz, beta 10 per unit of each control's range, d_cutoff 1 Hz), built the way the
+    server builds it (runtime/pipeline.py make_filter)."""
+    cfg = StreamConfig(stream="quality", bundle=Path("unused"))
+    params = OneEuroParams.uniform(len(schema), cfg.min_cutoff, cfg.beta, cfg.d_cutoff)
+    filt = OneEuroFilter(params.per_unit_range(schema.upper - schema.lower))
     out = [
         filt(c, round(t * 1e9), frame=i)
         for i, (c, t) in enumerate(zip(controls, times_s, strict=True))

@@ -261,8 +261,11 @@ def _add_solve(subs: argparse._SubParsersAction) -> None:
     p.add_argument("--fps", type=float, default=None,
                    help="frame rate of the take, when the file does not carry one")
     p.add_argument("--no-stabilise", action="store_true", help="do not remove rigid head motion")
-    p.add_argument("--min-cutoff", type=float, default=1.0, help="One Euro minimum cutoff, Hz")
-    p.add_argument("--beta", type=float, default=0.5, help="One Euro speed coefficient")
+    p.add_argument("--min-cutoff", type=float, default=1.0,
+                   help="One Euro minimum cutoff, Hz (as `rigcast serve`)")
+    p.add_argument("--beta", type=float, default=10.0,
+                   help="One Euro speed coefficient per unit of each control's range "
+                        "(as `rigcast serve`)")
     p.add_argument("--smooth-hz", type=float, default=3.0,
                    help="cutoff of the zero-phase smoother (--filter smooth), Hz")
     p.add_argument("--fit-error", choices=("subset", "full", "off"), default="subset",
@@ -380,9 +383,8 @@ def _cmd_solve(args: argparse.Namespace) -> int:
     from rigcast.animation_out import morph_basis, write_controls
     from rigcast.errors import MismatchError
     from rigcast.forward_subset import slice_forward_graph
-    from rigcast.runtime.batch import BatchSolver, FilterKind, SolveOptions
+    from rigcast.runtime.batch import BatchSolver, FilterKind, SolveOptions, filter_params
     from rigcast.runtime.bundle import load_bundle
-    from rigcast.runtime.one_euro import OneEuroParams
     from rigcast.takes import read_take
 
     bundle = load_bundle(args.bundle)
@@ -396,8 +398,7 @@ def _cmd_solve(args: argparse.Namespace) -> int:
     # Cutting the forward graph needs `import onnx` (a second or two); it pays off on long takes.
     cutter = slice_forward_graph if take.vertices.shape[0] >= _CUT_MIN_FRAMES else None
     solver = BatchSolver(bundle, subset_graph=cutter)
-    params = OneEuroParams.uniform(bundle.control_count, min_cutoff=args.min_cutoff,
-                                   beta=args.beta, d_cutoff=1.0)
+    params = filter_params(bundle, args.min_cutoff, args.beta)
     kinds: dict[str, FilterKind] = {"none": "none", "causal": "causal", "smooth": "zero_phase"}
     options = SolveOptions(stabilise=not args.no_stabilise, filter=kinds[args.filter],
                            params=params,

@@ -157,9 +157,22 @@ def all_cores() -> int:
         return os.cpu_count() or 1
 
 
+DEFAULT_MIN_CUTOFF, DEFAULT_BETA, DEFAULT_D_CUTOFF = 1.0, 10.0, 1.0  # as runtime/config.py
+
+
 def default_params(bundle: Bundle) -> OneEuroParams:
-    """The live server's default One Euro settings (runtime/config.py StreamConfig)."""
-    return OneEuroParams.uniform(bundle.control_count, min_cutoff=1.0, beta=0.5, d_cutoff=1.0)
+    """The live server's default One Euro settings (runtime/config.py StreamConfig), with beta
+    per unit of each control's range."""
+    return filter_params(bundle, DEFAULT_MIN_CUTOFF, DEFAULT_BETA, DEFAULT_D_CUTOFF)
+
+
+def filter_params(bundle: Bundle, min_cutoff: float, beta: float,
+                  d_cutoff: float = 1.0) -> OneEuroParams:
+    """Uniform One Euro settings for a bundle's controls; beta per unit of each control's range,
+    as on the live server."""
+    schema = bundle.schema
+    return OneEuroParams.uniform(bundle.control_count, min_cutoff, beta, d_cutoff
+                                 ).per_unit_range(schema.upper - schema.lower)
 
 
 @dataclass(frozen=True)

@@ -14,7 +14,7 @@ TOML layout::
     [streams.actor1]
     bundle = "face.rcb"                  # relative paths are relative to the TOML file
     min_cutoff = 1.0
-    beta = 0.5
+    beta = 10.0                          # per unit of each control's range
 
     [streams.actor1.groups.brow]         # per-group One Euro overrides
     min_cutoff = 0.5
@@ -66,10 +66,12 @@ class StreamConfig:
 
     stream: str
     bundle: Path
-    # One Euro defaults are a starting point of ours for controls spanning about 0..1 (tune them
-    # with the procedure in the README); d_cutoff = 1 Hz follows Casiez et al. 2012.
+    # One Euro defaults are a starting point of ours, measured on the demo takes (README, "Tuning
+    # the filter"); tune them with the procedure given there. d_cutoff = 1 Hz follows Casiez et al. 2012.
+    # beta is per unit of each control's range, so it means the same for weights and angles.
     min_cutoff: float = _flag("One Euro minimum cutoff in Hz (lower = smoother when slow)", 1.0)
-    beta: float = _flag("One Euro speed coefficient (higher = less lag when fast)", 0.5)
+    beta: float = _flag("One Euro speed coefficient per unit of each control's range "
+                        "(higher = less lag when fast)", 10.0)
     d_cutoff: float = _flag("One Euro cutoff for the derivative, in Hz", 1.0)
     passthrough: bool = _flag("publish the solved controls unfiltered (still clamped)", False)
     gap_ms: float = _flag("reset the filter after this long without frames, in ms", 250.0)

@@ -66,6 +66,15 @@ class OneEuroParams:
     def __len__(self) -> int:
         return int(self.min_cutoff.shape[0])
 
+    def per_unit_range(self, span: np.ndarray) -> OneEuroParams:
+        """These parameters with beta read as "per unit of each control's range": span (C,) > 0,
+        the controls' max - min. fc = min_cutoff + beta |dx̂| has beta in 1 / (control unit), so
+        dividing by the range lets one beta serve weights in 0..1 and angles in degrees alike."""
+        span = np.asarray(span, dtype=np.float64).reshape(-1)
+        if span.shape != self.beta.shape or not np.all(np.isfinite(span) & (span > 0)):
+            raise FilterError(f"control ranges must be {len(self)} finite values > 0")
+        return OneEuroParams(self.min_cutoff, self.beta / span, self.d_cutoff)
+
     @classmethod
     def uniform(
         cls, count: int, min_cutoff: float = 1.0, beta: float = 0.0, d_cutoff: float = 1.0

@@ -181,6 +181,7 @@ def make_filter(config: StreamConfig, model: StreamModel) -> OneEuroFilter:
     groups = {g.group: (g.min_cutoff, g.beta, g.d_cutoff) for g in config.groups}
     params = (OneEuroParams.per_group(schema, groups, default) if groups
               else OneEuroParams.uniform(len(schema), *default))
+    params = params.per_unit_range(schema.upper - schema.lower)
     return OneEuroFilter(params, passthrough=config.passthrough,
                          gap_ns=int(config.gap_ms * 1e6))
 

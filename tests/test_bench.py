@@ -75,6 +75,14 @@ def test_quality_bench_quick_run_writes_report_json_and_plots(tmp_path: Path) ->
     pngs = sorted(p.name for p in tmp_path.glob("*.png"))
     assert len(pngs) >= 2, pngs
     assert all((tmp_path / p).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" for p in pngs)
+    # The filter grid reuses those bundles: more beta, less lag (error) and less smoothing.
+    grid_dir = tmp_path / "grid"
+    run_bench("filter_grid.py", "--bundles", str(tmp_path / "bundles"), "--rigs", "arm",
+              "--min-cutoff", "1", "--beta", "0.5,40", "--out", str(grid_dir))
+    grid = json.loads((grid_dir / "filter_grid.json").read_text())["rigs"]["arm"]["grid"]
+    slow, fast = sorted(grid, key=lambda g: g["beta"])
+    assert fast["mean_err"] < slow["mean_err"] and fast["jitter"] > slow["jitter"]
+    assert (grid_dir / "filter_grid.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
 
 
 def test_batch_bench_synthetic_run_writes_fps_frames_and_fit_error_mode(tmp_path: Path) -> None:

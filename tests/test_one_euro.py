@@ -145,6 +145,22 @@ def test_higher_beta_lags_less_on_a_ramp() -> None:
     assert lags[0] > lags[1] > lags[2] > 0
 
 
+def test_beta_per_unit_range_filters_a_control_the_same_in_any_unit() -> None:
+    """The same motion as a weight in 0..1 and as an angle in -40..40 degrees: with beta read per
+    unit of range, the filtered angle is the filtered weight mapped to degrees."""
+    lo, hi = np.array([0.0, -40.0]), np.array([1.0, 40.0])
+    params = OneEuroParams.uniform(2, min_cutoff=1.0, beta=10.0).per_unit_range(hi - lo)
+    np.testing.assert_allclose(params.beta, [10.0, 10.0 / 80.0])
+    f = OneEuroFilter(params)
+    rng = np.random.default_rng(5)
+    u = np.clip(np.cumsum(rng.normal(0, 0.04, 200)) + 0.5, 0, 1)
+    for i, ui in enumerate(u):
+        y = f(np.array([ui, lo[1] + 80.0 * ui]), i * 16 * MS)
+        assert y[1] == pytest.approx(lo[1] + 80.0 * y[0], abs=1e-9)
+    with pytest.raises(FilterError, match="control ranges"):
+        params.per_unit_range(np.array([1.0, 0.0]))
+
+
 def test_resets_on_time_gap_and_frame_jump() -> None:
     f = OneEuroFilter(OneEuroParams.uniform(1, min_cutoff=0.1), gap_ns=100 * MS, max_frame_jump=5)
     f(np.array([0.0]), 0, frame=0)

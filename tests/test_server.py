@@ -72,7 +72,9 @@ def expected_controls(bundle_path: Path, subsets: list[np.ndarray], times: list[
     """Reference: the inverse ONNX run directly, then One Euro (naive twin) and clamp."""
     bundle = load_bundle(bundle_path)
     sess = ort.InferenceSession(bundle.inverse_onnx, providers=["CPUExecutionProvider"])
-    params = OneEuroParams.uniform(bundle.control_count, 1.0, 0.5, 1.0)  # StreamConfig defaults
+    # StreamConfig defaults, beta per unit of each control's range (the tiny rig's span is 1)
+    params = OneEuroParams.uniform(bundle.control_count, 1.0, 10.0, 1.0).per_unit_range(
+        bundle.schema.upper - bundle.schema.lower)
     state = None
     out = []
     for subset, t in zip(subsets, times, strict=True):
