@@ -5,8 +5,8 @@ The formulas follow the glTF 2.0 specification, sections "Morph Targets" and
 "Skins" (with "Joint Hierarchy" and "Skinned Mesh Attributes"):
 
 - morphed position = base + sum_i w_i * target_i.POSITION
-- jointMatrix_j = inverse(globalTransform(meshNode)) * globalTransform(joint_j)
-                  * inverseBindMatrix_j
+- jointMatrix_j = globalTransform(joint_j) * inverseBindMatrix_j (the transform of the node
+  holding the skinned mesh is ignored)
 - skinned position = sum_k weight_k * jointMatrix_{joint_k} * (morphed position, 1)
 
 The demo rigs reuse ``skin_points`` and ``euler_xyz_matrices`` for their own joints.
@@ -138,7 +138,7 @@ def skin_points_naive(
 
 
 def dense_weights(joints: np.ndarray, weights: np.ndarray, joint_count: int) -> np.ndarray:
-    """glTF JOINTS_0/WEIGHTS_0 (V, 4) to dense (V, J) weights, each row normalised to sum 1.
+    """glTF JOINTS_n/WEIGHTS_n (V, 4n) to dense (V, J) weights, each row normalised to sum 1.
 
     The spec requires the weights to sum to one; exporters round, so we renormalise. A vertex with
     all-zero weights stays on the mesh node (weight 1 on no joint is not expressible), which we

@@ -12,7 +12,8 @@ Supported (see docs/rig-sources.md):
   (posed local = T * R_rest * Rx(x) * Ry(y) * Rz(z) * S; for a matrix node, M * Rx * Ry * Rz);
 - accessors with byteStride, normalized integers, sparse storage, data URIs and external files.
 
-Outputs are in the mesh node's local frame, as the jointMatrix formula of the spec defines.
+Skinned outputs are in the scene's frame: the spec ignores the transform of the node that holds a
+skinned mesh. Unskinned outputs are in the mesh's own frame.
 """
 
 from __future__ import annotations
@@ -22,6 +23,7 @@ import logging
 from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
+from urllib.parse import unquote
 
 import numpy as np
 from rigcast.export.gltf_eval import (
@@ -66,6 +68,9 @@ def load_bounds(source: str | Path | Mapping[str, Any] | None) -> dict[str, Any]
                 raise RigError(f"glTF bounds file {path} is not valid JSON: {e}") from None
     if not isinstance(data, dict) or not set(data) <= {"joints", "morph"}:
         raise RigError(f"glTF bounds must be an object with 'joints' and/or 'morph', got {data!r}")
+    for key in ("joints", "morph"):
+        if key in data and not isinstance(data[key], dict):
+            raise RigError(f"glTF bounds {key!r} must be an object of names, got {data[key]!r}")
     return data
 
 
@@ -87,7 +92,7 @@ class _Reader:
             elif buf.uri.startswith("data:"):
                 data = bytes(self.gltf.decode_data_uri(buf.uri))
             else:
-                file = self.path.parent / buf.uri
+                file = self.path.parent / unquote(buf.uri)  # URIs are percent-encoded
                 if not file.is_file():
                     raise RigError(f"{self.path}: buffer file {file} does not exist")
                 data = file.read_bytes()
@@ -177,11 +182,18 @@ class GltfRig(Rig):
         if gltf is None or not gltf.meshes:
             raise RigError(f"glTF file {self.path} has no meshes")
         reader = _Reader(gltf, self.path)
-        mesh_index, node_index = self._pick_mesh(gltf, mesh)
-        self._load_mesh(gltf, reader, mesh_index)
-        self._load_nodes(gltf, node_index)
-        self._load_skin(gltf, reader, node_index, bound_data.get("joints", {}))
-        self.schema = self._make_schema(gltf.meshes[mesh_index], bound_data.get("morph", {}))
+        try:
+            mesh_index, node_index = self._pick_mesh(gltf, mesh)
+            self._load_mesh(gltf, reader, mesh_index)
+            self._load_nodes(gltf, node_index)
+            self._load_skin(gltf, reader, node_index, bound_data.get("joints", {}))
+            self.schema = self._make_schema(gltf.meshes[mesh_index], bound_data.get("morph", {}))
+        except RigError:
+            raise
+        except (IndexError, KeyError, TypeError, ValueError, AttributeError) as e:
+            # An index out of range, a wrong count or a wrong type somewhere in the JSON: the
+            # file breaks the glTF 2.0 schema in a way the checks above do not name.
+            raise RigError(f"glTF file {self.path} is malformed ({type(e).__name__}: {e})") from None
         self.neutral = np.zeros((self.base.shape[0], 3), dtype=np.float32)
         self.neutral = self._evaluate(self.schema.defaults[None].astype(np.float64))[0].astype(
             np.float32)
@@ -224,9 +236,12 @@ class GltfRig(Rig):
             tgt = [reader.read(t["POSITION"]) if t.get("POSITION") is not None else np.zeros((n, 3))
                    for t in (prim.targets or [])]
             targets.append(np.array(tgt).reshape(len(tgt), n, 3))
-            if prim.attributes.JOINTS_0 is not None and prim.attributes.WEIGHTS_0 is not None:
-                joints.append(reader.read(prim.attributes.JOINTS_0))
-                weights.append(reader.read(prim.attributes.WEIGHTS_0, normalize_ints=True))
+            sets = _skin_sets(prim.attributes)
+            if sets:
+                # Every JOINTS_n/WEIGHTS_n pair counts (glTF 2.0 allows more than 4 influences).
+                joints.append(np.concatenate([reader.read(j) for j, _ in sets], axis=1))
+                weights.append(np.concatenate([reader.read(w, normalize_ints=True)
+                                               for _, w in sets], axis=1))
             bases.append(base)
             offset += n
         counts = {t.shape[0] for t in targets}
@@ -294,7 +309,7 @@ class GltfRig(Rig):
         else:
             self.ibm = np.broadcast_to(np.eye(4), (j, 4, 4)).copy()
         if self._joints.size and self._joints.max() >= j:
-            raise RigError(f"{self.path}: JOINTS_0 refers to joint {int(self._joints.max())}, "
+            raise RigError(f"{self.path}: JOINTS_n refers to joint {int(self._joints.max())}, "
                            f"the skin has {j}")
         self.skin_weights = dense_weights(self._joints, self._weights, j)
         if np.any(self.skin_weights.sum(axis=1) == 0):
@@ -318,6 +333,8 @@ class GltfRig(Rig):
         names = list(extras.get("targetNames") or [])
         if len(names) != t:
             names = [f"target_{i}" for i in range(t)]
+        # glTF 2.0 lets a node's weights override its mesh's; pygltflib drops node.weights on
+        # load, so the defaults come from mesh.weights only (docs/rig-sources.md says so).
         defaults = list(mesh.weights or [0.0] * t)
         unknown = set(morph_bounds) - set(names)
         if unknown:
@@ -339,8 +356,11 @@ class GltfRig(Rig):
     # --- evaluation -----------------------------------------------------------------------
 
     def joint_matrices(self, controls: np.ndarray) -> np.ndarray:
-        """controls: (B, C) -> (B, J, 4, 4) jointMatrix_j =
-        inverse(G(meshNode)) @ G(joint_j) @ inverseBindMatrix_j."""
+        """controls: (B, C) -> (B, J, 4, 4) jointMatrix_j = G(joint_j) @ inverseBindMatrix_j.
+
+        glTF 2.0 (3.7.3, skins): only the joint transforms apply to a skinned mesh; the transform
+        of the node that holds the mesh is ignored, so skinned vertices are in the scene's frame.
+        """
         bsz, t = controls.shape[0], self.targets.shape[0]
         euler = {n: np.zeros((bsz, 3)) for n, _, _, _ in self.joint_controls}
         for k, (node, axis, _, _) in enumerate(self.joint_controls):
@@ -356,10 +376,8 @@ class GltfRig(Rig):
                 local = np.broadcast_to(self.local_rest[n], (bsz, 4, 4))
             p = self.parents[n]
             glob[n] = local if p < 0 else glob[p] @ local
-        mesh_inv = (np.linalg.inv(glob[self.mesh_node]) if self.mesh_node is not None
-                    else np.broadcast_to(np.eye(4), (bsz, 4, 4)))
         joints = np.stack([glob[n] for n in self.skin_nodes], axis=1)  # (B, J, 4, 4)
-        return mesh_inv[:, None] @ joints @ self.ibm[None]
+        return joints @ self.ibm[None]
 
     def _evaluate(self, controls: np.ndarray) -> np.ndarray:
         out = np.empty((controls.shape[0], self.base.shape[0], 3), dtype=np.float32)
@@ -371,6 +389,18 @@ class GltfRig(Rig):
                 pts = skin_points(pts, self.joint_matrices(c), self.skin_weights)
             out[s : s + _CHUNK] = pts
         return out
+
+
+def _skin_sets(attributes: Any) -> list[tuple[int, int]]:
+    """[(JOINTS_n accessor, WEIGHTS_n accessor), ...] for n = 0, 1, ... while both exist."""
+    raw = attributes if isinstance(attributes, Mapping) else vars(attributes)
+    extra = {k: v for k, v in raw.items() if v is not None}
+    sets = []
+    n = 0
+    while f"JOINTS_{n}" in extra and f"WEIGHTS_{n}" in extra:
+        sets.append((int(extra[f"JOINTS_{n}"]), int(extra[f"WEIGHTS_{n}"])))
+        n += 1
+    return sets
 
 
 def _pair(value: Any, where: str) -> tuple[float, float]:

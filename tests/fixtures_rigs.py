@@ -97,6 +97,8 @@ def write_gltf(
     joints: np.ndarray | None = None,
     weights: np.ndarray | None = None,
     inverse_bind: np.ndarray | None = None,
+    joints_1: np.ndarray | None = None,
+    weights_1: np.ndarray | None = None,
     sparse_targets: bool = False,
     position_stride_pad: int = 0,
     external_bin: bool = False,
@@ -118,6 +120,9 @@ def write_gltf(
         attrs.JOINTS_0 = pk.accessor(np.asarray(joints))
         w = np.asarray(weights)
         attrs.WEIGHTS_0 = pk.accessor(w, normalized=w.dtype != np.float32)
+    if joints_1 is not None and weights_1 is not None:  # a second set of four influences
+        attrs.JOINTS_1 = pk.accessor(np.asarray(joints_1))
+        attrs.WEIGHTS_1 = pk.accessor(np.asarray(weights_1, "<f4"))
     tgt = []
     for t in targets:
         t = np.asarray(t, "<f4")

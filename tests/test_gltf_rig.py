@@ -2,8 +2,9 @@
 
 Reference: the glTF 2.0 specification (Khronos), sections "Morph Targets" (position = base +
 sum_i w_i * target_i.POSITION) and "Skins" / "Joint Hierarchy" / "Skinned Mesh Attributes"
-(jointMatrix_j = inverse(globalTransform(meshNode)) * globalTransform(joint_j) *
-inverseBindMatrix_j; skinned = sum_k weight_k * jointMatrix_{joint_k} * (position, 1)).
+(jointMatrix_j = globalTransform(joint_j) * inverseBindMatrix_j; skinned = sum_k weight_k *
+jointMatrix_{joint_k} * (position, 1); the transform of the node holding a skinned mesh is
+ignored, so skinned positions are in the scene's frame).
 The expected positions below were worked out by hand and are written as literals.
 """
 
@@ -14,12 +15,13 @@ import pickle
 from pathlib import Path
 
 import numpy as np
+import pygltflib
 import pytest
 from rigcast.export.gltf_eval import morph_positions, morph_positions_naive
 from rigcast.export.gltf_rig import GltfRig
 from rigcast.export.rig import RigError
 
-from tests.fixtures_rigs import NodeSpec, morph_triangle, two_joint_strip, write_gltf
+from tests.fixtures_rigs import TRIANGLE, NodeSpec, morph_triangle, two_joint_strip, write_gltf
 
 TIP_Z = {"joints": {"Tip": {"z": [-90, 90]}}}
 
@@ -99,13 +101,69 @@ def test_skin_root_rotation_moves_the_child(tmp_path: Path) -> None:
     np.testing.assert_allclose(got[1, 2], [-1, -1, 0], atol=1e-6)
 
 
-def test_mesh_node_transform_is_inverted(tmp_path: Path) -> None:
-    """The spec's inverse(globalTransform(meshNode)) factor: outputs are in the mesh node frame."""
+def test_the_skinned_mesh_node_transform_is_ignored(tmp_path: Path) -> None:
+    """glTF 2.0, "Skins": only the joints' transforms apply to a skinned mesh, not its node's."""
     rig = GltfRig(two_joint_strip(tmp_path / "s.gltf", mesh_translation=(5.0, 0.0, 0.0)),
                   bounds=TIP_Z)
-    np.testing.assert_allclose(rig.neutral[:, 0], [-5, -4, -5, -4], atol=1e-6)
+    np.testing.assert_allclose(rig.neutral[:, 0], [0, 1, 0, 1], atol=1e-6)
     got = rig.evaluate(np.array([[90.0]]))[0]
-    np.testing.assert_allclose(got[2], [-6, 1, 0], atol=1e-5)
+    # Tip Rz(90) about (0, 1, 0): (0, 2, 0) -> (-1, 1, 0)
+    np.testing.assert_allclose(got[2], [-1, 1, 0], atol=1e-5)
+
+
+def test_a_skinned_mesh_under_a_posed_joint_still_follows_the_joints(tmp_path: Path) -> None:
+    """The mesh node is a child of the controlled joint: its own (moving) transform must not
+    cancel the pose."""
+    path = two_joint_strip(tmp_path / "s.gltf")
+    gltf = pygltflib.GLTF2().load(str(path))
+    gltf.nodes[0].children = [1, 2]  # body under Root
+    gltf.scenes[0].nodes = [0]
+    gltf.save_json(str(path))
+    rig = GltfRig(path, bounds={"joints": {"Root": {"z": [-90, 90]}}})
+    got = rig.evaluate(np.array([[90.0]]))[0]
+    # Root Rz(90) maps (x, y) -> (-y, x) for every vertex
+    np.testing.assert_allclose(got, [[0, 0, 0], [0, 1, 0], [-2, 0, 0], [-1, 1, 0]], atol=1e-6)
+
+
+def test_second_joint_set_counts(tmp_path: Path) -> None:
+    """JOINTS_1/WEIGHTS_1 add four more influences (glTF 2.0, "Skinned Mesh Attributes")."""
+    joints = np.array([[0, 0, 0, 0], [0, 0, 0, 0], [1, 0, 0, 0], [0, 0, 0, 0]], dtype=np.uint8)
+    weights = np.array([[1, 0, 0, 0], [1, 0, 0, 0], [1, 0, 0, 0], [0.5, 0, 0, 0]], "<f4")
+    joints_1 = np.array([[0, 0, 0, 0]] * 3 + [[1, 0, 0, 0]], dtype=np.uint8)
+    weights_1 = np.array([[0, 0, 0, 0]] * 3 + [[0.5, 0, 0, 0]], "<f4")
+    split = GltfRig(two_joint_strip(tmp_path / "split.gltf", joints=joints, weights=weights,
+                                    joints_1=joints_1, weights_1=weights_1), bounds=TIP_Z)
+    whole = GltfRig(two_joint_strip(tmp_path / "whole.gltf"), bounds=TIP_Z)
+    poses = np.array([[0.0], [90.0], [-30.0]])
+    np.testing.assert_allclose(split.evaluate(poses), whole.evaluate(poses), atol=1e-6)
+
+
+def test_percent_encoded_buffer_uri(tmp_path: Path) -> None:
+    path = morph_triangle(tmp_path / "tri.gltf", external_bin=True)
+    spaced = tmp_path / "my buf.bin"
+    path.with_suffix(".bin").rename(spaced)
+    gltf = pygltflib.GLTF2().load(str(path))
+    gltf.buffers[0].uri = "my%20buf.bin"
+    gltf.save_json(str(path))
+    np.testing.assert_allclose(GltfRig(path).neutral, TRIANGLE, atol=1e-7)
+
+
+@pytest.mark.parametrize("edit", ["accessor", "node_mesh", "no_primitives", "matrix"])
+def test_malformed_files_are_rig_errors(tmp_path: Path, edit: str) -> None:
+    path = two_joint_strip(tmp_path / "s.gltf")
+    gltf = pygltflib.GLTF2().load(str(path))
+    if edit == "accessor":
+        gltf.meshes[0].primitives[0].attributes.POSITION = 99
+    elif edit == "node_mesh":
+        gltf.nodes[2].mesh = 7
+    elif edit == "no_primitives":
+        gltf.meshes[0].primitives = []
+    else:
+        gltf.nodes[1].translation = None
+        gltf.nodes[1].matrix = [1.0, 0.0, 0.0]
+    gltf.save_json(str(path))
+    with pytest.raises(RigError, match=str(path.name)):
+        GltfRig(path, bounds=TIP_Z)
 
 
 def test_matrix_node_and_euler_order(tmp_path: Path) -> None:
