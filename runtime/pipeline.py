@@ -293,6 +293,9 @@ class StreamState:
             self._fit_d2 = np.empty(predicted.shape[0], np.float32)
         rms, worst = fit_error_posed(predicted, vertices, result.pose, self._fit_buf,
                                      self._fit_d2)
+        if not (math.isfinite(rms) and math.isfinite(worst)):
+            # Never let NaN into the fit windows or the adaptive detector.
+            raise FloatingPointError(f"frame {result.frame}: the forward graph returned NaN or Inf")
         if self.manifold is None:  # a fixed RMS limit (set in swap)
             off = rms > self.last_threshold
         else:  # adaptive, on the worst vertex; nothing is flagged during its warm-up

@@ -147,7 +147,7 @@ class Server:
     def _on_signal(self, signum: int, frame: FrameType | None) -> None:
         if self.should_exit:
             self.force_exit = True
-            raise SystemExit(130)
+            raise SystemExit(128 + signum)
         log.info("signal %s: shutting down", signal.Signals(signum).name)
         self.should_exit = True
 
@@ -207,7 +207,11 @@ class Server:
                 msg = self.router.recv_multipart(zmq.NOBLOCK, copy=False)
             except zmq.Again:
                 break
-            self._handle(msg, pending)
+            try:
+                self._handle(msg, pending)
+            except Exception:  # one message, however odd, must never stop the server
+                self.rejected["processing_error"] += 1
+                log.exception("a message could not be handled; the server goes on")
         done: list[tuple[StreamState, FrameResult, protocol.MeshFrame]] = []
         for stream, (identity, mesh, t_recv, perf_recv, decode_ns, _keep) in pending.items():
             state = self.streams[stream]
@@ -225,7 +229,15 @@ class Server:
                 if t0 < self._next_fit_ns or self._input_waiting():
                     state.telemetry.fit_skipped += 1
                     continue
-                rms, worst, off = state.fit(result, mesh.vertices)
+                try:
+                    rms, worst, off = state.fit(result, mesh.vertices)
+                except (FloatingPointError, *ORT_ERRORS) as exc:
+                    # The frame is already published; only its fit error is lost.
+                    state.telemetry.rejected["processing_error"] += 1
+                    self.rejected["processing_error"] += 1
+                    log.warning("stream %s frame %d: fit error not computed: %s",
+                                state.config.stream, result.frame, exc)
+                    continue
                 self._space_fits(t0, time.perf_counter_ns())
                 if off:
                     self._event("off_manifold", state.config.stream,
@@ -257,40 +269,43 @@ class Server:
             elif kind == "reload":
                 self._start_reload(identity, header)
             else:
+                stream = header.get("stream")
                 raise protocol.FrameError("unknown_type", f"the server does not accept {kind!r} "
                                           "messages (mesh, schema, reload)",
-                                          stream=header.get("stream"))
+                                          stream=stream if isinstance(stream, str) else None)
         except protocol.FrameError as err:
             self._reject(identity, err)
 
-    def _stream_for(self, stream: str, frame: int | None) -> StreamState:
-        state = self.streams.get(stream)
-        if state is not None:
-            return state
+    def _template_for(self, stream: str, frame: int | None) -> StreamState:
+        """The stream a new id would copy (accept_any_stream, below max_streams), or
+        unknown_stream. Nothing is created here: only a valid mesh frame creates a stream."""
         cfg = self.config
         if cfg.accept_any_stream and len(self.streams) < cfg.max_streams:
-            template = self.streams[cfg.streams[0].stream]
-            state = StreamState(replace(template.config, stream=stream), template.model,
-                                cfg.window)
-            self.streams[stream] = state
-            log.info("stream %s: new, serving with the bundle of %s", stream,
-                     template.config.stream)
-            return state
+            return self.streams[cfg.streams[0].stream]
         known = ", ".join(sorted(self.streams))
         why = (f"the server holds its maximum of {cfg.max_streams} streams"
                if cfg.accept_any_stream else f"configured streams: {known}")
         raise protocol.FrameError("unknown_stream", f"unknown stream {stream!r}; {why}",
                                   stream=stream, frame=frame)
 
+    def _new_stream(self, stream: str, template: StreamState) -> StreamState:
+        state = StreamState(replace(template.config, stream=stream), template.model,
+                            self.config.window)
+        self.streams[stream] = state
+        log.info("stream %s: new, serving with the bundle of %s", stream, template.config.stream)
+        return state
+
     def _accept_mesh(self, identity: bytes, header: dict[str, Any], payload: Any,
                      msg: list[zmq.Frame], t_recv: int, perf_recv: int,
                      pending: dict[str, _Pending]) -> None:
         stream = header["stream"]
-        state = self._stream_for(stream, header.get("frame"))
+        known = self.streams.get(stream)
+        source = known if known is not None else self._template_for(stream, header.get("frame"))
         t0 = time.perf_counter_ns()
-        mesh = protocol.decode_mesh(header, payload, expected_vertices=state.model.vertex_count,
+        mesh = protocol.decode_mesh(header, payload, expected_vertices=source.model.vertex_count,
                                     max_bytes=self.config.max_message_bytes)
         decode_ns = time.perf_counter_ns() - t0
+        state = known if known is not None else self._new_stream(stream, source)
         tel = state.telemetry
         tel.arrival(t_recv)
         previous = pending.get(stream)
@@ -315,6 +330,7 @@ class Server:
             # the graph overflows): this frame is lost, the stream goes on.
             state.telemetry.rejected["processing_error"] += 1
             self.rejected["processing_error"] += 1
+            state.dropped_since_publish += 1  # the next controls carry STALE: a frame is missing
             log.warning("stream %s frame %d: %s", mesh.stream, mesh.frame, exc)
             self._event("processing_error", mesh.stream, {"frame": mesh.frame,
                                                           "message": str(exc)[:200]})
@@ -326,7 +342,7 @@ class Server:
 
     def _reject(self, identity: bytes, err: protocol.FrameError) -> None:
         self.rejected[err.reason] += 1
-        state = self.streams.get(err.stream) if err.stream else None
+        state = self.streams.get(err.stream) if isinstance(err.stream, str) else None
         if state is not None:
             state.telemetry.rejected[err.reason] += 1
         log.debug("rejected (%s): %s", err.reason, err.message)
@@ -352,7 +368,8 @@ class Server:
     def _reply_schema(self, identity: bytes, header: dict[str, Any]) -> None:
         stream = header["stream"]
         version = protocol.negotiate_version(header["versions"], stream)
-        state = self._stream_for(stream, None)
+        # A new id is answered with what it would get, without creating the stream.
+        state = self.streams.get(stream) or self._template_for(stream, None)
         bundle = state.model.bundle
         self._reply(identity, protocol.encode_schema_reply(
             stream, bundle.schema, bundle=state.model.label,
@@ -361,7 +378,10 @@ class Server:
 
     def _start_reload(self, identity: bytes, header: dict[str, Any]) -> None:
         stream = header["stream"]
-        state = self._stream_for(stream, None)
+        state = self.streams.get(stream)
+        if state is None:
+            raise protocol.FrameError("unknown_stream", f"cannot reload stream {stream!r}: the "
+                                      f"server holds {sorted(self.streams)}", stream=stream)
         if stream in self._reloading:
             self._reply(identity, protocol.encode_reload_reply(
                 stream, False, f"a reload of stream {stream!r} is already in progress"))

@@ -500,6 +500,14 @@ def test_new_streams_are_served_up_to_the_limit_even_with_long_ids(tiny_bundle: 
     config = server_config({"a": tiny_bundle}, accept_any_stream=True, max_streams=2)
     with running_server(config) as server, peer_for(server) as peer:
         t0 = time.time_ns()
+        # Refused frames and requests from new ids take no stream slot.
+        peer.dealer.send_multipart(protocol.encode_mesh("ghost", 0, t0, mesh[:-1]))
+        reply = peer.recv_reply(3.0)
+        assert reply is not None and protocol.decode_reply(reply)["reason"] == "bad_vertex_count"
+        peer.dealer.send_multipart([protocol.encode_schema_request("visitor")])
+        reply = peer.recv_reply(3.0)
+        assert reply is not None and protocol.decode_reply(reply)["type"] == "schema_reply"
+        assert sorted(server.streams) == ["a"]
         peer.dealer.send_multipart(protocol.encode_mesh(long_id, 0, t0, mesh))
         got = controls_of(peer, long_id, 1)
         assert len(got) == 1 and got[0].stream == long_id
@@ -510,3 +518,21 @@ def test_new_streams_are_served_up_to_the_limit_even_with_long_ids(tiny_bundle: 
         assert err["reason"] == "unknown_stream" and "maximum of 2 streams" in err["message"]
         peer.dealer.send_multipart(protocol.encode_mesh("a", 0, t0, mesh))
         assert len(controls_of(peer, "a", 1)) == 1, "server stopped serving after a refusal"
+
+
+def test_a_header_with_a_map_for_its_stream_does_not_stop_the_server(tiny_bundle: Path) -> None:
+    """A server-to-client type whose own fields are fine but whose stream is a map: it is refused
+    as unknown_type, and the server goes on serving."""
+    rig = tiny_rig(TINY)
+    mesh = rig_mesh(rig, np.full(TINY["controls"], 0.3))
+    odd = msgpack.packb({"v": 1, "type": "reload_reply", "stream": {"a": 1}, "ok": True,
+                         "message": "x"})
+    with running_server(server_config({"a": tiny_bundle})) as server, peer_for(server) as peer:
+        peer.dealer.send_multipart([odd])
+        reply = peer.recv_reply(3.0)
+        assert reply is not None
+        err = protocol.decode_reply(reply)
+        assert err["reason"] == "unknown_type" and err["stream"] is None
+        peer.dealer.send_multipart(protocol.encode_mesh("a", 0, time.time_ns(), mesh))
+        assert len(controls_of(peer, "a", 1)) == 1, "the server stopped after an odd header"
+        assert server.rejected["unknown_type"] == 1
