@@ -74,6 +74,15 @@ class MorphBasis:
     control_indices: tuple[int, ...]
     omitted: tuple[str, ...] = ()
 
+    def __post_init__(self) -> None:
+        if not self.control_indices:
+            raise AnimationError(f"{self.name}: the rig has no blendshape controls to write "
+                                 f"as morph targets (omitted: {list(self.omitted)})")
+        for label, a in (("neutral", self.neutral), ("targets", self.targets)):
+            if not np.all(np.isfinite(a)):
+                raise AnimationError(f"{self.name}: the {label} hold NaN or Inf, which glTF "
+                                     "cannot store")
+
 
 def morph_basis(
     name: str,
@@ -172,11 +181,16 @@ def read_csv(path: str | Path) -> tuple[tuple[str, ...], np.ndarray, np.ndarray]
         rows = list(csv.reader(fh))
     if not rows or rows[0][:2] != ["frame", "time_s"]:
         raise AnimationError(f"{path}: header must start with 'frame,time_s'")
+    width = len(rows[0])
+    short = [i + 2 for i, r in enumerate(rows[1:]) if len(r) != width]
+    if short:
+        raise AnimationError(f"{path}: line {short[0]} has a different number of fields than "
+                             f"the header ({width})")
     try:
         table = np.array([[float(x) for x in r] for r in rows[1:]], dtype=np.float64)
     except ValueError as exc:
         raise AnimationError(f"{path}: {exc}") from None
-    table = table.reshape(-1, len(rows[0]))
+    table = table.reshape(-1, width)
     return tuple(rows[0][2:]), table[:, 2:], table[:, 1]
 
 
@@ -201,12 +215,21 @@ def write_json(path: str | Path, schema: ControlSchema, controls: np.ndarray,
 def read_json(path: str | Path) -> tuple[ControlSchema, np.ndarray, np.ndarray]:
     """Read a JSON file written by ``write_json``: (schema, controls (T, C), times_s (T,))."""
     path = Path(path)
-    doc = json.loads(path.read_text())
-    if doc.get("format") != JSON_FORMAT:
-        raise AnimationError(f"{path}: not a rigcast controls file (format {doc.get('format')!r})")
-    schema = ControlSchema.from_dict(doc["schema"])
-    controls = np.array([doc["controls"][n] for n in schema.names], dtype=np.float64).T
-    return schema, controls.reshape(-1, len(schema)), np.array(doc["times_s"], dtype=np.float64)
+    try:
+        doc = json.loads(path.read_text())
+    except json.JSONDecodeError as exc:
+        raise AnimationError(f"{path}: not valid JSON ({exc})") from None
+    if not isinstance(doc, dict) or doc.get("format") != JSON_FORMAT:
+        found = doc.get("format") if isinstance(doc, dict) else type(doc).__name__
+        raise AnimationError(f"{path}: not a rigcast controls file (format {found!r})")
+    try:
+        schema = ControlSchema.from_dict(doc["schema"])
+        controls = np.array([doc["controls"][n] for n in schema.names], dtype=np.float64).T
+        times = np.array(doc["times_s"], dtype=np.float64)
+    except (KeyError, TypeError, ValueError) as exc:
+        raise AnimationError(f"{path}: malformed controls file ({type(exc).__name__}: "
+                             f"{exc})") from None
+    return schema, controls.reshape(-1, len(schema)), times
 
 
 # ---------------------------------------------------------------------------------------------

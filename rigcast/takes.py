@@ -22,6 +22,7 @@ from __future__ import annotations
 import glob
 import logging
 import re
+import zipfile
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -83,22 +84,34 @@ def read_take(path: str | Path, *, fps: float | None = None, rig_for_gltf: Any =
 
 
 def _load_npy(p: Path) -> np.ndarray:
-    try:
-        arr: np.ndarray = np.load(p, allow_pickle=False)
-    except (ValueError, OSError, EOFError) as exc:
-        raise TakeError(f"{p}: not a readable NPY array ({exc})") from None
-    return arr
+    # The file is opened here, not by np.load, so it is closed whatever np.load raises.
+    with p.open("rb") as fh:
+        try:
+            arr = np.load(fh, allow_pickle=False)
+        except (ValueError, OSError, EOFError) as exc:
+            raise TakeError(f"{p}: not a readable NPY array ({exc})") from None
+        if not isinstance(arr, np.ndarray):  # np.load reads a ZIP as NpzFile whatever the suffix
+            arr.close()
+            raise TakeError(f"{p}: is an NPZ archive, not an NPY array; name it .npz")
+        return arr
 
 
 def _load_npz(p: Path) -> tuple[np.ndarray, np.ndarray | None]:
-    try:
-        with np.load(p, allow_pickle=False) as npz:
-            if "vertices" not in npz.files:
-                raise TakeError(f"{p}: NPZ has no 'vertices' array (has {sorted(npz.files)})")
-            verts = npz["vertices"]
-            times = npz["times"] if "times" in npz.files else None
-    except (ValueError, OSError, EOFError) as exc:
-        raise TakeError(f"{p}: not a readable NPZ archive ({exc})") from None
+    with p.open("rb") as fh:
+        try:
+            loaded = np.load(fh, allow_pickle=False)
+        except (ValueError, OSError, EOFError, zipfile.BadZipFile) as exc:
+            raise TakeError(f"{p}: not a readable NPZ archive ({exc})") from None
+        if isinstance(loaded, np.ndarray):
+            raise TakeError(f"{p}: is an NPY array, not an NPZ archive; name it .npy")
+        try:
+            with loaded as npz:
+                if "vertices" not in npz.files:
+                    raise TakeError(f"{p}: NPZ has no 'vertices' array (has {sorted(npz.files)})")
+                verts = npz["vertices"]
+                times = npz["times"] if "times" in npz.files else None
+        except (ValueError, OSError, EOFError, zipfile.BadZipFile) as exc:
+            raise TakeError(f"{p}: not a readable NPZ archive ({exc})") from None
     return verts, times
 
 
@@ -116,7 +129,10 @@ def _finish(verts: np.ndarray, times: np.ndarray | None, source: str, fps: float
         rate = fps or DEFAULT_FPS
         t = np.arange(verts.shape[0], dtype=np.float64) / rate
     else:
-        t = np.asarray(times, dtype=np.float64).reshape(-1)
+        try:
+            t = np.asarray(times, dtype=np.float64).reshape(-1)
+        except (TypeError, ValueError):
+            raise TakeError(f"{source}: times must be numbers, got dtype {times.dtype}") from None
         if t.shape[0] != verts.shape[0]:
             raise TakeError(f"{source}: {t.shape[0]} times for {verts.shape[0]} frames")
         if not np.all(np.isfinite(t)) or (t.shape[0] > 1 and not np.all(np.diff(t) > 0)):
@@ -272,10 +288,14 @@ def _gltf_take(path: Path, fps: float, rig: Any) -> tuple[np.ndarray, np.ndarray
             sampler = anim.samplers[ch.sampler]
             keys = reader.read(sampler.input)[:, 0]
             values = reader.read(sampler.output, normalize_ints=True)
+            if keys.shape[0] == 0:
+                raise TakeError(f"{path}: an animation sampler has no keyframes")
             channels.append((ch.target.node, ch.target.path, keys, values,
                              sampler.interpolation or "LINEAR"))
     except RigError as exc:
         raise TakeError(f"{path}: {exc}") from None
+    except (IndexError, KeyError, TypeError, ValueError) as exc:
+        raise TakeError(f"{path}: malformed animation ({type(exc).__name__}: {exc})") from None
     if not channels:
         raise TakeError(f"{path}: animation 0 has no channels")
     start = min(float(c[2][0]) for c in channels)

@@ -12,6 +12,7 @@ import pytest
 from rigcast.runtime.schema import Control, ControlSchema
 
 from rigcast.animation_out import (
+    JSON_FORMAT,
     AnimationError,
     MorphBasis,
     morph_basis,
@@ -275,3 +276,21 @@ def test_round_trip_gltf_rig_to_bundle_to_solve(tmp_path: Path) -> None:
     assert basis.names == rig.schema.names
     np.testing.assert_allclose(basis.targets, rig.targets, atol=0.1 * np.abs(rig.targets).max())
     assert_valid(write_gltf(tmp_path / "solve.glb", basis, solved.controls, times))
+
+
+def test_malformed_control_files_are_animation_errors(tmp_path: Path) -> None:
+    short = tmp_path / "short.csv"
+    short.write_text("frame,time_s,a\n0,0.0\n1,0.1\n2,0.2\n")
+    with pytest.raises(AnimationError, match="line 2 has a different number of fields"):
+        read_csv(short)
+    for text, words in (("{not json", "not valid JSON"), ("[1, 2]", "not a rigcast controls file"),
+                        (json.dumps({"format": JSON_FORMAT}), "malformed controls file")):
+        bad = tmp_path / "bad.json"
+        bad.write_text(text)
+        with pytest.raises(AnimationError, match=words):
+            read_json(bad)
+    neutral = np.zeros((3, 3), np.float32)
+    targets = np.zeros((1, 3, 3), np.float32)
+    targets[0, 1, 2] = np.nan
+    with pytest.raises(AnimationError, match="NaN or Inf"):
+        MorphBasis("r", neutral, np.array([[0, 1, 2]]), targets, ("a",), (0,))

@@ -257,3 +257,26 @@ def test_slerp_and_cubic_against_spec_formulas() -> None:
     vals = np.array([[0.0], [0.0], [0.0], [0.0], [2.0], [0.0]])  # (a0, v0, b0), (a1, v1, b1)
     got = sample_channel(np.array([0.0, 1.0]), vals, np.array([0.25]), "CUBICSPLINE")
     assert got[0, 0] == pytest.approx(2.0 * (3 * 0.25**2 - 2 * 0.25**3))
+
+
+def test_npy_and_npz_mixed_up_or_truncated_are_named(tmp_path: Path) -> None:
+    verts = np.zeros((3, 4, 3), np.float32)
+    as_npy = tmp_path / "take.npy"
+    np.savez(tmp_path / "real.npz", vertices=verts)
+    (tmp_path / "real.npz").rename(as_npy)
+    with pytest.raises(TakeError, match="is an NPZ archive, not an NPY array"):
+        read_take(as_npy)
+    as_npz = tmp_path / "take.npz"
+    np.save(tmp_path / "real.npy", verts)
+    (tmp_path / "real.npy").rename(as_npz)
+    with pytest.raises(TakeError, match="is an NPY array, not an NPZ archive"):
+        read_take(as_npz)
+    cut = tmp_path / "cut.npz"
+    np.savez(cut, vertices=verts)
+    cut.write_bytes(cut.read_bytes()[:40])
+    with pytest.raises(TakeError, match="not a readable NPZ archive"):
+        read_take(cut)
+    texts = tmp_path / "texts.npz"
+    np.savez(texts, vertices=verts, times=np.array(["a", "b", "c"]))
+    with pytest.raises(TakeError, match="times must be numbers"):
+        read_take(texts)
