@@ -27,7 +27,7 @@ from rigcast.export import metrics
 from rigcast.export.demo_rigs import DEMO_RIGS
 from rigcast.export.take_synth import synth_take
 from rigcast.runtime.bundle import load_bundle
-from rigcast.runtime.config import StreamConfig
+from rigcast.runtime.config import filter_defaults
 from rigcast.runtime.one_euro import OneEuroFilter, OneEuroParams
 
 
@@ -115,13 +115,13 @@ def main(argv: list[str] | None = None) -> int:
     cutoffs = [float(v) for v in args.min_cutoff.split(",")]
     betas = [float(v) for v in args.beta.split(",")]
     rigs = {n: run_rig(n, args.bundles, cutoffs, betas) for n in names}
-    cfg = StreamConfig(stream="grid", bundle=Path("unused"))
+    min_cutoff, beta, _ = filter_defaults()
     if args.out is not None:
         args.out.mkdir(parents=True, exist_ok=True)
         (args.out / "filter_grid.json").write_text(json.dumps(
-            {"rigs": rigs, "server_default": {"min_cutoff": cfg.min_cutoff, "beta": cfg.beta}},
+            {"rigs": rigs, "server_default": {"min_cutoff": min_cutoff, "beta": beta}},
             indent=2))
-        plot(args.out / "filter_grid.png", rigs, (cfg.min_cutoff, cfg.beta))
+        plot(args.out / "filter_grid.png", rigs, (min_cutoff, beta))
         print(f"wrote {args.out / 'filter_grid.json'} and filter_grid.png")
     return 0
 

@@ -40,7 +40,7 @@ from rigcast.export.rig import Rig
 from rigcast.export.sampling import SparsityConfig, sample_controls
 from rigcast.export.take_synth import SynthTake, synth_take
 from rigcast.runtime.bundle import INVERSE_INPUT, Bundle, load_bundle
-from rigcast.runtime.config import StreamConfig
+from rigcast.runtime.config import filter_defaults
 from rigcast.runtime.one_euro import OneEuroFilter, OneEuroParams
 from rigcast.runtime.schema import ControlSchema
 
@@ -130,8 +130,7 @@ def filter_controls(controls: np.ndarray, times_s: np.ndarray, schema: ControlSc
     """(T, C) -> (T, C) through the live server's default One Euro filter (runtime/config.py:
     min_cutoff 1 Hz, beta 10 per unit of each control's range, d_cutoff 1 Hz), built the way the
     server builds it (runtime/pipeline.py make_filter)."""
-    cfg = StreamConfig(stream="quality", bundle=Path("unused"))
-    params = OneEuroParams.uniform(len(schema), cfg.min_cutoff, cfg.beta, cfg.d_cutoff)
+    params = OneEuroParams.uniform(len(schema), *filter_defaults())
     filt = OneEuroFilter(params.per_unit_range(schema.upper - schema.lower))
     out = [
         filt(c, round(t * 1e9), frame=i)

@@ -261,9 +261,12 @@ def _add_solve(subs: argparse._SubParsersAction) -> None:
     p.add_argument("--fps", type=float, default=None,
                    help="frame rate of the take, when the file does not carry one")
     p.add_argument("--no-stabilise", action="store_true", help="do not remove rigid head motion")
-    p.add_argument("--min-cutoff", type=float, default=1.0,
+    from rigcast.runtime.config import filter_defaults
+
+    min_cutoff, beta, _ = filter_defaults()
+    p.add_argument("--min-cutoff", type=float, default=min_cutoff,
                    help="One Euro minimum cutoff, Hz (as `rigcast serve`)")
-    p.add_argument("--beta", type=float, default=10.0,
+    p.add_argument("--beta", type=float, default=beta,
                    help="One Euro speed coefficient per unit of each control's range "
                         "(as `rigcast serve`)")
     p.add_argument("--smooth-hz", type=float, default=3.0,

@@ -30,6 +30,7 @@ import numpy as np
 import onnxruntime as ort
 from rigcast.runtime.align import fit_rigid
 from rigcast.runtime.bundle import FORWARD_INPUT, FORWARD_OUTPUT, Bundle
+from rigcast.runtime.config import filter_defaults
 from rigcast.runtime.inference import ForwardModel, InverseModel, open_session
 from rigcast.runtime.manifold import ManifoldConfig, floor_for_bundle, off_manifold_thresholds
 from rigcast.runtime.one_euro import OneEuroParams, OneEuroState, zero_phase_smooth
@@ -157,13 +158,9 @@ def all_cores() -> int:
         return os.cpu_count() or 1
 
 
-DEFAULT_MIN_CUTOFF, DEFAULT_BETA, DEFAULT_D_CUTOFF = 1.0, 10.0, 1.0  # as runtime/config.py
-
-
 def default_params(bundle: Bundle) -> OneEuroParams:
-    """The live server's default One Euro settings (runtime/config.py StreamConfig), with beta
-    per unit of each control's range."""
-    return filter_params(bundle, DEFAULT_MIN_CUTOFF, DEFAULT_BETA, DEFAULT_D_CUTOFF)
+    """The live server's default One Euro settings, with beta per unit of each control's range."""
+    return filter_params(bundle, *filter_defaults())
 
 
 def filter_params(bundle: Bundle, min_cutoff: float, beta: float,

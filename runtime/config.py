@@ -100,6 +100,13 @@ class StreamConfig:
             _non_negative(g.beta, f"{where}.groups.{g.group}.beta")
 
 
+def filter_defaults() -> tuple[float, float, float]:
+    """(min_cutoff, beta, d_cutoff): StreamConfig's One Euro defaults, the one place they live,
+    so that batch solves, the CLI and the server can never disagree."""
+    cfg = StreamConfig(stream="defaults", bundle=Path("unused"))
+    return cfg.min_cutoff, cfg.beta, cfg.d_cutoff
+
+
 @dataclass(frozen=True)
 class ServerConfig:
     """Everything ``rigcast serve`` needs; see the module docstring for the TOML layout."""
