@@ -66,8 +66,10 @@ class FrameError(ValueError):
         super().__init__(message)
         self.reason = reason
         self.message = message
-        self.stream = stream
-        self.frame = frame
+        # They may come straight from a peer's header: keep only values the wire allows, so an
+        # error about a bad message is always safe to count, log and send back.
+        self.stream = stream if _stream_ok(stream) else None
+        self.frame = frame if _u64(frame) else None
 
 
 @dataclass(frozen=True)

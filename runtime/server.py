@@ -269,10 +269,9 @@ class Server:
             elif kind == "reload":
                 self._start_reload(identity, header)
             else:
-                stream = header.get("stream")
                 raise protocol.FrameError("unknown_type", f"the server does not accept {kind!r} "
                                           "messages (mesh, schema, reload)",
-                                          stream=stream if isinstance(stream, str) else None)
+                                          stream=header.get("stream"))
         except protocol.FrameError as err:
             self._reject(identity, err)
 
@@ -342,7 +341,7 @@ class Server:
 
     def _reject(self, identity: bytes, err: protocol.FrameError) -> None:
         self.rejected[err.reason] += 1
-        state = self.streams.get(err.stream) if isinstance(err.stream, str) else None
+        state = self.streams.get(err.stream) if err.stream else None
         if state is not None:
             state.telemetry.rejected[err.reason] += 1
         log.debug("rejected (%s): %s", err.reason, err.message)
