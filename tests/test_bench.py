@@ -101,3 +101,15 @@ def test_batch_bench_synthetic_run_writes_fps_frames_and_fit_error_mode(tmp_path
     assert 0 < figures["fit_vertices"] <= figures["vertices"]
     assert figures["off_manifold_planted"] > 0
     assert 0 <= figures["off_manifold_found"] <= figures["off_manifold_planted"]
+
+
+def test_pipeline_stages_bench_reports_each_stage(tmp_path: Path) -> None:
+    run_bench("pipeline_stages.py", "--vertices", "2000", "--frames", "200", "--out",
+              str(tmp_path))
+    (run,) = json.loads((tmp_path / "pipeline_stages.json").read_text())["runs"]
+    assert run["vertices"] == 2000 and run["frames"] == 200
+    med, p99 = run["median_us"], run["p99_us"]
+    assert set(med) == {"decode", "align", "infer", "filter", "publish", "total"}
+    assert all(0 < med[s] <= p99[s] for s in med)
+    # total runs from receipt to the send, so it covers every stage after the decode
+    assert med["total"] >= max(med["align"], med["infer"], med["filter"], med["publish"])

@@ -1,0 +1,94 @@
+"""The live pipeline's own cost per frame, in one process, with no network and warm caches.
+
+    python bench/pipeline_stages.py [--vertices 5000 20000] [--frames 3000] [--out DIR]
+
+For each vertex count it builds the same synthetic bundle as bench/latency.py and runs the server's
+per-frame code (protocol decode, then runtime/pipeline.py StreamState.process: stabilise, infer,
+filter, clamp, publish on a PUB socket with no subscriber) back to back, the first 500 frames
+being warm-up. It prints per-stage medians and p99 in microseconds. Set beside bench/latency.py,
+it separates what the code costs from what waking up and crossing the sockets costs: the paced
+server's stage medians there include cold caches after each 8 ms idle gap and the ZeroMQ I/O
+thread's work on the same core. ``--out DIR`` writes DIR/pipeline_stages.json as
+{"runs": [{"vertices", "frames", "median_us": {...}, "p99_us": {...}}]}.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import tempfile
+import time
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import zmq
+from latency import CONTROLS, HIDDEN, INPUTS, SEED, STABLE  # bench/latency.py, beside this file
+from rigcast.export.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
+from rigcast.runtime import protocol
+from rigcast.runtime.config import StreamConfig
+from rigcast.runtime.pipeline import StreamState, load_stream_model
+from rigcast.runtime.telemetry import STAGES
+
+WARMUP = 500
+
+
+def measure(vertices: int, frames: int, work: Path) -> dict[str, Any]:
+    path = build_synthetic_bundle(work / f"bench_{vertices}.rcb", vertices=vertices,
+                                  controls=CONTROLS, inputs=INPUTS, stable=STABLE,
+                                  inverse="mlp", hidden=HIDDEN, seed=SEED)
+    model = load_stream_model(path, threads=1, threshold=None, factor=3.0)
+    state = StreamState(StreamConfig(stream="bench", bundle=path), model, window=1000)
+    rig = make_synthetic_rig(vertices, CONTROLS, inputs=INPUTS, stable=STABLE, seed=SEED)
+    rng = np.random.default_rng(SEED)
+    meshes = rig.evaluate(rng.uniform(0, 1, (32, CONTROLS)).astype(np.float32))
+    ctx = zmq.Context()
+    pub = ctx.socket(zmq.PUB)
+    pub.setsockopt(zmq.LINGER, 0)
+    pub.setsockopt(zmq.SNDHWM, 1000)
+    pub.bind("tcp://127.0.0.1:*")
+    rows = []
+    try:
+        for i in range(frames + WARMUP):
+            wire = protocol.encode_mesh("bench", i, i * 8_333_333, meshes[i % len(meshes)])
+            t0 = time.perf_counter_ns()
+            header = protocol.decode_header(wire[0])
+            mesh = protocol.decode_mesh(header, wire[1], expected_vertices=vertices,
+                                        max_bytes=1 << 26)
+            t1 = time.perf_counter_ns()
+            result = state.process(mesh, time.time_ns(), t0, t1 - t0, pub.send_multipart)
+            if i >= WARMUP:
+                rows.append(result.stage_ns)
+    finally:
+        pub.close()
+        ctx.term()
+    us = np.asarray(rows, dtype=np.float64) / 1e3
+    med = dict(zip(STAGES, np.median(us, axis=0).tolist(), strict=True))
+    p99 = dict(zip(STAGES, np.percentile(us, 99, axis=0).tolist(), strict=True))
+    return {"vertices": vertices, "frames": frames, "median_us": med, "p99_us": p99}
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    ap.add_argument("--vertices", type=int, nargs="+", default=[5000, 20000])
+    ap.add_argument("--frames", type=int, default=3000, help="measured frames after warm-up")
+    ap.add_argument("--out", type=Path, help="folder for pipeline_stages.json")
+    args = ap.parse_args(argv)
+    runs = []
+    with tempfile.TemporaryDirectory(prefix="rigcast-stages-") as tmp:
+        for v in args.vertices:
+            run = measure(v, args.frames, Path(tmp))
+            runs.append(run)
+            for label, key in (("median", "median_us"), ("p99", "p99_us")):
+                cells = ", ".join(f"{s} {run[key][s]:.1f}" for s in STAGES)
+                print(f"V={v} {label} (us): {cells}")
+    if args.out is not None:
+        args.out.mkdir(parents=True, exist_ok=True)
+        (args.out / "pipeline_stages.json").write_text(json.dumps({"runs": runs}, indent=2))
+        print(f"wrote {args.out / 'pipeline_stages.json'}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
