@@ -22,21 +22,17 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from quality import solve_inverse, take_weights, talk_control  # bench/quality.py, beside this file
+from quality import (  # bench/quality.py, beside this file
+    filter_controls,
+    solve_inverse,
+    take_weights,
+    talk_control,
+)
 from rigcast.export import metrics
 from rigcast.export.demo_rigs import DEMO_RIGS
 from rigcast.export.take_synth import synth_take
 from rigcast.runtime.bundle import load_bundle
 from rigcast.runtime.config import filter_defaults
-from rigcast.runtime.one_euro import OneEuroFilter, OneEuroParams
-
-
-def filtered(controls: np.ndarray, times_s: np.ndarray, params: OneEuroParams) -> np.ndarray:
-    """controls (T, C), times_s (T,) -> (T, C) through a fresh One Euro filter."""
-    f = OneEuroFilter(params)
-    out = [f(x, round(t * 1e9), frame=i) for i, (x, t) in enumerate(zip(controls, times_s,
-                                                                          strict=True))]
-    return np.asarray(out, dtype=np.float32)
 
 
 def run_rig(name: str, bundles: Path, cutoffs: list[float], betas: list[float]) -> dict[str, Any]:
@@ -60,8 +56,7 @@ def run_rig(name: str, bundles: Path, cutoffs: list[float], betas: list[float]) 
     grid = []
     for mc in cutoffs:
         for beta in betas:
-            params = OneEuroParams.uniform(len(s), mc, beta, 1.0).per_unit_range(s.upper - s.lower)
-            err, jit = score(filtered(raw, take.times_s, params))
+            err, jit = score(filter_controls(raw, take.times_s, s, (mc, beta, 1.0)))
             grid.append({"min_cutoff": mc, "beta": beta, "mean_err": err,
                          "err_ratio": err / raw_err, "jitter": jit, "jitter_ratio": jit / raw_jit})
             print(f"  min_cutoff {mc:4.1f} Hz  beta {beta:5.1f}   err {err:.5f} "

@@ -126,11 +126,12 @@ def solve_inverse(bundle: Bundle, observed: np.ndarray) -> Solved:
     return Solved(np.asarray(out, dtype=np.float32), seconds / observed.shape[0])
 
 
-def filter_controls(controls: np.ndarray, times_s: np.ndarray, schema: ControlSchema) -> np.ndarray:
-    """(T, C) -> (T, C) through the live server's default One Euro filter (runtime/config.py:
-    min_cutoff 1 Hz, beta 10 per unit of each control's range, d_cutoff 1 Hz), built the way the
-    server builds it (runtime/pipeline.py make_filter)."""
-    params = OneEuroParams.uniform(len(schema), *filter_defaults())
+def filter_controls(controls: np.ndarray, times_s: np.ndarray, schema: ControlSchema,
+                    settings: tuple[float, float, float] | None = None) -> np.ndarray:
+    """(T, C) -> (T, C) through a fresh One Euro filter built the way the server builds it
+    (runtime/pipeline.py make_filter: beta per unit of each control's range). ``settings`` is
+    (min_cutoff, beta, d_cutoff), by default the server's (runtime/config.py filter_defaults)."""
+    params = OneEuroParams.uniform(len(schema), *(settings or filter_defaults()))
     filt = OneEuroFilter(params.per_unit_range(schema.upper - schema.lower))
     out = [
         filt(c, round(t * 1e9), frame=i)

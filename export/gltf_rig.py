@@ -188,8 +188,6 @@ class GltfRig(Rig):
             self._load_nodes(gltf, node_index)
             self._load_skin(gltf, reader, node_index, bound_data.get("joints", {}))
             self.schema = self._make_schema(gltf.meshes[mesh_index], bound_data.get("morph", {}))
-        except RigError:
-            raise
         except (IndexError, KeyError, TypeError, ValueError, AttributeError) as e:
             # An index out of range, a wrong count or a wrong type somewhere in the JSON: the
             # file breaks the glTF 2.0 schema in a way the checks above do not name.

@@ -110,6 +110,8 @@ def _load_npz(p: Path) -> tuple[np.ndarray, np.ndarray | None]:
                     raise TakeError(f"{p}: NPZ has no 'vertices' array (has {sorted(npz.files)})")
                 verts = npz["vertices"]
                 times = npz["times"] if "times" in npz.files else None
+        except TakeError:  # a ValueError too: keep its own message
+            raise
         except (ValueError, OSError, EOFError, zipfile.BadZipFile) as exc:
             raise TakeError(f"{p}: not a readable NPZ archive ({exc})") from None
     return verts, times
@@ -294,6 +296,8 @@ def _gltf_take(path: Path, fps: float, rig: Any) -> tuple[np.ndarray, np.ndarray
                              sampler.interpolation or "LINEAR"))
     except RigError as exc:
         raise TakeError(f"{path}: {exc}") from None
+    except TakeError:  # a ValueError too: keep its own message
+        raise
     except (IndexError, KeyError, TypeError, ValueError) as exc:
         raise TakeError(f"{path}: malformed animation ({type(exc).__name__}: {exc})") from None
     if not channels:

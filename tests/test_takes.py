@@ -276,6 +276,11 @@ def test_npy_and_npz_mixed_up_or_truncated_are_named(tmp_path: Path) -> None:
     cut.write_bytes(cut.read_bytes()[:40])
     with pytest.raises(TakeError, match="not a readable NPZ archive"):
         read_take(cut)
+    novert = tmp_path / "novert.npz"
+    np.savez(novert, points=verts)
+    with pytest.raises(TakeError, match="NPZ has no 'vertices'") as info:
+        read_take(novert)
+    assert "not a readable" not in str(info.value)
     texts = tmp_path / "texts.npz"
     np.savez(texts, vertices=verts, times=np.array(["a", "b", "c"]))
     with pytest.raises(TakeError, match="times must be numbers"):
