@@ -6,6 +6,7 @@ Specs (docs/rig-sources.md):
   py:MODULE:FUNCTION or py:FILE.py:FUNCTION  a Python function (schema=...)
   proc:COMMAND LINE                          an external process, shlex-split (schema=...)
   npz:PATH, or PATH.npz                      a dataset sampled elsewhere (schema= optional)
+  zoo:SEED                                   a seeded test rig from the rig zoo (export/zoo.py)
 """
 
 from __future__ import annotations
@@ -20,7 +21,7 @@ log = logging.getLogger(__name__)
 
 FORMS = ("demo:face", "demo:face-linear", "demo:arm", "gltf:PATH[#MESH]", "PATH.gltf",
          "PATH.glb", "py:MODULE:FUNCTION", "py:FILE.py:FUNCTION", "proc:COMMAND LINE",
-         "npz:PATH", "PATH.npz")
+         "npz:PATH", "PATH.npz", "zoo:SEED")
 
 
 def _need_schema(spec: str, schema: str | None) -> str:
@@ -62,6 +63,12 @@ def load_rig(spec: str, *, schema: str | None = None, bounds: str | None = None)
         if not argv:
             raise RigError(f"rig {spec!r} has an empty command line")
         return ProcessRig(argv, _need_schema(spec, schema))
+    if sep and kind == "zoo":
+        from rigcast.export.zoo import make_zoo_rig
+
+        if not (rest.isascii() and rest.isdigit()):
+            raise RigError(f"rig {spec!r}: a zoo seed is a non-negative integer, got {rest!r}")
+        return make_zoo_rig(int(rest))
     if (sep and kind == "npz") or lower.endswith(".npz"):
         from rigcast.export.dataset_rig import DatasetRig
 

@@ -99,7 +99,8 @@ def _add_build(subs: argparse._SubParsersAction) -> None:
         "  gltf:PATH                                 glTF 2.0 morph targets and/or skin joints\n"
         "  py:MODULE:FUNCTION                        a Python callable, with --schema\n"
         "  proc:COMMAND                              an external process (NPY over stdin/stdout)\n"
-        "  npz:PATH                                  a dataset someone else sampled",
+        "  npz:PATH                                  a dataset someone else sampled\n"
+        "  zoo:SEED                                  a seeded test rig from the rig zoo",
         "  rigcast build demo:face -o face.rcb\n"
         "  rigcast build gltf:hero.glb --bounds hero_joints.json -o hero.rcb\n"
         "  rigcast build py:myrigs.crab:evaluate --schema crab_schema.json -o crab.rcb\n"
@@ -260,7 +261,9 @@ def _add_solve(subs: argparse._SubParsersAction) -> None:
                    help="temporal filter")
     p.add_argument("--fps", type=float, default=None,
                    help="frame rate of the take, when the file does not carry one")
-    p.add_argument("--no-stabilise", action="store_true", help="do not remove rigid head motion")
+    p.add_argument("--stabilise", action=argparse.BooleanOptionalAction, default=None,
+                   help="remove rigid head motion (default: only when the bundle's rig has a "
+                        "rigid region, as its build measured)")
     from rigcast.runtime.config import filter_defaults
 
     min_cutoff, beta, _ = filter_defaults()
@@ -403,7 +406,7 @@ def _cmd_solve(args: argparse.Namespace) -> int:
     solver = BatchSolver(bundle, subset_graph=cutter)
     params = filter_params(bundle, args.min_cutoff, args.beta)
     kinds: dict[str, FilterKind] = {"none": "none", "causal": "causal", "smooth": "zero_phase"}
-    options = SolveOptions(stabilise=not args.no_stabilise, filter=kinds[args.filter],
+    options = SolveOptions(stabilise=args.stabilise, filter=kinds[args.filter],
                            params=params,
                            smooth_hz=args.smooth_hz, fit_error=args.fit_error,
                            batch_size=args.batch_size)
