@@ -139,6 +139,31 @@ class ServerConfig:
     busy_poll_us: int = _flag(
         "after each frame, poll the input without sleeping for this many microseconds "
         "(yielding the CPU between polls), then block; 0 = always block", 0)
+    # --- security (runtime/security.py, runtime/ownership.py, runtime/reload.py) ---
+    curve_secret_key: Path | None = _flag(  # noqa: RUF009
+        "the server's secret key file (from `rigcast keys`): CurveZMQ on both sockets", None)
+    authorized_keys: Path | None = _flag(  # noqa: RUF009
+        "folder of the public key files (*.key) of the clients allowed to connect", None)
+    insecure_no_auth: bool = _flag(
+        "INSECURE: bind a non-loopback address without CURVE; anyone on the network can send "
+        "frames, read every stream and ask for reloads", False)
+    handshake_timeout_ms: int = _flag("close a connection whose ZeroMQ handshake takes longer", 2000)
+    max_connections: int = _flag("most connections per socket; later handshakes are refused", 256)
+    owner_timeout_s: float = _flag(
+        "a stream's sender keeps it while it sends; another peer may claim it after this long "
+        "without frames", 2.0)
+    stream_idle_s: float = _flag(
+        "a stream made by accept_any_stream is removed after this long without frames", 60.0)
+    max_clock_step_s: float = _flag(
+        "refuse a frame whose t_send_ns moved this much more or less than the server's clock "
+        "since the sender's session began (bad_timestamp)", 10.0)
+    reload_dirs: str = _flag(
+        "folders reloads may load bundles from, separated by the OS path separator "
+        "(default: the folders of the bundles served)", "")
+    reload_max_file_bytes: int = _flag("largest bundle file a reload opens", 256 * 1024 * 1024)
+    reload_max_unpacked_bytes: int = _flag(
+        "largest total unpacked size of a reloaded bundle, checked before inflating", 512 * 1024 * 1024)
+    reload_min_interval_s: float = _flag("least time between two reloads of one stream", 2.0)
     max_header_bytes: int = 4096
     max_drain: int = 32
     input_hwm: int = 32
@@ -154,13 +179,25 @@ class ServerConfig:
             raise ConfigError(f"stream ids configured twice: {dupes}")
         for name in ("input", "output"):
             _check_endpoint(getattr(self, name), name, self.allow_remote)
+            if (not is_loopback(getattr(self, name)) and self.curve_secret_key is None
+                    and not self.insecure_no_auth):
+                raise ConfigError(
+                    f"{name} {getattr(self, name)} is reachable from the network and CURVE is "
+                    "off: give curve_secret_key and authorized_keys (--curve-secret-key, "
+                    "--authorized-keys; make keys with `rigcast keys`), or pass "
+                    "--insecure-no-auth to accept every peer")
+        if (self.curve_secret_key is None) != (self.authorized_keys is None):
+            raise ConfigError("curve_secret_key and authorized_keys go together (CURVE needs the "
+                              "server's secret key and the folder of allowed client keys)")
         if self.input == self.output and not self.input.endswith(":*"):
             raise ConfigError(f"input and output endpoints are the same ({self.input})")
         if self.fit_error not in get_args(FitErrorMode):
             raise ConfigError(f"fit_error must be one of {get_args(FitErrorMode)}, "
                               f"got {self.fit_error!r}")
         for name in ("threads", "fit_error_every", "window", "max_message_bytes",
-                     "max_header_bytes", "max_drain", "input_hwm", "output_hwm", "max_streams"):
+                     "max_header_bytes", "max_drain", "input_hwm", "output_hwm", "max_streams",
+                     "handshake_timeout_ms", "max_connections", "reload_max_file_bytes",
+                     "reload_max_unpacked_bytes"):
             value = getattr(self, name)
             if value < 1:
                 raise ConfigError(f"{name} must be at least 1, got {value}")
@@ -174,6 +211,9 @@ class ServerConfig:
             raise ConfigError(f"fit_error_max_share must be at most 1, "
                               f"got {self.fit_error_max_share}")
         _positive(self.off_manifold_factor, "off_manifold_factor")
+        for name in ("owner_timeout_s", "stream_idle_s", "max_clock_step_s"):
+            _positive(getattr(self, name), name)
+        _non_negative(self.reload_min_interval_s, "reload_min_interval_s")
 
     def stream(self, stream_id: str) -> StreamConfig | None:
         for s in self.streams:

@@ -39,6 +39,8 @@ REASONS: tuple[str, ...] = (
     "unknown_stream",
     "unknown_type",
     "bad_bundle",
+    "bad_timestamp",
+    "stream_owned",
 )
 
 TOPIC_CONTROLS = b"ctl."
@@ -46,6 +48,9 @@ TOPIC_TELEMETRY = b"tel."
 TOPIC_EVENTS = b"evt"
 MAX_STREAM_BYTES = 255
 MAX_HEADER_BYTES = 4096
+# Our headers nest two deep (a map holding a list); a deeper one is refused before anything walks
+# it recursively (repr, logging), which a header ~1,000 deep would take past Python's limit.
+MAX_HEADER_DEPTH = 8
 # Server -> client headers (schema replies, telemetry) grow with the control count: a schema reply
 # for the 46-control demo face is about 4.3 kB. Clients cap them far higher than the server caps
 # what it receives.
@@ -313,6 +318,8 @@ def decode_header(
         ) from None
     if not isinstance(header, dict):
         raise FrameError("malformed", f"header must be a msgpack map, got {type(header).__name__}")
+    if not shallow(header, MAX_HEADER_DEPTH):
+        raise FrameError("malformed", f"header nests deeper than {MAX_HEADER_DEPTH} levels")
     stream = header.get("stream")
     stream = stream if _stream_ok(stream) else None
     frame = header.get("frame")
@@ -340,6 +347,24 @@ def decode_header(
             raise FrameError("malformed", f"{kind} header field {name!r} has bad value "
                              f"{header[name]!r:.80}", stream=stream, frame=frame)
     return header
+
+
+def shallow(value: Any, limit: int) -> bool:
+    """True when maps and lists in ``value`` nest at most ``limit`` deep (iterative: a deep value
+    cannot exhaust the stack here)."""
+    stack: list[tuple[Any, int]] = [(value, 1)]
+    while stack:
+        item, depth = stack.pop()
+        if isinstance(item, dict):
+            children: Any = [*item.keys(), *item.values()]
+        elif isinstance(item, list | tuple):
+            children = item
+        else:
+            continue
+        if depth > limit:
+            return False
+        stack.extend((c, depth + 1) for c in children)
+    return True
 
 
 _ZEROS: dict[int, np.ndarray] = {}

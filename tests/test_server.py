@@ -3,6 +3,7 @@ signals and the off-manifold flag."""
 
 from __future__ import annotations
 
+import os
 import signal
 import subprocess
 import sys
@@ -304,7 +305,9 @@ def test_fit_error_keeps_to_its_time_share(tiny_bundle: Path) -> None:
             while tel["processed"] < i + 1:
                 tel = telemetry_of(peer, "a")
     assert tel["fit_error"]["frame"] == 0, tel["fit_error"]
-    assert tel["fit_error"]["skipped"] == 4
+    # Frames 1-3 were replaced unfitted by a newer frame of the stream; frame 4 still waits for
+    # its turn (runtime/fairness.py), so it is not counted yet.
+    assert tel["fit_error"]["skipped"] == 3
 
 
 @pytest.mark.parametrize("value", [0.0, 1.5])
@@ -338,7 +341,7 @@ def test_reload_swaps_atomically_while_frames_flow(tiny_bundle: Path, tmp_path: 
     sessions = {name: ort.InferenceSession(load_bundle(p).inverse_onnx,
                                            providers=["CPUExecutionProvider"])
                 for name, p in (("old", tiny_bundle), ("new", new_path))}
-    config = server_config({"a": tiny_bundle},
+    config = server_config({"a": tiny_bundle}, reload_dirs=str(tmp_path),
                            stream_overrides={"passthrough": True, "stabilise": False})
     stop = threading.Event()
     sent: list[int] = []
@@ -391,9 +394,11 @@ def test_reload_refuses_bad_or_incompatible_bundles(tiny_bundle: Path, other_bun
     corrupt = tmp_path / "corrupt.rcb"
     corrupt.write_bytes(b"not a zip")
     mesh = tiny_rig(TINY).neutral
-    with running_server(server_config({"a": tiny_bundle})) as server, peer_for(server) as peer:
-        for path, words in ((other_bundle, "vertices"), (corrupt, "not a rigcast bundle"),
-                            (tmp_path / "missing.rcb", "does not exist")):
+    folders = os.pathsep.join([str(tmp_path), str(other_bundle.parent)])
+    config = server_config({"a": tiny_bundle}, reload_dirs=folders, reload_min_interval_s=0.0)
+    with running_server(config) as server, peer_for(server) as peer:
+        for path, words in ((other_bundle, "vertices"), (corrupt, "not a readable rigcast bundle"),
+                            (tmp_path / "missing.rcb", "no bundle 'missing.rcb'")):
             peer.dealer.send(protocol.encode_reload_request("a", str(path)))
             raw = peer.recv_reply(10.0)
             assert raw is not None
@@ -402,7 +407,7 @@ def test_reload_refuses_bad_or_incompatible_bundles(tiny_bundle: Path, other_bun
         peer.dealer.send_multipart(protocol.encode_mesh("a", 1, time.time_ns(), mesh))
         assert [m.frame for m in controls_of(peer, "a", 1)] == [1]
         assert len(controls_of(peer, "a", 1, 0.1)) == 0
-    assert server.streams["a"].model.label == str(tiny_bundle)
+    assert server.streams["a"].model.label == tiny_bundle.name
 
 
 def _flags_and_events(peer: Peer, meshes: list[np.ndarray]) -> tuple[dict[int, bool], list[dict]]:
