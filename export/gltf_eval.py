@@ -150,3 +150,83 @@ def dense_weights(joints: np.ndarray, weights: np.ndarray, joint_count: int) -> 
     np.add.at(out, (rows, joints.reshape(-1).astype(np.int64)), weights.reshape(-1))
     total = out.sum(axis=1, keepdims=True)
     return out / np.where(total > 0, total, 1.0)
+
+
+def quat_xyzw_to_matrices(q: np.ndarray) -> np.ndarray:
+    """Batched ``quat_xyzw_to_matrix``: (B, 4) quaternions (x, y, z, w), normalised here,
+    -> (B, 3, 3) rotation matrices."""
+    q = np.asarray(q, dtype=np.float64)
+    q = q / np.linalg.norm(q, axis=1, keepdims=True)
+    x, y, z, w = q[:, 0], q[:, 1], q[:, 2], q[:, 3]
+    out = np.empty((q.shape[0], 3, 3))
+    out[:, 0, 0] = 1 - 2 * (y * y + z * z)
+    out[:, 0, 1] = 2 * (x * y - z * w)
+    out[:, 0, 2] = 2 * (x * z + y * w)
+    out[:, 1, 0] = 2 * (x * y + z * w)
+    out[:, 1, 1] = 1 - 2 * (x * x + z * z)
+    out[:, 1, 2] = 2 * (y * z - x * w)
+    out[:, 2, 0] = 2 * (x * z - y * w)
+    out[:, 2, 1] = 2 * (y * z + x * w)
+    out[:, 2, 2] = 1 - 2 * (x * x + y * y)
+    return out
+
+
+def matrices_to_quat_xyzw(r: np.ndarray) -> np.ndarray:
+    """(B, 3, 3) rotation matrices -> (B, 4) unit quaternions (x, y, z, w) with w >= 0.
+
+    Each row uses the largest of the four ``4 q_k^2`` diagonal combinations as the divisor
+    (Shepperd, "Quaternion from rotation matrix", J. Guidance and Control 1(3), 1978), so no
+    division is by a small number. The inverse of ``quat_xyzw_to_matrices``.
+    """
+    r = np.asarray(r, dtype=np.float64)
+    m00, m11, m22 = r[:, 0, 0], r[:, 1, 1], r[:, 2, 2]
+    # rows: 4w^2, 4x^2, 4y^2, 4z^2 from the trace and diagonal
+    sq = np.stack([1 + m00 + m11 + m22, 1 + m00 - m11 - m22, 1 - m00 + m11 - m22,
+                   1 - m00 - m11 + m22], axis=1)
+    k = np.argmax(sq, axis=1)
+    s = np.sqrt(np.maximum(sq[np.arange(r.shape[0]), k], 1e-300))  # 2 |q_k|
+    d21, d02, d10 = r[:, 2, 1] - r[:, 1, 2], r[:, 0, 2] - r[:, 2, 0], r[:, 1, 0] - r[:, 0, 1]
+    s21, s02, s10 = r[:, 2, 1] + r[:, 1, 2], r[:, 0, 2] + r[:, 2, 0], r[:, 1, 0] + r[:, 0, 1]
+    cand = np.stack([
+        np.stack([d21, d02, d10, s * s], 1),   # w largest
+        np.stack([s * s, s10, s02, d21], 1),   # x largest
+        np.stack([s10, s * s, s21, d02], 1),   # y largest
+        np.stack([s02, s21, s * s, d10], 1),   # z largest
+    ], axis=1)  # (B, 4 cases, 4): each row is 2 s * (x, y, z, w)
+    q = cand[np.arange(r.shape[0]), k] / (2.0 * s[:, None])
+    q = q / np.linalg.norm(q, axis=1, keepdims=True)
+    return np.where(q[:, 3:4] < 0.0, -q, q)
+
+
+def trs_matrices(translation: np.ndarray, rotation: np.ndarray, scale: np.ndarray) -> np.ndarray:
+    """Batched ``trs_matrix``: (B, 3), (B, 4) xyzw, (B, 3) -> (B, 4, 4) = T * R * S."""
+    out = np.zeros((translation.shape[0], 4, 4))
+    out[:, :3, :3] = quat_xyzw_to_matrices(rotation) * np.asarray(scale, np.float64)[:, None, :]
+    out[:, :3, 3] = translation
+    out[:, 3, 3] = 1.0
+    return out
+
+
+def decompose_trs(m: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, float]:
+    """(B, 4, 4) affine matrices -> (translation (B, 3), rotation (B, 4) xyzw, scale (B, 3),
+    largest reconstruction error). glTF node TRS (spec, "Transformations") cannot hold shear, so
+    the error says whether ``m`` is a T * R * S at all; a negative determinant flips scale x."""
+    m = np.asarray(m, dtype=np.float64)
+    lin = m[:, :3, :3]
+    scale = np.linalg.norm(lin, axis=1)  # column norms
+    scale[:, 0] *= np.where(np.linalg.det(lin) < 0.0, -1.0, 1.0)
+    rot = lin / np.where(scale == 0.0, 1.0, scale)[:, None, :]
+    quat = matrices_to_quat_xyzw(rot)
+    back = trs_matrices(m[:, :3, 3], quat, scale)
+    return m[:, :3, 3].copy(), quat, scale, float(np.abs(back - m).max(initial=0.0))
+
+
+def global_transforms(local: np.ndarray, parents: list[int], order: list[int]) -> np.ndarray:
+    """World matrices of a node hierarchy (spec, "Transformations": global = parent's global *
+    local). local: (B, N, 4, 4); parents: (N,) parent index or -1; order: parents before
+    children. returns: (B, N, 4, 4)."""
+    out = np.empty_like(local, dtype=np.float64)
+    for n in order:
+        p = parents[n]
+        out[:, n] = local[:, n] if p < 0 else out[:, p] @ local[:, n]
+    return out

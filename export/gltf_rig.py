@@ -18,131 +18,32 @@ skinned mesh. Unskinned outputs are in the mesh's own frame.
 
 from __future__ import annotations
 
-import json
 import logging
 from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
-from urllib.parse import unquote
 
 import numpy as np
 from rigcast.export.gltf_eval import (
     dense_weights,
     euler_xyz_matrices,
+    global_transforms,
     morph_positions,
     skin_points,
     trs_matrix,
 )
+from rigcast.export.gltf_io import GltfReader, load_bounds
 from rigcast.export.rig import Rig, RigError
 from rigcast.runtime.schema import Control, ControlSchema
 
 log = logging.getLogger(__name__)
 
-_COMPONENT = {5120: "<i1", 5121: "<u1", 5122: "<i2", 5123: "<u2", 5125: "<u4", 5126: "<f4"}
-_NORM_DIVISOR = {5120: 127.0, 5121: 255.0, 5122: 32767.0, 5123: 65535.0}
-_WIDTH = {"SCALAR": 1, "VEC2": 2, "VEC3": 3, "VEC4": 4, "MAT2": 4, "MAT3": 9, "MAT4": 16}
 _AXES = ("x", "y", "z")
 _CHUNK = 512
 
 
-def load_bounds(source: str | Path | Mapping[str, Any] | None) -> dict[str, Any]:
-    """Bounds from a JSON file path, a JSON string, or a mapping (see ``GltfRig``)."""
-    if source is None:
-        return {}
-    if isinstance(source, Mapping):
-        data: Any = dict(source)
-    else:
-        text = str(source)
-        if text.lstrip().startswith("{"):
-            try:
-                data = json.loads(text)
-            except json.JSONDecodeError as e:
-                raise RigError(f"glTF bounds {text!r} are not valid JSON: {e}") from None
-        else:
-            path = Path(text)
-            if not path.is_file():
-                raise RigError(f"glTF bounds file {path} does not exist")
-            try:
-                data = json.loads(path.read_text())
-            except json.JSONDecodeError as e:
-                raise RigError(f"glTF bounds file {path} is not valid JSON: {e}") from None
-    if not isinstance(data, dict) or not set(data) <= {"joints", "morph"}:
-        raise RigError(f"glTF bounds must be an object with 'joints' and/or 'morph', got {data!r}")
-    for key in ("joints", "morph"):
-        if key in data and not isinstance(data[key], dict):
-            raise RigError(f"glTF bounds {key!r} must be an object of names, got {data[key]!r}")
-    return data
-
-
-class _Reader:
-    """Reads accessors of one loaded file into numpy arrays."""
-
-    def __init__(self, gltf: Any, path: Path) -> None:
-        self.gltf, self.path = gltf, path
-        self._buffers: dict[int, bytes] = {}
-
-    def buffer(self, index: int) -> bytes:
-        if index not in self._buffers:
-            buf = self.gltf.buffers[index]
-            if buf.uri is None:
-                blob = self.gltf.binary_blob()
-                if blob is None:
-                    raise RigError(f"{self.path}: buffer {index} has no uri and no GLB chunk")
-                data = bytes(blob)
-            elif buf.uri.startswith("data:"):
-                data = bytes(self.gltf.decode_data_uri(buf.uri))
-            else:
-                file = self.path.parent / unquote(buf.uri)  # URIs are percent-encoded
-                if not file.is_file():
-                    raise RigError(f"{self.path}: buffer file {file} does not exist")
-                data = file.read_bytes()
-            if len(data) < buf.byteLength:
-                raise RigError(f"{self.path}: buffer {index} holds {len(data)} bytes, "
-                               f"byteLength says {buf.byteLength}")
-            self._buffers[index] = data
-        return self._buffers[index]
-
-    def _view(self, view_index: int, offset: int, count: int, dtype: str, width: int,
-              where: str) -> np.ndarray:
-        view = self.gltf.bufferViews[view_index]
-        data = self.buffer(view.buffer)
-        item = np.dtype(dtype).itemsize
-        stride = view.byteStride or item * width
-        start = (view.byteOffset or 0) + offset
-        end = start + stride * (count - 1) + item * width if count else start
-        if end > (view.byteOffset or 0) + view.byteLength or end > len(data):
-            raise RigError(f"{self.path}: {where} reads past the end of bufferView {view_index}")
-        arr = np.ndarray((count, width), dtype=dtype, buffer=data, offset=start,
-                         strides=(stride, item))
-        return arr.copy()
-
-    def read(self, index: int, *, normalize_ints: bool = False) -> np.ndarray:
-        """Accessor ``index`` as (count, width) float64 (ints as floats, normalised if flagged)."""
-        acc = self.gltf.accessors[index]
-        where = f"accessor {index}"
-        if acc.componentType not in _COMPONENT or acc.type not in _WIDTH:
-            raise RigError(f"{self.path}: {where} has unsupported componentType "
-                           f"{acc.componentType} / type {acc.type}")
-        dtype, width = _COMPONENT[acc.componentType], _WIDTH[acc.type]
-        if acc.bufferView is not None:
-            out = self._view(acc.bufferView, acc.byteOffset or 0, acc.count, dtype, width, where)
-        else:
-            out = np.zeros((acc.count, width), dtype=dtype)
-        if acc.sparse is not None and acc.sparse.count:
-            sp = acc.sparse
-            if sp.indices.componentType not in (5121, 5123, 5125):
-                raise RigError(f"{self.path}: {where} sparse indices have a bad componentType")
-            idx = self._view(sp.indices.bufferView, sp.indices.byteOffset or 0, sp.count,
-                             _COMPONENT[sp.indices.componentType], 1, where + " sparse indices")
-            vals = self._view(sp.values.bufferView, sp.values.byteOffset or 0, sp.count, dtype,
-                              width, where + " sparse values")
-            if idx.size and idx.max() >= acc.count:
-                raise RigError(f"{self.path}: {where} sparse index {idx.max()} >= count")
-            out[idx[:, 0].astype(np.int64)] = vals
-        result = out.astype(np.float64)
-        if (acc.normalized or normalize_ints) and acc.componentType in _NORM_DIVISOR:
-            result = np.maximum(result / _NORM_DIVISOR[acc.componentType], -1.0)
-        return result
+def _is_matrix(node: Any) -> bool:
+    return node.matrix is not None and list(node.matrix) != list(np.eye(4).reshape(-1))
 
 
 def _node_local(node: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -150,7 +51,7 @@ def _node_local(node: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
 
     The posed local matrix of a rotated joint is ``left @ E @ right`` with E the Euler rotation.
     """
-    if node.matrix is not None and list(node.matrix) != list(np.eye(4).reshape(-1)):
+    if _is_matrix(node):
         m = np.asarray(node.matrix, dtype=np.float64).reshape(4, 4).T  # column-major in the file
         return m, np.eye(4), m
     left = trs_matrix(np.asarray(node.translation) if node.translation else None,
@@ -181,7 +82,7 @@ class GltfRig(Rig):
             raise RigError(f"glTF file {self.path} could not be read: {e}") from None
         if gltf is None or not gltf.meshes:
             raise RigError(f"glTF file {self.path} has no meshes")
-        reader = _Reader(gltf, self.path)
+        reader = GltfReader(gltf, self.path)
         try:
             mesh_index, node_index = self._pick_mesh(gltf, mesh)
             self._load_mesh(gltf, reader, mesh_index)
@@ -212,7 +113,7 @@ class GltfRig(Rig):
         nodes = [i for i, n in enumerate(gltf.nodes) if n.mesh == mesh_index]
         return mesh_index, (nodes[0] if nodes else None)
 
-    def _load_mesh(self, gltf: Any, reader: _Reader, mesh_index: int) -> None:
+    def _load_mesh(self, gltf: Any, reader: GltfReader, mesh_index: int) -> None:
         mesh = gltf.meshes[mesh_index]
         bases, targets, faces, joints, weights = [], [], [], [], []
         offset = 0
@@ -283,9 +184,18 @@ class GltfRig(Rig):
         self.local_right = np.array([x[1] for x in locals_]).reshape(count, 4, 4)
         self.local_rest = np.array([x[2] for x in locals_]).reshape(count, 4, 4)
         self.node_names = [n.name or f"node_{i}" for i, n in enumerate(gltf.nodes)]
+        # Rest TRS of every node (spec defaults where absent), the base that animation channels
+        # override; a node given by a matrix cannot be animated (spec, "Transformations").
+        self.node_is_matrix = [_is_matrix(n) for n in gltf.nodes]
+        self.node_trs = (
+            np.array([n.translation or [0.0, 0.0, 0.0] for n in gltf.nodes], np.float64),
+            np.array([n.rotation or [0.0, 0.0, 0.0, 1.0] for n in gltf.nodes], np.float64),
+            np.array([n.scale or [1.0, 1.0, 1.0] for n in gltf.nodes], np.float64),
+        )
         self.mesh_node = node_index
+        self.rest_global = global_transforms(self.local_rest[None], self.parents, self.order)[0]
 
-    def _load_skin(self, gltf: Any, reader: _Reader, node_index: int | None,
+    def _load_skin(self, gltf: Any, reader: GltfReader, node_index: int | None,
                    joint_bounds: Mapping[str, Any]) -> None:
         self.joint_controls: list[tuple[int, int, float, float]] = []  # (node, axis, lo, hi)
         self.skin_nodes: list[int] = []
@@ -376,6 +286,32 @@ class GltfRig(Rig):
             glob[n] = local if p < 0 else glob[p] @ local
         joints = np.stack([glob[n] for n in self.skin_nodes], axis=1)  # (B, J, 4, 4)
         return joints @ self.ibm[None]
+
+    def pose(self, weights: np.ndarray, local: np.ndarray) -> np.ndarray:
+        """Vertices of any scene pose, as a glTF 2.0 viewer evaluates it (animated takes).
+
+        weights: (B, T) morph weights; local: (B, N, 4, 4) every node's local matrix.
+        returns: (B, V, 3). Skinned meshes are in the scene's frame (joint globals times inverse
+        bind matrices); an unskinned mesh stays in its own rest frame and moves by its node's
+        motion from rest, inverse(G_rest) * G_t, so static node transforms cancel.
+        """
+        out = np.empty((weights.shape[0], self.base.shape[0], 3), dtype=np.float32)
+        t = self.targets.shape[0]
+        rest_inv = np.linalg.inv(self.rest_global[self.mesh_node]) if self.mesh_node is not None \
+            else None
+        for s in range(0, weights.shape[0], _CHUNK):
+            glob = global_transforms(local[s : s + _CHUNK], self.parents, self.order)
+            w = weights[s : s + _CHUNK]
+            pts: np.ndarray = morph_positions(self.base, self.targets, w) if t else \
+                np.broadcast_to(self.base, (w.shape[0], *self.base.shape))
+            if self.skin_nodes:
+                pts = skin_points(pts, glob[:, self.skin_nodes] @ self.ibm[None], self.skin_weights)
+            elif rest_inv is not None and self.mesh_node is not None:
+                motion = rest_inv[None] @ glob[:, self.mesh_node]  # (b, 4, 4)
+                # out[b, v, i] = sum_j motion[b, i, j] * pts[b, v, j] + motion[b, i, 3]
+                pts = np.einsum("bij,bvj->bvi", motion[:, :3, :3], pts) + motion[:, None, :3, 3]
+            out[s : s + _CHUNK] = pts
+        return out
 
     def _evaluate(self, controls: np.ndarray) -> np.ndarray:
         out = np.empty((controls.shape[0], self.base.shape[0], 3), dtype=np.float32)

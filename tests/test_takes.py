@@ -246,7 +246,7 @@ def test_gltf_without_animation_is_refused(tmp_path: Path) -> None:
 
 
 def test_slerp_and_cubic_against_spec_formulas() -> None:
-    from rigcast.takes import sample_channel, slerp
+    from rigcast.gltf_take import sample_channel, slerp
 
     q0 = np.array([[0.0, 0, 0, 1]])
     q1 = np.array([[0.0, 0, -np.sqrt(0.5), -np.sqrt(0.5)]])  # same as +90 deg, other hemisphere
