@@ -23,6 +23,7 @@ log = logging.getLogger(__name__)
 DEFAULT_INPUT = "tcp://127.0.0.1:5570"
 DEFAULT_OUTPUT = "tcp://127.0.0.1:5571"
 _CUT_MIN_FRAMES = 10_000  # takes this long solve with the subset fit error's cut forward graph
+_DEFAULT_FPS = 60.0  # rigcast.takes.DEFAULT_FPS (kept equal by tests/test_takes.py), not imported
 
 _DESCRIPTION = """\
 rigcast turns dense mesh streams (4D capture, generative models) into a character rig's animator
@@ -105,7 +106,8 @@ def _add_build(subs: argparse._SubParsersAction) -> None:
         "  rigcast build gltf:hero.glb --bounds hero_joints.json -o hero.rcb\n"
         "  rigcast build py:myrigs.crab:evaluate --schema crab_schema.json -o crab.rcb\n"
         "  rigcast build 'proc:mayabatch -script sample_rig.py' --schema s.json -o m.rcb\n"
-        "  rigcast build demo:arm --samples 300 --steps 100 -o arm.rcb   # a tiny, quick build\n",
+        "  rigcast build demo:arm --samples 300 --steps 100 -o arm.rcb   # a tiny, quick build\n"
+        "  rigcast build demo:face --take take.npz -o take.rcb   # per-take: fit this take's frames\n",
         _cmd_build,
     )
     p.add_argument("rig", help="rig source spec (see above)")
@@ -125,6 +127,11 @@ def _add_build(subs: argparse._SubParsersAction) -> None:
     p.add_argument("--seed", type=int, help="random seed")
     p.add_argument("--cache", type=Path, default=None,
                    help="cache folder: reuse a bundle whose inputs are unchanged, resume sampling")
+    p.add_argument("--take", type=Path, default=None,
+                   help="per-take mode: build (or reuse from the cache) the general bundle, then "
+                        "fine-tune its inverse on this take's own frames, self-supervised "
+                        "(.npy/.npz, OBJ frames or glTF, as `rigcast solve` reads them); for "
+                        "offline work on a known take")
     p.add_argument("--quiet", action="store_true", help="no progress bars")
 
 
@@ -154,6 +161,24 @@ def _add_endpoints(p: argparse.ArgumentParser, *, to_help: str, from_help: str,
     p.add_argument("--from", dest="source", default=DEFAULT_OUTPUT, metavar="ENDPOINT",
                    help=from_help)
     p.add_argument("--stream", default=None, help=stream_help)
+    p.add_argument("--server-key", type=Path, default=None, metavar="FILE.key",
+                   help="the server's public key (CurveZMQ; from `rigcast keys`)")
+    p.add_argument("--client-key", type=Path, default=None, metavar="FILE.key_secret",
+                   help="this client's secret key, whose public half the server authorises")
+
+
+def _add_keys(subs: argparse._SubParsersAction) -> None:
+    p = _sub(
+        subs, "keys", "make a CurveZMQ key pair for a server or a client",
+        "Write FOLDER/NAME.key (the public key, to share) and FOLDER/NAME.key_secret (the secret "
+        "key, readable by you only). A server on a stage network needs a pair of its own and a "
+        "folder of its clients' public keys; each client needs a pair and the server's public key.",
+        "  rigcast keys keys --name server\n"
+        "  rigcast keys keys/clients --name capture\n",
+        _cmd_keys,
+    )
+    p.add_argument("folder", type=Path, help="folder to write the two files in")
+    p.add_argument("--name", required=True, help="file name of the pair, e.g. server or capture")
 
 
 def _add_limits(p: argparse.ArgumentParser, *, frames: bool = True) -> None:
@@ -184,7 +209,8 @@ def _add_send(subs: argparse._SubParsersAction) -> None:
                    from_help="the server's output endpoint, to learn the stream id when not given",
                    stream_help=_FIRST_STREAM)
     p.add_argument("--fps", type=float, default=None,
-                   help="frame rate (default: the take's, or 60)")
+                   help=f"frame rate (default: the take's own, else {_DEFAULT_FPS:g}, said when "
+                        "assumed)")
     p.add_argument("--loop", action="store_true", help="start over at the end of the take")
     _add_limits(p)
     p.add_argument("--head-motion", action="store_true",
@@ -242,25 +268,35 @@ def _add_record(subs: argparse._SubParsersAction) -> None:
 
 def _add_solve(subs: argparse._SubParsersAction) -> None:
     p = _sub(
-        subs, "solve", "solve a whole take offline -> CSV, JSON or glTF",
+        subs, "solve", "solve a whole take offline -> CSV, JSON, glTF or USD",
         "Solve every frame of a take in batches with onnxruntime, as fast as the CPU allows, and "
         "write the controls. Takes: .npy/.npz (frames x V x 3), a folder of .obj files (one per "
         "frame), or a .gltf/.glb with morph-weight or skinned animation. Outputs by extension: "
-        ".csv, .json, or .gltf/.glb (blendshape rigs: the morph targets and their weight "
-        "animation).\n\nFilters: none; causal (the live server's One Euro filter); smooth "
-        "(zero-phase: the filter run forwards and backwards, no lag, offline only).",
+        ".csv or .json (controls, per-frame fit error and flags, head pose), .gltf/.glb or "
+        ".usda/.usdc/.usd (the rig and its animation: morph targets for blendshape controls; "
+        "with --rig, a skinned rig's joints; the head pose on the root). The flagged frame "
+        "ranges are printed.\n\nFilters: none; causal (the live server's One Euro filter); "
+        "smooth (zero-phase: the filter run forwards and backwards, no lag, offline only).",
         "  rigcast solve face.rcb take.npz -o take.csv\n"
         "  rigcast solve face.rcb frames/ --fps 24 -o take.json --filter smooth\n"
-        "  rigcast solve face.rcb capture.glb -o solved.glb --filter causal\n",
+        "  rigcast solve face.rcb capture.glb -o solved.glb --filter causal\n"
+        "  rigcast solve arm.rcb take.npz -o take.usda --rig demo:arm\n",
         _cmd_solve,
     )
     p.add_argument("bundle", type=Path, help="bundle file")
     p.add_argument("take", type=Path, help="take: .npy/.npz, a folder of .obj, or .gltf/.glb")
-    p.add_argument("-o", "--out", type=Path, required=True, help=".csv, .json, .gltf or .glb")
+    p.add_argument("-o", "--out", type=Path, required=True,
+                   help=".csv, .json, .gltf, .glb, .usda, .usdc or .usd")
+    p.add_argument("--rig", default=None, metavar="SPEC",
+                   help="the bundle's rig (as given to `rigcast build`): glTF and USD outputs of "
+                        "a skinned rig then animate its joints")
+    p.add_argument("--bounds", type=Path, default=None,
+                   help="the joint bounds the bundle was built with (glTF rigs, with --rig)")
     p.add_argument("--filter", choices=("none", "causal", "smooth"), default="none",
                    help="temporal filter")
     p.add_argument("--fps", type=float, default=None,
-                   help="frame rate of the take, when the file does not carry one")
+                   help=f"frame rate of the take (default: the take's own, else {_DEFAULT_FPS:g}, "
+                        "said when assumed)")
     p.add_argument("--stabilise", action=argparse.BooleanOptionalAction, default=None,
                    help="remove rigid head motion (default: only when the bundle's rig has a "
                         "rigid region, as its build measured)")
@@ -323,7 +359,7 @@ def build_parser() -> argparse.ArgumentParser:
                         help="more log output (-vv for debug)")
     subs = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     for add in (_add_demo, _add_build, _add_inspect, _add_serve, _add_send, _add_watch,
-                _add_record, _add_solve):
+                _add_record, _add_solve, _add_keys):
         add(subs)
     return parser
 
@@ -347,9 +383,16 @@ def _cmd_build(args: argparse.Namespace) -> int:
     if args.epochs is not None:
         config = replace(config, forward=replace(config.forward, epochs=args.epochs))
     out = args.out if args.out is not None else Path(f"{rig.name}.rcb")
+    frames = None
+    if args.take is not None:
+        from rigcast.takes import read_take
+
+        frames = read_take(args.take).vertices
+        config = replace(config, mode="take")
     try:
         with build_progress(not args.quiet and sys.stderr.isatty()) as progress:
-            result = build_bundle(rig, out, config, cache_dir=args.cache, progress=progress)
+            result = build_bundle(rig, out, config, cache_dir=args.cache, progress=progress,
+                                  frames=frames)
     finally:
         rig.close()
     for line in build_summary(result):
@@ -357,6 +400,12 @@ def _cmd_build(args: argparse.Namespace) -> int:
     if args.report is not None:
         _say(f"report: {write_build_report(args.report, result)}")
     return EXIT_OK
+
+
+def _cmd_keys(args: argparse.Namespace) -> int:
+    from rigcast.keys import keys_from_args
+
+    return keys_from_args(args)
 
 
 def _cmd_serve(args: argparse.Namespace) -> int:
@@ -386,11 +435,13 @@ def _cmd_record(args: argparse.Namespace) -> int:
 def _cmd_solve(args: argparse.Namespace) -> int:
     import numpy as np
 
-    from rigcast.animation_out import morph_basis, write_controls
+    from rigcast.animation_out import write_controls
     from rigcast.errors import MismatchError
     from rigcast.forward_subset import slice_forward_graph
     from rigcast.runtime.batch import BatchSolver, FilterKind, SolveOptions, filter_params
     from rigcast.runtime.bundle import load_bundle
+    from rigcast.runtime.pipeline import stabilise_for
+    from rigcast.solve_out import flag_lines, frame_quality, head_pose, output_form
     from rigcast.takes import read_take
 
     bundle = load_bundle(args.bundle)
@@ -406,27 +457,27 @@ def _cmd_solve(args: argparse.Namespace) -> int:
     solver = BatchSolver(bundle, subset_graph=cutter)
     params = filter_params(bundle, args.min_cutoff, args.beta)
     kinds: dict[str, FilterKind] = {"none": "none", "causal": "causal", "smooth": "zero_phase"}
-    options = SolveOptions(stabilise=args.stabilise, filter=kinds[args.filter],
+    stabilise = stabilise_for(args.stabilise, bundle, f"solve {bundle.name}")
+    options = SolveOptions(stabilise=stabilise, filter=kinds[args.filter],
                            params=params,
                            smooth_hz=args.smooth_hz, fit_error=args.fit_error,
                            batch_size=args.batch_size)
     result = solver.solve(take.vertices, take.times_s, options)
-    basis = None
-    if args.out.suffix.lower() in (".gltf", ".glb"):
-        # The bundle's forward model stands in for the rig; it is a learned approximation, so
-        # linearity is judged loosely.
-        basis = morph_basis(bundle.name, bundle.schema, bundle.neutral, bundle.faces,
-                            solver.forward.evaluate, linearity_tol=0.05)
+    basis, skeleton = output_form(bundle, args.out, solver.forward, args.rig, args.bounds)
+    quality = frame_quality(bundle, result, take.times_s)
+    head = head_pose(bundle, take.vertices, stabilise=stabilise)
     write_controls(args.out, bundle.schema, result.controls, take.times_s, fps=take.fps,
-                   basis=basis)
+                   basis=basis, skeleton=skeleton, quality=quality, head=head)
     if result.fit_error == "off":
         fit = "fit error off"
     else:
         fit = (f"fit error ({result.fit_error}, {result.fit_vertices} of "
                f"{bundle.vertex_count} vertices) RMS mean {float(np.nanmean(result.fit_rms)):.5f}, "
                f"{int(result.off_manifold.sum())} off-manifold frames")
-    _say(f"solved {result.controls.shape[0]} frames in {result.seconds:.3f} s "
+    _say(f"solved {result.controls.shape[0]} frames at {take.fps_note} in {result.seconds:.3f} s "
          f"({result.frames_per_second:,.0f} frames/s); {fit}; wrote {args.out}")
+    for line in flag_lines(quality):
+        _say(line)
     return EXIT_OK
 
 

@@ -17,6 +17,7 @@ import numpy as np
 
 from rigcast.errors import EXIT_OK, NoAnswerError, UserError
 from rigcast.runtime.client import ControlsSubscriber, MeshSender, ServerError
+from rigcast.runtime.keys import ClientCurve
 from rigcast.runtime.protocol import ControlsMessage, schema_from_reply
 from rigcast.runtime.schema import ControlSchema
 from rigcast.send import request_schema
@@ -114,8 +115,9 @@ def record_controls(
     return collect(messages, arrived, subscriber.stream)
 
 
-def fetch_schema(endpoint: str, stream: str, timeout_s: float) -> ControlSchema:
-    with MeshSender(endpoint) as sender:
+def fetch_schema(endpoint: str, stream: str, timeout_s: float,
+                 curve: ClientCurve | None = None) -> ControlSchema:
+    with MeshSender(endpoint, curve=curve) as sender:
         try:
             reply = request_schema(sender, stream, timeout_s)
         except TimeoutError:
@@ -129,14 +131,15 @@ def fetch_schema(endpoint: str, stream: str, timeout_s: float) -> ControlSchema:
 
 def record_from_args(args: argparse.Namespace) -> int:
     from rigcast.animation_out import write_controls
-    from rigcast.watch import stream_or_discover
+    from rigcast.watch import curve_from_args, stream_or_discover
 
     if args.out.suffix.lower() not in (".csv", ".json"):
         raise UserError(f"{args.out}: record writes .csv or .json, not {args.out.suffix!r}",
                         "give an output path ending in .csv or .json", code=2)
-    stream = stream_or_discover(args.stream, args.source, args.timeout)
-    schema = fetch_schema(args.to, stream, args.timeout)
-    with ControlsSubscriber(stream, args.source) as sub:
+    curve = curve_from_args(args)
+    stream = stream_or_discover(args.stream, args.source, args.timeout, curve)
+    schema = fetch_schema(args.to, stream, args.timeout, curve)
+    with ControlsSubscriber(stream, args.source, curve=curve) as sub:
         rec = record_controls(sub, duration_s=args.duration, max_frames=args.frames)
     if rec.count == 0:
         raise NoAnswerError(f"no controls arrived for stream {stream!r} from {args.source}",

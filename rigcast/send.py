@@ -274,7 +274,7 @@ def stream_take(
 
 def send_from_args(args: argparse.Namespace) -> int:
     from rigcast.takes import read_take
-    from rigcast.watch import stream_or_discover
+    from rigcast.watch import curve_from_args, stream_or_discover
 
     # Every option is checked before the take is read or a server is asked.
     if args.fps is not None and not (math.isfinite(args.fps) and args.fps > 0):
@@ -284,8 +284,9 @@ def send_from_args(args: argparse.Namespace) -> int:
                           seed=args.seed)
     take = read_take(args.take, fps=args.fps)
     fps = float(args.fps or take.fps)
-    stream = stream_or_discover(args.stream, args.source, args.timeout)
-    with MeshSender(args.to) as sender:
+    curve = curve_from_args(args)
+    stream = stream_or_discover(args.stream, args.source, args.timeout, curve)
+    with MeshSender(args.to, curve=curve) as sender:
         reply = check_server(sender, stream, take.vertex_count, args.timeout, args.to)
         log.info("server at %s serves %s for stream %s", args.to, reply.get("bundle"), stream)
         stats = stream_take(sender, take.vertices, take.times_s, stream=stream, fps=fps,

@@ -18,6 +18,7 @@ from typing import Any
 
 import numpy as np
 
+from rigcast.runtime.keys import ClientCurve, client_curve
 from rigcast.runtime.protocol import FLAG_OFF_MANIFOLD, ControlsMessage
 from rigcast.runtime.schema import ControlSchema
 
@@ -90,11 +91,16 @@ class WatchState:
 
 
 def _ms(x: Any) -> str:
-    return "-" if x is None or (isinstance(x, float) and math.isnan(x)) else f"{float(x):.3f}"
+    return "-" if x is None or (isinstance(x, float) and math.isnan(x)) else _num(x, "{:.3f}")
 
 
 def _num(x: Any, fmt: str = "{:.5f}") -> str:
-    return "-" if x is None else fmt.format(float(x))
+    if x is None:
+        return "-"
+    try:
+        return fmt.format(float(x))
+    except (TypeError, ValueError, OverflowError):
+        return "?"  # not a number: nothing from the wire may stop the view
 
 
 def activity(values: np.ndarray, schema: ControlSchema | None) -> np.ndarray:
@@ -169,6 +175,7 @@ def plain_lines(state: WatchState, now: float | None = None) -> list[str]:
 def render_view(state: WatchState, top: int = 8, now: float | None = None) -> Any:
     """A rich renderable of the whole state: one panel per stream, then recent events."""
     from rich.console import Group
+    from rich.markup import escape
     from rich.panel import Panel
     from rich.table import Table
     from rich.text import Text
@@ -194,24 +201,25 @@ def render_view(state: WatchState, top: int = 8, now: float | None = None) -> An
         counts.add_column("what")
         counts.add_column("value", justify="right")
         counts.add_row("input fps", _num(t.get("input_fps"), "{:.1f}"))
-        counts.add_row("processed", str(t.get("processed", 0)))
-        counts.add_row("dropped", str(t.get("dropped", 0)))
-        counts.add_row("stale", str(t.get("stale", 0)))
-        counts.add_row("rejected", str(t.get("rejected", 0)),
+        counts.add_row("processed", escape(str(t.get("processed", 0))))
+        counts.add_row("dropped", escape(str(t.get("dropped", 0))))
+        counts.add_row("stale", escape(str(t.get("stale", 0))))
+        counts.add_row("rejected", escape(str(t.get("rejected", 0))),
                        style="yellow" if t.get("rejected") else None)
         for reason, n in sorted((t.get("rejected_by_reason") or {}).items()):
-            counts.add_row(f"  {reason}", str(n), style="yellow")
+            counts.add_row(escape(f"  {reason}"), escape(str(n)), style="yellow")
         server = t.get("server") or {}
         if int(server.get("rejected") or 0) > int(t.get("rejected") or 0):
-            counts.add_row("rejected server-wide", str(server["rejected"]), style="yellow")
+            counts.add_row("rejected server-wide", escape(str(server["rejected"])),
+                           style="yellow")
             for reason, n in sorted((server.get("rejected_by_reason") or {}).items()):
-                counts.add_row(f"  {reason}", str(n), style="yellow")
+                counts.add_row(escape(f"  {reason}"), escape(str(n)), style="yellow")
         fit = t.get("fit_error") or {}
         hot = view.off_manifold_recent(now)
         counts.add_row("fit error rms", _num(fit.get("rms")), style="bold red" if hot else None)
         counts.add_row("fit error max", _num(fit.get("max")))
         counts.add_row("fit rms mean", _num(fit.get("rms_mean")))
-        counts.add_row("off-manifold frames", str(fit.get("off_manifold", 0)),
+        counts.add_row("off-manifold frames", escape(str(fit.get("off_manifold", 0))),
                        style="bold white on red" if hot else None)
         bars = Table(title="most active controls", title_justify="left", box=None,
                      show_header=False, pad_edge=False)
@@ -219,17 +227,19 @@ def render_view(state: WatchState, top: int = 8, now: float | None = None) -> An
         bars.add_column("bar")
         bars.add_column("value", justify="right")
         for name, value, act in top_controls(view, top):
-            bars.add_row(name, Text(_bar(act), style="cyan"), f"{value:+.3f}")
+            bars.add_row(Text(name), Text(_bar(act), style="cyan"), f"{value:+.3f}")
         grid = Table.grid(padding=(0, 3))
         grid.add_row(stages, counts, bars)
-        title = f"stream {view.stream}"
+        # Everything from the wire is escaped: a stream id like "[/bold]" is text, not markup.
+        title = f"stream {escape(view.stream)}"
         if t.get("bundle"):
-            title += f" · {t['bundle']}"
+            title += f" · {escape(str(t['bundle']))}"
         if hot:
             title += " · OFF-MANIFOLD"
         panels.append(Panel(grid, title=title, border_style="red" if hot else "blue"))
     if state.events:
-        panels.append(Panel("\n".join(state.events), title="recent events", border_style="dim"))
+        panels.append(Panel(Text("\n".join(state.events)), title="recent events",
+                            border_style="dim"))
     return Group(*panels)
 
 
@@ -257,7 +267,8 @@ class _AllStreams:
     """A SUB socket on every stream's controls and telemetry and on the events (the client's
     ControlsSubscriber follows one stream; the view follows them all)."""
 
-    def __init__(self, endpoint: str, *, controls: bool = True) -> None:
+    def __init__(self, endpoint: str, *, controls: bool = True,
+                 curve: ClientCurve | None = None) -> None:
         import zmq
 
         from rigcast.runtime import protocol
@@ -272,6 +283,8 @@ class _AllStreams:
             topics.append(protocol.TOPIC_CONTROLS)
         for topic in topics:
             self.socket.setsockopt(zmq.SUBSCRIBE, topic)
+        if curve is not None:
+            curve.apply(self.socket)
         self.socket.connect(endpoint)
 
     def recv(self, timeout_ms: int) -> ControlsMessage | dict[str, Any] | None:
@@ -288,14 +301,15 @@ class _AllStreams:
         self.socket.close(linger=0)
 
 
-def _fetch_schema(endpoint: str, stream: str, timeout_s: float = 0.5) -> ControlSchema | None:
+def _fetch_schema(endpoint: str, stream: str, timeout_s: float = 0.5,
+                  curve: ClientCurve | None = None) -> ControlSchema | None:
     """The stream's schema from the server's input endpoint, or None when it does not answer."""
     from rigcast.runtime.client import MeshSender, ServerError
     from rigcast.runtime.protocol import schema_from_reply
     from rigcast.runtime.schema import SchemaError
     from rigcast.send import request_schema
 
-    with MeshSender(endpoint) as sender:
+    with MeshSender(endpoint, curve=curve) as sender:
         try:
             return schema_from_reply(request_schema(sender, stream, timeout_s))
         except (TimeoutError, ServerError, SchemaError) as exc:
@@ -315,6 +329,7 @@ def watch(
     timeout_s: float = 10.0,
     plain: bool = False,
     write: Callable[[str], None] | None = None,
+    curve: ClientCurve | None = None,
 ) -> WatchState:
     """Run the view until Ctrl-C, ``duration_s``, or (``once``) the first full snapshot.
 
@@ -332,7 +347,7 @@ def watch(
 
     out = write or _stdout
     state = WatchState(only_stream=stream)
-    sub = _AllStreams(source)
+    sub = _AllStreams(source, curve=curve)
     asked: set[str] = set()
     start = time.monotonic()
     interactive = sys.stdout.isatty() and not plain and not once
@@ -347,7 +362,7 @@ def watch(
             for name, view in state.streams.items():
                 if name not in asked:
                     asked.add(name)
-                    view.schema = _fetch_schema(schema_endpoint, name)
+                    view.schema = _fetch_schema(schema_endpoint, name, curve=curve)
 
     def done() -> bool:
         return duration_s is not None and time.monotonic() - start >= duration_s
@@ -387,16 +402,17 @@ def watch_from_args(args: Any) -> int:
 
     try:
         watch(args.source, schema_endpoint=args.to, stream=args.stream, once=args.once,
-              duration_s=args.duration, top=args.top, timeout_s=args.timeout, plain=args.plain)
+              duration_s=args.duration, top=args.top, timeout_s=args.timeout, plain=args.plain,
+              curve=curve_from_args(args))
     except TimeoutError as exc:
         raise NoAnswerError(str(exc),
                             "start a server with `rigcast serve`, or check --from") from None
     return EXIT_OK
 
 
-def discover_stream(source: str, timeout_s: float = 3.0) -> str:
+def discover_stream(source: str, timeout_s: float = 3.0, curve: ClientCurve | None = None) -> str:
     """The first stream id named by a server's telemetry on ``source``; TimeoutError if none."""
-    sub = _AllStreams(source, controls=False)
+    sub = _AllStreams(source, controls=False, curve=curve)
     try:
         deadline = time.monotonic() + timeout_s
         while (left := deadline - time.monotonic()) > 0:
@@ -408,13 +424,19 @@ def discover_stream(source: str, timeout_s: float = 3.0) -> str:
     raise TimeoutError(f"no telemetry from {source} within {timeout_s:g} s to learn a stream id")
 
 
-def stream_or_discover(stream: str | None, source: str, timeout_s: float) -> str:
+def stream_or_discover(stream: str | None, source: str, timeout_s: float,
+                       curve: ClientCurve | None = None) -> str:
     """The named stream, or the first one heard on ``source``; one readable error if none."""
     if stream is not None:
         return stream
     from rigcast.errors import NoAnswerError
 
     try:
-        return discover_stream(source, timeout_s=timeout_s)
+        return discover_stream(source, timeout_s=timeout_s, curve=curve)
     except TimeoutError as exc:
         raise NoAnswerError(str(exc), "start a server, or pass --stream and --from") from None
+
+
+def curve_from_args(args: Any) -> ClientCurve | None:
+    """The CURVE keys given by --server-key and --client-key (both or neither), or None."""
+    return client_curve(getattr(args, "server_key", None), getattr(args, "client_key", None))

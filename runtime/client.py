@@ -7,6 +7,7 @@ MeshSender (DEALER) sends mesh frames and requests to the server's ROUTER; Contr
 from __future__ import annotations
 
 import logging
+import secrets
 import time
 from collections import deque
 from typing import Any
@@ -14,6 +15,7 @@ from typing import Any
 import numpy as np
 import zmq
 from rigcast.runtime import protocol
+from rigcast.runtime.keys import ClientCurve
 
 log = logging.getLogger(__name__)
 
@@ -41,12 +43,19 @@ class MeshSender:
         context: zmq.Context | None = None,
         sndhwm: int = 16,
         rcvhwm: int = 1000,
+        curve: ClientCurve | None = None,
+        session: int | None = None,
     ) -> None:
         self.socket = (context or zmq.Context.instance()).socket(zmq.DEALER)
         self.socket.setsockopt(zmq.SNDHWM, sndhwm)
         self.socket.setsockopt(zmq.RCVHWM, rcvhwm)
         self.socket.setsockopt(zmq.LINGER, 0)
+        if curve is not None:
+            curve.apply(self.socket)
         self.socket.connect(endpoint)
+        # A fresh session per sender: when this process restarts, the server restarts the
+        # stream's timing instead of refusing the new clock (docs/protocol.md, restart rule).
+        self.session = secrets.randbits(63) if session is None else session
         self.dropped = 0
         self._replies: deque[dict[str, Any]] = deque(maxlen=10_000)
 
@@ -57,7 +66,8 @@ class MeshSender:
         t = time.time_ns() if t_send_ns is None else t_send_ns
         try:
             self.socket.send_multipart(
-                protocol.encode_mesh(stream, frame, t, vertices), zmq.NOBLOCK, copy=False
+                protocol.encode_mesh(stream, frame, t, vertices, self.session), zmq.NOBLOCK,
+                copy=False
             )
         except zmq.Again:
             self.dropped += 1
@@ -133,6 +143,7 @@ class ControlsSubscriber:
         events: bool = False,
         context: zmq.Context | None = None,
         rcvhwm: int = 1000,
+        curve: ClientCurve | None = None,
     ) -> None:
         self.stream = stream
         name = stream.encode("utf-8")
@@ -148,6 +159,8 @@ class ControlsSubscriber:
         self.socket.setsockopt(zmq.LINGER, 0)
         for topic in self.topics:
             self.socket.setsockopt(zmq.SUBSCRIBE, topic)
+        if curve is not None:
+            curve.apply(self.socket)
         self.socket.connect(endpoint)
 
     def recv(self, timeout_ms: int = 1000) -> protocol.ControlsMessage | dict[str, Any] | None:

@@ -15,11 +15,12 @@ from pathlib import Path
 
 import zmq
 import zmq.auth
+from rigcast.runtime.config import ConfigError
 
 log = logging.getLogger(__name__)
 
 
-class KeyFileError(ValueError):
+class KeyFileError(ConfigError):
     """A key file or folder is missing or unreadable; the message names it."""
 
 

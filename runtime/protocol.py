@@ -130,17 +130,23 @@ def _topic(prefix: bytes, stream: str) -> bytes:
 
 
 def encode_mesh(
-    stream: str, frame: int, t_send_ns: int, vertices: np.ndarray
+    stream: str, frame: int, t_send_ns: int, vertices: np.ndarray, session: int | None = None
 ) -> list[bytes | memoryview]:
     """[header, payload] for a mesh frame. vertices (V, 3); sent without a copy when it is
-    already C-contiguous little-endian float32 (send the list with ``copy=False``)."""
+    already C-contiguous little-endian float32 (send the list with ``copy=False``). ``session``
+    (uint64, optional) names the sender's run: a new value restarts the stream's timing
+    (docs/protocol.md, the restart rule)."""
     v = np.asarray(vertices)
     if v.ndim != 2 or v.shape[1] != 3:
         raise ValueError(f"vertices must be (V, 3), got {v.shape}")
     if v.dtype != _F32 or not v.flags.c_contiguous:
         v = np.ascontiguousarray(v, dtype=_F32)
-    header = pack({"v": PROTOCOL_VERSION, "type": "mesh", "stream": stream, "frame": int(frame),
-                   "t_send_ns": int(t_send_ns), "vertices": int(v.shape[0])})
+    fields: dict[str, Any] = {"v": PROTOCOL_VERSION, "type": "mesh", "stream": stream,
+                              "frame": int(frame), "t_send_ns": int(t_send_ns),
+                              "vertices": int(v.shape[0])}
+    if session is not None:
+        fields["session"] = int(session)
+    header = pack(fields)
     return [header, v.data.cast("B") if v.size else b""]
 
 

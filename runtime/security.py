@@ -79,7 +79,7 @@ class ServerSecurity:
         self.auth = CappedAuthenticator(ctx, config.max_connections)
         self.auth.start()
         if config.authorized_keys is not None:
-            self.auth.configure_curve(domain="*", location=str(config.authorized_keys))
+            self.auth.configure_curve(domain=ZAP_DOMAIN, location=str(config.authorized_keys))
         self._monitors: list[zmq.Socket] = []
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
