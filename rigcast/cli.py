@@ -23,7 +23,6 @@ log = logging.getLogger(__name__)
 DEFAULT_INPUT = "tcp://127.0.0.1:5570"
 DEFAULT_OUTPUT = "tcp://127.0.0.1:5571"
 _CUT_MIN_FRAMES = 10_000  # takes this long solve with the subset fit error's cut forward graph
-_DEFAULT_FPS = 60.0  # rigcast.takes.DEFAULT_FPS (kept equal by tests/test_takes.py), not imported
 
 _DESCRIPTION = """\
 rigcast turns dense mesh streams (4D capture, generative models) into a character rig's animator
@@ -106,8 +105,7 @@ def _add_build(subs: argparse._SubParsersAction) -> None:
         "  rigcast build gltf:hero.glb --bounds hero_joints.json -o hero.rcb\n"
         "  rigcast build py:myrigs.crab:evaluate --schema crab_schema.json -o crab.rcb\n"
         "  rigcast build 'proc:mayabatch -script sample_rig.py' --schema s.json -o m.rcb\n"
-        "  rigcast build demo:arm --samples 300 --steps 100 -o arm.rcb   # a tiny, quick build\n"
-        "  rigcast build demo:face --take take.npz -o take.rcb   # per-take: fit this take's frames\n",
+        "  rigcast build demo:arm --samples 300 --steps 100 -o arm.rcb   # a tiny, quick build\n",
         _cmd_build,
     )
     p.add_argument("rig", help="rig source spec (see above)")
@@ -127,11 +125,6 @@ def _add_build(subs: argparse._SubParsersAction) -> None:
     p.add_argument("--seed", type=int, help="random seed")
     p.add_argument("--cache", type=Path, default=None,
                    help="cache folder: reuse a bundle whose inputs are unchanged, resume sampling")
-    p.add_argument("--take", type=Path, default=None,
-                   help="per-take mode: build (or reuse from the cache) the general bundle, then "
-                        "fine-tune its inverse on this take's own frames, self-supervised "
-                        "(.npy/.npz, OBJ frames or glTF, as `rigcast solve` reads them); for "
-                        "offline work on a known take")
     p.add_argument("--quiet", action="store_true", help="no progress bars")
 
 
@@ -209,8 +202,7 @@ def _add_send(subs: argparse._SubParsersAction) -> None:
                    from_help="the server's output endpoint, to learn the stream id when not given",
                    stream_help=_FIRST_STREAM)
     p.add_argument("--fps", type=float, default=None,
-                   help=f"frame rate (default: the take's own, else {_DEFAULT_FPS:g}, said when "
-                        "assumed)")
+                   help="frame rate (default: the take's, or 60)")
     p.add_argument("--loop", action="store_true", help="start over at the end of the take")
     _add_limits(p)
     p.add_argument("--head-motion", action="store_true",
@@ -268,35 +260,25 @@ def _add_record(subs: argparse._SubParsersAction) -> None:
 
 def _add_solve(subs: argparse._SubParsersAction) -> None:
     p = _sub(
-        subs, "solve", "solve a whole take offline -> CSV, JSON, glTF or USD",
+        subs, "solve", "solve a whole take offline -> CSV, JSON or glTF",
         "Solve every frame of a take in batches with onnxruntime, as fast as the CPU allows, and "
         "write the controls. Takes: .npy/.npz (frames x V x 3), a folder of .obj files (one per "
         "frame), or a .gltf/.glb with morph-weight or skinned animation. Outputs by extension: "
-        ".csv or .json (controls, per-frame fit error and flags, head pose), .gltf/.glb or "
-        ".usda/.usdc/.usd (the rig and its animation: morph targets for blendshape controls; "
-        "with --rig, a skinned rig's joints; the head pose on the root). The flagged frame "
-        "ranges are printed.\n\nFilters: none; causal (the live server's One Euro filter); "
-        "smooth (zero-phase: the filter run forwards and backwards, no lag, offline only).",
+        ".csv, .json, or .gltf/.glb (blendshape rigs: the morph targets and their weight "
+        "animation).\n\nFilters: none; causal (the live server's One Euro filter); smooth "
+        "(zero-phase: the filter run forwards and backwards, no lag, offline only).",
         "  rigcast solve face.rcb take.npz -o take.csv\n"
         "  rigcast solve face.rcb frames/ --fps 24 -o take.json --filter smooth\n"
-        "  rigcast solve face.rcb capture.glb -o solved.glb --filter causal\n"
-        "  rigcast solve arm.rcb take.npz -o take.usda --rig demo:arm\n",
+        "  rigcast solve face.rcb capture.glb -o solved.glb --filter causal\n",
         _cmd_solve,
     )
     p.add_argument("bundle", type=Path, help="bundle file")
     p.add_argument("take", type=Path, help="take: .npy/.npz, a folder of .obj, or .gltf/.glb")
-    p.add_argument("-o", "--out", type=Path, required=True,
-                   help=".csv, .json, .gltf, .glb, .usda, .usdc or .usd")
-    p.add_argument("--rig", default=None, metavar="SPEC",
-                   help="the bundle's rig (as given to `rigcast build`): glTF and USD outputs of "
-                        "a skinned rig then animate its joints")
-    p.add_argument("--bounds", type=Path, default=None,
-                   help="the joint bounds the bundle was built with (glTF rigs, with --rig)")
+    p.add_argument("-o", "--out", type=Path, required=True, help=".csv, .json, .gltf or .glb")
     p.add_argument("--filter", choices=("none", "causal", "smooth"), default="none",
                    help="temporal filter")
     p.add_argument("--fps", type=float, default=None,
-                   help=f"frame rate of the take (default: the take's own, else {_DEFAULT_FPS:g}, "
-                        "said when assumed)")
+                   help="frame rate of the take, when the file does not carry one")
     p.add_argument("--stabilise", action=argparse.BooleanOptionalAction, default=None,
                    help="remove rigid head motion (default: only when the bundle's rig has a "
                         "rigid region, as its build measured)")
@@ -383,16 +365,9 @@ def _cmd_build(args: argparse.Namespace) -> int:
     if args.epochs is not None:
         config = replace(config, forward=replace(config.forward, epochs=args.epochs))
     out = args.out if args.out is not None else Path(f"{rig.name}.rcb")
-    frames = None
-    if args.take is not None:
-        from rigcast.takes import read_take
-
-        frames = read_take(args.take).vertices
-        config = replace(config, mode="take")
     try:
         with build_progress(not args.quiet and sys.stderr.isatty()) as progress:
-            result = build_bundle(rig, out, config, cache_dir=args.cache, progress=progress,
-                                  frames=frames)
+            result = build_bundle(rig, out, config, cache_dir=args.cache, progress=progress)
     finally:
         rig.close()
     for line in build_summary(result):
@@ -435,13 +410,11 @@ def _cmd_record(args: argparse.Namespace) -> int:
 def _cmd_solve(args: argparse.Namespace) -> int:
     import numpy as np
 
-    from rigcast.animation_out import write_controls
+    from rigcast.animation_out import morph_basis, write_controls
     from rigcast.errors import MismatchError
     from rigcast.forward_subset import slice_forward_graph
     from rigcast.runtime.batch import BatchSolver, FilterKind, SolveOptions, filter_params
     from rigcast.runtime.bundle import load_bundle
-    from rigcast.runtime.pipeline import stabilise_for
-    from rigcast.solve_out import flag_lines, frame_quality, head_pose, output_form
     from rigcast.takes import read_take
 
     bundle = load_bundle(args.bundle)
@@ -457,27 +430,27 @@ def _cmd_solve(args: argparse.Namespace) -> int:
     solver = BatchSolver(bundle, subset_graph=cutter)
     params = filter_params(bundle, args.min_cutoff, args.beta)
     kinds: dict[str, FilterKind] = {"none": "none", "causal": "causal", "smooth": "zero_phase"}
-    stabilise = stabilise_for(args.stabilise, bundle, f"solve {bundle.name}")
-    options = SolveOptions(stabilise=stabilise, filter=kinds[args.filter],
+    options = SolveOptions(stabilise=args.stabilise, filter=kinds[args.filter],
                            params=params,
                            smooth_hz=args.smooth_hz, fit_error=args.fit_error,
                            batch_size=args.batch_size)
     result = solver.solve(take.vertices, take.times_s, options)
-    basis, skeleton = output_form(bundle, args.out, solver.forward, args.rig, args.bounds)
-    quality = frame_quality(bundle, result, take.times_s)
-    head = head_pose(bundle, take.vertices, stabilise=stabilise)
+    basis = None
+    if args.out.suffix.lower() in (".gltf", ".glb"):
+        # The bundle's forward model stands in for the rig; it is a learned approximation, so
+        # linearity is judged loosely.
+        basis = morph_basis(bundle.name, bundle.schema, bundle.neutral, bundle.faces,
+                            solver.forward.evaluate, linearity_tol=0.05)
     write_controls(args.out, bundle.schema, result.controls, take.times_s, fps=take.fps,
-                   basis=basis, skeleton=skeleton, quality=quality, head=head)
+                   basis=basis)
     if result.fit_error == "off":
         fit = "fit error off"
     else:
         fit = (f"fit error ({result.fit_error}, {result.fit_vertices} of "
                f"{bundle.vertex_count} vertices) RMS mean {float(np.nanmean(result.fit_rms)):.5f}, "
                f"{int(result.off_manifold.sum())} off-manifold frames")
-    _say(f"solved {result.controls.shape[0]} frames at {take.fps_note} in {result.seconds:.3f} s "
+    _say(f"solved {result.controls.shape[0]} frames in {result.seconds:.3f} s "
          f"({result.frames_per_second:,.0f} frames/s); {fit}; wrote {args.out}")
-    for line in flag_lines(quality):
-        _say(line)
     return EXIT_OK
 
 
