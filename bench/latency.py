@@ -17,12 +17,14 @@ blendshapes forward), then measures, in one run:
    server's own counters (telemetry before and after) say how many frames it received, processed,
    dropped as superseded and ignored as stale, so sent, received and published can be compared.
 
-``--busy-poll-us N`` gives the same spin-then-block wait (runtime.server.wait_for_input) to the
+``--busy-poll-us N`` gives the same spin-then-block wait (runtime.sockets.wait_for_input) to the
 server, the echo process and the client's wait for controls, so floor and server stay comparable.
 
 By default the server (or echo) process is pinned to CPU 0 and the client to CPU 1 with
-os.sched_setaffinity, so they do not steal each other's core. ``--out DIR`` writes
-DIR/latency.json as {"runs": [{...}, ...]}.
+os.sched_setaffinity, so they do not steal each other's core. ``--curve`` turns CurveZMQ
+(RFC 26) on for the server, the echo process and the client alike (fresh keys made with
+runtime/keys.py), so the floor and the server are measured with the same encryption.
+``--out DIR`` writes DIR/latency.json as {"runs": [{...}, ...]}.
 
     python bench/latency.py --duration 60 --out bench/out
 """
@@ -43,8 +45,8 @@ import numpy as np
 import zmq
 from rigcast.export.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
 from rigcast.runtime import protocol
-from rigcast.runtime.server import wait_for_input
-from rigcast.runtime.sockets import bind_pub, bind_router, bound_endpoint
+from rigcast.runtime.keys import ClientCurve, create_key_pair, load_secret_key
+from rigcast.runtime.sockets import bind_pub, bind_router, bound_endpoint, wait_for_input
 
 CONTROLS, INPUTS, STABLE, HIDDEN, SEED = 50, 256, 128, 256, 7
 STREAM = "bench"
@@ -54,12 +56,27 @@ WARMUP_S = 3.0
 
 # --- echo process: the transport floor -------------------------------------------------------
 
-def echo_main(ready: Path, spin_ns: int) -> None:
+def curve_server(keys: Path | None) -> Any:
+    """A ``prepare`` that makes a socket a CURVE server with the bench's server key, or None."""
+    if keys is None:
+        return None
+    public, secret = load_secret_key(keys / "server.key_secret")
+
+    def prepare(sock: zmq.Socket) -> None:
+        sock.setsockopt(zmq.CURVE_SERVER, 1)
+        sock.setsockopt(zmq.CURVE_SECRETKEY, secret)
+        sock.setsockopt(zmq.CURVE_PUBLICKEY, public)
+
+    return prepare
+
+
+def echo_main(ready: Path, spin_ns: int, keys: Path | None) -> None:
     """Receive meshes on a ROUTER, publish same-size controls on a PUB; no other work."""
     ctx = zmq.Context()
     router = bind_router(ctx, "tcp://127.0.0.1:*", rcvhwm=32, sndhwm=1000, linger_ms=0,
-                         max_message_bytes=16 << 20)
-    pub = bind_pub(ctx, "tcp://127.0.0.1:*", sndhwm=1000, linger_ms=0)
+                         max_message_bytes=16 << 20, prepare=curve_server(keys))
+    pub = bind_pub(ctx, "tcp://127.0.0.1:*", sndhwm=1000, linger_ms=0,
+                   prepare=curve_server(keys))
     ready.write_text(json.dumps({"input": bound_endpoint(router), "output": bound_endpoint(pub),
                                  "pid": os.getpid()}))
     values = np.zeros(CONTROLS, np.float32)
@@ -97,19 +114,23 @@ def make_meshes(vertices: int, count: int = 32) -> list[np.ndarray]:
 
 
 class Client:
-    def __init__(self, endpoints: dict[str, str], meshes: list[np.ndarray], spin_ns: int = 0
-                 ) -> None:
+    def __init__(self, endpoints: dict[str, str], meshes: list[np.ndarray], spin_ns: int = 0,
+                 curve: ClientCurve | None = None) -> None:
         self.spin_ns = spin_ns
         self.ctx = zmq.Context()
         self.dealer = self.ctx.socket(zmq.DEALER)
         self.dealer.setsockopt(zmq.SNDHWM, 16)
         self.dealer.setsockopt(zmq.LINGER, 0)
+        if curve is not None:
+            curve.apply(self.dealer)
         self.dealer.connect(endpoints["input"])
         self.sub = self.ctx.socket(zmq.SUB)
         self.sub.setsockopt(zmq.RCVHWM, 10000)
         self.sub.setsockopt(zmq.LINGER, 0)
         self.sub.setsockopt(zmq.SUBSCRIBE, protocol.TOPIC_CONTROLS + STREAM.encode())
         self.sub.setsockopt(zmq.SUBSCRIBE, protocol.TOPIC_TELEMETRY + STREAM.encode())
+        if curve is not None:
+            curve.apply(self.sub)
         self.sub.connect(endpoints["output"])
         self.poller = zmq.Poller()
         self.poller.register(self.sub, zmq.POLLIN)
@@ -226,7 +247,10 @@ class Client:
 
 def client_main(args: argparse.Namespace) -> None:
     endpoints = json.loads(Path(args.endpoints).read_text())
-    client = Client(endpoints, make_meshes(args.vertices[0]), args.busy_poll_us * 1000)
+    curve = (ClientCurve.from_files(args.curve_keys / "server.key",
+                                    args.curve_keys / "clients" / "bench.key_secret")
+             if args.curve_keys is not None else None)
+    client = Client(endpoints, make_meshes(args.vertices[0]), args.busy_poll_us * 1000, curve)
     client.handshake()
     result: dict[str, Any] = {}
     lat, lost = client.paced(args.duration, FPS, Path(args.result).with_suffix(".warm"))
@@ -279,7 +303,7 @@ def run_client(mode: str, endpoints_file: Path, vertices: int, duration: float, 
     cmd = [sys.executable, __file__, "--role", "client", "--mode", mode, "--endpoints",
            str(endpoints_file), "--vertices", str(vertices), "--duration", str(duration),
            "--flat-seconds", str(args.flat_seconds), "--busy-poll-us", str(args.busy_poll_us),
-           "--result", str(result)]
+           "--result", str(result), *keys_args(args)]
     proc = subprocess.Popen(cmd)
     pin(proc.pid, 1, args.pin)
     warm = result.with_suffix(".warm")
@@ -295,6 +319,10 @@ def run_client(mode: str, endpoints_file: Path, vertices: int, duration: float, 
     return json.loads(result.read_text()), rss_warm, rss_end
 
 
+def keys_args(args: argparse.Namespace) -> list[str]:
+    return [] if args.curve_keys is None else ["--curve-keys", str(args.curve_keys)]
+
+
 def ms_percentiles(lat_ns: list[int]) -> list[float]:
     return [float(x) for x in np.percentile(np.array(lat_ns) / 1e6, [50, 95, 99])]
 
@@ -307,7 +335,8 @@ def measure(vertices: int, args: argparse.Namespace, work: Path) -> dict[str, An
     # Floor: echo process.
     ready = work / f"echo-{vertices}.ready"
     echo, _ = start_and_wait([sys.executable, __file__, "--role", "echo", "--ready", str(ready),
-                              "--busy-poll-us", str(args.busy_poll_us)], ready, 0, args)
+                              "--busy-poll-us", str(args.busy_poll_us), *keys_args(args)],
+                             ready, 0, args)
     try:
         floor, _, _ = run_client("echo", ready, vertices, args.floor_duration, work, args,
                                  echo.pid)
@@ -321,6 +350,9 @@ def measure(vertices: int, args: argparse.Namespace, work: Path) -> dict[str, An
            str(ready), "--fit-error", "after_publish", "--telemetry-hz", "10",
            "--window", "1000", "--log-level", "WARNING",
            "--busy-poll-us", str(args.busy_poll_us)]
+    if args.curve_keys is not None:
+        cmd += ["--curve-secret-key", str(args.curve_keys / "server.key_secret"),
+                "--authorized-keys", str(args.curve_keys / "clients")]
     server, _ = start_and_wait(cmd, ready, 0, args)
     try:
         res, rss_warm, rss_end = run_client("server", ready, vertices, args.duration, work,
@@ -361,6 +393,7 @@ def measure(vertices: int, args: argparse.Namespace, work: Path) -> dict[str, An
         "fit_error_skipped_paced": (tel.get("fit_error") or {}).get("skipped"),
         "processed_paced": tel.get("processed"),
         "pinned": bool(args.pin),
+        "curve": args.curve_keys is not None,
         "busy_poll_us": int(args.busy_poll_us),
     }
 
@@ -380,14 +413,17 @@ def main() -> None:
                         help="do not pin server and client to CPUs 0 and 1")
     parser.add_argument("--busy-poll-us", type=int, default=0,
                         help="spin-then-block budget for server, echo and client waits (µs)")
+    parser.add_argument("--curve", action="store_true",
+                        help="CurveZMQ on (server, echo and client), floor and server alike")
     parser.add_argument("--out", type=Path, default=None)
+    parser.add_argument("--curve-keys", type=Path, default=None, help=argparse.SUPPRESS)
     parser.add_argument("--mode", default="server", help=argparse.SUPPRESS)
     parser.add_argument("--endpoints", help=argparse.SUPPRESS)
     parser.add_argument("--ready", type=Path, help=argparse.SUPPRESS)
     parser.add_argument("--result", help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.role == "echo":
-        echo_main(args.ready, args.busy_poll_us * 1000)
+        echo_main(args.ready, args.busy_poll_us * 1000, args.curve_keys)
         return
     if args.role == "client":
         client_main(args)
@@ -396,6 +432,10 @@ def main() -> None:
         args.floor_duration = max(args.duration / 3, 5.0)
     runs = []
     with tempfile.TemporaryDirectory(prefix="rigcast-latency-") as tmp:
+        if args.curve:
+            args.curve_keys = Path(tmp) / "keys"
+            create_key_pair(args.curve_keys, "server")
+            create_key_pair(args.curve_keys / "clients", "bench")
         for v in args.vertices:
             print(f"V={v}: floor {args.floor_duration:.0f} s, paced {args.duration:.0f} s, "
                   f"flat out 2 x {args.flat_seconds:.0f} s ...", flush=True)
