@@ -46,6 +46,8 @@ Progress = Callable[[str, int, int], None]
 CHECKPOINT = "checkpoint.pt"
 BUNDLE_NAME = "bundle.rcb"
 _CHECK_SEED_OFFSET = 7919
+#: Largest RMS motion of the stable vertices, as a share of the diagonal, for a rigid region.
+RIGID_LIMIT = 1e-5
 
 
 class BuildError(RuntimeError):
@@ -67,7 +69,7 @@ def _inverse_default() -> Any:
 def _take_default() -> Any:
     from rigcast.export.train import InverseConfig
 
-    return InverseConfig(steps=800, lr=5e-4, supervised=0.0, fresh_fraction=0.0, max_seconds=60.0)
+    return InverseConfig(steps=800, lr=5e-4, supervised=0.0, fresh_fraction=0.0)
 
 
 @dataclass(frozen=True)
@@ -321,8 +323,10 @@ def _build(
     motion = reduction.motion_rms(neutral, dataset.vertices)
     k = config.input_count or reduction.input_count_for(rig.vertex_count)
     s = config.stable_count or reduction.stable_count_for(rig.vertex_count)
-    peaks = reduction.control_peak_vertices(fwd.linear_weight.detach().numpy())
-    inputs = reduction.select_input_vertices(neutral, motion, k, must_include=peaks)
+    per_control = max(2, min(8, k // (3 * rig.control_count)))
+    regions = reduction.control_region_vertices(fwd.linear_weight.detach().numpy(), neutral,
+                                                per_control)
+    inputs = reduction.select_input_vertices(neutral, motion, k, must_include=regions)
     stable = reduction.select_stable_vertices(neutral, motion, s)
     inv, inv_rep = train_inverse(
         fwd,
@@ -336,6 +340,7 @@ def _build(
         progress=progress,
     )
     timings["inverse"] = time.perf_counter() - t
+    poses = np.concatenate([schema.defaults[None], dataset.controls[:255]])
     return _finish(
         rig,
         rig_fp,
@@ -355,7 +360,27 @@ def _build(
         t_start,
         progress,
         motion,
+        poses,
     )
+
+
+def stabilise_section(neutral: np.ndarray, motion: np.ndarray, stable: np.ndarray
+                      ) -> dict[str, Any]:
+    """The manifest's ``stabilise`` section: how much the stable vertices move under the
+    controls, and whether that is a rigid region (RMS motion at most RIGID_LIMIT of the
+    diagonal; a threshold of ours: a rigid region does not move at all, so any limit far below
+    the capture noise of ~0.1 % of the diagonal separates the two cases)."""
+    from rigcast.export.reduction import stable_motion
+
+    diag = float(np.linalg.norm(neutral.max(axis=0) - neutral.min(axis=0)))
+    moved = stable_motion(motion, stable, diag)
+    rigid = moved <= RIGID_LIMIT
+    if not rigid:
+        log.warning("the rig has no rigid region: its %d stable vertices move %.3g%% of the "
+                    "diagonal (RMS) under the controls; serve and solve will not stabilise "
+                    "unless asked to", stable.shape[0], 100 * moved)
+    return {"rigid_region": bool(rigid), "stable_motion_pct_diag": 100.0 * moved,
+            "limit_pct_diag": 100.0 * RIGID_LIMIT}
 
 
 def _finish(
@@ -377,32 +402,39 @@ def _finish(
     t_start: float,
     progress: Progress | None,
     motion: np.ndarray | None,
+    poses: np.ndarray,
+    stabilise: dict[str, Any] | None = None,
 ) -> BuildResult:
     """Export, write, re-load and check; cache the bundle and checkpoint."""
+    from rigcast.export.build_check import check_served
     from rigcast.export.models import EDGE_MARGIN, REST_BAND, save_checkpoint
     from rigcast.export.onnx_export import OPSET, export_forward, export_inverse
+    from rigcast.export.refine import refine_parts
+    from rigcast.runtime.refine import RefineSettings
 
     t = time.perf_counter()
     inv_bytes, inv_parity = export_inverse(inv, check_x[:16][:, inputs])
     fwd_bytes, fwd_parity = export_forward(fwd)
+    ref_bytes, hessian, ref_parity = refine_parts(fwd, inputs, poses, check_x[:16][:, inputs])
     timings["export"] = time.perf_counter() - t
     if progress is not None:
         progress("export", 1, 1)
+    if stabilise is None:
+        stabilise = stabilise_section(np.asarray(rig.neutral, np.float32), motion, stable) \
+            if motion is not None else {"rigid_region": True}
 
     t = time.perf_counter()
     check = _check_arrays(inv, fwd, inv_bytes, fwd_bytes, rig, check_x, inputs)
     diag = float(np.linalg.norm(rig.neutral.max(axis=0) - rig.neutral.min(axis=0)))
     seconds = time.perf_counter() - t_start
-    check_pct = 100.0 * check["rig_mean_err"] / diag
     training = {
         "forward": asdict(fwd_rep),
         "inverse": {**asdict(inv_rep), "loss_curve": list(inv_rep.loss_curve)},
         "timings": {**timings, "check": time.perf_counter() - t},
         "seconds": seconds,
-        "check_mean_err": check["rig_mean_err"],
-        "check_mean_err_pct_diag": check_pct,
         "check_samples": int(check_x.shape[0]),
-        "parity": {"inverse": inv_parity, "forward": fwd_parity, "bundle": check["parity"]},
+        "parity": {"inverse": inv_parity, "forward": fwd_parity, "refine": ref_parity,
+                   "bundle": check["parity"]},
     }
     extra = {
         "build_key": key,
@@ -420,8 +452,8 @@ def _finish(
         },
         "opset": OPSET,
         "build_config": json.loads(json.dumps(config.to_dict(), default=str)),
-        "fit_rms_train": check["fit_rms_mean"],
-        "fit_rms_p99": check["fit_rms_p99"],
+        "refine": asdict(RefineSettings()),
+        "stabilise": stabilise,
     }
     write_bundle(
         out_path,
@@ -434,7 +466,22 @@ def _finish(
         inverse_onnx=inv_bytes,
         forward_onnx=fwd_bytes,
         extra=extra,
+        refine_onnx=ref_bytes,
+        refine_hessian=hessian,
     )
+    served = check_served(out_path, rig, check_x)
+    training.update(check_mean_err=served.rig_mean_err,
+                    check_mean_err_pct_diag=served.rig_mean_err_pct_diag,
+                    reference=served.to_dict())
+    extra.update(fit_rms_train=served.fit_rms_mean, fit_rms_p99=served.fit_rms_p99)
+    write_bundle(out_path, name=rig.name, schema=rig.schema, neutral=rig.neutral,
+                 faces=rig.faces, stable_indices=stable, input_indices=inputs,
+                 inverse_onnx=inv_bytes, forward_onnx=fwd_bytes, extra=extra,
+                 refine_onnx=ref_bytes, refine_hessian=hessian)
+    if served.worse_than_reference:
+        log.warning("the bundle's held-out error %.3g is above bounded linear least squares "
+                    "(%.3g) on the same poses", served.rig_mean_err, served.lsq_mean_err)
+    check_pct = served.rig_mean_err_pct_diag
     bundle = load_bundle(out_path)
     reload = _check_arrays(
         inv, fwd, bundle.inverse_onnx, bundle.forward_onnx, rig, check_x, bundle.input_indices
@@ -462,7 +509,7 @@ def _finish(
         out_path,
         seconds,
         ", ".join(f"{k} {v:.1f}s" for k, v in timings.items()),
-        check["rig_mean_err"],
+        served.rig_mean_err,
         check_pct,
     )
     return BuildResult(
@@ -473,7 +520,7 @@ def _finish(
         seconds=seconds,
         key=key,
         cached=False,
-        check_mean_err=check["rig_mean_err"],
+        check_mean_err=served.rig_mean_err,
         check_mean_err_pct_diag=check_pct,
         checkpoint=ckpt,
         forward_model=fwd,
@@ -490,7 +537,8 @@ def _check_arrays(
     check_x: np.ndarray,
     inputs: np.ndarray,
 ) -> dict[str, float]:
-    """Solve the check meshes with onnxruntime; parity to torch, real-rig error, fit RMS."""
+    """The inverse graph through onnxruntime against torch on the check meshes, relative to each
+    control's range (``PARITY_TOL``)."""
     import torch
     from rigcast.export.onnx_export import PARITY_TOL, session
 
@@ -498,22 +546,14 @@ def _check_arrays(
     got = session(inv_bytes).run(None, {"mesh": x_in})[0]
     with torch.no_grad():
         ref = inv(torch.from_numpy(x_in)).numpy()
-    parity = float(np.max(np.abs(got - ref)))
+    span = rig.schema.upper - rig.schema.lower
+    parity = float(np.max(np.abs(got - ref) / span))
     if not parity <= PARITY_TOL:
         raise BuildError(
-            f"check: bundle inverse differs from torch by {parity:.3g} (> {PARITY_TOL})"
+            f"check: bundle inverse differs from torch by {parity:.3g} of a control's range "
+            f"(> {PARITY_TOL})"
         )
-    lo, hi = rig.schema.lower, rig.schema.upper
-    solved = np.clip(got, lo, hi)
-    rig_err = np.linalg.norm(rig.evaluate(solved) - check_x, axis=-1)
-    fit = session(fwd_bytes).run(None, {"controls": np.ascontiguousarray(got, np.float32)})[0]
-    rms = np.sqrt(np.mean(np.sum((fit - check_x) ** 2, axis=-1), axis=1))
-    return {
-        "parity": parity,
-        "rig_mean_err": float(rig_err.mean()),
-        "fit_rms_mean": float(rms.mean()),
-        "fit_rms_p99": float(np.percentile(rms, 99)),
-    }
+    return {"parity": parity}
 
 
 def fit_take(
@@ -544,6 +584,12 @@ def fit_take(
         raise BuildError(f"take frames must be (T, {rig.vertex_count}, 3), got {frames.shape}")
     bundle = load_bundle(general.bundle_path)
     inputs, stable = np.array(bundle.input_indices), np.array(bundle.stable_indices)
+    if bundle.rigid_region:
+        # Train on the frames as the solve will see them: head motion removed.
+        from rigcast.runtime.batch import fit_rigid_batch
+
+        rigid = fit_rigid_batch(frames[:, stable], bundle.neutral[stable].astype(np.float64))
+        frames = rigid.apply(frames)
     fwd = general.forward_model
     inv = type(general.inverse_model)(
         np.zeros((inputs.shape[0], 3)),
@@ -595,4 +641,6 @@ def fit_take(
         t_start,
         progress,
         None,
+        np.concatenate([rig.schema.defaults[None], check_c[:255]]),
+        dict(bundle.manifest.get("stabilise", {"rigid_region": True})),
     )

@@ -47,7 +47,10 @@ def farthest_point_sample(
 
     points: (V, D); weights: (V,) >= 0 or None (all ones); start: first index (default: the
     highest-weight point, ties to the lowest index). Each step picks argmax_v weights[v] * d(v, S),
-    d being the Euclidean distance to the chosen set S. returns: (k,) int64 indices in pick order.
+    d being the Euclidean distance to the chosen set S, among points not yet chosen; once every
+    remaining score is 0 (points coincide with chosen ones, as split normals and UV seams make,
+    or have weight 0) the rest are taken by weight, then index, so K picks always end.
+    returns: (k,) int64 distinct indices in pick order.
     """
     v = points.shape[0]
     if not 0 < k <= v:
@@ -57,10 +60,18 @@ def farthest_point_sample(
     first = int(np.argmax(w)) if start is None else int(start)
     out = np.empty(k, dtype=np.int64)
     out[0] = first
+    taken = np.zeros(v, dtype=bool)
+    taken[first] = True
     dist = np.linalg.norm(pts - pts[first], axis=1)
     for i in range(1, k):
-        nxt = int(np.argmax(w * dist))
+        score = np.where(taken, -1.0, w * dist)
+        nxt = int(np.argmax(score))
+        if score[nxt] <= 0.0:
+            rest = np.flatnonzero(~taken)
+            out[i:] = rest[np.argsort(-w[rest], kind="stable")[: k - i]]
+            break
         out[i] = nxt
+        taken[nxt] = True
         dist = np.minimum(dist, np.linalg.norm(pts - pts[nxt], axis=1))
     return out
 
@@ -73,11 +84,17 @@ def farthest_point_sample_naive(
     w = [1.0] * v if weights is None else [float(x) for x in weights]
     chosen = [int(np.argmax(w)) if start is None else int(start)]
     while len(chosen) < k:
-        best, best_score = -1, -1.0
+        best, best_score = -1, 0.0
         for i in range(v):
+            if i in chosen:
+                continue
             d = min(float(np.sqrt(np.sum((points[i] - points[j]) ** 2))) for j in chosen)
             if w[i] * d > best_score:
                 best, best_score = i, w[i] * d
+        if best < 0:
+            rest = sorted((i for i in range(v) if i not in chosen), key=lambda i: (-w[i], i))
+            chosen.extend(rest[: k - len(chosen)])
+            break
         chosen.append(best)
     return np.array(chosen, dtype=np.int64)
 
@@ -102,9 +119,10 @@ def select_input_vertices(
     """Choose K input vertices covering every moving region.
 
     neutral: (V, 3); motion: (V,) per-vertex RMS displacement; must_include: (M,) indices that
-    are always taken (e.g. each control's most-moved vertex). Vertices moving less than
-    ``moving_fraction`` x the largest motion count as static and are only used if K exceeds the
-    moving ones. Weighted FPS with weight sqrt(motion / max motion) spreads the rest.
+    are always taken (e.g. ``control_region_vertices``: each control's own region). Vertices
+    moving less than ``moving_fraction`` x the largest motion count as static and are only used
+    if K exceeds the moving ones. Weighted FPS with weight sqrt(motion / max motion), seeded with
+    the must-include set, spreads the rest.
     returns: (K,) sorted unique int64.
     """
     v = neutral.shape[0]
@@ -113,33 +131,30 @@ def select_input_vertices(
     peak = float(motion.max())
     if peak <= 0.0:
         raise ReductionError("no vertex moves over the dataset; the rig's controls do nothing")
-    moving = np.flatnonzero(motion > moving_fraction * peak)
     chosen = np.unique(np.asarray(must_include if must_include is not None else [], np.int64))
     if chosen.size >= k:
         order = np.argsort(-motion[chosen], kind="stable")
         return np.sort(chosen[order[:k]])
-    if moving.size <= k:
-        rest = np.setdiff1d(np.arange(v), np.union1d(moving, chosen))
-        extra = rest[
-            np.argsort(-motion[rest], kind="stable")[: k - np.union1d(moving, chosen).size]
-        ]
-        return np.sort(np.union1d(np.union1d(moving, chosen), extra))
-    weights = np.sqrt(motion[moving] / peak)
-    # Start FPS from the already chosen vertices by zeroing their distance up front.
-    pts = neutral[moving].astype(np.float64)
-    picked = set(chosen.tolist())
-    dist = np.full(moving.size, np.inf)
+    weights = np.sqrt(motion / peak)
+    weights[motion <= moving_fraction * peak] = 0.0
+    pts = np.asarray(neutral, np.float64)
+    taken = np.zeros(v, dtype=bool)
+    taken[chosen] = True
+    dist = np.full(v, np.inf)
     for idx in chosen:
-        dist = np.minimum(dist, np.linalg.norm(pts - neutral[idx], axis=1))
-    if not picked:
-        first = int(np.argmax(weights))
-        picked.add(int(moving[first]))
-        dist = np.linalg.norm(pts - pts[first], axis=1)
+        dist = np.minimum(dist, np.linalg.norm(pts - pts[idx], axis=1))
+    picked = list(chosen)
     while len(picked) < k:
-        j = int(np.argmax(weights * dist))
-        picked.add(int(moving[j]))
+        score = np.where(taken, -1.0, weights * np.where(np.isinf(dist), 1e300, dist))
+        j = int(np.argmax(score))
+        if score[j] <= 0.0:  # the rest is static or coincides with picked vertices
+            rest = np.flatnonzero(~taken)
+            picked.extend(rest[np.argsort(-motion[rest], kind="stable")[: k - len(picked)]])
+            break
+        picked.append(j)
+        taken[j] = True
         dist = np.minimum(dist, np.linalg.norm(pts - pts[j], axis=1))
-    return np.array(sorted(picked), dtype=np.int64)
+    return np.sort(np.asarray(picked, dtype=np.int64))
 
 
 def select_stable_vertices(
@@ -170,3 +185,33 @@ def control_peak_vertices(linear_weight: np.ndarray) -> np.ndarray:
     c = linear_weight.shape[0]
     mag = np.linalg.norm(linear_weight.reshape(c, -1, 3), axis=2)  # (C, V)
     return np.argmax(mag, axis=1).astype(np.int64)
+
+
+def control_region_vertices(linear_weight: np.ndarray, neutral: np.ndarray, per_control: int
+                            ) -> np.ndarray:
+    """The ``per_control`` vertices each control moves most, at distinct positions.
+
+    linear_weight: (C, 3V) per-control offsets of a linear fit; neutral: (V, 3). A small, local
+    shape (an eyelid, a nostril) then always has vertices of its own among the inverse's inputs,
+    however little of the mesh it moves. Vertices at the same position as one already taken
+    (split normals, UV seams) are skipped. returns: sorted unique int64 indices.
+    """
+    c = linear_weight.shape[0]
+    mag = np.linalg.norm(linear_weight.reshape(c, -1, 3), axis=2)  # (C, V)
+    _, first = np.unique(np.round(np.asarray(neutral, np.float64), 9), axis=0, return_index=True)
+    distinct = np.zeros(mag.shape[1], dtype=bool)
+    distinct[first] = True
+    out: list[np.ndarray] = []
+    for row in mag:
+        order = np.argsort(-np.where(distinct, row, -1.0), kind="stable")[:per_control]
+        out.append(order[row[order] > 0.0])
+    return np.unique(np.concatenate(out)).astype(np.int64) if out else np.zeros(0, np.int64)
+
+
+def stable_motion(motion: np.ndarray, stable: np.ndarray, diagonal: float) -> float:
+    """RMS motion of the stable vertices as a fraction of the bounding-box diagonal.
+
+    motion: (V,) per-vertex RMS displacement over the dataset; stable: (S,) indices. A rig with
+    a rigid region (the back of a head) gives ~0; a rig with none gives the typical motion.
+    """
+    return float(np.sqrt(np.mean(np.asarray(motion, np.float64)[stable] ** 2)) / diagonal)

@@ -60,7 +60,9 @@ class ForwardConfig:
     lr: float = 3e-3
     holdout: float = 0.1
     seed: int = 0
-    max_seconds: float = 45.0
+    # A time budget (None: the fixed schedule, so a build gives the same bundle on a busy
+    # machine as on a quiet one). When set, the schedule is cut to fit and the log says so.
+    max_seconds: float | None = None
 
 
 @dataclass(frozen=True)
@@ -78,7 +80,7 @@ class InverseConfig:
     supervised_until: float = 0.6  # share of the steps over which that weight decays to 0
     loss_vertices: int = 1536  # mesh loss on this many fixed random moving vertices (0 = all)
     seed: int = 0
-    max_seconds: float = 100.0
+    max_seconds: float | None = None  # a time budget; None: the fixed schedule (see above)
 
 
 @dataclass(frozen=True)
@@ -267,10 +269,11 @@ def _fit_coefficients(
     model.train()
     epoch = 0
     while epoch < epochs:
-        if epoch == 1:
+        if epoch == 1 and config.max_seconds is not None:
             epochs = _fit_budget(epochs, 1, time.perf_counter() - start, config.max_seconds)
             if epochs != config.epochs:
-                log.info("forward: %d epochs fit the %.0fs budget", epochs, config.max_seconds)
+                log.warning("forward: the %.0fs time budget cut training to %d of %d epochs",
+                            config.max_seconds, epochs, config.epochs)
                 total = per_epoch * epochs
                 sched = _schedule(opt, config.lr, total - step)
         perm = torch.randperm(n, generator=gen)
@@ -425,15 +428,15 @@ def train_inverse(
     loss_val, total, step = float("nan"), config.steps, 0
     t_loop = time.perf_counter()
     while step < total:
-        if step == _PROBE_STEPS:
+        if step == _PROBE_STEPS and config.max_seconds is not None:
             total = _fit_budget(
                 total, step, time.perf_counter() - t_loop, config.max_seconds - (t_loop - t0)
             )
             if total != config.steps:
-                log.info(
-                    "inverse: %d steps fit the %.0fs budget (asked %d)",
-                    total,
+                log.warning(
+                    "inverse: the %.0fs time budget cut training to %d of %d steps",
                     config.max_seconds,
+                    total,
                     config.steps,
                 )
                 sched = _schedule(opt, config.lr, total - step)

@@ -34,6 +34,7 @@ from rigcast.runtime.config import filter_defaults
 from rigcast.runtime.inference import ForwardModel, InverseModel, open_session
 from rigcast.runtime.manifold import ManifoldConfig, floor_for_bundle, off_manifold_thresholds
 from rigcast.runtime.one_euro import OneEuroParams, OneEuroState, zero_phase_smooth
+from rigcast.runtime.pipeline import stabilise_for
 
 log = logging.getLogger(__name__)
 
@@ -176,7 +177,8 @@ def filter_params(bundle: Bundle, min_cutoff: float, beta: float,
 class SolveOptions:
     """How a take is solved; validated here, once.
 
-    stabilise / stabilise_scale: remove rigid (or similarity) head motion first.
+    stabilise / stabilise_scale: remove rigid (or similarity) head motion first; stabilise None
+    follows the bundle (on only when its build found a rigid region; ``pipeline.stabilise_for``).
     filter: "causal" (the live server's One Euro; ``params``, default the server's, reset after a
     gap of more than ``gap_s`` seconds), "zero_phase" (offline, no lag; cutoff ``smooth_hz``) or
     "none". batch_size: frames per onnxruntime call.
@@ -188,7 +190,7 @@ class SolveOptions:
     floor from ``manifold.floor_for_bundle``).
     """
 
-    stabilise: bool = True
+    stabilise: bool | None = None
     stabilise_scale: bool = False
     filter: FilterKind = "causal"
     params: OneEuroParams | None = None
@@ -396,6 +398,7 @@ class BatchSolver:
         subset, cut = (self._subset(opts.fit_sample) if opts.fit_error == "subset"
                        else (None, None))
         forward = self.forward if opts.fit_error != "off" else None
+        stabilise = stabilise_for(opts.stabilise, self.bundle, f"solve {self.bundle.name}")
         start = time.perf_counter()
         verts, times = self._check(vertices, times_s)
         t, c, bs = verts.shape[0], self.bundle.control_count, opts.batch_size
@@ -410,7 +413,7 @@ class BatchSolver:
             _check_finite(chunk, i0)
             inputs = np.take(chunk, idx_in, axis=1)
             rigid = None
-            if opts.stabilise:
+            if stabilise:
                 rigid = fit_rigid_batch(np.take(chunk, idx_st, axis=1), self.neutral_stable,
                                         scale=opts.stabilise_scale)
                 inputs = rigid.apply(inputs)

@@ -9,7 +9,14 @@ A bundle is a ZIP archive (stored, not compressed) with these members:
 - ``inverse.onnx``    input ``mesh`` float32 (N, K, 3): absolute positions of ``input_indices``
                       in the neutral's frame (after head stabilisation);
                       output ``controls`` float32 (N, C), always within the schema's bounds;
-- ``forward.onnx``    input ``controls`` float32 (N, C); output ``vertices`` float32 (N, V, 3).
+- ``forward.onnx``    input ``controls`` float32 (N, C); output ``vertices`` float32 (N, V, 3);
+- ``refine.onnx``     optional: inputs ``controls`` (N, C) and ``mesh`` (N, K, 3), outputs
+                      ``gradient`` (N, C) and ``residual_sq`` (N,) for the Gauss-Newton steps
+                      after the network (runtime/refine.py); with it, ``arrays.npz`` holds
+                      ``refine_hessian`` (C, C) float64 and the manifest a ``refine`` section.
+
+The manifest's ``stabilise`` section records whether the rig has a rigid region (measured by the
+build), which sets whether ``serve`` and ``solve`` stabilise by default.
 
 Normalisation is baked into both graphs; the manifest records it for inspection only.
 The writer lives here too, so that the format is defined in one place.
@@ -39,7 +46,12 @@ INVERSE_INPUT = "mesh"
 INVERSE_OUTPUT = "controls"
 FORWARD_INPUT = "controls"
 FORWARD_OUTPUT = "vertices"
+REFINE_CONTROLS = "controls"
+REFINE_MESH = "mesh"
+REFINE_GRADIENT = "gradient"
+REFINE_RESIDUAL = "residual_sq"
 _MEMBERS = ("manifest.json", "arrays.npz", "inverse.onnx", "forward.onnx")
+_OPTIONAL = ("refine.onnx",)
 
 
 class BundleError(Exception):
@@ -59,6 +71,14 @@ class Bundle:
     input_indices: np.ndarray  # (K,) int64
     inverse_onnx: bytes = field(repr=False)
     forward_onnx: bytes = field(repr=False)
+    refine_onnx: bytes | None = field(default=None, repr=False)
+    refine_hessian: np.ndarray | None = field(default=None, repr=False)  # (C, C) float64
+
+    @property
+    def rigid_region(self) -> bool:
+        """Whether the build found a rigid region to stabilise on (True for older bundles)."""
+        section = self.manifest.get("stabilise")
+        return bool(section.get("rigid_region", True)) if isinstance(section, dict) else True
 
     @property
     def name(self) -> str:
@@ -99,6 +119,8 @@ def write_bundle(
     inverse_onnx: bytes,
     forward_onnx: bytes,
     extra: Mapping[str, Any] | None = None,
+    refine_onnx: bytes | None = None,
+    refine_hessian: np.ndarray | None = None,
 ) -> Path:
     """Write a bundle atomically (temp file + rename) and return its path.
 
@@ -110,8 +132,14 @@ def write_bundle(
     faces = np.ascontiguousarray(faces, dtype=np.int32).reshape(-1, 3)
     stable = np.ascontiguousarray(stable_indices, dtype=np.int64)
     inputs = np.ascontiguousarray(input_indices, dtype=np.int64)
+    if (refine_onnx is None) != (refine_hessian is None):
+        raise BundleError("refine_onnx and refine_hessian go together")
+    stored: dict[str, Any] = {"neutral": neutral, "faces": faces, "stable_indices": stable,
+                              "input_indices": inputs}
+    if refine_hessian is not None:
+        stored["refine_hessian"] = np.ascontiguousarray(refine_hessian, np.float64)
     buf = io.BytesIO()
-    np.savez(buf, neutral=neutral, faces=faces, stable_indices=stable, input_indices=inputs)
+    np.savez(buf, **stored)
     arrays = buf.getvalue()
     manifest: dict[str, Any] = dict(extra or {})
     owned = {
@@ -128,6 +156,7 @@ def write_bundle(
             "arrays.npz": _sha(arrays),
             "inverse.onnx": _sha(inverse_onnx),
             "forward.onnx": _sha(forward_onnx),
+            **({"refine.onnx": _sha(refine_onnx)} if refine_onnx is not None else {}),
         },
     }
     clash = set(manifest) & set(owned)
@@ -143,6 +172,8 @@ def write_bundle(
         zf.writestr("arrays.npz", arrays)
         zf.writestr("inverse.onnx", inverse_onnx)
         zf.writestr("forward.onnx", forward_onnx)
+        if refine_onnx is not None:
+            zf.writestr("refine.onnx", refine_onnx)
     tmp.replace(path)
     log.info("wrote bundle %s (%d vertices, %d controls)", path, neutral.shape[0], len(schema))
     return path
@@ -161,7 +192,7 @@ def load_bundle(path: str | Path) -> Bundle:
             missing = [m for m in _MEMBERS if m not in names]
             if missing:
                 raise BundleError(f"bundle {path} is missing {', '.join(missing)}")
-            blobs = {m: zf.read(m) for m in _MEMBERS}
+            blobs = {m: zf.read(m) for m in (*_MEMBERS, *_OPTIONAL) if m in names}
     except zipfile.BadZipFile as exc:
         raise BundleError(f"bundle {path} is not a rigcast bundle (not a ZIP archive: {exc})") from None
     except (OSError, EOFError, zipfile.LargeZipFile) as exc:
@@ -192,7 +223,11 @@ def parse_bundle(blobs: Mapping[str, bytes], path: Path | None = None) -> Bundle
     members = manifest.get("members")
     if not isinstance(members, dict):
         raise BundleError(f"{where}: manifest has no member checksums")
-    for member in ("arrays.npz", "inverse.onnx", "forward.onnx"):
+    for member in ("arrays.npz", "inverse.onnx", "forward.onnx", *_OPTIONAL):
+        if member not in blobs and member not in members:
+            continue
+        if member not in blobs:
+            raise BundleError(f"{where}: {member} is listed in the manifest but missing")
         if members.get(member) != _sha(blobs[member]):
             raise BundleError(f"{where}: {member} is corrupt (checksum mismatch)")
     try:
@@ -202,6 +237,7 @@ def parse_bundle(blobs: Mapping[str, bytes], path: Path | None = None) -> Bundle
     try:
         with np.load(io.BytesIO(blobs["arrays.npz"]), allow_pickle=False) as npz:
             arrays = {k: npz[k] for k in ("neutral", "faces", "stable_indices", "input_indices")}
+            hessian = npz["refine_hessian"] if "refine_hessian" in npz.files else None
     except (KeyError, ValueError, OSError, EOFError, zipfile.BadZipFile) as exc:
         raise BundleError(f"{where}: arrays.npz is unreadable ({exc})") from None
     for name, kinds in (("neutral", "fiu"), ("faces", "iu"), ("stable_indices", "iu"),
@@ -223,6 +259,16 @@ def parse_bundle(blobs: Mapping[str, bytes], path: Path | None = None) -> Bundle
             f"{where}: manifest says {manifest.get('control_count')} controls, schema has {len(schema)}"
         )
     _check_arrays(manifest, neutral, faces, stable, inputs, where)
+    refine = blobs.get("refine.onnx")
+    if (refine is None) != (hessian is None):
+        raise BundleError(f"{where}: refine.onnx and refine_hessian must come together")
+    if hessian is not None:
+        c = len(schema)
+        if hessian.shape != (c, c) or hessian.dtype.kind != "f" or not np.isfinite(hessian).all():
+            raise BundleError(f"{where}: refine_hessian must be finite ({c}, {c}) floats, got "
+                              f"{hessian.shape} {hessian.dtype}")
+        hessian = hessian.astype(np.float64, copy=False)
+        hessian.setflags(write=False)
     for a in (neutral, faces, stable, inputs):
         a.setflags(write=False)
     return Bundle(
@@ -235,6 +281,8 @@ def parse_bundle(blobs: Mapping[str, bytes], path: Path | None = None) -> Bundle
         input_indices=inputs,
         inverse_onnx=blobs["inverse.onnx"],
         forward_onnx=blobs["forward.onnx"],
+        refine_onnx=refine,
+        refine_hessian=hessian,
     )
 
 

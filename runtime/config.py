@@ -75,7 +75,9 @@ class StreamConfig:
     d_cutoff: float = _flag("One Euro cutoff for the derivative, in Hz", 1.0)
     passthrough: bool = _flag("publish the solved controls unfiltered (still clamped)", False)
     gap_ms: float = _flag("reset the filter after this long without frames, in ms", 250.0)
-    stabilise: bool = _flag("remove rigid head motion using the bundle's stable vertices", True)
+    stabilise: bool | None = _flag(
+        "remove rigid head motion using the bundle's stable vertices; default: only when the "
+        "build found a rigid region on the rig (rigcast inspect shows it)", None)
     stabilise_scale: bool = _flag("also remove uniform scale when stabilising (Umeyama)", False)
     off_manifold_threshold: float | None = _flag(
         "a fixed fit RMS (mesh units) above which a frame is off-manifold; default: the "

@@ -18,9 +18,14 @@ from rigcast.runtime.bundle import (
     FORWARD_OUTPUT,
     INVERSE_INPUT,
     INVERSE_OUTPUT,
+    REFINE_CONTROLS,
+    REFINE_GRADIENT,
+    REFINE_MESH,
+    REFINE_RESIDUAL,
     Bundle,
     BundleError,
 )
+from rigcast.runtime.refine import RefineError, Refiner, RefineSettings
 
 log = logging.getLogger(__name__)
 
@@ -114,14 +119,22 @@ def check_forward_rest(rest: np.ndarray, neutral: np.ndarray) -> None:
 
 
 class InverseModel:
-    """The bundle's inverse graph: mesh subset (N, K, 3) -> controls (N, C)."""
+    """The bundle's solve: mesh subset (N, K, 3) -> controls (N, C).
 
-    def __init__(self, bundle: Bundle, *, threads: int = 1) -> None:
+    The inverse graph, then, when the bundle has a refinement graph and ``refine`` is not
+    ``RefineSettings(steps=0)``, the bounded Gauss-Newton steps of ``runtime.refine``.
+    """
+
+    def __init__(self, bundle: Bundle, *, threads: int = 1,
+                 refine: RefineSettings | None = None) -> None:
         self.k = int(bundle.input_indices.shape[0])
         self.c = bundle.control_count
         self.session = open_session(bundle.inverse_onnx, threads=threads)
         _check_io(self.session, "inverse", INVERSE_INPUT, (self.k, 3), INVERSE_OUTPUT, (self.c,))
         self._outputs = [INVERSE_OUTPUT]
+        self.refiner: Refiner | None = None
+        if bundle.refine_onnx is not None and bundle.refine_hessian is not None:
+            self.refiner = _refiner(bundle, threads, refine)
         out = _warm_up("inverse", self.solve,
                        np.asarray(bundle.neutral[bundle.input_indices], np.float32)[None])
         if out.shape != (1, self.c):
@@ -132,7 +145,43 @@ class InverseModel:
     def solve(self, mesh_subset: np.ndarray) -> np.ndarray:
         """mesh_subset (N, K, 3) float32 -> controls (N, C) float32."""
         result: np.ndarray = self.session.run(self._outputs, {INVERSE_INPUT: mesh_subset})[0]
+        if self.refiner is not None and np.isfinite(result).all():
+            result = self.refiner.refine(result, mesh_subset)
         return result
+
+
+def refine_settings(bundle: Bundle) -> RefineSettings:
+    """The refinement settings the bundle was built and checked with (defaults if none)."""
+    section = bundle.manifest.get("refine")
+    if not isinstance(section, dict):
+        return RefineSettings()
+    try:
+        return RefineSettings(**{k: section[k] for k in ("steps", "kappa", "damping", "snap")
+                                 if k in section})
+    except (TypeError, RefineError) as exc:
+        raise BundleError(f"bundle manifest 'refine' section is invalid: {exc}") from None
+
+
+def _refiner(bundle: Bundle, threads: int, settings: RefineSettings | None) -> Refiner:
+    assert bundle.refine_onnx is not None and bundle.refine_hessian is not None
+    session = open_session(bundle.refine_onnx, threads=threads)
+    k = int(bundle.input_indices.shape[0])
+    got_in = sorted(i.name for i in session.get_inputs())
+    got_out = {o.name for o in session.get_outputs()}
+    if got_in != sorted([REFINE_CONTROLS, REFINE_MESH]) or not {REFINE_GRADIENT,
+                                                                  REFINE_RESIDUAL} <= got_out:
+        raise BundleError(f"refine graph must map ({REFINE_CONTROLS!r}, {REFINE_MESH!r}) to "
+                          f"({REFINE_GRADIENT!r}, {REFINE_RESIDUAL!r}); has {got_in} -> "
+                          f"{sorted(got_out)}")
+    names = [REFINE_GRADIENT, REFINE_RESIDUAL]
+
+    def gradient(controls: np.ndarray, mesh: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        g, rss = session.run(names, {REFINE_CONTROLS: controls, REFINE_MESH: mesh})
+        return g, rss
+
+    schema = bundle.schema
+    return Refiner(gradient, bundle.refine_hessian, schema.lower, schema.upper, schema.defaults,
+                   3 * k, settings or refine_settings(bundle))
 
 
 class ForwardModel:

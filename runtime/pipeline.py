@@ -175,6 +175,23 @@ def fit_error_naive(predicted: np.ndarray, observed: np.ndarray) -> tuple[float,
     return math.sqrt(sum(d * d for d in dists) / len(dists)), max(dists)
 
 
+def stabilise_for(requested: bool | None, bundle: Bundle, who: str) -> bool:
+    """Whether to stabilise: as requested, else as the build measured (a rigid region or not).
+    Logs one line saying which and why; the same rule serves live and batch solves."""
+    if requested is not None:
+        log.info("%s: stabilisation %s (as requested)", who, "on" if requested else "off")
+        return requested
+    section = bundle.manifest.get("stabilise")
+    moved = section.get("stable_motion_pct_diag") if isinstance(section, dict) else None
+    if bundle.rigid_region:
+        log.info("%s: stabilisation on (the rig has a rigid region)", who)
+    else:
+        log.warning("%s: stabilisation off: the rig has no rigid region (its stable vertices "
+                    "move %s%% of the diagonal under the controls); force it with --stabilise",
+                    who, "?" if moved is None else f"{moved:.3g}")
+    return bundle.rigid_region
+
+
 def make_filter(config: StreamConfig, model: StreamModel) -> OneEuroFilter:
     schema = model.bundle.schema
     default = (config.min_cutoff, config.beta, config.d_cutoff)
@@ -210,6 +227,7 @@ class StreamState:
         self._fit_buf = np.empty((model.vertex_count, 3), dtype=np.float32)
         self._fit_d2 = np.empty(model.vertex_count, dtype=np.float32)
         self.telemetry.bundle = model.label
+        self.stabilise = stabilise_for(self.config.stabilise, model.bundle, self.config.stream)
         # A new bundle has its own error level: the adaptive detector starts over.
         self.manifold = (ManifoldTracker(ManifoldConfig(floor=model.floor))
                          if model.fixed_threshold is None else None)
@@ -234,7 +252,7 @@ class StreamState:
         pose: RigidTransform | None = None
         rms = math.nan
         subset = self._subset
-        if cfg.stabilise:
+        if self.stabilise:
             pose, rms = stabilise_fast(mesh.vertices, model.bundle.stable_indices,
                                        model.stable_target, scale=cfg.stabilise_scale)
             # Only the K input vertices are moved on the hot path; the fit error moves the rest.

@@ -1,0 +1,127 @@
+"""The refinement after the inverse network (runtime/refine.py, export/refine.py).
+
+References: the bounded least-squares optimum from SciPy's ``lsq_linear`` (BVLS, Stark & Parker
+1995) on a linear rig, where the Gauss-Newton steps must land on it; torch.autograd for the
+hand-written vector-Jacobian product of the refinement graph.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from rigcast.runtime.refine import (
+    Refiner,
+    RefineSettings,
+    active_set,
+    solve_active,
+    solve_active_naive,
+)
+from scipy.optimize import lsq_linear
+
+
+def _linear_problem(seed: int, c: int = 12, coords: int = 300):
+    rng = np.random.default_rng(seed)
+    a = rng.standard_normal((coords, c)) * rng.uniform(0.05, 1.0, c)  # small and large shapes
+
+    def gradient(controls: np.ndarray, mesh: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        r = mesh.reshape(mesh.shape[0], -1) - controls.astype(np.float64) @ a.T
+        return (r @ a).astype(np.float32), (r * r).sum(axis=1).astype(np.float32)
+
+    return a, gradient
+
+
+def test_solve_active_matches_its_naive_twin() -> None:
+    rng = np.random.default_rng(3)
+    m = rng.standard_normal((9, 9))
+    h = m @ m.T + np.eye(9)
+    g = rng.standard_normal((40, 9))
+    free = rng.random((40, 9)) < 0.35
+    free[0] = False  # a frame with nothing to do
+    free[1] = True  # and one with everything
+    got = solve_active(h, g, free, 0.1)
+    want = solve_active_naive(h, g, free, 0.1)
+    np.testing.assert_allclose(got, want, rtol=1e-10, atol=1e-12)
+    assert np.all(got[~free] == 0.0)
+
+
+def test_refine_reaches_the_bounded_least_squares_optimum_on_a_linear_rig() -> None:
+    """Noise-free sparse poses, a network answer that is off and misses a control: the steps
+    must land on SciPy's bounded optimum (here the true pose) and keep at-rest controls at rest."""
+    c = 12
+    a, gradient = _linear_problem(0, c)
+    rng = np.random.default_rng(1)
+    truth = np.zeros((30, c))
+    for row in truth:
+        on = rng.choice(c, size=3, replace=False)
+        row[on] = rng.uniform(0.2, 1.0, 3)
+    mesh = (truth @ a.T).reshape(30, -1, 3).astype(np.float32)
+    guess = np.clip(truth + 0.08 * rng.standard_normal(truth.shape) * (truth > 0), 0, 1)
+    guess[:, 0] = 0.0  # a lost expression: the network left control 0 at rest
+    refiner = Refiner(gradient, a.T @ a, np.zeros(c), np.ones(c), np.zeros(c), a.shape[0],
+                      RefineSettings(steps=6))
+    got = refiner.refine(guess.astype(np.float32), mesh)
+    ref = np.stack([lsq_linear(a, m.reshape(-1), bounds=(0, 1), method="bvls").x for m in mesh])
+    np.testing.assert_allclose(got, ref, atol=2e-4)
+    at_rest = truth == 0
+    assert np.all(got[at_rest] == 0.0), "an at-rest control left its default"
+
+
+def test_refine_under_noise_leaves_at_rest_controls_alone() -> None:
+    """With white noise on the mesh, the correlation test must not wake controls at rest."""
+    c = 12
+    a, gradient = _linear_problem(2, c, coords=900)
+    rng = np.random.default_rng(5)
+    truth = np.zeros((200, c))
+    truth[:, 3] = rng.uniform(0.3, 0.9, 200)
+    clean = truth @ a.T
+    noisy = (clean + 0.01 * rng.standard_normal(clean.shape)).reshape(200, -1, 3)
+    refiner = Refiner(gradient, a.T @ a, np.zeros(c), np.ones(c), np.zeros(c), a.shape[0])
+    got = refiner.refine(truth.astype(np.float32), noisy.astype(np.float32))
+    woken = (np.abs(got[:, np.arange(c) != 3]) > 0.01).sum(axis=1).mean()
+    assert woken < 0.05
+    assert np.abs(got[:, 3] - truth[:, 3]).max() < 0.05
+
+
+def test_active_set_blocks_moves_past_a_bound() -> None:
+    u = np.array([[0.0, 1.0, 0.5, 0.0]])
+    g = np.array([[-5.0, 5.0, 0.1, 5.0]])
+    free = active_set(u, np.zeros(4), g, np.array([1.0]), np.ones(4), 4.0, 3)
+    # 0: at rest on its lower bound, pushed down; 1: on its upper bound, pushed up: both out.
+    # 2: active; 3: at rest, strongly pulled inwards: woken.
+    assert free.tolist() == [[False, False, True, True]]
+
+
+def test_settings_are_validated() -> None:
+    with pytest.raises(ValueError, match="steps"):
+        RefineSettings(steps=-1)
+    with pytest.raises(ValueError, match="kappa"):
+        RefineSettings(kappa=float("nan"))
+
+
+def test_refine_graph_gradient_matches_autograd() -> None:
+    torch = pytest.importorskip("torch")
+    from rigcast.export.models import ForwardApproximator
+    from rigcast.export.onnx_export import export_refine, session
+    from rigcast.export.refine import RefineGraph, refine_gradient_naive
+    from rigcast.runtime.bundle import REFINE_CONTROLS, REFINE_MESH
+
+    rng = np.random.default_rng(0)
+    v, c, p = 40, 5, 6
+    basis = np.linalg.qr(rng.standard_normal((3 * v, p)))[0].T
+    fwd = ForwardApproximator(rng.standard_normal((v, 3)), -np.ones(c), 2 * np.ones(c),
+                              rng.standard_normal((c, 3 * v)), np.zeros(3 * v), basis, (16, 16))
+    with torch.no_grad():
+        for prm in fwd.correction.parameters():
+            prm.copy_(torch.randn_like(prm) * 0.5)
+    idx = np.array([1, 4, 9, 20, 33])
+    ctrl = rng.uniform(-1, 2, (7, c)).astype(np.float32)
+    mesh = rng.standard_normal((7, idx.size, 3)).astype(np.float32)
+    with torch.no_grad():
+        g, rss = RefineGraph(fwd, idx)(torch.from_numpy(ctrl), torch.from_numpy(mesh))
+    np.testing.assert_allclose(g.numpy(), refine_gradient_naive(fwd, idx, ctrl, mesh),
+                               rtol=1e-4, atol=1e-4)
+    data, parity = export_refine(fwd, idx, mesh)
+    got = session(data).run(None, {REFINE_CONTROLS: ctrl, REFINE_MESH: mesh})
+    np.testing.assert_allclose(got[0], g.numpy(), rtol=1e-4, atol=1e-4)
+    np.testing.assert_allclose(got[1], rss.numpy(), rtol=1e-4)
+    assert parity <= 1e-4
