@@ -317,21 +317,28 @@ def run_mode(curve_on: bool, count: int, work: Path, bundle: Path, keys: Path,
             side.send(protocol.encode_schema_request("fz"))
             side.close()
             sent["transport"] += 1  # an extra message, refused at the handshake
-        expected_replies += want
-        # Read replies until those expected so far have come and the socket is quiet.
-        end = time.monotonic() + 10
-        while time.monotonic() < end:
-            if dealer.poll(20 if answers["reply"] + answers["any_reply"] < expected_replies
-                           else 0):
-                raw = dealer.recv_multipart()
-                try:
-                    reply = protocol.decode_reply(raw[0])
-                    answers[reply["type"]] += 1
-                except protocol.FrameError:
-                    answers["undecodable"] += 1
-                answers["reply"] += 1
-            else:
-                break
+        # A sentinel closes the batch: the server handles one peer's messages in order, so
+        # once its reply is here every message before it has been handled (a reload's reply
+        # may still come: its work runs in the background).
+        dealer.send(protocol.encode_schema_request("sync"))
+        sent["reply"] += 1
+        expected_replies += want + 1
+        end = time.monotonic() + 30
+        synced = False
+        while not synced and time.monotonic() < end:
+            if not dealer.poll(100):
+                continue
+            raw = dealer.recv_multipart()
+            answers["reply"] += 1
+            try:
+                reply = protocol.decode_reply(raw[0])
+            except protocol.FrameError:
+                answers["undecodable"] += 1
+                continue
+            answers[reply["type"]] += 1
+            synced = reply.get("stream") == "sync"
+        if not synced:
+            answers["sync_timeouts"] += 1
         done += n
         if time.monotonic() >= next_rss:
             next_rss = time.monotonic() + 0.5
@@ -339,14 +346,10 @@ def run_mode(curve_on: bool, count: int, work: Path, bundle: Path, keys: Path,
                 crashes += 1
                 break
             rss_peak = max(rss_peak, rss_mb(proc.pid))
-    # Drain late replies (reloads), then read the server's own counts.
-    end = time.monotonic() + 5
-    while time.monotonic() < end:
-        if dealer.poll(500):
-            dealer.recv_multipart()
-            answers["reply"] += 1
-        elif answers["reply"] >= expected_replies:
-            break
+    # Late replies (reloads): until the socket has been quiet for 2 s.
+    while dealer.poll(2000):
+        dealer.recv_multipart()
+        answers["reply"] += 1
     peer.stop.set()
     peer.join(5)
     seconds = time.monotonic() - t0
@@ -363,7 +366,12 @@ def run_mode(curve_on: bool, count: int, work: Path, bundle: Path, keys: Path,
     catch_all = int(server_counts.get("processing_error", 0)) - stream_errors
     crashes += (0 if alive else 1) + max(catch_all, 0)
     proc.terminate()
-    proc.wait(10)
+    try:
+        proc.wait(10)
+    except subprocess.TimeoutExpired:
+        crashes += 1  # a server that does not stop on SIGTERM counts as a crash
+        proc.kill()
+        proc.wait()
     log.close()
     dealer.close(0)
     peer.close()
