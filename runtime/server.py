@@ -190,7 +190,7 @@ class Server:
             now = time.monotonic()
             # A due tick waits for the next drain (up to one period), so it runs between frames.
             due = self._next_tick if now < self._next_tick else self._next_tick + period
-            wait = min(max(due - now, 0.0), _TICK_CAP_S)
+            wait = min(max(due - now, 0.0), _TICK_CAP_S, self.fits.due_in_s())
             ready = sockets.wait_for_input(poller, math.ceil(wait * 1000), spin_ns if drained else 0)
             drained = ready
             if ready:
@@ -233,8 +233,8 @@ class Server:
             os.sched_yield()
 
     def run_fits(self) -> None:
-        """Pending fit errors, per stream in turn, within each stream's time share."""
-        self.fits.run(len(self.streams), self._input_waiting, self._fit)
+        """Pending fit errors, the streams in turn, within the fit error's time share."""
+        self.fits.run(self._input_waiting, self._fit)
 
     def _fit(self, stream: str, item: tuple[StreamState, FrameResult, protocol.MeshFrame, Any]
              ) -> None:
