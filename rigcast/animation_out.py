@@ -1,28 +1,26 @@
-"""Write solved controls as animation: CSV, JSON, and glTF 2.0 morph-target weight animation.
+"""Write solved controls as animation: CSV and JSON here; glTF 2.0 in ``rigcast.gltf_out``,
+OpenUSD in ``rigcast.usd_out``; ``write_controls`` picks by the output file's extension.
 
-Formats (chosen by the output file's extension in ``write_controls``):
+- ``.csv``: header ``frame,time_s,<control names...>`` then, when given, the per-frame quality
+  ``fit_rms,fit_max,off_manifold,clamped,stale`` (flags 0/1; an empty fit error was not computed)
+  and the head pose ``head_tx,head_ty,head_tz,head_qx,head_qy,head_qz,head_qw,head_scale``
+  (``rigcast.frame_info``); one row per frame.
+- ``.json``: ``{"format": "rigcast-controls", "version": 2, "schema": {...}, "fps": float|null,
+  "frames": [int...], "times_s": [float...], "controls": {name: [value per frame...]},
+  "quality"?: {"fit_rms": [float|null...], "fit_max": [...], "flags": {name: [bool...]}},
+  "head_pose"?: {"translation": [[x, y, z]...], "rotation_xyzw": [[x, y, z, w]...],
+  "scale": [...]}}``; the controls are column-major, one list per control, in schema order.
 
-- ``.csv``: header ``frame,time_s,<control names...>``, one row per frame.
-- ``.json``: ``{"format": "rigcast-controls", "version": 1, "schema": {...}, "fps": float|null,
-  "frames": [int...], "times_s": [float...], "controls": {name: [value per frame...]}}``;
-  the controls are column-major, one list per control, in schema order.
-- ``.gltf`` (JSON with the buffer embedded as a base64 data URI) or ``.glb`` (binary container):
-  one mesh whose base POSITION is the rig's neutral and whose morph targets are the deltas of one
-  unit of each blendshape control, named in ``mesh.extras.targetNames``, and one animation that
-  drives the node's ``weights`` with LINEAR interpolation. This is for blendshape rigs only.
-
-The glTF layout follows the glTF 2.0 specification (sections "Buffers and Buffer Views",
-"Accessors", "Morph Targets", "Animations", "GLB File Format Specification").
+``MorphBasis`` (a rig seen as blendshapes, for the glTF and USD writers) is read off a rig or a
+bundle's forward model by ``morph_basis``.
 """
 
 from __future__ import annotations
 
-import base64
 import csv
 import json
 import logging
 import math
-import struct
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -30,27 +28,20 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
+from rigcast.frame_info import FLAG_NAMES, POSE_COLUMNS, FrameQuality, HeadPose
 from rigcast.runtime.bundle import Bundle
 from rigcast.runtime.schema import ControlSchema
 
 if TYPE_CHECKING:
     from rigcast.export.rig import Rig
+    from rigcast.skeleton import Skeleton
 
 log = logging.getLogger(__name__)
 
 JSON_FORMAT = "rigcast-controls"
-JSON_VERSION = 1
+JSON_VERSION = 2  # 2 adds "quality" and "head_pose"; readers of 1 ignore them
+QUALITY_COLUMNS = ("fit_rms", "fit_max", *FLAG_NAMES)
 
-# glTF 2.0 enums (spec 5.1 "accessor.componentType", 5.11 "bufferView.target", 5.24 "mode")
-_FLOAT = 5126
-_UNSIGNED_INT = 5125
-_ARRAY_BUFFER = 34962
-_ELEMENT_ARRAY_BUFFER = 34963
-_TRIANGLES = 4
-_POINTS = 0
-_GLB_MAGIC = 0x46546C67  # "glTF"
-_CHUNK_JSON = 0x4E4F534A  # "JSON"
-_CHUNK_BIN = 0x004E4942  # "BIN\0"
 
 
 class AnimationError(ValueError):
@@ -61,7 +52,8 @@ class AnimationError(ValueError):
 class MorphBasis:
     """A rig seen as blendshapes: ``mesh = neutral + sum_m w[control_indices[m]] * targets[m]``.
 
-    neutral: (V, 3) float32; faces: (F, 3) int32; targets: (M, V, 3) float32 deltas of one unit
+    neutral: (V, 3) float32 the mesh at all blendshape weights 0 (the glTF base POSITION);
+    faces: (F, 3) int32; targets: (M, V, 3) float32 deltas of one unit
     of weight; names: (M,) target names; control_indices: (M,) column of each target in the
     solved controls; omitted: the controls that are not blendshapes and are left out.
     """
@@ -92,47 +84,57 @@ def morph_basis(
     evaluate: Callable[[np.ndarray], np.ndarray],
     *,
     linearity_tol: float = 1e-3,
+    max_span: float | None = None,
 ) -> MorphBasis:
-    """Read a rig's blendshapes off ``evaluate`` by probing unit poses.
+    """Read a rig's blendshapes off ``evaluate`` by probing each control over its range.
 
-    A control counts as a blendshape when its default is 0 and the mesh moves linearly with it:
-    the delta at half the probe weight equals half the delta at the probe weight (1, or the
-    control's maximum when that is below 1) within ``linearity_tol`` of the delta's size.
+    A control is a blendshape when the mesh moves linearly with it over its whole range: with
+    ``t = (f(hi) - f(lo)) / (hi - lo)`` (f: the mesh with only that control moved from the
+    defaults), ``f(x) - f(default) = (x - default) * t`` at x = lo, (lo + hi) / 2 and hi, within
+    ``linearity_tol`` of ``|t| * (hi - lo)``. Joint rotations fail this over a wide range (the
+    chord bends). Defaults need not be 0: the glTF base is ``neutral - sum_i default_i * t_i``,
+    so glTF weights are the control values themselves.
+    ``max_span``: controls whose range is wider are not blendshape weights whatever the test says
+    (for a learned forward model, which can look linear where the rig is not).
     evaluate: (B, C) -> (B, V, 3). Raises AnimationError when no control is a blendshape.
     """
     c = len(schema)
     defaults = schema.defaults.astype(np.float64)
-    upper = schema.upper.astype(np.float64)
-    probe = np.where(upper >= 1.0, 1.0, upper)
-    poses = np.repeat(defaults[None], 2 * c + 1, axis=0)
-    poses[1 + np.arange(c), np.arange(c)] = probe
-    poses[1 + c + np.arange(c), np.arange(c)] = 0.5 * probe
+    lo, hi = schema.lower.astype(np.float64), schema.upper.astype(np.float64)
+    poses = np.repeat(defaults[None], 3 * c + 1, axis=0)
+    for k, probe in enumerate((lo, 0.5 * (lo + hi), hi)):
+        poses[1 + k * c + np.arange(c), np.arange(c)] = probe
     meshes = np.asarray(evaluate(poses.astype(np.float32)), dtype=np.float64)
-    base = meshes[0]
-    full = meshes[1 : 1 + c] - base  # (C, V, 3)
-    half = meshes[1 + c :] - base
+    deltas = (meshes[1:] - meshes[0]).reshape(3, c, -1, 3)  # (probe, C, V, 3)
     keep: list[int] = []
     omitted: list[str] = []
+    units = np.zeros((c, *deltas.shape[2:]))
     for i, control in enumerate(schema.controls):
-        size = float(np.abs(full[i]).max())
-        bend = float(np.abs(half[i] - 0.5 * full[i]).max())
-        linear = bend <= linearity_tol * max(size, 1e-12)
-        if control.default == 0.0 and probe[i] > 0.0 and linear:
+        span = hi[i] - lo[i]
+        units[i] = (deltas[2, i] - deltas[0, i]) / span
+        size = float(np.abs(units[i]).max()) * span
+        xs = (lo[i] - defaults[i], 0.5 * (lo[i] + hi[i]) - defaults[i], hi[i] - defaults[i])
+        bend = max(float(np.abs(deltas[k, i] - x * units[i]).max()) for k, x in enumerate(xs))
+        narrow = max_span is None or span <= max_span
+        if size > 0.0 and bend <= linearity_tol * size and narrow:
             keep.append(i)
         else:
             omitted.append(control.name)
     if not keep:
         raise AnimationError(
-            f"rig {name!r} is not a blendshape rig: no control moves the mesh linearly from a zero "
-            "default, so it has no morph targets for glTF; write CSV or JSON instead"
+            f"rig {name!r} is not a blendshape rig: no control moves the mesh linearly over its "
+            "range, so it has no morph targets; for a skinned rig give the rig with --rig (its "
+            "skeleton then goes into glTF and USD), or write CSV or JSON"
         )
     if omitted:
-        log.warning("rig %s: %d non-blendshape controls left out of glTF: %s",
+        log.warning("rig %s: %d non-blendshape controls left out of the morph targets: %s",
                     name, len(omitted), ", ".join(omitted))
-    targets = full[keep] / probe[keep][:, None, None]
+    targets = units[keep]
+    # base[v] = neutral[v] - sum_m default[keep[m]] * targets[m, v]
+    base = np.asarray(neutral, np.float64) - np.einsum("m,mvx->vx", defaults[keep], targets)
     return MorphBasis(
         name=name,
-        neutral=np.asarray(neutral, dtype=np.float32),
+        neutral=base.astype(np.float32),
         faces=np.asarray(faces, dtype=np.int32).reshape(-1, 3),
         targets=targets.astype(np.float32),
         names=tuple(schema.controls[i].name for i in keep),
@@ -161,21 +163,52 @@ def _check_take(controls: np.ndarray, times_s: np.ndarray, width: int) -> tuple[
 # CSV and JSON
 
 
+def _extra_columns(frames: int, quality: FrameQuality | None, head: HeadPose | None
+                   ) -> tuple[list[str], np.ndarray]:
+    """Names and (T, K) values of the quality and head-pose columns that follow the controls."""
+    names: list[str] = []
+    cols: list[np.ndarray] = []
+    if quality is not None:
+        if quality.frames != frames:
+            raise AnimationError(f"quality has {quality.frames} frames, the take {frames}")
+        names += list(QUALITY_COLUMNS)
+        cols += [quality.fit_rms, quality.fit_max,
+                 *(quality.flags(f).astype(np.float64) for f in FLAG_NAMES)]
+    if head is not None:
+        if head.translation.shape[0] != frames:
+            raise AnimationError(f"head pose has {head.translation.shape[0]} frames, the take "
+                                 f"{frames}")
+        names += list(POSE_COLUMNS)
+        cols += list(head.table().T)
+    values = np.column_stack(cols) if cols else np.zeros((frames, 0))
+    return names, values
+
+
 def write_csv(path: str | Path, names: Sequence[str], controls: np.ndarray,
-              times_s: np.ndarray) -> Path:
-    """controls: (T, C) in the order of ``names``; times_s: (T,)."""
+              times_s: np.ndarray, *, quality: FrameQuality | None = None,
+              head: HeadPose | None = None) -> Path:
+    """controls: (T, C) in the order of ``names``; times_s: (T,). Optional columns after the
+    controls: QUALITY_COLUMNS (flags as 0/1, fit error empty when not computed), then
+    POSE_COLUMNS."""
     path = Path(path)
     controls, times_s = _check_take(controls, times_s, len(names))
+    extra_names, extra = _extra_columns(controls.shape[0], quality, head)
+    flags = {n for n in extra_names if n in FLAG_NAMES}
     with path.open("w", newline="") as fh:
         writer = csv.writer(fh)
-        writer.writerow(["frame", "time_s", *names])
+        writer.writerow(["frame", "time_s", *names, *extra_names])
         for f in range(controls.shape[0]):
-            writer.writerow([f, repr(float(times_s[f])), *(repr(float(v)) for v in controls[f])])
+            tail = ["" if not np.isfinite(v) else str(int(v)) if n in flags else repr(float(v))
+                    for n, v in zip(extra_names, extra[f], strict=True)]
+            writer.writerow([f, repr(float(times_s[f])), *(repr(float(v)) for v in controls[f]),
+                             *tail])
     return path
 
 
-def read_csv(path: str | Path) -> tuple[tuple[str, ...], np.ndarray, np.ndarray]:
-    """Read a CSV written by ``write_csv``: (names, controls (T, C), times_s (T,))."""
+def read_csv_columns(path: str | Path) -> tuple[tuple[str, ...], np.ndarray, np.ndarray,
+                                                 dict[str, np.ndarray]]:
+    """Read a CSV written by ``write_csv``: (control names, controls (T, C), times_s (T,),
+    {quality or head-pose column: (T,)}); an empty fit-error field reads as NaN."""
     path = Path(path)
     with path.open(newline="") as fh:
         rows = list(csv.reader(fh))
@@ -187,19 +220,39 @@ def read_csv(path: str | Path) -> tuple[tuple[str, ...], np.ndarray, np.ndarray]
         raise AnimationError(f"{path}: line {short[0]} has a different number of fields than "
                              f"the header ({width})")
     try:
-        table = np.array([[float(x) for x in r] for r in rows[1:]], dtype=np.float64)
+        table = np.array([[float(x) if x != "" else np.nan for x in r] for r in rows[1:]],
+                         dtype=np.float64)
     except ValueError as exc:
         raise AnimationError(f"{path}: {exc}") from None
     table = table.reshape(-1, width)
-    return tuple(rows[0][2:]), table[:, 2:], table[:, 1]
+    header = rows[0]
+    known = set(QUALITY_COLUMNS) | set(POSE_COLUMNS)
+    first_extra = width
+    while first_extra > 2 and header[first_extra - 1] in known:
+        first_extra -= 1
+    extras = {n: table[:, 2 + i + (first_extra - 2)] for i, n in enumerate(header[first_extra:])}
+    return tuple(header[2:first_extra]), table[:, 2:first_extra], table[:, 1], extras
+
+
+def read_csv(path: str | Path) -> tuple[tuple[str, ...], np.ndarray, np.ndarray]:
+    """Read a CSV written by ``write_csv``: (names, controls (T, C), times_s (T,))."""
+    names, controls, times, _ = read_csv_columns(path)
+    return names, controls, times
+
+
+def _finite_or_none(values: np.ndarray) -> list[float | None]:
+    """JSON has no NaN: a fit error that was not computed is null."""
+    return [float(v) if np.isfinite(v) else None for v in values]
 
 
 def write_json(path: str | Path, schema: ControlSchema, controls: np.ndarray,
-               times_s: np.ndarray, *, fps: float | None = None) -> Path:
+               times_s: np.ndarray, *, fps: float | None = None,
+               quality: FrameQuality | None = None, head: HeadPose | None = None) -> Path:
     """controls: (T, C) in schema order; times_s: (T,). Column-major, see the module docstring."""
     path = Path(path)
     controls, times_s = _check_take(controls, times_s, len(schema))
-    doc = {
+    _extra_columns(controls.shape[0], quality, head)  # checks the frame counts
+    doc: dict[str, Any] = {
         "format": JSON_FORMAT,
         "version": JSON_VERSION,
         "schema": schema.to_dict(),
@@ -208,12 +261,23 @@ def write_json(path: str | Path, schema: ControlSchema, controls: np.ndarray,
         "times_s": times_s.tolist(),
         "controls": {n: controls[:, i].tolist() for i, n in enumerate(schema.names)},
     }
-    path.write_text(json.dumps(doc))
+    if quality is not None:
+        doc["quality"] = {
+            "fit_rms": _finite_or_none(quality.fit_rms),
+            "fit_max": _finite_or_none(quality.fit_max),
+            "flags": {f: quality.flags(f).tolist() for f in FLAG_NAMES},
+        }
+    if head is not None:
+        doc["head_pose"] = {"translation": head.translation.tolist(),
+                            "rotation_xyzw": head.rotation.tolist(),
+                            "scale": head.scale.tolist()}
+    path.write_text(json.dumps(doc, allow_nan=False))
     return path
 
 
 def read_json(path: str | Path) -> tuple[ControlSchema, np.ndarray, np.ndarray]:
-    """Read a JSON file written by ``write_json``: (schema, controls (T, C), times_s (T,))."""
+    """Read a JSON file written by ``write_json``: (schema, controls (T, C), times_s (T,)).
+    Its ``quality`` and ``head_pose`` are plain JSON; ``json.loads`` the file for them."""
     path = Path(path)
     try:
         doc = json.loads(path.read_text())
@@ -232,156 +296,34 @@ def read_json(path: str | Path) -> tuple[ControlSchema, np.ndarray, np.ndarray]:
     return schema, controls.reshape(-1, len(schema)), times
 
 
-# ---------------------------------------------------------------------------------------------
-# glTF 2.0
-
-
-class _BufferBuilder:
-    """Packs arrays into one binary buffer with one bufferView and accessor each."""
-
-    def __init__(self) -> None:
-        self.blob = bytearray()
-        self.views: list[dict[str, Any]] = []
-        self.accessors: list[dict[str, Any]] = []
-
-    def add(self, data: np.ndarray, component: int, kind: str, *, target: int | None = None,
-            bounds: bool = False) -> int:
-        raw = np.ascontiguousarray(data).tobytes()
-        # Every component here is 4 bytes, so 4-byte alignment satisfies spec 3.6.2.4
-        # ("offset of an accessor into a bufferView ... must be a multiple of the component size").
-        while len(self.blob) % 4:
-            self.blob.append(0)
-        view: dict[str, Any] = {"buffer": 0, "byteOffset": len(self.blob), "byteLength": len(raw)}
-        if target is not None:
-            view["target"] = target
-        self.blob.extend(raw)
-        self.views.append(view)
-        width = {"SCALAR": 1, "VEC3": 3}[kind]
-        accessor: dict[str, Any] = {
-            "bufferView": len(self.views) - 1,
-            "componentType": component,
-            "count": int(data.size // width),
-            "type": kind,
-        }
-        if bounds:
-            # Spec 3.6.2.5: POSITION and animation input accessors MUST carry min and max; the
-            # validator compares them with the float32 data exactly.
-            rows = data.reshape(-1, width)
-            accessor["min"] = [float(v) for v in rows.min(axis=0)]
-            accessor["max"] = [float(v) for v in rows.max(axis=0)]
-        self.accessors.append(accessor)
-        return len(self.accessors) - 1
-
-
-def gltf_document(basis: MorphBasis, controls: np.ndarray, times_s: np.ndarray
-                  ) -> tuple[dict[str, Any], bytes]:
-    """Build the glTF JSON (without the buffer's uri) and its binary buffer.
-
-    controls: (T, C) solved controls (all of the rig's controls); times_s: (T,) seconds, >= 0.
-    """
-    controls = np.asarray(controls, dtype=np.float64)
-    if controls.ndim != 2 or controls.shape[1] <= max(basis.control_indices):
-        raise AnimationError(
-            f"controls must be (T, C) with C > {max(basis.control_indices)}, got {controls.shape}"
-        )
-    controls, times_s = _check_take(controls, times_s, controls.shape[1])
-    times32 = times_s.astype(np.float32)
-    if times32[0] < 0.0:
-        raise AnimationError(f"glTF animation times must be >= 0, first is {times32[0]}")
-    if times32.shape[0] > 1 and not np.all(np.diff(times32) > 0):
-        raise AnimationError("times_s are too close to stay increasing in float32")
-    weights = controls[:, list(basis.control_indices)].astype(np.float32)  # (T, M)
-    buf = _BufferBuilder()
-    primitive: dict[str, Any] = {"attributes": {}, "mode": _TRIANGLES}
-    if basis.faces.shape[0]:
-        idx = buf.add(basis.faces.astype(np.uint32).reshape(-1), _UNSIGNED_INT, "SCALAR",
-                      target=_ELEMENT_ARRAY_BUFFER)
-        primitive["indices"] = idx
-    else:
-        primitive["mode"] = _POINTS
-    primitive["attributes"]["POSITION"] = buf.add(
-        basis.neutral.astype(np.float32), _FLOAT, "VEC3", target=_ARRAY_BUFFER, bounds=True
-    )
-    primitive["targets"] = [
-        {"POSITION": buf.add(t.astype(np.float32), _FLOAT, "VEC3", target=_ARRAY_BUFFER,
-                             bounds=True)}
-        for t in basis.targets
-    ]
-    t_in = buf.add(times32, _FLOAT, "SCALAR", bounds=True)
-    t_out = buf.add(weights.reshape(-1), _FLOAT, "SCALAR")
-    mesh: dict[str, Any] = {
-        "name": basis.name or "rig",
-        "primitives": [primitive],
-        "weights": [0.0] * len(basis.names),
-        "extras": {"targetNames": list(basis.names)},
-    }
-    doc: dict[str, Any] = {
-        "asset": {"version": "2.0", "generator": "rigcast"},
-        "scene": 0,
-        "scenes": [{"nodes": [0]}],
-        "nodes": [{"name": basis.name or "rig", "mesh": 0}],
-        "meshes": [mesh],
-        "animations": [{
-            "name": "solve",
-            "samplers": [{"input": t_in, "output": t_out, "interpolation": "LINEAR"}],
-            "channels": [{"sampler": 0, "target": {"node": 0, "path": "weights"}}],
-            "extras": {"omittedControls": list(basis.omitted)},
-        }],
-        "accessors": buf.accessors,
-        "bufferViews": buf.views,
-        "buffers": [{"byteLength": len(buf.blob)}],
-    }
-    return doc, bytes(buf.blob)
-
-
-def write_gltf(path: str | Path, basis: MorphBasis, controls: np.ndarray,
-               times_s: np.ndarray) -> Path:
-    """Write ``.gltf`` (embedded base64 buffer) or ``.glb`` (binary), chosen by the extension."""
-    path = Path(path)
-    doc, blob = gltf_document(basis, controls, times_s)
-    suffix = path.suffix.lower()
-    if suffix == ".gltf":
-        doc["buffers"][0]["uri"] = (
-            "data:application/octet-stream;base64," + base64.b64encode(blob).decode("ascii")
-        )
-        path.write_text(json.dumps(doc))
-    elif suffix == ".glb":
-        path.write_bytes(_glb(doc, blob))
-    else:
-        raise AnimationError(f"{path}: glTF output needs a .gltf or .glb extension")
-    log.info("wrote %s: %d frames, %d morph targets", path, len(times_s), len(basis.names))
-    return path
-
-
-def _glb(doc: dict[str, Any], blob: bytes) -> bytes:
-    """GLB container (spec 4.4): 12-byte header, JSON chunk space-padded, BIN chunk 0-padded."""
-    text = json.dumps(doc, separators=(",", ":")).encode("utf-8")
-    text += b" " * (-len(text) % 4)
-    binary = blob + b"\0" * (-len(blob) % 4)
-    total = 12 + 8 + len(text) + 8 + len(binary)
-    return b"".join([
-        struct.pack("<III", _GLB_MAGIC, 2, total),
-        struct.pack("<II", len(text), _CHUNK_JSON), text,
-        struct.pack("<II", len(binary), _CHUNK_BIN), binary,
-    ])
+OUTPUT_SUFFIXES = (".csv", ".json", ".gltf", ".glb", ".usda", ".usdc", ".usd")
 
 
 def write_controls(path: str | Path, schema: ControlSchema, controls: np.ndarray,
                    times_s: np.ndarray, *, fps: float | None = None,
-                   basis: MorphBasis | None = None) -> Path:
-    """Write by extension: .csv, .json, .gltf or .glb (the glTF forms need ``basis``)."""
+                   basis: MorphBasis | None = None, skeleton: Skeleton | None = None,
+                   quality: FrameQuality | None = None, head: HeadPose | None = None) -> Path:
+    """Write by extension: .csv, .json, .gltf/.glb (``basis`` and/or ``skeleton``) or
+    .usda/.usdc/.usd (the same, through usd-core). ``quality`` and ``head`` go into every
+    format that can hold them (glTF: the head pose only, on the root node)."""
     path = Path(path)
     suffix = path.suffix.lower()
     if suffix == ".csv":
-        return write_csv(path, schema.names, controls, times_s)
+        return write_csv(path, schema.names, controls, times_s, quality=quality, head=head)
     if suffix == ".json":
-        return write_json(path, schema, controls, times_s, fps=fps)
+        return write_json(path, schema, controls, times_s, fps=fps, quality=quality, head=head)
     if suffix in (".gltf", ".glb"):
-        if basis is None:
-            raise AnimationError(f"{path}: glTF output needs the rig's morph targets")
-        return write_gltf(path, basis, controls, times_s)
+        from rigcast.gltf_out import write_gltf
+
+        return write_gltf(path, controls, times_s, basis=basis, skeleton=skeleton, head=head,
+                          fps=fps)
+    if suffix in (".usda", ".usdc", ".usd"):
+        from rigcast.usd_out import write_usd
+
+        return write_usd(path, schema, controls, times_s, basis=basis, skeleton=skeleton,
+                         head=head, quality=quality, fps=fps)
     raise AnimationError(
-        f"{path}: unknown output format {suffix!r}; use .csv, .json, .gltf or .glb"
+        f"{path}: unknown output format {suffix!r}; use {', '.join(OUTPUT_SUFFIXES)}"
     )
 
 

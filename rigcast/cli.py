@@ -23,6 +23,7 @@ log = logging.getLogger(__name__)
 DEFAULT_INPUT = "tcp://127.0.0.1:5570"
 DEFAULT_OUTPUT = "tcp://127.0.0.1:5571"
 _CUT_MIN_FRAMES = 10_000  # takes this long solve with the subset fit error's cut forward graph
+_DEFAULT_FPS = 60.0  # rigcast.takes.DEFAULT_FPS (kept equal by tests/test_takes.py), not imported
 
 _DESCRIPTION = """\
 rigcast turns dense mesh streams (4D capture, generative models) into a character rig's animator
@@ -202,7 +203,8 @@ def _add_send(subs: argparse._SubParsersAction) -> None:
                    from_help="the server's output endpoint, to learn the stream id when not given",
                    stream_help=_FIRST_STREAM)
     p.add_argument("--fps", type=float, default=None,
-                   help="frame rate (default: the take's, or 60)")
+                   help=f"frame rate (default: the take's own, else {_DEFAULT_FPS:g}, said when "
+                        "assumed)")
     p.add_argument("--loop", action="store_true", help="start over at the end of the take")
     _add_limits(p)
     p.add_argument("--head-motion", action="store_true",
@@ -260,25 +262,35 @@ def _add_record(subs: argparse._SubParsersAction) -> None:
 
 def _add_solve(subs: argparse._SubParsersAction) -> None:
     p = _sub(
-        subs, "solve", "solve a whole take offline -> CSV, JSON or glTF",
+        subs, "solve", "solve a whole take offline -> CSV, JSON, glTF or USD",
         "Solve every frame of a take in batches with onnxruntime, as fast as the CPU allows, and "
         "write the controls. Takes: .npy/.npz (frames x V x 3), a folder of .obj files (one per "
         "frame), or a .gltf/.glb with morph-weight or skinned animation. Outputs by extension: "
-        ".csv, .json, or .gltf/.glb (blendshape rigs: the morph targets and their weight "
-        "animation).\n\nFilters: none; causal (the live server's One Euro filter); smooth "
-        "(zero-phase: the filter run forwards and backwards, no lag, offline only).",
+        ".csv or .json (controls, per-frame fit error and flags, head pose), .gltf/.glb or "
+        ".usda/.usdc/.usd (the rig and its animation: morph targets for blendshape controls; "
+        "with --rig, a skinned rig's joints; the head pose on the root). The flagged frame "
+        "ranges are printed.\n\nFilters: none; causal (the live server's One Euro filter); "
+        "smooth (zero-phase: the filter run forwards and backwards, no lag, offline only).",
         "  rigcast solve face.rcb take.npz -o take.csv\n"
         "  rigcast solve face.rcb frames/ --fps 24 -o take.json --filter smooth\n"
-        "  rigcast solve face.rcb capture.glb -o solved.glb --filter causal\n",
+        "  rigcast solve face.rcb capture.glb -o solved.glb --filter causal\n"
+        "  rigcast solve arm.rcb take.npz -o take.usda --rig demo:arm\n",
         _cmd_solve,
     )
     p.add_argument("bundle", type=Path, help="bundle file")
     p.add_argument("take", type=Path, help="take: .npy/.npz, a folder of .obj, or .gltf/.glb")
-    p.add_argument("-o", "--out", type=Path, required=True, help=".csv, .json, .gltf or .glb")
+    p.add_argument("-o", "--out", type=Path, required=True,
+                   help=".csv, .json, .gltf, .glb, .usda, .usdc or .usd")
+    p.add_argument("--rig", default=None, metavar="SPEC",
+                   help="the bundle's rig (as given to `rigcast build`): glTF and USD outputs of "
+                        "a skinned rig then animate its joints")
+    p.add_argument("--bounds", type=Path, default=None,
+                   help="the joint bounds the bundle was built with (glTF rigs, with --rig)")
     p.add_argument("--filter", choices=("none", "causal", "smooth"), default="none",
                    help="temporal filter")
     p.add_argument("--fps", type=float, default=None,
-                   help="frame rate of the take, when the file does not carry one")
+                   help=f"frame rate of the take (default: the take's own, else {_DEFAULT_FPS:g}, "
+                        "said when assumed)")
     p.add_argument("--stabilise", action=argparse.BooleanOptionalAction, default=None,
                    help="remove rigid head motion (default: only when the bundle's rig has a "
                         "rigid region, as its build measured)")
@@ -410,11 +422,12 @@ def _cmd_record(args: argparse.Namespace) -> int:
 def _cmd_solve(args: argparse.Namespace) -> int:
     import numpy as np
 
-    from rigcast.animation_out import morph_basis, write_controls
+    from rigcast.animation_out import write_controls
     from rigcast.errors import MismatchError
     from rigcast.forward_subset import slice_forward_graph
     from rigcast.runtime.batch import BatchSolver, FilterKind, SolveOptions, filter_params
     from rigcast.runtime.bundle import load_bundle
+    from rigcast.solve_out import flag_lines, frame_quality, head_pose, output_form
     from rigcast.takes import read_take
 
     bundle = load_bundle(args.bundle)
@@ -434,23 +447,22 @@ def _cmd_solve(args: argparse.Namespace) -> int:
                            params=params,
                            smooth_hz=args.smooth_hz, fit_error=args.fit_error,
                            batch_size=args.batch_size)
+    basis, skeleton = output_form(bundle, args.out, solver.forward, args.rig, args.bounds)
     result = solver.solve(take.vertices, take.times_s, options)
-    basis = None
-    if args.out.suffix.lower() in (".gltf", ".glb"):
-        # The bundle's forward model stands in for the rig; it is a learned approximation, so
-        # linearity is judged loosely.
-        basis = morph_basis(bundle.name, bundle.schema, bundle.neutral, bundle.faces,
-                            solver.forward.evaluate, linearity_tol=0.05)
+    quality = frame_quality(bundle, result, take.times_s)
+    head = head_pose(bundle, take.vertices, stabilise=bool((result.align_rms > 0).any()))
     write_controls(args.out, bundle.schema, result.controls, take.times_s, fps=take.fps,
-                   basis=basis)
+                   basis=basis, skeleton=skeleton, quality=quality, head=head)
     if result.fit_error == "off":
         fit = "fit error off"
     else:
         fit = (f"fit error ({result.fit_error}, {result.fit_vertices} of "
                f"{bundle.vertex_count} vertices) RMS mean {float(np.nanmean(result.fit_rms)):.5f}, "
                f"{int(result.off_manifold.sum())} off-manifold frames")
-    _say(f"solved {result.controls.shape[0]} frames in {result.seconds:.3f} s "
+    _say(f"solved {result.controls.shape[0]} frames at {take.fps_note} in {result.seconds:.3f} s "
          f"({result.frames_per_second:,.0f} frames/s); {fit}; wrote {args.out}")
+    for line in flag_lines(quality):
+        _say(line)
     return EXIT_OK
 
 

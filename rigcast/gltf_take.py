@@ -21,7 +21,7 @@ from typing import Any
 
 import numpy as np
 
-from rigcast.takes import DEFAULT_FPS, TakeError
+from rigcast.takes import DEFAULT_FPS, TakeError, rate_of
 
 log = logging.getLogger(__name__)
 
@@ -97,7 +97,7 @@ def frame_times(keys: np.ndarray, fps: float | None, stated: float | None = None
         median = float(np.median(step))
         even = float(np.abs(step - median).max()) <= 1e-4 * max(median, 1e-9) + 2e-6
         if even and median > 0 and 1.0 / median >= BAKED_MIN_FPS:
-            rate = 1.0 / median
+            rate = rate_of(step)
             if stated is not None and abs(stated * median - 1.0) < 1e-4:
                 rate = stated  # float32 key times blur the rate the file states
             return keys.astype(np.float64), rate, "file"

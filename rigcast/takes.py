@@ -153,9 +153,15 @@ def _finish(verts: np.ndarray, times: np.ndarray | None, source: str, fps: float
             raise TakeError(f"{source}: times must be finite and strictly increasing")
         if not fps and t.shape[0] < 2:
             origin = "default"
-        rate = fps or (1.0 / float(np.median(np.diff(t))) if t.shape[0] > 1 else DEFAULT_FPS)
+        rate = fps or (rate_of(np.diff(t)) if t.shape[0] > 1 else DEFAULT_FPS)
     return _announce(Take(np.ascontiguousarray(verts, dtype=np.float32), t, source, float(rate),
                           origin))
+
+
+def rate_of(steps: np.ndarray) -> float:
+    """Frames per second of time steps (N,): 1 / median, to 9 significant digits (so that
+    steps of 1/30 s read as 30, not 30.000000000000007)."""
+    return float(f"{1.0 / float(np.median(steps)):.9g}")
 
 
 def _announce(take: Take) -> Take:

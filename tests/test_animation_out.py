@@ -20,9 +20,9 @@ from rigcast.animation_out import (
     read_json,
     write_controls,
     write_csv,
-    write_gltf,
     write_json,
 )
+from rigcast.gltf_out import write_gltf
 from tests.gltf_validator import assert_valid, errors, validate
 
 
@@ -132,7 +132,7 @@ def test_gltf_output_passes_khronos_validator(tmp_path: Path, suffix: str) -> No
     schema, neutral, faces, _deltas, evaluate = _rig()
     basis = morph_basis("face", schema, neutral, faces, evaluate)
     controls, times = _take(40, len(schema))
-    path = write_gltf(tmp_path / f"solve{suffix}", basis, controls, times)
+    path = write_gltf(tmp_path / f"solve{suffix}", controls, times, basis=basis)
     report = assert_valid(path)
     assert report["info"]["animationCount"] == 1
     assert report["info"]["hasMorphTargets"] is True
@@ -155,7 +155,7 @@ def test_validator_catches_a_broken_file(tmp_path: Path) -> None:
     schema, neutral, faces, _deltas, evaluate = _rig()
     basis = morph_basis("face", schema, neutral, faces, evaluate)
     controls, times = _take(10, len(schema))
-    path = write_gltf(tmp_path / "solve.gltf", basis, controls, times)
+    path = write_gltf(tmp_path / "solve.gltf", controls, times, basis=basis)
     doc = json.loads(path.read_text())
     pos = doc["meshes"][0]["primitives"][0]["attributes"]["POSITION"]
     doc["accessors"][pos]["max"] = [99.0, 99.0, 99.0]
@@ -171,9 +171,9 @@ def test_gltf_needs_basis_and_valid_extension(tmp_path: Path) -> None:
         write_controls(tmp_path / "a.glb", schema, controls, times)
     basis = MorphBasis("r", neutral, faces, deltas, schema.names, tuple(range(len(schema))))
     with pytest.raises(AnimationError, match=r"\.gltf or \.glb"):
-        write_gltf(tmp_path / "a.obj", basis, controls, times)
+        write_gltf(tmp_path / "a.obj", controls, times, basis=basis)
     with pytest.raises(AnimationError, match=">= 0"):
-        write_gltf(tmp_path / "a.gltf", basis, controls, times - 1.0)
+        write_gltf(tmp_path / "a.gltf", controls, times - 1.0, basis=basis)
 
 
 # --- round trip: glTF rig -> bundle -> batch solve -> glTF animation ------------------------------
@@ -275,7 +275,7 @@ def test_round_trip_gltf_rig_to_bundle_to_solve(tmp_path: Path) -> None:
     basis = morph_basis_from_bundle(bundle)
     assert basis.names == rig.schema.names
     np.testing.assert_allclose(basis.targets, rig.targets, atol=0.1 * np.abs(rig.targets).max())
-    assert_valid(write_gltf(tmp_path / "solve.glb", basis, solved.controls, times))
+    assert_valid(write_gltf(tmp_path / "solve.glb", solved.controls, times, basis=basis))
 
 
 def test_malformed_control_files_are_animation_errors(tmp_path: Path) -> None:

@@ -1,0 +1,116 @@
+"""What `rigcast solve` writes besides the controls, computed once for every output format.
+
+- the per-frame quality (``FrameQuality``) from the batch solve and the take's times;
+- the head pose (``HeadPose``): the stabilisation fit of each frame's stable vertices onto the
+  bundle's neutral, inverted. ``fit_rigid_batch`` is the function the batch solve itself runs
+  (Umeyama 1991), on the same vertices, so the pose is the motion the solve removed;
+- the rig for glTF/USD: a skinned rig (``--rig``) writes its skeleton, whose fingerprint must be
+  the bundle's; otherwise the blendshapes are read off the bundle's forward model.
+"""
+
+from __future__ import annotations
+
+import logging
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from rigcast.animation_out import MorphBasis, morph_basis
+from rigcast.errors import MismatchError
+from rigcast.frame_info import (
+    FLAG_NAMES,
+    FrameQuality,
+    HeadPose,
+    clamped_frames,
+    describe_ranges,
+    head_pose_from_fit,
+    identity_pose,
+    stale_frames,
+)
+from rigcast.runtime.batch import BatchSolve, fit_rigid_batch
+from rigcast.runtime.bundle import Bundle
+from rigcast.skeleton import Skeleton, skeleton_from_rig
+
+log = logging.getLogger(__name__)
+
+RIG_SUFFIXES = (".gltf", ".glb", ".usda", ".usdc", ".usd")  # outputs that carry the rig
+# Blendshape weights span [0, 1] or [-1, 1] (common practice, no source); a wider control is an
+# angle or a distance, so without --rig it is left out of the morph targets.
+WEIGHT_SPAN = 2.0
+
+
+@dataclass(frozen=True)
+class SolveExtras:
+    """Everything written beside the controls: quality, head pose and the rig's form."""
+
+    quality: FrameQuality
+    head: HeadPose
+    basis: MorphBasis | None
+    skeleton: Skeleton | None
+
+
+def frame_quality(bundle: Bundle, result: BatchSolve, times_s: np.ndarray) -> FrameQuality:
+    """Per-frame fit error and flags of a batch solve (see ``rigcast.frame_info``)."""
+    return FrameQuality(
+        fit_rms=np.asarray(result.fit_rms, np.float64),
+        fit_max=np.asarray(result.fit_max, np.float64),
+        off_manifold=np.asarray(result.off_manifold, bool),
+        clamped=clamped_frames(result.controls, bundle.schema),
+        stale=stale_frames(times_s),
+    )
+
+
+def head_pose(bundle: Bundle, vertices: np.ndarray, *, stabilise: bool = True,
+              scale: bool = False) -> HeadPose:
+    """vertices (T, V, 3) -> the head pose of every frame (identity when not stabilising).
+
+    The solve's caller passes ``stabilise`` as ``(result.align_rms > 0).any()``: BatchSolve
+    records a zero alignment residual on every frame exactly when it did not stabilise.
+    """
+    if not stabilise:
+        return identity_pose(vertices.shape[0])
+    neutral = np.asarray(bundle.neutral[bundle.stable_indices], np.float64)
+    poses = []
+    for s in range(0, vertices.shape[0], 4096):  # bounded memory on long takes
+        fit = fit_rigid_batch(np.take(vertices[s : s + 4096], bundle.stable_indices, axis=1),
+                              neutral, scale=scale)
+        poses.append(head_pose_from_fit(fit.rotation, fit.translation, fit.scale))
+    return HeadPose(np.concatenate([p.translation for p in poses]),
+                    np.concatenate([p.rotation for p in poses]),
+                    np.concatenate([p.scale for p in poses]))
+
+
+def output_form(bundle: Bundle, out: Path, forward: Any, rig_spec: str | None,
+                bounds: Path | None) -> tuple[MorphBasis | None, Skeleton | None]:
+    """The rig's form for glTF/USD ``out``: its skeleton when ``rig_spec`` names a skinned rig,
+    else the blendshapes read off the bundle's forward model (``forward.evaluate``)."""
+    if out.suffix.lower() not in RIG_SUFFIXES:
+        return None, None
+    if rig_spec is not None:
+        from rigcast.export.rig_loader import load_rig
+
+        rig = load_rig(rig_spec, bounds=bounds)
+        try:
+            recorded = bundle.manifest.get("fingerprint")
+            theirs = recorded.get("rig") if isinstance(recorded, dict) else None
+            ours = rig.fingerprint()
+            if ours != theirs:
+                raise MismatchError(
+                    f"rig {rig_spec} (fingerprint {ours[:12]}) is not the rig bundle "
+                    f"{bundle.name!r} was built from ({str(theirs)[:12] if theirs else 'none recorded'})",
+                    "give the rig spec and bounds the bundle was built with")
+            return None, skeleton_from_rig(rig)
+        finally:
+            rig.close()
+    # The forward model is a learned approximation, so linearity is judged loosely, and a control
+    # wider than a weight's range (degrees, distances) is never taken for a blendshape.
+    return morph_basis(bundle.name, bundle.schema, bundle.neutral, bundle.faces,
+                       forward.evaluate, linearity_tol=0.05, max_span=WEIGHT_SPAN), None
+
+
+def flag_lines(quality: FrameQuality) -> list[str]:
+    """One line per flag with its frame ranges, for the solve's summary."""
+    return [f"{name.replace('_', '-')} frames: {describe_ranges(quality.flags(name))}"
+            for name in FLAG_NAMES]
