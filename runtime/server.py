@@ -245,9 +245,9 @@ class Server:
         try:
             rms, worst, off = state.fit(result, mesh.vertices)
         except (FloatingPointError, *ORT_ERRORS) as exc:
-            # The frame is already published; only its fit error is lost.
-            state.telemetry.rejected["processing_error"] += 1
-            self.rejected["processing_error"] += 1
+            # The frame is already published and counted; only its fit error is lost, which
+            # telemetry counts as a skipped fit (a rejection would count the frame twice).
+            state.telemetry.fit_skipped += 1
             self._log(f"fit:{stream}", logging.WARNING, "stream %s frame %d: fit error not "
                       "computed: %s", stream, result.frame, exc)
             return
