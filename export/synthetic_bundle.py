@@ -208,6 +208,7 @@ def build_synthetic_bundle(
     seed: int = 0,
     fit_rms: float | None = None,
     name: str = "synthetic",
+    rigid_region: bool = True,
 ) -> Path:
     """Write a synthetic bundle to ``path`` and return the path.
 
@@ -215,7 +216,8 @@ def build_synthetic_bundle(
     server derives its default off-manifold threshold from.
     """
     rig = make_synthetic_rig(vertices, controls, inputs=inputs, stable=stable, seed=seed)
-    extra: dict[str, object] = {"synthetic": {"inverse": inverse, "seed": seed}}
+    extra: dict[str, object] = {"synthetic": {"inverse": inverse, "seed": seed},
+                                "stabilise": {"rigid_region": rigid_region}}
     if fit_rms is not None:
         extra["training"] = {"inverse_fit_rms": float(fit_rms)}
     return write_bundle(

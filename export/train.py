@@ -401,7 +401,10 @@ def train_inverse(
     else:
         model = init
         scale = 1.0 / float(model.inv_scale)
-    loss_idx = loss_vertex_subset(meshes, neutral, config.loss_vertices, config.seed)
+    # The input vertices hold every control's own region (reduction.control_region_vertices), so
+    # a small, local shape always has vertices in the loss, not only where a random draw fell.
+    loss_idx = np.union1d(loss_vertex_subset(meshes, neutral, config.loss_vertices, config.seed),
+                          np.asarray(input_indices, np.int64))
     weights = _region_weights(region_weights, v)[torch.from_numpy(loss_idx)]
     fwd_sub = forward.restricted(loss_idx)
     loss_t = torch.from_numpy(loss_idx)
