@@ -106,7 +106,8 @@ def _add_build(subs: argparse._SubParsersAction) -> None:
         "  rigcast build gltf:hero.glb --bounds hero_joints.json -o hero.rcb\n"
         "  rigcast build py:myrigs.crab:evaluate --schema crab_schema.json -o crab.rcb\n"
         "  rigcast build 'proc:mayabatch -script sample_rig.py' --schema s.json -o m.rcb\n"
-        "  rigcast build demo:arm --samples 300 --steps 100 -o arm.rcb   # a tiny, quick build\n",
+        "  rigcast build demo:arm --samples 300 --steps 100 -o arm.rcb   # a tiny, quick build\n"
+        "  rigcast build demo:face --take take.npz -o take.rcb   # per-take: fit this take's frames\n",
         _cmd_build,
     )
     p.add_argument("rig", help="rig source spec (see above)")
@@ -126,6 +127,13 @@ def _add_build(subs: argparse._SubParsersAction) -> None:
     p.add_argument("--seed", type=int, help="random seed")
     p.add_argument("--cache", type=Path, default=None,
                    help="cache folder: reuse a bundle whose inputs are unchanged, resume sampling")
+    p.add_argument("--take", type=Path, default=None,
+                   help="per-take mode: build (or reuse from the cache) the general bundle, then "
+                        "fine-tune its inverse on this take's own frames, self-supervised "
+                        "(.npy/.npz, OBJ frames or glTF, as `rigcast solve` reads them); for "
+                        "offline work on a known take")
+    p.add_argument("--take-steps", type=int, default=None,
+                   help="fine-tuning steps in per-take mode (default: the build's)")
     p.add_argument("--quiet", action="store_true", help="no progress bars")
 
 
@@ -377,9 +385,18 @@ def _cmd_build(args: argparse.Namespace) -> int:
     if args.epochs is not None:
         config = replace(config, forward=replace(config.forward, epochs=args.epochs))
     out = args.out if args.out is not None else Path(f"{rig.name}.rcb")
+    frames = None
+    if args.take is not None:
+        from rigcast.takes import read_take
+
+        frames = read_take(args.take).vertices
+        config = replace(config, mode="take")
+        if args.take_steps is not None:
+            config = replace(config, take=replace(config.take, steps=args.take_steps))
     try:
         with build_progress(not args.quiet and sys.stderr.isatty()) as progress:
-            result = build_bundle(rig, out, config, cache_dir=args.cache, progress=progress)
+            result = build_bundle(rig, out, config, cache_dir=args.cache, progress=progress,
+                                  frames=frames)
     finally:
         rig.close()
     for line in build_summary(result):
