@@ -320,6 +320,28 @@ def _add_solve(subs: argparse._SubParsersAction) -> None:
                    help="frames per onnxruntime call")
 
 
+def _add_osc(subs: argparse._SubParsersAction) -> None:
+    p = _sub(
+        subs, "osc", "relay a stream's solved controls to OSC listeners",
+        "Subscribe to a server's controls for one stream and send each solved frame as one OSC "
+        "1.0 bundle over UDP, time-tagged with the server's publish time: one message per "
+        "control (<prefix>/<stream>/<control>, float) and <prefix>/<stream>/frame (frame "
+        "number, flag bits). Characters OSC addresses may not hold become '_'. Needs the "
+        "`osc` extra (python-osc).",
+        "  rigcast osc                                   # to 127.0.0.1:9000\n"
+        "  rigcast osc --osc 127.0.0.1:7000 --prefix /tamsin --stream actor2\n",
+        _cmd_osc,
+    )
+    p.add_argument("--osc", default="127.0.0.1:9000", metavar="HOST:PORT",
+                   help="where the OSC listener is")
+    p.add_argument("--prefix", default="/rigcast", help="OSC address prefix")
+    _add_endpoints(p, to_help=_SCHEMA_TO, from_help="the server's output (PUB) endpoint",
+                   stream_help=_FIRST_STREAM)
+    _add_limits(p)
+    p.add_argument("--timeout", type=float, default=5.0,
+                   help="seconds to wait for the schema reply")
+
+
 def _add_inspect(subs: argparse._SubParsersAction) -> None:
     p = _sub(
         subs, "inspect", "show a bundle's schema, sizes, training figures and fingerprint",
@@ -361,7 +383,7 @@ def build_parser() -> argparse.ArgumentParser:
                         help="more log output (-vv for debug)")
     subs = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     for add in (_add_demo, _add_build, _add_inspect, _add_serve, _add_send, _add_watch,
-                _add_record, _add_solve, _add_keys):
+                _add_record, _add_solve, _add_keys, _add_osc):
         add(subs)
     return parser
 
@@ -481,6 +503,12 @@ def _cmd_solve(args: argparse.Namespace) -> int:
     for line in flag_lines(quality):
         _say(line)
     return EXIT_OK
+
+
+def _cmd_osc(args: argparse.Namespace) -> int:
+    from rigcast.osc_out import osc_from_args
+
+    return osc_from_args(args)
 
 
 def _cmd_inspect(args: argparse.Namespace) -> int:
