@@ -131,6 +131,8 @@ class BuildResult:
     checkpoint: Path | None = field(default=None, compare=False)
     forward_model: Any = field(default=None, compare=False, repr=False)
     inverse_model: Any = field(default=None, compare=False, repr=False)
+    # build_check.ServedCheck as a dict: the served solve beside lsq_linear, recoverability
+    reference: Mapping[str, Any] | None = field(default=None, compare=False)
 
 
 def build_key(rig_fingerprint: str, config: BuildConfig) -> str:
@@ -223,6 +225,7 @@ def _result_from_manifest(
         checkpoint=checkpoint,
         forward_model=fwd,
         inverse_model=inv,
+        reference=tr.get("reference"),
     )
 
 
@@ -469,7 +472,7 @@ def _finish(
         refine_onnx=ref_bytes,
         refine_hessian=hessian,
     )
-    served = check_served(out_path, rig, check_x)
+    served = check_served(out_path, rig, check_x, float(fwd_rep.mean_err))
     training.update(check_mean_err=served.rig_mean_err,
                     check_mean_err_pct_diag=served.rig_mean_err_pct_diag,
                     reference=served.to_dict())
@@ -481,6 +484,9 @@ def _finish(
     if served.worse_than_reference:
         log.warning("the bundle's held-out error %.3g is above bounded linear least squares "
                     "(%.3g) on the same poses", served.rig_mean_err, served.lsq_mean_err)
+    if served.lost_controls:
+        log.warning("the bundle's solve does not recover %d control(s) alone: %s",
+                    len(served.lost_controls), ", ".join(served.lost_controls))
     check_pct = served.rig_mean_err_pct_diag
     bundle = load_bundle(out_path)
     reload = _check_arrays(
@@ -525,6 +531,7 @@ def _finish(
         checkpoint=ckpt,
         forward_model=fwd,
         inverse_model=inv,
+        reference=served.to_dict(),
     )
 
 

@@ -44,6 +44,9 @@ class ServedCheck:
     stabilised: bool
     poses: int
     worse_than_reference: bool
+    recoverable_controls: int = 0
+    lost_controls: tuple[str, ...] = ()
+    unrecoverable: tuple[dict[str, str], ...] = ()
 
     def to_dict(self) -> dict[str, Any]:
         return asdict(self)
@@ -60,9 +63,15 @@ def served_solve(bundle_path: Path, meshes: np.ndarray, fps: float = 60.0
     return res.controls, res.fit_rms, stabilised
 
 
-def check_served(bundle_path: Path, rig: Rig, meshes: np.ndarray) -> ServedCheck:
-    """Score the served solve of held-out ``meshes`` (N, V, 3) through the real rig."""
+def check_served(bundle_path: Path, rig: Rig, meshes: np.ndarray, forward_err: float
+                 ) -> ServedCheck:
+    """Score the served solve of held-out ``meshes`` (N, V, 3) through the real rig, and probe
+    every control alone (``fidelity.recoverability``; ``forward_err`` the forward model's mean
+    held-out error, below which a control's mesh effect cannot be told apart)."""
+    from rigcast.export.fidelity import recoverability
+
     controls, fit_rms, stabilised = served_solve(bundle_path, meshes)
+    rec = recoverability(rig, lambda m: served_solve(bundle_path, m)[0], forward_err)
     err = np.linalg.norm(rig.evaluate(controls) - meshes, axis=-1)
     lo, hi = rig.schema.lower, rig.schema.upper
     lsq = solve_lsq(linearise_rig(rig), meshes, lo, hi).controls
@@ -80,4 +89,7 @@ def check_served(bundle_path: Path, rig: Rig, meshes: np.ndarray) -> ServedCheck
         stabilised=stabilised,
         poses=int(meshes.shape[0]),
         worse_than_reference=mean > max(ref, 5e-5 * diag),
+        recoverable_controls=len(rec.recoverable),
+        lost_controls=tuple(rec.lost),
+        unrecoverable=tuple(rec.unrecoverable),
     )

@@ -299,8 +299,33 @@ def build_summary(result: Any) -> list[str]:
         f"({inv.mean_err_pct_diag:.3f}% of diagonal) after {inv.steps} steps",
         f"check through the real rig: mean vertex error {result.check_mean_err:.5f} "
         f"({result.check_mean_err_pct_diag:.3f}% of diagonal)",
+        *_reference_lines(getattr(result, "reference", None)),
         f"stages: {timings}" if timings else "stages: -",
     ]
+
+
+def _reference_lines(ref: Any) -> list[str]:
+    """The build's self-check beside bounded linear least squares, and its warnings."""
+    if not isinstance(ref, dict):
+        return []
+    lines = [
+        f"the solve as served ({'with' if ref.get('stabilised') else 'without'} stabilisation) on "
+        f"{ref.get('poses')} held-out poses: mean {ref['rig_mean_err']:.5g}, max "
+        f"{ref['rig_max_err']:.5g}; bounded linear least squares: mean {ref['lsq_mean_err']:.5g}, "
+        f"max {ref['lsq_max_err']:.5g}",
+    ]
+    unrec = ref.get("unrecoverable") or []
+    lines.append(f"controls recovered alone at 25-100% of their range: "
+                 f"{ref.get('recoverable_controls')} of {ref.get('recoverable_controls', 0) + len(unrec)}")
+    for item in unrec:
+        lines.append(f"  not recoverable: {item['control']}: {item['reason']}")
+    if ref.get("worse_than_reference"):
+        lines.append("warning: the bundle's solve is less accurate than bounded linear least "
+                     "squares on the held-out poses; rebuild with more samples or steps")
+    if ref.get("lost_controls"):
+        lines.append(f"warning: {len(ref['lost_controls'])} control(s) cannot be recovered: "
+                     f"{', '.join(ref['lost_controls'])}")
+    return lines
 
 
 def write_build_report(out_dir: str | Path, result: Any) -> Path:
