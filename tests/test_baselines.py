@@ -7,10 +7,12 @@ import pytest
 import torch
 from rigcast.export.baselines import (
     BaselineError,
+    fd_jacobian,
     linearise_rig,
     optimise_frames,
     solve_lsq,
     solve_lsq_naive,
+    solve_nlls,
 )
 from rigcast.export.rig import Rig
 from rigcast.runtime.schema import Control, ControlSchema
@@ -110,3 +112,67 @@ def test_optimiser_lowers_mesh_loss_and_stays_in_bounds() -> None:
     assert fit < 0.1 * start
     with pytest.raises(BaselineError, match="steps"):
         optimise_frames(rig.torch_forward, y, lo, hi, d, steps=0)
+
+
+class CountingRig(TinyRig):
+    """TinyRig that records the batch size of every evaluation."""
+
+    def __init__(self, corrective: bool) -> None:
+        super().__init__(corrective)
+        self.batches: list[int] = []
+
+    def _evaluate(self, controls: np.ndarray) -> np.ndarray:
+        self.batches.append(int(controls.shape[0]))
+        return super()._evaluate(controls)
+
+
+def test_fd_jacobian_is_one_batched_call_and_matches_the_shapes() -> None:
+    rig = CountingRig(corrective=False)
+    x = rig.schema.upper.astype(np.float64)  # every step must turn inward
+    f, jac = fd_jacobian(rig, x, 1e-3)
+    assert rig.batches == [rig.control_count + 1]
+    np.testing.assert_allclose(jac, rig.shapes.reshape(8, -1).T, atol=1e-3)
+    np.testing.assert_allclose(f, rig.evaluate(x[None])[0].reshape(-1))
+
+
+def test_nlls_equals_lsq_linear_on_a_linear_rig() -> None:
+    # Outside reference: scipy.optimize.lsq_linear on the rig's exact linear system.
+    rig = TinyRig(corrective=False)
+    rng = np.random.default_rng(4)
+    y = rig.evaluate(_poses(rig, 6, seed=7)) + rng.normal(0, 0.2, size=(6, 50, 3)).astype(
+        np.float32)
+    lo, hi = rig.schema.lower.astype(np.float64), rig.schema.upper.astype(np.float64)
+    a = rig.shapes.reshape(8, -1).T
+    tight = solve_nlls(rig, y, ftol=1e-12)
+    sol = solve_nlls(rig, y)  # the default tolerance: the cost within 1e-4 of the optimum's
+
+    def cost(w: np.ndarray, t: int) -> float:
+        return float(np.sum((a @ w + rig.neutral.reshape(-1) - y[t].reshape(-1)) ** 2))
+
+    for t in range(6):
+        ref = lsq_linear(a, y[t].reshape(-1) - rig.neutral.reshape(-1), bounds=(lo, hi),
+                         method="bvls").x
+        np.testing.assert_allclose(tight.controls[t], ref, atol=1e-4)  # float32 rig, FD Jacobian
+        assert cost(sol.controls[t].astype(np.float64), t) <= (1 + 1e-4) * cost(ref, t)
+    assert np.all(sol.controls >= rig.schema.lower) and np.all(sol.controls <= rig.schema.upper)
+
+
+def test_nlls_recovers_noise_free_poses_of_a_nonlinear_rig_and_warm_starts() -> None:
+    rig = CountingRig(corrective=True)
+    # A smooth trajectory, so each frame starts near its answer.
+    t = np.linspace(0, 1, 20)[:, None]
+    lo, hi = rig.schema.lower, rig.schema.upper
+    w = (lo + (hi - lo) * (0.3 + 0.4 * np.sin(2.0 * t + np.arange(8)) ** 2)).astype(np.float32)
+    w[:, 3] = 0.0  # a control on its bound all along
+    y = rig.evaluate(w)
+    rig.batches.clear()
+    sol = solve_nlls(rig, y)
+    np.testing.assert_allclose(sol.controls, w, atol=1e-5)
+    warm_calls = len(rig.batches)
+    rig.batches.clear()
+    cold = solve_nlls(rig, y, warm_start=False)
+    np.testing.assert_allclose(cold.controls, w, atol=1e-5)
+    assert warm_calls < len(rig.batches)  # warm starts need fewer evaluations
+    assert max(rig.batches) == rig.control_count + 1
+    with pytest.raises(BaselineError, match="observed"):
+        solve_nlls(rig, y[:, :10])
