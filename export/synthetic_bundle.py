@@ -28,6 +28,10 @@ from rigcast.runtime.bundle import (
     FORWARD_OUTPUT,
     INVERSE_INPUT,
     INVERSE_OUTPUT,
+    REFINE_CONTROLS,
+    REFINE_GRADIENT,
+    REFINE_MESH,
+    REFINE_RESIDUAL,
     write_bundle,
 )
 from rigcast.runtime.schema import Control, ControlSchema
@@ -189,6 +193,50 @@ def inverse_graph(
     return _finish(graph)
 
 
+def refine_graph(rig: SyntheticRig) -> tuple[bytes, np.ndarray]:
+    """The refinement graph of the linear rig (see export/refine.py) and its Gauss-Newton matrix:
+    ``(controls (N, C), mesh (N, K, 3)) -> (gradient (N, C), residual_sq (N,))`` with
+    u = (c - lo) / span, r = mesh - (base + u A), gradient = r A^T; A (C, 3K) the deltas of the
+    input vertices per unit of normalised control. Returns (bytes, A A^T (C, C))."""
+    k = rig.input_indices.shape[0]
+    n_controls = rig.deltas.shape[0]
+    lo, hi = rig.schema.lower, rig.schema.upper
+    span = (hi - lo).astype(np.float32)
+    a = (rig.deltas[:, rig.input_indices, :].reshape(n_controls, -1) * span[:, None]).astype(
+        np.float32)
+    inits = [
+        numpy_helper.from_array(np.array([-1, 3 * k], dtype=np.int64), "in_shape"),
+        numpy_helper.from_array(rig.neutral[rig.input_indices].reshape(-1).astype(np.float32),
+                                "base"),
+        numpy_helper.from_array(lo, "lo"),
+        numpy_helper.from_array(span, "span"),
+        numpy_helper.from_array(a, "a"),
+        numpy_helper.from_array(np.ascontiguousarray(a.T), "a_t"),
+        numpy_helper.from_array(np.array([1], dtype=np.int64), "axis"),
+    ]
+    nodes = [
+        helper.make_node("Sub", [REFINE_CONTROLS, "lo"], ["shifted"]),
+        helper.make_node("Div", ["shifted", "span"], ["u"]),
+        helper.make_node("MatMul", ["u", "a"], ["offsets"]),
+        helper.make_node("Reshape", [REFINE_MESH, "in_shape"], ["flat"]),
+        helper.make_node("Sub", ["flat", "base"], ["centred"]),
+        helper.make_node("Sub", ["centred", "offsets"], ["r"]),
+        helper.make_node("MatMul", ["r", "a_t"], [REFINE_GRADIENT]),
+        helper.make_node("Mul", ["r", "r"], ["r2"]),
+        helper.make_node("ReduceSum", ["r2", "axis"], [REFINE_RESIDUAL], keepdims=0),
+    ]
+    graph = helper.make_graph(
+        nodes,
+        "synthetic_refine",
+        [helper.make_tensor_value_info(REFINE_CONTROLS, TensorProto.FLOAT, ["N", n_controls]),
+         helper.make_tensor_value_info(REFINE_MESH, TensorProto.FLOAT, ["N", k, 3])],
+        [helper.make_tensor_value_info(REFINE_GRADIENT, TensorProto.FLOAT, ["N", n_controls]),
+         helper.make_tensor_value_info(REFINE_RESIDUAL, TensorProto.FLOAT, ["N"])],
+        inits,
+    )
+    return _finish(graph), a.astype(np.float64) @ a.T.astype(np.float64)
+
+
 def _finish(graph: onnx.GraphProto) -> bytes:
     model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", OPSET)])
     model.ir_version = 8
@@ -209,17 +257,20 @@ def build_synthetic_bundle(
     fit_rms: float | None = None,
     name: str = "synthetic",
     rigid_region: bool = True,
+    refine: bool = False,
 ) -> Path:
     """Write a synthetic bundle to ``path`` and return the path.
 
     ``fit_rms`` goes into the manifest's ``training.inverse_fit_rms`` (mesh units), the figure the
-    server derives its default off-manifold threshold from.
+    server derives its default off-manifold threshold from. ``refine`` adds the refinement graph
+    (``refine_graph``), so the solve costs what a built bundle's does.
     """
     rig = make_synthetic_rig(vertices, controls, inputs=inputs, stable=stable, seed=seed)
     extra: dict[str, object] = {"synthetic": {"inverse": inverse, "seed": seed},
                                 "stabilise": {"rigid_region": rigid_region}}
     if fit_rms is not None:
         extra["training"] = {"inverse_fit_rms": float(fit_rms)}
+    refine_bytes, hessian = refine_graph(rig) if refine else (None, None)
     return write_bundle(
         path,
         name=name,
@@ -231,4 +282,6 @@ def build_synthetic_bundle(
         inverse_onnx=inverse_graph(rig, inverse, hidden=hidden, seed=seed),
         forward_onnx=forward_graph(rig),
         extra=extra,
+        refine_onnx=refine_bytes,
+        refine_hessian=hessian,
     )
