@@ -331,7 +331,7 @@ def measure(vertices: int, args: argparse.Namespace, work: Path) -> dict[str, An
     bundle = build_synthetic_bundle(work / f"synthetic-{vertices}.rcb", vertices=vertices,
                                     controls=CONTROLS, inputs=INPUTS, stable=STABLE,
                                     inverse="mlp", hidden=HIDDEN, seed=SEED, fit_rms=10.0,
-                                    name=f"synthetic-{vertices}")
+                                    name=f"synthetic-{vertices}", refine=True)
     # Floor: echo process.
     ready = work / f"echo-{vertices}.ready"
     echo, _ = start_and_wait([sys.executable, __file__, "--role", "echo", "--ready", str(ready),

@@ -37,7 +37,7 @@ WARMUP = 500
 def measure(vertices: int, frames: int, work: Path) -> dict[str, Any]:
     path = build_synthetic_bundle(work / f"bench_{vertices}.rcb", vertices=vertices,
                                   controls=CONTROLS, inputs=INPUTS, stable=STABLE,
-                                  inverse="mlp", hidden=HIDDEN, seed=SEED)
+                                  inverse="mlp", hidden=HIDDEN, seed=SEED, refine=True)
     model = load_stream_model(path, threads=1, threshold=None, factor=3.0)
     state = StreamState(StreamConfig(stream="bench", bundle=path), model, window=1000)
     rig = make_synthetic_rig(vertices, CONTROLS, inputs=INPUTS, stable=STABLE, seed=SEED)
