@@ -83,9 +83,16 @@ def solve_active(hessian: np.ndarray, g: np.ndarray, free: np.ndarray, damping: 
     active count with identity rows, and solved in one batched call.
     """
     n, c = g.shape
+    delta = np.zeros((n, c), np.float64)
+    if n == 1:  # the live path: one frame, plain indexing is several times cheaper
+        a = np.flatnonzero(free[0])
+        if a.size:
+            h = hessian[np.ix_(a, a)]
+            h[np.diag_indices(a.size)] *= 1.0 + damping
+            delta[0, a] = np.linalg.solve(h, g[0, a])
+        return delta
     counts = free.sum(axis=1)
     width = int(counts.max()) if n else 0
-    delta = np.zeros((n, c), np.float64)
     if width == 0:
         return delta
     idx = np.argsort(~free, axis=1, kind="stable")[:, :width]  # active controls first
@@ -159,6 +166,8 @@ class Refiner:
             if not free.any():
                 break
             trial = np.clip(u + solve_active(self.hessian, g, free, s.damping), 0.0, 1.0)
+            if np.abs(trial - u).max() < 1e-6:  # converged: nothing left to gain
+                break
             g_new, rss_new = self._evaluate(trial, mesh)
             better = (rss_new <= rss) & live & np.isfinite(rss_new)
             u = np.where(better[:, None], trial, u)

@@ -42,6 +42,9 @@ def test_solve_active_matches_its_naive_twin() -> None:
     want = solve_active_naive(h, g, free, 0.1)
     np.testing.assert_allclose(got, want, rtol=1e-10, atol=1e-12)
     assert np.all(got[~free] == 0.0)
+    for i in range(3):  # the one-frame path
+        np.testing.assert_allclose(solve_active(h, g[i : i + 1], free[i : i + 1], 0.1),
+                                   want[i : i + 1], rtol=1e-10, atol=1e-12)
 
 
 def test_refine_reaches_the_bounded_least_squares_optimum_on_a_linear_rig() -> None:
