@@ -15,6 +15,7 @@ from typing import Any
 
 import msgpack
 import numpy as np
+from rigcast.runtime.nesting import nesting_within
 from rigcast.runtime.schema import ControlSchema
 
 log = logging.getLogger(__name__)
@@ -324,7 +325,7 @@ def decode_header(
         ) from None
     if not isinstance(header, dict):
         raise FrameError("malformed", f"header must be a msgpack map, got {type(header).__name__}")
-    if not shallow(header, MAX_HEADER_DEPTH):
+    if not nesting_within(header, MAX_HEADER_DEPTH):
         raise FrameError("malformed", f"header nests deeper than {MAX_HEADER_DEPTH} levels")
     stream = header.get("stream")
     stream = stream if _stream_ok(stream) else None
@@ -353,24 +354,6 @@ def decode_header(
             raise FrameError("malformed", f"{kind} header field {name!r} has bad value "
                              f"{header[name]!r:.80}", stream=stream, frame=frame)
     return header
-
-
-def shallow(value: Any, limit: int) -> bool:
-    """True when maps and lists in ``value`` nest at most ``limit`` deep (iterative: a deep value
-    cannot exhaust the stack here)."""
-    stack: list[tuple[Any, int]] = [(value, 1)]
-    while stack:
-        item, depth = stack.pop()
-        if isinstance(item, dict):
-            children: Any = [*item.keys(), *item.values()]
-        elif isinstance(item, list | tuple):
-            children = item
-        else:
-            continue
-        if depth > limit:
-            return False
-        stack.extend((c, depth + 1) for c in children)
-    return True
 
 
 _ZEROS: dict[int, np.ndarray] = {}
@@ -450,65 +433,16 @@ def decode_request(
     return header, payload
 
 
-def topic_stream(topic: bytes, prefix: bytes) -> str | None:
-    """The stream named by a topic with this exact prefix, or None."""
-    if not topic.startswith(prefix):
-        return None
-    try:
-        return topic[len(prefix):].decode("utf-8")
-    except UnicodeDecodeError:
-        return None
-
-
-def decode_controls(frames: Sequence[Any]) -> ControlsMessage:
-    """[topic, header, payload] from the PUB socket -> ControlsMessage (values copied: C is
-    small, and the result outlives the received frames)."""
-    if len(frames) != 3:
-        raise FrameError("malformed", f"a controls message has 3 frames, got {len(frames)}")
-    topic = bytes(frames[0])
-    header = decode_header(frames[1], max_header_bytes=MAX_REPLY_HEADER_BYTES)
-    if header["type"] != "controls":
-        raise FrameError("malformed", f"expected controls, got {header['type']!r}")
-    stream = header["stream"]
-    if topic != _topic(TOPIC_CONTROLS, stream):
-        raise FrameError("malformed", f"topic {topic!r} does not match stream {stream!r}",
-                         stream=stream, frame=header["frame"])
-    view = memoryview(frames[2]).cast("B")
-    if view.nbytes != header["count"] * 4:
-        raise FrameError("malformed", f"controls payload is {view.nbytes} bytes, count "
-                         f"{header['count']} needs {header['count'] * 4}", stream=stream,
-                         frame=header["frame"])
-    values = np.frombuffer(view, dtype=_F32).copy()
-    values.flags.writeable = False
-    return ControlsMessage(stream, header["frame"], header["t_send_ns"], header["t_recv_ns"],
-                           header["t_pub_ns"], header["flags"], values)
-
-
-def decode_published(frames: Sequence[Any]) -> ControlsMessage | dict[str, Any]:
-    """Any PUB message: controls -> ControlsMessage; telemetry and events -> header dict."""
-    if len(frames) < 2:
-        raise FrameError("malformed", f"a published message has >= 2 frames, got {len(frames)}")
-    topic = bytes(frames[0])
-    if topic.startswith(TOPIC_CONTROLS):
-        return decode_controls(frames)
-    if len(frames) != 2:
-        raise FrameError("malformed", f"telemetry and events have 2 frames, got {len(frames)}")
-    header = decode_header(frames[1], max_header_bytes=MAX_REPLY_HEADER_BYTES)
-    expected = {"telemetry": lambda h: _topic(TOPIC_TELEMETRY, h["stream"]),
-                "event": lambda h: TOPIC_EVENTS}.get(header["type"])
-    if expected is None or topic != expected(header):
-        raise FrameError("malformed", f"topic {topic!r} does not fit a {header['type']!r} message")
-    return header
-
-
-def decode_reply(raw: bytes | memoryview) -> dict[str, Any]:
-    """A one-frame reply on the DEALER (schema_reply, reload_reply or error)."""
-    header = decode_header(raw, max_header_bytes=MAX_REPLY_HEADER_BYTES)
-    if header["type"] not in ("schema_reply", "reload_reply", "error"):
-        raise FrameError("malformed", f"expected a reply, got {header['type']!r}")
-    return header
-
-
-def schema_from_reply(reply: Mapping[str, Any]) -> ControlSchema:
-    """The ControlSchema carried by a schema reply (raises SchemaError when it is malformed)."""
-    return ControlSchema.from_dict({"controls": reply["controls"]})
+# The client-side decoders (controls, published messages, replies) live in protocol_client.py
+# and are re-exported here, so ``protocol.decode_controls`` and the rest stay the one API.
+from rigcast.runtime.protocol_client import (  # noqa: E402 (it needs the names above)
+    decode_controls as decode_controls,
+)
+from rigcast.runtime.protocol_client import (  # noqa: E402
+    decode_published as decode_published,
+)
+from rigcast.runtime.protocol_client import decode_reply as decode_reply  # noqa: E402
+from rigcast.runtime.protocol_client import (  # noqa: E402
+    schema_from_reply as schema_from_reply,
+)
+from rigcast.runtime.protocol_client import topic_stream as topic_stream  # noqa: E402

@@ -17,6 +17,7 @@ import pytest
 from onnx import TensorProto, helper, numpy_helper
 from rigcast.runtime import protocol
 from rigcast.runtime.keys import KeyFileError, create_key_pair, load_public_key, load_secret_key
+from rigcast.runtime.nesting import nesting_within
 from rigcast.runtime.reload import (
     ReloadRefused,
     external_data_tensor,
@@ -112,7 +113,7 @@ def test_the_decoder_refuses_deep_headers_without_recursion() -> None:
         with pytest.raises(protocol.FrameError, match=words) as info:
             protocol.decode_header(deep, max_header_bytes=1 << 20)
         assert info.value.reason == "malformed"
-    assert protocol.shallow({"a": [1, [2]]}, 3) and not protocol.shallow({"a": [1, [2]]}, 2)
+    assert nesting_within({"a": [1, [2]]}, 3) and not nesting_within({"a": [1, [2]]}, 2)
 
 
 @pytest.mark.timeout(300)

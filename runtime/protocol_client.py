@@ -1,0 +1,85 @@
+"""The client side of the wire format: decoding what the server publishes and replies
+(docs/protocol.md §3.2-§3.4, §5). Re-exported by runtime/protocol.py; import it from there."""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+import numpy as np
+from rigcast.runtime.protocol import (
+    _F32,
+    MAX_REPLY_HEADER_BYTES,
+    TOPIC_CONTROLS,
+    TOPIC_EVENTS,
+    TOPIC_TELEMETRY,
+    ControlsMessage,
+    FrameError,
+    _topic,
+    decode_header,
+)
+from rigcast.runtime.schema import ControlSchema
+
+
+def topic_stream(topic: bytes, prefix: bytes) -> str | None:
+    """The stream named by a topic with this exact prefix, or None."""
+    if not topic.startswith(prefix):
+        return None
+    try:
+        return topic[len(prefix):].decode("utf-8")
+    except UnicodeDecodeError:
+        return None
+
+
+def decode_controls(frames: Sequence[Any]) -> ControlsMessage:
+    """[topic, header, payload] from the PUB socket -> ControlsMessage (values copied: C is
+    small, and the result outlives the received frames)."""
+    if len(frames) != 3:
+        raise FrameError("malformed", f"a controls message has 3 frames, got {len(frames)}")
+    topic = bytes(frames[0])
+    header = decode_header(frames[1], max_header_bytes=MAX_REPLY_HEADER_BYTES)
+    if header["type"] != "controls":
+        raise FrameError("malformed", f"expected controls, got {header['type']!r}")
+    stream = header["stream"]
+    if topic != _topic(TOPIC_CONTROLS, stream):
+        raise FrameError("malformed", f"topic {topic!r} does not match stream {stream!r}",
+                         stream=stream, frame=header["frame"])
+    view = memoryview(frames[2]).cast("B")
+    if view.nbytes != header["count"] * 4:
+        raise FrameError("malformed", f"controls payload is {view.nbytes} bytes, count "
+                         f"{header['count']} needs {header['count'] * 4}", stream=stream,
+                         frame=header["frame"])
+    values = np.frombuffer(view, dtype=_F32).copy()
+    values.flags.writeable = False
+    return ControlsMessage(stream, header["frame"], header["t_send_ns"], header["t_recv_ns"],
+                           header["t_pub_ns"], header["flags"], values)
+
+
+def decode_published(frames: Sequence[Any]) -> ControlsMessage | dict[str, Any]:
+    """Any PUB message: controls -> ControlsMessage; telemetry and events -> header dict."""
+    if len(frames) < 2:
+        raise FrameError("malformed", f"a published message has >= 2 frames, got {len(frames)}")
+    topic = bytes(frames[0])
+    if topic.startswith(TOPIC_CONTROLS):
+        return decode_controls(frames)
+    if len(frames) != 2:
+        raise FrameError("malformed", f"telemetry and events have 2 frames, got {len(frames)}")
+    header = decode_header(frames[1], max_header_bytes=MAX_REPLY_HEADER_BYTES)
+    expected = {"telemetry": lambda h: _topic(TOPIC_TELEMETRY, h["stream"]),
+                "event": lambda h: TOPIC_EVENTS}.get(header["type"])
+    if expected is None or topic != expected(header):
+        raise FrameError("malformed", f"topic {topic!r} does not fit a {header['type']!r} message")
+    return header
+
+
+def decode_reply(raw: bytes | memoryview) -> dict[str, Any]:
+    """A one-frame reply on the DEALER (schema_reply, reload_reply or error)."""
+    header = decode_header(raw, max_header_bytes=MAX_REPLY_HEADER_BYTES)
+    if header["type"] not in ("schema_reply", "reload_reply", "error"):
+        raise FrameError("malformed", f"expected a reply, got {header['type']!r}")
+    return header
+
+
+def schema_from_reply(reply: Mapping[str, Any]) -> ControlSchema:
+    """The ControlSchema carried by a schema reply (raises SchemaError when it is malformed)."""
+    return ControlSchema.from_dict({"controls": reply["controls"]})
