@@ -119,6 +119,15 @@ def check_archive(path: Path, *, max_file_bytes: int, max_unpacked_bytes: int) -
         raise ReloadRefused(f"bundle {name!r} is not a readable rigcast bundle") from None
 
 
+def check_served(path: Path, config: ServerConfig) -> None:
+    """The same checks for a bundle the server starts with; BundleError naming the file."""
+    try:
+        check_archive(path, max_file_bytes=config.reload_max_file_bytes,
+                      max_unpacked_bytes=config.reload_max_unpacked_bytes)
+    except ReloadRefused as exc:
+        raise BundleError(f"bundle {path}: {exc}") from None
+
+
 def _declared(infos: list[zipfile.ZipInfo], where: str, budget: int) -> int:
     if len(infos) > 64:
         raise ReloadRefused(f"{where!r} has {len(infos)} members; a bundle has a handful")

@@ -57,7 +57,7 @@ from rigcast.runtime.pipeline import (
     load_stream_model,
     make_filter,
 )
-from rigcast.runtime.reload import Reloader, public_model, redact
+from rigcast.runtime.reload import Reloader, check_served, public_model, redact
 from rigcast.runtime.security import ServerSecurity
 from rigcast.runtime.sockets import bind_pub, bind_router, bound_endpoint, close_all
 
@@ -107,6 +107,7 @@ class Server:
             key = (s.bundle.resolve(), s.off_manifold_threshold)
             model = models.get(key)
             if model is None:
+                check_served(s.bundle, cfg)  # size caps, no ONNX external data
                 model = public_model(load_stream_model(
                     s.bundle, threads=cfg.threads, threshold=s.off_manifold_threshold,
                     factor=cfg.off_manifold_factor))

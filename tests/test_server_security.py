@@ -202,6 +202,26 @@ def test_reload_refuses_onnx_external_data_before_a_session_reads_it(
         assert server.streams["a"].model.label == tiny_bundle.name
 
 
+def test_a_served_bundle_with_external_data_is_refused_at_startup(
+        tiny_bundle: Path, tmp_path: Path) -> None:
+    """The same check guards the bundles a server starts with. Old server: it loaded them."""
+    from rigcast.runtime.bundle import BundleError
+    from rigcast.runtime.server import Server
+
+    with zipfile.ZipFile(tiny_bundle) as zf:
+        model = onnx.load_from_string(zf.read("forward.onnx"))
+    init = model.graph.initializer[0]
+    init.ClearField("raw_data")
+    init.data_location = onnx.TensorProto.EXTERNAL
+    init.external_data.add().key = "location"
+    crafted = _rebundle(tiny_bundle, tmp_path / "served.rcb",
+                        {"forward.onnx": model.SerializeToString()})
+    ctx = zmq.Context()
+    with pytest.raises(BundleError, match="external data"):
+        Server(server_config({"a": crafted}), ctx=ctx).startup()
+    ctx.term()
+
+
 def _peak_rss_mb(pid: int) -> float:
     for line in Path(f"/proc/{pid}/status").read_text().splitlines():
         if line.startswith("VmHWM:"):
