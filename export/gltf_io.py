@@ -26,8 +26,10 @@ _NORM_DIVISOR = {5120: 127.0, 5121: 255.0, 5122: 32767.0, 5123: 65535.0}
 _WIDTH = {"SCALAR": 1, "VEC2": 2, "VEC3": 3, "VEC4": 4, "MAT2": 4, "MAT3": 9, "MAT4": 16}
 
 
-def load_bounds(source: str | Path | Mapping[str, Any] | None) -> dict[str, Any]:
-    """Bounds from a JSON file path, a JSON string, or a mapping (see ``GltfRig``)."""
+def load_bounds_json(source: str | Path | Mapping[str, Any] | None, *keys: str,
+                     what: str = "bounds") -> dict[str, Any]:
+    """A JSON object from a file path, a JSON string or a mapping, whose top-level keys are
+    among ``keys`` (each an object of names); ``{}`` for None. Errors are RigErrors."""
     if source is None:
         return {}
     if isinstance(source, Mapping):
@@ -38,21 +40,27 @@ def load_bounds(source: str | Path | Mapping[str, Any] | None) -> dict[str, Any]
             try:
                 data = json.loads(text)
             except json.JSONDecodeError as e:
-                raise RigError(f"glTF bounds {text!r} are not valid JSON: {e}") from None
+                raise RigError(f"{what} {text!r} are not valid JSON: {e}") from None
         else:
             path = Path(text)
             if not path.is_file():
-                raise RigError(f"glTF bounds file {path} does not exist")
+                raise RigError(f"{what} file {path} does not exist")
             try:
                 data = json.loads(path.read_text())
             except json.JSONDecodeError as e:
-                raise RigError(f"glTF bounds file {path} is not valid JSON: {e}") from None
-    if not isinstance(data, dict) or not set(data) <= {"joints", "morph"}:
-        raise RigError(f"glTF bounds must be an object with 'joints' and/or 'morph', got {data!r}")
-    for key in ("joints", "morph"):
+                raise RigError(f"{what} file {path} is not valid JSON: {e}") from None
+    if not isinstance(data, dict) or not set(data) <= set(keys):
+        raise RigError(f"{what} must be an object with {' and/or '.join(map(repr, keys))}, "
+                       f"got {data!r}")
+    for key in keys:
         if key in data and not isinstance(data[key], dict):
-            raise RigError(f"glTF bounds {key!r} must be an object of names, got {data[key]!r}")
+            raise RigError(f"{what} {key!r} must be an object of names, got {data[key]!r}")
     return data
+
+
+def load_bounds(source: str | Path | Mapping[str, Any] | None) -> dict[str, Any]:
+    """glTF bounds from a JSON file path, a JSON string, or a mapping (see ``GltfRig``)."""
+    return load_bounds_json(source, "joints", "morph", what="glTF bounds")
 
 
 class GltfReader:

@@ -7,6 +7,7 @@ Specs (docs/rig-sources.md):
   proc:COMMAND LINE                          an external process, shlex-split (schema=...)
   npz:PATH, or PATH.npz                      a dataset sampled elsewhere (schema= optional)
   zoo:SEED                                   a seeded test rig from the rig zoo (export/zoo.py)
+  blend:PATH[#OBJECT] or PATH.blend          a Blender scene, evaluated by bpy (bounds=...)
 """
 
 from __future__ import annotations
@@ -20,6 +21,7 @@ from rigcast.export.rig import Rig, RigError
 log = logging.getLogger(__name__)
 
 FORMS = ("demo:face", "demo:face-linear", "demo:arm", "gltf:PATH[#MESH]", "PATH.gltf",
+         "blend:PATH[#OBJECT]", "PATH.blend",
          "PATH.glb", "py:MODULE:FUNCTION", "py:FILE.py:FUNCTION", "proc:COMMAND LINE",
          "npz:PATH", "PATH.npz", "zoo:SEED")
 
@@ -63,6 +65,14 @@ def load_rig(spec: str, *, schema: str | None = None, bounds: str | None = None)
         if not argv:
             raise RigError(f"rig {spec!r} has an empty command line")
         return ProcessRig(argv, _need_schema(spec, schema))
+    if (sep and kind == "blend") or lower.endswith(".blend") or ".blend#" in lower:
+        from rigcast.export.blender_rig import BlenderRig
+        from rigcast.export.gltf_io import load_bounds_json
+
+        target = rest if kind == "blend" else spec
+        path, _, obj = target.partition("#")
+        return BlenderRig(path, obj=obj or None,
+                          bounds=load_bounds_json(bounds, "bones", what=".blend bounds"))
     if sep and kind == "zoo":
         from rigcast.export.zoo import make_zoo_rig
 

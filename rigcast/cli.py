@@ -288,7 +288,8 @@ def _add_solve(subs: argparse._SubParsersAction) -> None:
     p.add_argument("bundle", type=Path, help="bundle file")
     p.add_argument("take", type=Path, help="take: .npy/.npz, a folder of .obj, or .gltf/.glb")
     p.add_argument("-o", "--out", type=Path, required=True,
-                   help=".csv, .json, .gltf, .glb, .usda, .usdc or .usd")
+                   help=".csv, .json, .gltf, .glb, .usda, .usdc, .usd, or .blend (a keyed copy of "
+                        "the rig's .blend, with --rig blend:PATH)")
     p.add_argument("--rig", default=None, metavar="SPEC",
                    help="the bundle's rig (as given to `rigcast build`): glTF and USD outputs of "
                         "a skinned rig then animate its joints")
@@ -490,8 +491,14 @@ def _cmd_solve(args: argparse.Namespace) -> int:
     result = solver.solve(take.vertices, take.times_s, options)
     quality = frame_quality(bundle, result, take.times_s)
     head = head_pose(bundle, take.vertices, stabilise=bool((result.align_rms > 0).any()))
-    write_controls(args.out, bundle.schema, result.controls, take.times_s, fps=take.fps,
-                   basis=basis, skeleton=skeleton, quality=quality, head=head)
+    if args.out.suffix.lower() == ".blend":
+        from rigcast.solve_out import write_blend_solve
+
+        write_blend_solve(args.out, bundle, args.rig, args.bounds, result.controls, take.times_s,
+                          take.fps)
+    else:
+        write_controls(args.out, bundle.schema, result.controls, take.times_s, fps=take.fps,
+                       basis=basis, skeleton=skeleton, quality=quality, head=head)
     if result.fit_error == "off":
         fit = "fit error off"
     else:

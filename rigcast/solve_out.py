@@ -18,7 +18,7 @@ from typing import Any
 import numpy as np
 
 from rigcast.animation_out import MorphBasis, morph_basis
-from rigcast.errors import MismatchError
+from rigcast.errors import MismatchError, UserError
 from rigcast.frame_info import (
     FLAG_NAMES,
     FrameQuality,
@@ -82,25 +82,36 @@ def head_pose(bundle: Bundle, vertices: np.ndarray, *, stabilise: bool = True,
                     np.concatenate([p.scale for p in poses]))
 
 
+def checked_rig(bundle: Bundle, rig_spec: str, bounds: Path | None) -> Any:
+    """The rig ``rig_spec`` names, if it is the one ``bundle`` was built from (fingerprint)."""
+    from rigcast.export.rig_loader import load_rig
+
+    rig = load_rig(rig_spec, bounds=bounds)
+    recorded = bundle.manifest.get("fingerprint")
+    theirs = recorded.get("rig") if isinstance(recorded, dict) else None
+    ours = rig.fingerprint()
+    if ours != theirs:
+        rig.close()
+        raise MismatchError(
+            f"rig {rig_spec} (fingerprint {ours[:12]}) is not the rig bundle {bundle.name!r} was "
+            f"built from ({str(theirs)[:12] if theirs else 'none recorded'})",
+            "give the rig spec and bounds the bundle was built with")
+    return rig
+
+
 def output_form(bundle: Bundle, out: Path, forward: Any, rig_spec: str | None,
                 bounds: Path | None) -> tuple[MorphBasis | None, Skeleton | None]:
     """The rig's form for glTF/USD ``out``: its skeleton when ``rig_spec`` names a skinned rig,
     else the blendshapes read off the bundle's forward model (``forward.evaluate``)."""
+    if out.suffix.lower() == ".blend" and rig_spec is None:
+        raise UserError(f"{out}: a .blend output is a keyed copy of the rig's own file",
+                        "give the rig with --rig blend:PATH (and --bounds as for the build)",
+                        code=2)
     if out.suffix.lower() not in RIG_SUFFIXES:
         return None, None
     if rig_spec is not None:
-        from rigcast.export.rig_loader import load_rig
-
-        rig = load_rig(rig_spec, bounds=bounds)
+        rig = checked_rig(bundle, rig_spec, bounds)
         try:
-            recorded = bundle.manifest.get("fingerprint")
-            theirs = recorded.get("rig") if isinstance(recorded, dict) else None
-            ours = rig.fingerprint()
-            if ours != theirs:
-                raise MismatchError(
-                    f"rig {rig_spec} (fingerprint {ours[:12]}) is not the rig bundle "
-                    f"{bundle.name!r} was built from ({str(theirs)[:12] if theirs else 'none recorded'})",
-                    "give the rig spec and bounds the bundle was built with")
             return None, skeleton_from_rig(rig)
         finally:
             rig.close()
@@ -108,6 +119,22 @@ def output_form(bundle: Bundle, out: Path, forward: Any, rig_spec: str | None,
     # wider than a weight's range (degrees, distances) is never taken for a blendshape.
     return morph_basis(bundle.name, bundle.schema, bundle.neutral, bundle.faces,
                        forward.evaluate, linearity_tol=0.05, max_span=WEIGHT_SPAN), None
+
+
+def write_blend_solve(out: Path, bundle: Bundle, rig_spec: str, bounds: Path | None,
+                      controls: np.ndarray, times_s: np.ndarray, fps: float) -> Path:
+    """Key a solve into a copy of the .blend the bundle was built from (``--rig blend:...``)."""
+    from rigcast.blender_out import write_blend
+    from rigcast.export.blender_rig import BlenderRig
+
+    rig = checked_rig(bundle, rig_spec, bounds)
+    try:
+        if not isinstance(rig, BlenderRig):
+            raise UserError(f"{out}: .blend output needs a Blender rig (--rig blend:PATH), got "
+                            f"{rig_spec}", "write .gltf, .usda, .csv or .json instead", code=2)
+        return write_blend(out, rig, controls, times_s, fps)
+    finally:
+        rig.close()
 
 
 def flag_lines(quality: FrameQuality) -> list[str]:
