@@ -52,28 +52,50 @@ def test_latency_bench_writes_every_named_field(tmp_path: Path) -> None:
     assert 0.5 * medians["total"] <= parts <= 2.0 * medians["total"]
 
 
-QUALITY_FIELDS = ("inverse_mean_err", "lsq_mean_err", "optim_mean_err", "inverse_jitter",
-                  "optim_jitter", "inverse_active", "truth_active", "forward_mean_err_pct_diag",
-                  "build_seconds")
+QUALITY_FIELDS = ("inverse_mean_err", "lsq_mean_err", "nlls_mean_err", "inverse_jitter",
+                  "inverse_active", "truth_active", "forward_mean_err_pct_diag", "build_seconds",
+                  "bbox_diagonal", "offmanifold_recall", "offmanifold_false_rate")
+PER_METHOD = ("mean_err", "clean_mean_err", "clean_max_err", "false_active", "jitter_vs_truth")
+ZOO_SEED = 9  # with --quick's caps: a 1,190-vertex face with a skinned jaw and a rigid region
 
 
-def test_quality_bench_quick_run_writes_report_json_and_plots(tmp_path: Path) -> None:
-    run_bench("quality.py", "--quick", "--rigs", "arm", "--out", str(tmp_path), timeout=280.0)
+def test_quality_bench_quick_run_scores_builtin_and_zoo_rigs(tmp_path: Path) -> None:
+    proc = run_bench("quality.py", "--quick", "--rigs", "arm", "--zoo-seeds", str(ZOO_SEED),
+                     "--out", str(tmp_path), timeout=600.0)
+    assert f"zoo seeds: [{ZOO_SEED}]" in proc.stdout and "worst rig: " in proc.stdout
+    assert "nlls take" in proc.stderr  # progress on stderr
     rigs = json.loads((tmp_path / "quality.json").read_text())["rigs"]
-    assert list(rigs) == ["arm"]
-    entry = rigs["arm"]
-    assert entry["linear"] is False
-    for key in QUALITY_FIELDS:
-        assert isinstance(entry[key], float) and math.isfinite(entry[key]) and entry[key] >= 0, key
-    assert entry["truth_active"] > 0 and entry["build_seconds"] > 0
-    jitter = entry["acceptance"]["inverse_jitter <= 0.3 x optim_jitter"]
-    assert jitter["limit"] == 0.3 * entry["optim_jitter"]
-    assert jitter["truth"] == entry["truth_jitter"]
-    assert jitter["truth_passes"] is (entry["truth_jitter"] <= jitter["limit"])
+    assert list(rigs) == ["arm", f"zoo-{ZOO_SEED}"]
+    arm, zoo = rigs["arm"], rigs[f"zoo-{ZOO_SEED}"]
+    assert arm["zoo"] is False and zoo["zoo"] is True and zoo["seed"] == ZOO_SEED
+    assert zoo["zoo_spec"]["kind"] == "jaw_face" and zoo["rigid_region"] is True
+    for entry in (arm, zoo):
+        for key in QUALITY_FIELDS:
+            assert isinstance(entry[key], float) and math.isfinite(entry[key]), key
+        for m in ("inverse", "lsq", "nlls"):
+            for k in PER_METHOD:
+                v = entry[f"{m}_{k}"]
+                assert isinstance(v, float) and math.isfinite(v) and v >= 0, (m, k)
+            assert entry[f"{m}_clean_max_err"] >= entry[f"{m}_clean_mean_err"]
+        names = set(entry["recoverable_controls"]) | {u["control"] for u in entry["unrecoverable"]}
+        assert len(names) == entry["controls"]
+        assert all(u["reason"] for u in entry["unrecoverable"])
+        assert 0 <= entry["offmanifold_recall"] <= 1 and 0 <= entry["offmanifold_false_rate"] <= 1
+        checks = entry["acceptance"]
+        nlls = checks["§3 inverse_mean_err <= 0.8 x nlls_mean_err"]
+        assert nlls["limit"] == 0.8 * entry["nlls_mean_err"]
+        assert nlls["pass"] is (entry["inverse_mean_err"] <= nlls["limit"])
+        assert checks["§3 inverse_false_active <= 0.3"]["value"] == entry["inverse_false_active"]
+    # head motion only where a rigid region makes it separable
+    assert arm["offmanifold_head_recall"] is None and "no rigid region" in arm["head_motion_note"]
+    assert 0 <= zoo["offmanifold_head_recall"] <= 1
+    assert "§3 offmanifold_head_recall >= 0.9" in zoo["acceptance"]
+    jitter = arm["acceptance"]["inverse_active <= 1.5 x truth_active"]
+    assert jitter["truth"] == arm["truth_active"]
     report = (tmp_path / "quality.md").read_text()
-    assert "arm" in report
+    assert "Worst rig" in report and f"zoo-{ZOO_SEED}" in report
     pngs = sorted(p.name for p in tmp_path.glob("*.png"))
-    assert len(pngs) >= 2, pngs
+    assert pngs == ["errors.png", "take_arm.png", f"take_zoo-{ZOO_SEED}.png"], pngs
     assert all((tmp_path / p).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" for p in pngs)
     # The filter grid reuses those bundles: more beta, less lag (error) and less smoothing.
     grid_dir = tmp_path / "grid"
@@ -83,6 +105,16 @@ def test_quality_bench_quick_run_writes_report_json_and_plots(tmp_path: Path) ->
     slow, fast = sorted(grid, key=lambda g: g["beta"])
     assert fast["mean_err"] < slow["mean_err"] and fast["jitter"] > slow["jitter"]
     assert (grid_dir / "filter_grid.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_quality_bench_draws_fresh_zoo_seeds_each_run(tmp_path: Path) -> None:
+    runs = [run_bench("quality.py", "--dry-run", "--zoo", "3", "--out", str(tmp_path)).stdout
+            for _ in range(2)]
+    seeds = [next(line for line in r.splitlines() if line.startswith("zoo seeds: ")) for r in runs]
+    assert seeds[0] != seeds[1]
+    assert "rigs: ['face', 'face-linear', 'arm', 'zoo-" in runs[0]
+    replay = run_bench("quality.py", "--dry-run", "--zoo-seeds", "4,5", "--out", str(tmp_path))
+    assert "zoo seeds: [4, 5]" in replay.stdout
 
 
 def test_batch_bench_synthetic_run_writes_fps_frames_and_fit_error_mode(tmp_path: Path) -> None:
