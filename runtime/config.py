@@ -130,8 +130,9 @@ class ServerConfig:
         "after_publish")
     fit_error_every: int = _flag("with fit_error=every_n, compute it on every Nth frame", 10)
     fit_error_max_share: float = _flag(
-        "largest share of the server's time the fit error may take; frames past it are "
-        "skipped (counted), so under load it never slows the frames", 0.25)
+        "largest share of the server's time each stream's fit error may take (the streams "
+        "take turns); frames past it are skipped (counted), and fits run only while no input "
+        "waits, so they never slow the frames", 0.25)
     off_manifold_factor: float = _flag(
         "floor of the adaptive off-manifold rule = this x the bundle's training fit error", 3.0
     )

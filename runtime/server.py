@@ -10,8 +10,8 @@ is decoded and validated; a valid mesh superseded by a newer one of its stream i
 not newer than the stream's last is *stale*; a bad message gets an error reply, an ``evt`` event
 and a count by reason. Nothing is dropped silently; the next frame after drops carries STALE.
 
-Off the frame's path: fit errors run between drains while no input waits, per stream in turn
-within ``fit_error_max_share`` (runtime/fairness.py). Telemetry ticks and the garbage
+Off the frame's path: fit errors run between drains while no input waits, the streams in turn,
+each within ``fit_error_max_share`` (runtime/fairness.py). Telemetry ticks and the garbage
 collector's passes run right after a drain, or on a timer when no frames come.
 ``busy_poll_us`` > 0 polls the input without sleeping (yielding the CPU) that long after each
 drain, then blocks as usual.
@@ -234,7 +234,7 @@ class Server:
             os.sched_yield()
 
     def run_fits(self) -> None:
-        """Pending fit errors, the streams in turn, within the fit error's time share."""
+        """Pending fit errors, the streams in turn, each within its time share."""
         self.fits.run(self._input_waiting, self._fit)
 
     def _fit(self, stream: str, item: tuple[StreamState, FrameResult, protocol.MeshFrame, Any]
