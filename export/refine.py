@@ -78,24 +78,55 @@ class RefineGraph(nn.Module):
         return grad, (r * r).sum(dim=1)
 
 
+def coefficient_jacobian(forward: ForwardApproximator, u: torch.Tensor) -> torch.Tensor:
+    """d MLP(u) / du for normalised controls u (B, C) -> (B, C, P), in forward mode by hand:
+    through each Linear (times W^T) and SiLU (times SiLU'(a)), one tangent per control."""
+    assert forward.correction is not None
+    linears = [m for m in forward.correction if isinstance(m, nn.Linear)]
+    b, c = u.shape
+    tangent = torch.eye(c, dtype=u.dtype).expand(b, c, c)  # (B, C, C): d u / d u
+    h = u
+    for i, lin in enumerate(linears):
+        a = lin(h)
+        tangent = tangent @ lin.weight.T  # (B, C, out)
+        if i < len(linears) - 1:
+            sg = torch.sigmoid(a)
+            tangent = tangent * (sg * (1.0 + a * (1.0 - sg)))[:, None, :]  # SiLU'(a)
+            h = a * sg
+    return tangent
+
+
 def gauss_newton_matrix(forward: ForwardApproximator, indices: np.ndarray, poses: np.ndarray,
                         chunk: int = 64) -> np.ndarray:
     """Mean of J(u)^T J(u) over poses (M, C) (controls), J the (3K, C) Jacobian in normalised
     controls of the forward model restricted to ``indices`` (K,). -> (C, C) float64."""
     sub = VertexSubset(forward, indices)
     lo, hi = forward.lower, forward.upper
-
-    def f(u: torch.Tensor) -> torch.Tensor:
-        return sub(lo + (hi - lo) * u[None])[0].reshape(-1)
-
-    jac = torch.func.vmap(torch.func.jacrev(f))
     acc = np.zeros((lo.shape[0], lo.shape[0]))
     u_all = normalise_controls(torch.as_tensor(np.asarray(poses, np.float32)), lo, hi)
-    for s in range(0, u_all.shape[0], chunk):
-        with torch.no_grad():
-            j = jac(u_all[s : s + chunk]).double()  # (B, 3K, C)
-        acc += torch.einsum("bkc,bkd->cd", j, j).numpy()  # sum over poses b and coordinates k
+    with torch.no_grad():
+        for s in range(0, u_all.shape[0], chunk):
+            u = u_all[s : s + chunk]
+            jac = sub.weight.expand(u.shape[0], -1, -1)  # (B, C, 3K): the linear layer
+            if forward.correction is not None:
+                jac = jac + coefficient_jacobian(forward, u) @ sub.basis
+            j = jac.double()
+            acc += torch.einsum("bck,bdk->cd", j, j).numpy()  # sum over poses b, coordinates k
     return acc / max(u_all.shape[0], 1)
+
+
+def gauss_newton_matrix_naive(forward: ForwardApproximator, indices: np.ndarray,
+                              poses: np.ndarray) -> np.ndarray:
+    """Autograd twin of ``gauss_newton_matrix``: torch.autograd.functional.jacobian per pose."""
+    sub = VertexSubset(forward, indices)
+    lo, hi = forward.lower, forward.upper
+    acc = np.zeros((lo.shape[0], lo.shape[0]))
+    for pose in np.asarray(poses, np.float32):
+        u0 = normalise_controls(torch.from_numpy(pose[None]), lo, hi)[0]
+        j = torch.autograd.functional.jacobian(
+            lambda u: sub(lo + (hi - lo) * u[None])[0].reshape(-1), u0).double()  # (3K, C)
+        acc += (j.T @ j).numpy()
+    return acc / max(len(poses), 1)
 
 
 def refine_gradient_naive(forward: ForwardApproximator, indices: np.ndarray,

@@ -152,3 +152,22 @@ def test_a_bundle_with_refinement_solves_through_it(tmp_path) -> None:
     got = model.solve(mesh)
     assert np.abs(raw - truth).max() > 0.1
     np.testing.assert_allclose(got, truth, atol=1e-3)
+
+
+def test_gauss_newton_matrix_matches_autograd() -> None:
+    torch = pytest.importorskip("torch")
+    from rigcast.export.models import ForwardApproximator
+    from rigcast.export.refine import gauss_newton_matrix, gauss_newton_matrix_naive
+
+    rng = np.random.default_rng(1)
+    v, c, p = 30, 4, 5
+    basis = np.linalg.qr(rng.standard_normal((3 * v, p)))[0].T
+    fwd = ForwardApproximator(rng.standard_normal((v, 3)), np.zeros(c), 3 * np.ones(c),
+                              rng.standard_normal((c, 3 * v)), np.zeros(3 * v), basis, (8, 8))
+    with torch.no_grad():
+        for prm in fwd.correction.parameters():
+            prm.copy_(torch.randn_like(prm))
+    idx = np.array([0, 3, 7, 12, 29])
+    poses = rng.uniform(0, 3, (9, c))
+    np.testing.assert_allclose(gauss_newton_matrix(fwd, idx, poses, chunk=4),
+                               gauss_newton_matrix_naive(fwd, idx, poses), rtol=1e-4, atol=1e-6)
