@@ -59,8 +59,7 @@ def served_solve(bundle_path: Path, meshes: np.ndarray, fps: float = 60.0
     solver = BatchSolver(bundle, threads=2)
     times = np.arange(meshes.shape[0], dtype=np.float64) / fps
     res = solver.solve(meshes, times, SolveOptions(filter="none", fit_error="full"))
-    stabilised = bool(np.any(res.align_rms > 0))
-    return res.controls, res.fit_rms, stabilised
+    return res.controls, res.fit_rms, bundle.rigid_region  # SolveOptions' default follows it
 
 
 def check_served(bundle_path: Path, rig: Rig, meshes: np.ndarray, forward_err: float
