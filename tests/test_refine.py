@@ -61,7 +61,7 @@ def test_refine_reaches_the_bounded_least_squares_optimum_on_a_linear_rig() -> N
     guess = np.clip(truth + 0.08 * rng.standard_normal(truth.shape) * (truth > 0), 0, 1)
     guess[:, 0] = 0.0  # a lost expression: the network left control 0 at rest
     refiner = Refiner(gradient, a.T @ a, np.zeros(c), np.ones(c), np.zeros(c), a.shape[0],
-                      RefineSettings(steps=6))
+                      RefineSettings(steps=8, prior=0.0, damping=0.05))
     got = refiner.refine(guess.astype(np.float32), mesh)
     ref = np.stack([lsq_linear(a, m.reshape(-1), bounds=(0, 1), method="bvls").x for m in mesh])
     np.testing.assert_allclose(got, ref, atol=2e-4)
@@ -92,6 +92,12 @@ def test_active_set_blocks_moves_past_a_bound() -> None:
     # 0: at rest on its lower bound, pushed down; 1: on its upper bound, pushed up: both out.
     # 2: active; 3: at rest, strongly pulled inwards: woken.
     assert free.tolist() == [[False, False, True, True]]
+    # A control that explains little of the residual on its own stays at rest.
+    g_small = np.array([[0.0, 0.0, 0.1, 5.0]])
+    assert not active_set(u, np.zeros(4), g_small, np.array([100.0]), np.ones(4), 4.0, 3000,
+                          wake_share=0.5)[0, 3]  # explains 25 of 100
+    assert active_set(u, np.zeros(4), g_small, np.array([30.0]), np.ones(4), 4.0, 3000,
+                      wake_share=0.5)[0, 3]  # explains 25 of 30
 
 
 def test_settings_are_validated() -> None:
@@ -146,7 +152,7 @@ def test_a_bundle_with_refinement_solves_through_it(tmp_path) -> None:
     truth = np.zeros((5, 8))
     truth[:, 2], truth[:, 5] = 0.7, 0.3
     mesh = rig.evaluate(truth)[:, bundle.input_indices].astype(np.float32)
-    model = InverseModel(bundle)
+    model = InverseModel(bundle, refine=RefineSettings(steps=8, prior=0.0, damping=0.05))
     assert model.refiner is not None
     raw = model.session.run(None, {"mesh": mesh})[0]  # an untrained MLP: far off
     got = model.solve(mesh)
