@@ -156,7 +156,8 @@ def refine_settings(bundle: Bundle) -> RefineSettings:
     if not isinstance(section, dict):
         return RefineSettings()
     try:
-        return RefineSettings(**{k: section[k] for k in ("steps", "kappa", "damping", "snap")
+        return RefineSettings(**{k: section[k] for k in ("steps", "kappa", "wake_share", "prior",
+                                                         "damping", "snap")
                                  if k in section})
     except (TypeError, RefineError) as exc:
         raise BundleError(f"bundle manifest 'refine' section is invalid: {exc}") from None
