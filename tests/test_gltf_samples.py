@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import base64
 import json
+import os
 from pathlib import Path
 
 import numpy as np
@@ -184,3 +185,51 @@ def test_animating_a_matrix_node_or_a_bad_path_is_refused(tmp_path: Path) -> Non
     path.write_text(json.dumps(doc))
     with pytest.raises(TakeError, match="unknown target path 'colour'"):
         read_take(path)
+
+
+# --- build and solve the samples' own animations, as a user would --------------------------------
+
+
+def _rigcast(*args: str, timeout: float = 900.0) -> None:
+    import subprocess
+    import sys
+
+    proc = subprocess.run([sys.executable, "-m", "rigcast", *args], capture_output=True,
+                          text=True, timeout=timeout, check=False, stdin=subprocess.DEVNULL)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+
+
+SKIN_BOUNDS = '{"joints": {"node_2": {"z": [-100, 100]}}}'
+# A build at default settings takes minutes to tens of minutes on 2 shared cores: opt in.
+FULL = pytest.mark.skipif(not os.environ.get("RIGCAST_FULL_SAMPLES"),
+                          reason="default-settings sample builds: set RIGCAST_FULL_SAMPLES=1")
+# Training has time budgets, so a reduced build's accuracy depends on the machine's load: with
+# --samples 800 --steps 300 --epochs 20, SimpleMorph measured 0.05 % and 0.26 % of the diagonal
+# in two runs, SimpleSkin 0.91 %. Only default-settings builds are held to the 0.1 % bound.
+
+
+@FULL
+@pytest.mark.timeout(3600)
+@pytest.mark.parametrize(("sample", "bounds", "budget"), [
+    pytest.param(SKIN, SKIN_BOUNDS, [], id="SimpleSkin-defaults"),  # 0.011 %, 25 min build
+    pytest.param(MORPH, None, [], id="SimpleMorph-defaults"),
+])
+def test_sample_builds_and_solves_its_own_animation(tmp_path: Path, sample: Path,
+                                                    bounds: str | None, budget: list[str]
+                                                    ) -> None:
+    """`rigcast build` from the original file, `rigcast solve` of its own animation, and the
+    solve's glTF re-evaluated (glTF 2.0 morph targets and skinning) against the original take:
+    mean vertex error <= 0.1 % of the diagonal (issue 14's acceptance)."""
+    bundle, out = tmp_path / "sample.rcb", tmp_path / "solved.gltf"
+    build = ["build", str(sample), "-o", str(bundle), *budget, "--quiet"]
+    _rigcast(*build, *(["--bounds", bounds] if bounds else []), timeout=3500)
+    solve = ["solve", str(bundle), str(sample), "-o", str(out)]
+    skinned = ["--rig", f"gltf:{sample}", "--bounds", bounds] if bounds else []
+    _rigcast(*solve, *skinned)
+    original, solved = read_take(sample), read_take(out)
+    assert solved.frame_count == original.frame_count
+    np.testing.assert_allclose(solved.times_s, original.times_s, atol=1e-6)
+    flat = original.vertices.reshape(-1, 3)
+    diag = float(np.linalg.norm(flat.max(0) - flat.min(0)))
+    err = float(np.linalg.norm(solved.vertices - original.vertices, axis=-1).mean())
+    assert err <= 1e-3 * diag, f"mean vertex error {100 * err / diag:.4f} % of the diagonal"
