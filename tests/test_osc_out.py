@@ -138,3 +138,20 @@ def test_every_frame_arrives_as_one_bundle_with_the_published_values(tiny_bundle
     # python-osc's dispatcher delivered every control message of those frames to its handler
     delivered = sum(1 for address, _ in recorder.calls if address != "/rigcast/tiny/frame")
     assert delivered >= frames * len(names)
+
+
+def test_osc_command_help_and_bad_target() -> None:
+    import subprocess
+    import sys
+
+    def run(*args: str) -> subprocess.CompletedProcess[str]:
+        return subprocess.run([sys.executable, "-m", "rigcast", "osc", *args], capture_output=True,
+                              text=True, timeout=60, check=False, stdin=subprocess.DEVNULL)
+
+    helped = run("--help")
+    assert helped.returncode == 0 and "examples:" in helped.stdout
+    assert "rigcast osc --osc 127.0.0.1:7000" in helped.stdout
+    bad = run("--osc", "nowhere")
+    assert bad.returncode == 2
+    assert bad.stderr.startswith("rigcast: error: OSC target must be HOST:PORT")
+    assert len(bad.stderr.strip().splitlines()) == 1
