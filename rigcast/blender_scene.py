@@ -250,9 +250,12 @@ class BlendRig:
 
     # --- keyed animation --------------------------------------------------------------------
 
-    def key(self, out: str, controls: np.ndarray, times_s: np.ndarray, fps: float) -> None:
+    def key(self, out: str, controls: np.ndarray, times_s: np.ndarray, fps: float,
+            head: np.ndarray | None = None) -> None:
         """Key ``controls`` (T, C) at frame 1 + round(time * fps), scene rate ``fps``, and save
-        a copy at ``out`` (the original file is left as it was)."""
+        a copy at ``out`` (the original file is left as it was). ``head`` (T, 4, 4), the head
+        pose: an empty ``rigcast_head`` becomes the parent of the mesh and its armature (so the
+        armature's deformation is unchanged) and is keyed with it."""
         bpy = self.bpy
         scene = bpy.context.scene
         base = max(1, round(fps))
@@ -271,14 +274,37 @@ class BlendRig:
                     bone, axis = c.target
                     self.arm.pose.bones[bone].keyframe_insert("rotation_euler", index=axis,
                                                               frame=f)
+        if head is not None:
+            self._key_head(frames.tolist(), np.asarray(head, np.float64))
         bpy.ops.wm.save_as_mainfile(filepath=str(out), copy=True)
 
-    def play(self, frames: list[int]) -> np.ndarray:
-        """(N, V, 3) evaluated meshes at scene frames (a keyed file plays its animation)."""
+    def _key_head(self, frames: list[int], head: np.ndarray) -> None:
+        from mathutils import Matrix
+
+        bpy = self.bpy
+        empty = bpy.data.objects.new("rigcast_head", None)
+        bpy.context.scene.collection.objects.link(empty)
+        for child in (self.ob, self.arm):
+            if child is not None and child.parent is None:
+                child.parent = empty  # the empty sits at the origin: no parent inverse needed
+        empty.rotation_mode = "QUATERNION"
+        for f, m in zip(frames, head, strict=True):
+            loc, rot, scale = Matrix(m.tolist()).decompose()
+            empty.location, empty.rotation_quaternion, empty.scale = loc, rot, scale
+            for path in ("location", "rotation_quaternion", "scale"):
+                empty.keyframe_insert(path, frame=f)
+
+    def play(self, frames: list[int], world: bool = False) -> np.ndarray:
+        """(N, V, 3) evaluated meshes at scene frames (a keyed file plays its animation), in
+        object space, or in world space (with the head pose) when ``world``."""
         out = np.empty((len(frames), self.rest_vertices, 3), np.float32)
         for i, f in enumerate(frames):
             self.bpy.context.scene.frame_set(f)
             out[i] = self.mesh()
+            if world:
+                m = np.array(self.ob.evaluated_get(
+                    self.bpy.context.evaluated_depsgraph_get()).matrix_world)
+                out[i] = out[i] @ m[:3, :3].T + m[:3, 3]
         return out
 
 
@@ -341,9 +367,11 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--object", default=None)
     p.add_argument("--bones", default="", help="comma-separated BONE:AXES")
     p.add_argument("--bounds", default=None, help="bounds JSON file or string")
-    p.add_argument("--take", default=None, help="key: NPZ with names, controls, times_s, fps")
+    p.add_argument("--take", default=None,
+                   help="key: NPZ with names, controls, times_s, fps and optionally head")
     p.add_argument("--out", default=None, help="key: the keyed copy; play: NPY of meshes")
     p.add_argument("--frames", default="", help="play: comma-separated scene frames")
+    p.add_argument("--world", action="store_true", help="play: world space (with the head pose)")
     args = p.parse_args(argv)
     _claim_stdout()
     if args.command == "demo":
@@ -370,9 +398,10 @@ def main(argv: list[str] | None = None) -> int:
                 sys.stderr.write(f"rigcast blender: the solve's controls {names} are not the "
                                  f"rig's {[c.name for c in rig.controls]}\n")
                 return 1
-            rig.key(args.out, take["controls"], take["times_s"], float(take["fps"]))
+            rig.key(args.out, take["controls"], take["times_s"], float(take["fps"]),
+                    take["head"] if "head" in take.files else None)
     else:
-        np.save(args.out, rig.play([int(f) for f in args.frames.split(",") if f]))
+        np.save(args.out, rig.play([int(f) for f in args.frames.split(",") if f], args.world))
     return 0
 
 

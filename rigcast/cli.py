@@ -495,7 +495,7 @@ def _cmd_solve(args: argparse.Namespace) -> int:
         from rigcast.solve_out import write_blend_solve
 
         write_blend_solve(args.out, bundle, args.rig, args.bounds, result.controls, take.times_s,
-                          take.fps)
+                          take.fps, head)
     else:
         write_controls(args.out, bundle.schema, result.controls, take.times_s, fps=take.fps,
                        basis=basis, skeleton=skeleton, quality=quality, head=head)

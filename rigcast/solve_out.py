@@ -122,7 +122,8 @@ def output_form(bundle: Bundle, out: Path, forward: Any, rig_spec: str | None,
 
 
 def write_blend_solve(out: Path, bundle: Bundle, rig_spec: str, bounds: Path | None,
-                      controls: np.ndarray, times_s: np.ndarray, fps: float) -> Path:
+                      controls: np.ndarray, times_s: np.ndarray, fps: float,
+                      head: HeadPose | None = None) -> Path:
     """Key a solve into a copy of the .blend the bundle was built from (``--rig blend:...``)."""
     from rigcast.blender_out import write_blend
     from rigcast.export.blender_rig import BlenderRig
@@ -132,7 +133,7 @@ def write_blend_solve(out: Path, bundle: Bundle, rig_spec: str, bounds: Path | N
         if not isinstance(rig, BlenderRig):
             raise UserError(f"{out}: .blend output needs a Blender rig (--rig blend:PATH), got "
                             f"{rig_spec}", "write .gltf, .usda, .csv or .json instead", code=2)
-        return write_blend(out, rig, controls, times_s, fps)
+        return write_blend(out, rig, controls, times_s, fps, head)
     finally:
         rig.close()
 

@@ -87,18 +87,28 @@ def test_topology_changing_modifiers_are_refused(demo: Path, tmp_path: Path) -> 
 
 
 def test_keyed_copy_plays_back_the_same_meshes(rig, demo: Path, tmp_path: Path) -> None:
+    from scipy.spatial.transform import Rotation
+
     from rigcast.blender_out import write_blend
+    from rigcast.frame_info import HeadPose
 
     before = demo.read_bytes()
     controls = _poses(rig, 12)
     times = np.arange(12) / 24.0
-    keyed = write_blend(tmp_path / "keyed.blend", rig, controls, times, 24.0)
+    turn = Rotation.from_euler("z", np.linspace(0, 20, 12)[:, None], degrees=True).as_quat()
+    head = HeadPose(np.linspace([0, 0, 0], [0.1, -0.05, 0.2], 12), turn, np.ones(12))
+    keyed = write_blend(tmp_path / "keyed.blend", rig, controls, times, 24.0, head)
     assert demo.read_bytes() == before  # the rig's own file is untouched
-    out = tmp_path / "played.npy"
-    proc = _scene("play", str(keyed), "--bones", "jaw:x", "--frames",
-                  ",".join(str(f) for f in range(1, 13)), "--out", str(out))
-    assert proc.returncode == 0, proc.stderr[-2000:]
-    np.testing.assert_allclose(np.load(out), rig.evaluate(controls), atol=1e-5)
+    frames = ",".join(str(f) for f in range(1, 13))
+    for space in ((), ("--world",)):
+        out = tmp_path / f"played{len(space)}.npy"
+        proc = _scene("play", str(keyed), "--bones", "jaw:x", "--frames", frames, "--out",
+                      str(out), *space)
+        assert proc.returncode == 0, proc.stderr[-2000:]
+        expected = rig.evaluate(controls)
+        if space:  # the head pose keyed on the rig's parent moves it in the scene
+            expected = head.apply(expected.astype(np.float64))
+        np.testing.assert_allclose(np.load(out), expected, atol=1e-5)
 
 
 def test_dask_cluster_samples_the_same_dataset_as_local_processes(rig, tmp_path: Path) -> None:
