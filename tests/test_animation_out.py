@@ -253,8 +253,9 @@ def test_round_trip_gltf_rig_to_bundle_to_solve(tmp_path: Path) -> None:
     config = BuildConfig(
         # The take below moves every weight at once, so train on mostly dense poses.
         samples=1024, check_samples=32, sparsity=SparsityConfig(dense_fraction=0.6),
-        forward=ForwardConfig(hidden=(64,), components=12, epochs=30, max_seconds=20.0),
-        inverse=InverseConfig(hidden=(128,), steps=1500, max_seconds=20.0, l1=0.003),
+        # A fixed schedule: a time budget made this test's accuracy depend on machine load.
+        forward=ForwardConfig(hidden=(64,), components=12, epochs=30),
+        inverse=InverseConfig(hidden=(128,), steps=1500, l1=0.003),
     )
     result = build_bundle(rig, tmp_path / "sheet.rcb", config)
     bundle = load_bundle(result.bundle_path)
