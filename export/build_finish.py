@@ -121,29 +121,18 @@ def finish(
         "refine": asdict(RefineSettings()),
         "stabilise": stabilise,
     }
-    write_bundle(
-        out_path,
-        name=rig.name,
-        schema=rig.schema,
-        neutral=rig.neutral,
-        faces=rig.faces,
-        stable_indices=stable,
-        input_indices=inputs,
-        inverse_onnx=inv_bytes,
-        forward_onnx=fwd_bytes,
-        extra=extra,
-        refine_onnx=ref_bytes,
-        refine_hessian=hessian,
-    )
+    # Written twice: the check runs the served solve from the written file, and its figures
+    # then go into the manifest of the final one.
+    parts = {"name": rig.name, "schema": rig.schema, "neutral": rig.neutral, "faces": rig.faces,
+             "stable_indices": stable, "input_indices": inputs, "inverse_onnx": inv_bytes,
+             "forward_onnx": fwd_bytes, "refine_onnx": ref_bytes, "refine_hessian": hessian}
+    write_bundle(out_path, extra=extra, **parts)
     served = check_served(out_path, rig, check_x, float(fwd_rep.mean_err))
     training.update(check_mean_err=served.rig_mean_err,
                     check_mean_err_pct_diag=served.rig_mean_err_pct_diag,
                     reference=served.to_dict())
     extra.update(fit_rms_train=served.fit_rms_mean, fit_rms_p99=served.fit_rms_p99)
-    write_bundle(out_path, name=rig.name, schema=rig.schema, neutral=rig.neutral,
-                 faces=rig.faces, stable_indices=stable, input_indices=inputs,
-                 inverse_onnx=inv_bytes, forward_onnx=fwd_bytes, extra=extra,
-                 refine_onnx=ref_bytes, refine_hessian=hessian)
+    write_bundle(out_path, extra=extra, **parts)
     if served.worse_than_reference:
         log.warning("the bundle's held-out error %.3g is above bounded linear least squares "
                     "(%.3g) on the same poses", served.rig_mean_err, served.lsq_mean_err)
