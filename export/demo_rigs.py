@@ -22,7 +22,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from rigcast.export.gltf_eval import euler_xyz_matrices, skin_points
-from rigcast.export.rig import Rig
+from rigcast.export.rig import Rig, evaluate_in_chunks
 from rigcast.runtime.schema import Control, ControlSchema
 
 log = logging.getLogger(__name__)
@@ -363,10 +363,7 @@ class TamsinHead(Rig):
         return out
 
     def _evaluate(self, controls: np.ndarray) -> np.ndarray:
-        out = np.empty((controls.shape[0], self.vertex_count, 3), dtype=np.float32)
-        for start in range(0, controls.shape[0], _CHUNK):
-            out[start : start + _CHUNK] = self._evaluate_chunk(controls[start : start + _CHUNK])
-        return out
+        return evaluate_in_chunks(self._evaluate_chunk, controls, self.vertex_count, _CHUNK)
 
     def _evaluate_chunk(self, controls: np.ndarray) -> np.ndarray:
         if self.linear:

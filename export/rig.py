@@ -7,6 +7,7 @@ from __future__ import annotations
 import hashlib
 import logging
 from abc import ABC, abstractmethod
+from collections.abc import Callable
 
 import numpy as np
 from rigcast.runtime.schema import ControlSchema
@@ -16,6 +17,16 @@ log = logging.getLogger(__name__)
 
 class RigError(Exception):
     """A rig could not be loaded or evaluated; the message names the source and the problem."""
+
+
+def evaluate_in_chunks(chunk_fn: Callable[[np.ndarray], np.ndarray], controls: np.ndarray,
+                       vertex_count: int, chunk: int) -> np.ndarray:
+    """controls (B, C) -> (B, V, 3) float32 by ``chunk_fn`` on ``chunk`` poses at a time, so a
+    rig's temporaries stay bounded however large the batch."""
+    out = np.empty((controls.shape[0], vertex_count, 3), dtype=np.float32)
+    for start in range(0, controls.shape[0], chunk):
+        out[start : start + chunk] = chunk_fn(controls[start : start + chunk])
+    return out
 
 
 class Rig(ABC):

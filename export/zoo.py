@@ -29,7 +29,7 @@ from dataclasses import dataclass
 import numpy as np
 from rigcast.export import zoo_mesh as zm
 from rigcast.export.gltf_eval import skin_points
-from rigcast.export.rig import Rig, RigError
+from rigcast.export.rig import Rig, RigError, evaluate_in_chunks
 from rigcast.runtime.schema import Control, ControlSchema
 
 log = logging.getLogger(__name__)
@@ -279,10 +279,7 @@ class ZooRig(Rig):
         return (controls - self._defaults) / self._room
 
     def _evaluate(self, controls: np.ndarray) -> np.ndarray:
-        out = np.empty((controls.shape[0], self.vertex_count, 3), dtype=np.float32)
-        for start in range(0, controls.shape[0], _CHUNK):
-            out[start : start + _CHUNK] = self._evaluate_chunk(controls[start : start + _CHUNK])
-        return out
+        return evaluate_in_chunks(self._evaluate_chunk, controls, self.vertex_count, _CHUNK)
 
     def _evaluate_chunk(self, controls: np.ndarray) -> np.ndarray:
         b = controls.shape[0]
