@@ -1,0 +1,207 @@
+"""The live subcommands' parsers and handlers: serve, send, watch, record, osc, keys.
+Each handler makes one library call; heavy modules are imported inside it."""
+
+from __future__ import annotations
+
+import argparse
+from pathlib import Path
+
+from rigcast.cli_common import (
+    DEFAULT_FPS,
+    FIRST_STREAM,
+    SCHEMA_TO,
+    Subparsers,
+    add_endpoints,
+    add_limits,
+    sub,
+)
+
+
+def add_serve(subs: Subparsers) -> None:
+    from rigcast.runtime import serve_main
+
+    p = sub(
+        subs, "serve", "serve bundles live over ZeroMQ",
+        "Serve one or more bundles: mesh frames in on a ROUTER socket, controls, telemetry and "
+        "events out on a PUB socket (docs/protocol.md). Binds to loopback unless --allow-remote "
+        "is given; put a remote-facing server on a closed stage network only.",
+        "  rigcast serve --bundle face.rcb                 # stream id 'face'\n"
+        "  rigcast serve --bundle actor1=face.rcb --bundle actor2=arm.rcb\n"
+        "  rigcast serve --bundle face.rcb --input tcp://127.0.0.1:6000 "
+        "--output tcp://127.0.0.1:6001\n"
+        "  rigcast serve --config stage.toml\n",
+        cmd_serve,
+        show_defaults=False,  # the server's flags state their defaults themselves
+    )
+    serve_main.add_serve_arguments(p)
+
+
+def add_keys(subs: Subparsers) -> None:
+    p = sub(
+        subs, "keys", "make a CurveZMQ key pair for a server or a client",
+        "Write FOLDER/NAME.key (the public key, to share) and FOLDER/NAME.key_secret (the secret "
+        "key, readable by you only). A server on a stage network needs a pair of its own and a "
+        "folder of its clients' public keys; each client needs a pair and the server's public key.",
+        "  rigcast keys keys --name server\n"
+        "  rigcast keys keys/clients --name capture\n",
+        cmd_keys,
+    )
+    p.add_argument("folder", type=Path, help="folder to write the two files in")
+    p.add_argument("--name", required=True, help="file name of the pair, e.g. server or capture")
+
+
+def add_send(subs: Subparsers) -> None:
+    p = sub(
+        subs, "send", "stream a take to a server, with stage rehearsal options",
+        "Stream a take to a running server at a frame rate. Before sending it asks the server for "
+        "its schema and stops if the take's vertex count is not the bundle's. The rehearsal "
+        "options spoil the take on purpose, to see how a stage setup copes.",
+        "  rigcast send take.npz\n"
+        "  rigcast send frames/ --fps 30 --loop --duration 60\n"
+        "  rigcast send take.npz --head-motion --noise 0.002 --drop-rate 0.05 \\\n"
+        "      --corrupt-rate 0.01\n",
+        cmd_send,
+    )
+    p.add_argument("take", type=Path, help="take: .npy/.npz, a folder of .obj, or .gltf/.glb")
+    add_endpoints(p, to_help="the server's input endpoint",
+                  from_help="the server's output endpoint, to learn the stream id when not given",
+                  stream_help=FIRST_STREAM)
+    p.add_argument("--fps", type=float, default=None,
+                   help=f"frame rate (default: the take's own, else {DEFAULT_FPS:g}, said when "
+                        "assumed)")
+    p.add_argument("--loop", action="store_true", help="start over at the end of the take")
+    add_limits(p)
+    p.add_argument("--head-motion", action="store_true",
+                   help="add smooth rigid head motion (a few degrees, ~2%% of the mesh size)")
+    p.add_argument("--noise", type=float, default=0.0,
+                   help="Gaussian noise per vertex, as a fraction of the bounding-box diagonal")
+    p.add_argument("--drop-rate", type=float, default=0.0, help="fraction of frames not sent")
+    p.add_argument("--corrupt-rate", type=float, default=0.0,
+                   help="fraction of frames sent corrupt (NaN, wrong vertex count, bad header)")
+    p.add_argument("--seed", type=int, default=0, help="seed of the rehearsal's randomness")
+    p.add_argument("--timeout", type=float, default=5.0,
+                   help="seconds to wait for the schema reply")
+
+
+def add_watch(subs: Subparsers) -> None:
+    p = sub(
+        subs, "watch", "live telemetry view in the terminal",
+        "Subscribe to a server's telemetry and show it live: per-stage latency p50, p95 and p99 "
+        "(p50 and p99 with --plain), input fps, drops and rejects by reason, fit error with "
+        "off-manifold frames highlighted, and the most active controls as bars. Ctrl-C ends it.",
+        "  rigcast watch\n"
+        "  rigcast watch --from tcp://127.0.0.1:6001 --stream actor2\n"
+        "  rigcast watch --once          # one snapshot, then exit (scripts, CI)\n"
+        "  rigcast watch --duration 30   # watch for 30 s\n",
+        cmd_watch,
+    )
+    add_endpoints(p, to_help=SCHEMA_TO, from_help="the server's output (PUB) endpoint",
+                  stream_help="show only this stream (default: all)")
+    p.add_argument("--once", action="store_true",
+                   help="print one snapshot after telemetry arrives, then exit")
+    add_limits(p, frames=False)
+    p.add_argument("--top", type=int, default=8,
+                   help="how many of the most active controls to show")
+    p.add_argument("--timeout", type=float, default=10.0,
+                   help="with --once: seconds to wait for the first telemetry")
+    p.add_argument("--plain", action="store_true", help="plain text lines instead of the live view")
+
+
+def add_record(subs: Subparsers) -> None:
+    p = sub(
+        subs, "record", "save the published controls of a stream to CSV or JSON",
+        "Subscribe to a server's controls and write the frames of one stream to a file "
+        "(.csv or .json, by extension), until --duration, --frames or Ctrl-C.",
+        "  rigcast record -o live.csv --duration 10\n"
+        "  rigcast record -o actor2.json --stream actor2 --frames 600\n",
+        cmd_record,
+    )
+    p.add_argument("-o", "--out", type=Path, required=True, help="output file, .csv or .json")
+    add_endpoints(p, to_help=SCHEMA_TO, from_help="the server's output (PUB) endpoint",
+                  stream_help=FIRST_STREAM)
+    add_limits(p)
+    p.add_argument("--timeout", type=float, default=5.0,
+                   help="seconds to wait for the schema reply")
+
+
+def add_osc(subs: Subparsers) -> None:
+    p = sub(
+        subs, "osc", "relay a stream's solved controls to OSC listeners",
+        "Subscribe to a server's controls for one stream and send each solved frame as one OSC "
+        "1.0 bundle over UDP, time-tagged with the server's publish time: one message per "
+        "control (<prefix>/<stream>/<control>, float) and <prefix>/<stream>/frame (frame "
+        "number, flag bits). Characters OSC addresses may not hold become '_'. Needs the "
+        "`osc` extra (python-osc).",
+        "  rigcast osc                                   # to 127.0.0.1:9000\n"
+        "  rigcast osc --osc 127.0.0.1:7000 --prefix /tamsin --stream actor2\n",
+        cmd_osc,
+    )
+    p.add_argument("--osc", default="127.0.0.1:9000", metavar="HOST:PORT",
+                   help="where the OSC listener is")
+    p.add_argument("--prefix", default="/rigcast", help="OSC address prefix")
+    add_endpoints(p, to_help=SCHEMA_TO, from_help="the server's output (PUB) endpoint",
+                  stream_help=FIRST_STREAM)
+    add_limits(p)
+    p.add_argument("--timeout", type=float, default=5.0,
+                   help="seconds to wait for the schema reply")
+
+
+def cmd_keys(args: argparse.Namespace) -> int:
+    from rigcast.keys import keys_from_args
+
+    return keys_from_args(args)
+
+
+def cmd_serve(args: argparse.Namespace) -> int:
+    """Serve until SIGINT (exit 130, as every command) or SIGTERM (0: a service stopped
+    on purpose); a second signal forces the exit at once."""
+    import signal
+    import threading
+    from types import FrameType
+
+    from rigcast.errors import EXIT_INTERRUPTED, EXIT_OK
+    from rigcast.runtime import serve_main
+    from rigcast.runtime.server import Server
+
+    server = Server(serve_main.config_from_args(args))
+    got: list[int] = []
+
+    def on_signal(signum: int, frame: FrameType | None) -> None:
+        if got:
+            server.force_exit = True  # close the sockets without lingering
+            raise SystemExit(128 + signum)
+        got.append(signum)
+        server.request_stop()
+
+    if threading.current_thread() is threading.main_thread():
+        signal.signal(signal.SIGINT, on_signal)
+        signal.signal(signal.SIGTERM, on_signal)
+    server.startup()
+    if args.ready_file is not None:
+        serve_main.write_ready_file(args.ready_file, server)
+    server.run()
+    return EXIT_INTERRUPTED if got and got[0] == signal.SIGINT else EXIT_OK
+
+
+def cmd_send(args: argparse.Namespace) -> int:
+    from rigcast.send import send_from_args
+
+    return send_from_args(args)
+
+
+def cmd_watch(args: argparse.Namespace) -> int:
+    from rigcast.watch import watch_from_args
+
+    return watch_from_args(args)
+
+
+def cmd_record(args: argparse.Namespace) -> int:
+    from rigcast.record import record_from_args
+
+    return record_from_args(args)
+
+
+def cmd_osc(args: argparse.Namespace) -> int:
+    from rigcast.osc_out import osc_from_args
+
+    return osc_from_args(args)
