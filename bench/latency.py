@@ -42,59 +42,16 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-import zmq
 from rigcast.export.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
-from rigcast.runtime import protocol
-from rigcast.runtime.keys import ClientCurve, create_key_pair, load_secret_key
-from rigcast.runtime.sockets import bind_pub, bind_router, bound_endpoint, wait_for_input
+from rigcast.runtime.keys import ClientCurve, create_key_pair
+
+# The measuring code is the package's, shared with `rigcast latency-check`.
+from rigcast.latency_probe import Client, echo_main, ms_percentiles
 
 CONTROLS, INPUTS, STABLE, HIDDEN, SEED = 50, 256, 128, 256, 7
 STREAM = "bench"
 FPS = 120.0
 WARMUP_S = 3.0
-
-
-# --- echo process: the transport floor -------------------------------------------------------
-
-def curve_server(keys: Path | None) -> Any:
-    """A ``prepare`` that makes a socket a CURVE server with the bench's server key, or None."""
-    if keys is None:
-        return None
-    public, secret = load_secret_key(keys / "server.key_secret")
-
-    def prepare(sock: zmq.Socket) -> None:
-        sock.setsockopt(zmq.CURVE_SERVER, 1)
-        sock.setsockopt(zmq.CURVE_SECRETKEY, secret)
-        sock.setsockopt(zmq.CURVE_PUBLICKEY, public)
-
-    return prepare
-
-
-def echo_main(ready: Path, spin_ns: int, keys: Path | None) -> None:
-    """Receive meshes on a ROUTER, publish same-size controls on a PUB; no other work."""
-    ctx = zmq.Context()
-    router = bind_router(ctx, "tcp://127.0.0.1:*", rcvhwm=32, sndhwm=1000, linger_ms=0,
-                         max_message_bytes=16 << 20, prepare=curve_server(keys))
-    pub = bind_pub(ctx, "tcp://127.0.0.1:*", sndhwm=1000, linger_ms=0,
-                   prepare=curve_server(keys))
-    ready.write_text(json.dumps({"input": bound_endpoint(router), "output": bound_endpoint(pub),
-                                 "pid": os.getpid()}))
-    values = np.zeros(CONTROLS, np.float32)
-    poller = zmq.Poller()
-    poller.register(router, zmq.POLLIN)
-    spin = 0
-    while True:
-        if not wait_for_input(poller, 100, spin):
-            spin = 0
-            continue
-        spin = spin_ns  # spin only after a message, as the server does after a drain
-        msg = router.recv_multipart(copy=False)
-        header = protocol.decode_header(msg[1].buffer)
-        if header.get("type") != "mesh":
-            break
-        t = time.time_ns()
-        pub.send_multipart(protocol.encode_controls(STREAM, header["frame"], header["t_send_ns"],
-                                                    t, t, values, 0))
 
 
 # --- client process --------------------------------------------------------------------------
@@ -111,138 +68,6 @@ def make_meshes(vertices: int, count: int = 32) -> list[np.ndarray]:
         mesh = rig.evaluate(w[None])[0].astype(np.float64) @ rot.T + [0.01 * i, 0, 0]
         out.append(np.ascontiguousarray(mesh, dtype=np.float32))
     return out
-
-
-class Client:
-    def __init__(self, endpoints: dict[str, str], meshes: list[np.ndarray], spin_ns: int = 0,
-                 curve: ClientCurve | None = None) -> None:
-        self.spin_ns = spin_ns
-        self.ctx = zmq.Context()
-        self.dealer = self.ctx.socket(zmq.DEALER)
-        self.dealer.setsockopt(zmq.SNDHWM, 16)
-        self.dealer.setsockopt(zmq.LINGER, 0)
-        if curve is not None:
-            curve.apply(self.dealer)
-        self.dealer.connect(endpoints["input"])
-        self.sub = self.ctx.socket(zmq.SUB)
-        self.sub.setsockopt(zmq.RCVHWM, 10000)
-        self.sub.setsockopt(zmq.LINGER, 0)
-        self.sub.setsockopt(zmq.SUBSCRIBE, protocol.TOPIC_CONTROLS + STREAM.encode())
-        self.sub.setsockopt(zmq.SUBSCRIBE, protocol.TOPIC_TELEMETRY + STREAM.encode())
-        if curve is not None:
-            curve.apply(self.sub)
-        self.sub.connect(endpoints["output"])
-        self.poller = zmq.Poller()
-        self.poller.register(self.sub, zmq.POLLIN)
-        self.meshes = meshes
-        self.frame = 0
-        self.telemetry: dict[str, Any] | None = None
-
-    def send(self, block: bool = True) -> bool:
-        self.frame += 1
-        frames = protocol.encode_mesh(STREAM, self.frame, time.time_ns(),
-                                      self.meshes[self.frame % len(self.meshes)])
-        try:
-            self.dealer.send_multipart(frames, 0 if block else zmq.NOBLOCK, copy=False)
-        except zmq.Again:
-            return False
-        return True
-
-    def recv_controls(self, frame: int | None, timeout_ms: int) -> int | None:
-        """perf_counter_ns at the arrival of controls for ``frame`` (any frame if None)."""
-        deadline = time.perf_counter_ns() + timeout_ms * 1_000_000
-        spin = self.spin_ns
-        while (left := deadline - time.perf_counter_ns()) > 0:
-            if not wait_for_input(self.poller, max(left // 1_000_000, 1), spin):
-                continue
-            frames = self.sub.recv_multipart()
-            now = time.perf_counter_ns()
-            if frames[0].startswith(protocol.TOPIC_TELEMETRY):
-                self.telemetry = protocol.decode_header(frames[1])
-                continue
-            msg = protocol.decode_controls(frames)
-            if frame is None or msg.frame == frame:
-                return now
-        return None
-
-    def handshake(self) -> None:
-        """Round trips until one comes back: both sockets are connected and subscribed."""
-        for _ in range(200):
-            self.send()
-            if self.recv_controls(self.frame, 50) is not None:
-                return
-        raise TimeoutError("no controls from the server")
-
-    def paced(self, seconds: float, fps: float, warm_marker: Path) -> tuple[list[int], int]:
-        """Latencies (ns) of the frames after the warm-up, and how many got no controls.
-        ``warm_marker`` is written when the warm-up ends (the parent reads the RSS then)."""
-        period = int(1e9 / fps)
-        start = time.perf_counter_ns()
-        warm_end = start + int(WARMUP_S * 1e9)
-        next_t = start
-        lat: list[int] = []
-        lost = 0
-        while next_t < start + int((seconds + WARMUP_S) * 1e9):
-            while (wait := next_t - time.perf_counter_ns()) > 0:
-                time.sleep(wait / 1e9 if wait > 2_000_000 else 0)
-            t0 = time.perf_counter_ns()
-            if t0 >= warm_end and not warm_marker.exists():
-                warm_marker.write_text("warm")
-                t0 = time.perf_counter_ns()
-            self.send()
-            t1 = self.recv_controls(self.frame, 1000)
-            if t0 >= warm_end:
-                if t1 is None:
-                    lost += 1
-                else:
-                    lat.append(t1 - t0)
-            next_t += period
-        if lost:
-            print(f"  warning: {lost} frames got no controls", file=sys.stderr)
-        return lat, lost
-
-    def lockstep(self, seconds: float) -> float:
-        end = time.perf_counter() + seconds
-        done = 0
-        t0 = time.perf_counter()
-        while time.perf_counter() < end:
-            self.send()
-            if self.recv_controls(self.frame, 1000) is not None:
-                done += 1
-        return done / (time.perf_counter() - t0)
-
-    def fresh_telemetry(self, timeout_s: float = 1.0) -> dict[str, Any]:
-        """The next telemetry message (its counters are cumulative)."""
-        self.telemetry = None
-        deadline = time.perf_counter() + timeout_s
-        while self.telemetry is None and time.perf_counter() < deadline:
-            self.recv_controls(-1, 50)  # frame -1 never matches: read until telemetry comes
-        if self.telemetry is None:
-            raise TimeoutError("no telemetry from the server")
-        return self.telemetry
-
-    def blast(self, seconds: float) -> dict[str, float]:
-        before = self.fresh_telemetry()
-        end = time.perf_counter() + seconds
-        sent = published = 0
-        t0 = time.perf_counter()
-        while time.perf_counter() < end:
-            if self.send(block=False):
-                sent += 1
-            while self.sub.poll(0):
-                frames = self.sub.recv_multipart()
-                if frames[0].startswith(protocol.TOPIC_CONTROLS):
-                    published += 1
-        elapsed = time.perf_counter() - t0
-        while self.recv_controls(None, 300) is not None:  # let the server drain
-            published += 1
-        after = self.fresh_telemetry()
-        counts = {k: int(after[k]) - int(before[k]) for k in ("processed", "dropped", "stale")}
-        received = sum(counts.values())
-        return {"sent_fps": sent / elapsed, "published_fps": published / elapsed,
-                "server_received_fps": received / elapsed, "sent": sent,
-                "server_received": received, **{f"server_{k}": v for k, v in counts.items()},
-                "published": published}
 
 
 def client_main(args: argparse.Namespace) -> None:
@@ -321,10 +146,6 @@ def run_client(mode: str, endpoints_file: Path, vertices: int, duration: float, 
 
 def keys_args(args: argparse.Namespace) -> list[str]:
     return [] if args.curve_keys is None else ["--curve-keys", str(args.curve_keys)]
-
-
-def ms_percentiles(lat_ns: list[int]) -> list[float]:
-    return [float(x) for x in np.percentile(np.array(lat_ns) / 1e6, [50, 95, 99])]
 
 
 def measure(vertices: int, args: argparse.Namespace, work: Path) -> dict[str, Any]:

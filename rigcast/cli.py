@@ -64,7 +64,8 @@ def build_parser() -> argparse.ArgumentParser:
     subs = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=Parser)
     for add in (cli_offline.add_demo, cli_offline.add_build, cli_offline.add_inspect,
                 cli_live.add_serve, cli_live.add_send, cli_live.add_watch, cli_live.add_record,
-                cli_offline.add_solve, cli_live.add_keys, cli_live.add_osc):
+                cli_offline.add_solve, cli_live.add_keys, cli_live.add_osc,
+                cli_live.add_latency_check):
         add(subs)
     return parser
 

@@ -146,6 +146,70 @@ def add_osc(subs: Subparsers) -> None:
                    help="seconds to wait for the schema reply")
 
 
+def add_latency_check(subs: Subparsers) -> None:
+    p = sub(
+        subs, "latency-check", "measure end-to-end latency of your bundle on this machine",
+        "Start a server on your bundle and send it frames of its own rig from this process, "
+        "paced at --fps, after measuring the transport floor (an echo process on the same "
+        "sockets) in the same run. Prints p50, p95, p99 and max end to end, the server's "
+        "per-stage medians, the headroom against the frame budget at --fps and the largest "
+        "rate it sustains, and writes a report (Markdown, JSON, and with matplotlib a latency "
+        "histogram and latency over time). With --server, the sender here measures a server "
+        "already running elsewhere (the floor stays this machine's loopback).",
+        "  rigcast latency-check face.rcb\n"
+        "  rigcast latency-check face.rcb --fps 120 --duration 30 --out latency-report/\n"
+        "  rigcast latency-check face.rcb --server tcp://10.0.0.5:5570,tcp://10.0.0.5:5571 "
+        "--stream face\n",
+        cmd_latency_check,
+    )
+    p.add_argument("bundle", type=Path, help="bundle file (its rig's poses are the frames sent)")
+    p.add_argument("--fps", type=float, default=60.0, help="frame rate of the paced runs")
+    p.add_argument("--duration", type=float, default=10.0,
+                   help="seconds of the paced run against the server (after the warm-up)")
+    p.add_argument("--floor-duration", type=float, default=None,
+                   help="seconds of the paced floor run (default: a third of --duration, >= 3)")
+    p.add_argument("--flat-seconds", type=float, default=3.0,
+                   help="seconds of each lockstep run (the largest sustained rate)")
+    p.add_argument("--warmup", type=float, default=2.0, help="seconds sent before timing")
+    p.add_argument("--server", default=None, metavar="INPUT,OUTPUT",
+                   help="endpoints of a running server to measure instead of starting one")
+    p.add_argument("--stream", default=None, help="the running server's stream for this bundle")
+    p.add_argument("--fit-error", choices=("after_publish", "every_n", "off"),
+                   default="after_publish", help="the started server's fit error setting")
+    p.add_argument("--no-pin", dest="pin", action="store_false",
+                   help="do not pin the server to CPU 0 and the sender to CPU 1")
+    p.add_argument("--out", type=Path, default=Path("rigcast-latency-report"),
+                   help="report folder")
+
+
+def cmd_latency_check(args: argparse.Namespace) -> int:
+    from rigcast.cli_common import say
+    from rigcast.errors import EXIT_OK, UserError
+    from rigcast.latency_check import CheckConfig, run_check, summary_lines, write_report
+
+    server = None
+    if args.server is not None:
+        parts = [p.strip() for p in args.server.split(",")]
+        if len(parts) != 2 or not all(p.startswith("tcp://") for p in parts):
+            raise UserError(f"--server must be INPUT,OUTPUT endpoints, got {args.server!r}",
+                            "e.g. --server tcp://10.0.0.5:5570,tcp://10.0.0.5:5571", code=2)
+        server = (parts[0], parts[1])
+    for name in ("fps", "duration", "flat_seconds", "warmup"):
+        if not getattr(args, name) > 0:
+            raise UserError(f"--{name.replace('_', '-')} must be > 0, got {getattr(args, name)}",
+                            code=2)
+    floor = args.floor_duration or max(args.duration / 3, 3.0)
+    config = CheckConfig(bundle=args.bundle, fps=args.fps, duration_s=args.duration,
+                         floor_duration_s=floor, flat_seconds=args.flat_seconds,
+                         warmup_s=args.warmup, server=server, stream=args.stream, pin=args.pin,
+                         fit_error=args.fit_error)
+    result = run_check(config, say)
+    for line in summary_lines(result):
+        say(line)
+    say(f"report: {write_report(args.out, result)}")
+    return EXIT_OK
+
+
 def cmd_keys(args: argparse.Namespace) -> int:
     from rigcast.keys import keys_from_args
 

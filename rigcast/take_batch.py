@@ -30,6 +30,7 @@ from dataclasses import asdict, dataclass, fields, replace
 from pathlib import Path
 from typing import Any
 
+from rigcast.errors import EXIT_USAGE, UserError
 from rigcast.solve_take import SolveSettings, TakeRow, solve_one
 
 log = logging.getLogger(__name__)
@@ -41,9 +42,13 @@ SUMMARY_COLUMNS = ("take", "frames", "fps", "fit_rms_mean", "off_manifold", "fla
                    "seconds", "status", "out", "error")
 
 
-class TakeBatchError(ValueError):
-    """A batch cannot start: no takes found, two takes that would write the same output, or
-    a bad worker count; the message names the paths or the value."""
+class TakeBatchError(UserError):
+    """A batch cannot start: no takes found, two takes that would write the same output, a bad
+    worker count, or no scheduler; the message names the paths or the value."""
+
+    def __init__(self, what: str) -> None:
+        super().__init__(what, "check the takes and options; `rigcast solve --help` lists "
+                               "the forms", code=EXIT_USAGE)
 
 
 @dataclass(frozen=True)
