@@ -27,17 +27,12 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from rigcast.runtime.align import stabilise
-from rigcast.runtime.batch import (
-    FIT_ERROR_MODES,
-    BatchSolver,
-    SolveOptions,
-    all_cores,
-    default_params,
-)
+from rigcast.runtime import protocol
+from rigcast.runtime.batch import FIT_ERROR_SCOPES, BatchSolver, SolveOptions, all_cores
 from rigcast.runtime.bundle import Bundle, load_bundle
-from rigcast.runtime.inference import ForwardModel, InverseModel
-from rigcast.runtime.one_euro import OneEuroFilter
+from rigcast.runtime.config import StreamConfig
+from rigcast.runtime.pipeline import StreamState
+from rigcast.runtime.solve_core import open_model
 
 from rigcast.forward_subset import slice_forward_graph
 
@@ -80,20 +75,18 @@ def make_take(rig: Any, distinct: int, frames: int, fps: float = 60.0
 
 
 def per_frame_fps(bundle: Bundle, verts: np.ndarray, times: np.ndarray) -> float:
-    """The live pipeline one frame at a time (stabilise, infer, One Euro, clamp, then the fit
-    error through the forward model, as the live server computes it after the publish), 1 thread."""
-    model = InverseModel(bundle, threads=1)
-    forward = ForwardModel(bundle, threads=1)
-    filt = OneEuroFilter(default_params(bundle))
-    neutral_stable = bundle.neutral[bundle.stable_indices]
-    lo, hi = bundle.schema.lower, bundle.schema.upper
+    """The live server's per-frame code (runtime/pipeline.py StreamState: the solve core on a
+    batch of one, encoding the controls message, then the fit error on every vertex as the
+    server computes it after the publish), 1 thread, no sockets."""
+    state = StreamState(StreamConfig(stream="bench"), open_model(bundle, label="bench",
+                                                                  threads=1), window=1000)
+    sent: list[list[bytes]] = []
     start = time.perf_counter()
     for i, frame in enumerate(verts):
-        transform, _ = stabilise(frame, bundle.stable_indices, neutral_stable)
-        x = transform.apply(frame[bundle.input_indices]).astype(np.float32)
-        c = np.clip(filt(model.solve(x[None])[0], round(times[i] * 1e9), i), lo, hi)
-        d = forward.evaluate(c[None].astype(np.float32))[0] - transform.apply(frame)
-        np.sqrt(np.einsum("vx,vx->v", d, d).mean())
+        mesh = protocol.MeshFrame("bench", i, round(times[i] * 1e9), frame)
+        result = state.process(mesh, 0, 0, 0, sent.append)
+        state.fit(result, frame)
+        sent.clear()
     return verts.shape[0] / (time.perf_counter() - start)
 
 
@@ -104,8 +97,8 @@ def main() -> None:
     ap.add_argument("--repeats", type=int, default=5)
     ap.add_argument("--batch-size", type=int, default=1024)
     ap.add_argument("--threads", type=int, default=None, help="default: all cores")
-    ap.add_argument("--fit-error", choices=FIT_ERROR_MODES, default="subset",
-                    help="the fit-error mode of the headline figure (default: subset)")
+    ap.add_argument("--fit-error", choices=FIT_ERROR_SCOPES, default="subset",
+                    help="which vertices the fit error of the headline figure reads (default: subset)")
     source = ap.add_mutually_exclusive_group()
     source.add_argument("--bundle", type=Path, default=None,
                         help="use this demo-face bundle, skip the build")
@@ -131,13 +124,13 @@ def main() -> None:
     solver = BatchSolver(bundle, threads=threads, subset_graph=slice_forward_graph)
     bs = args.batch_size
     headline = SolveOptions(batch_size=bs, fit_error=args.fit_error)
-    for mode in FIT_ERROR_MODES:  # warm-up: sessions, subsets, thread pools
+    for mode in FIT_ERROR_SCOPES:  # warm-up: sessions, subsets, thread pools
         solver.solve(verts[: min(bs, args.frames)], times[: min(bs, args.frames)],
                      SolveOptions(batch_size=bs, fit_error=mode))
 
-    fps_by_mode: dict[str, list[float]] = {m: [] for m in FIT_ERROR_MODES}
+    fps_by_mode: dict[str, list[float]] = {m: [] for m in FIT_ERROR_SCOPES}
     for _ in range(args.repeats):
-        for mode in FIT_ERROR_MODES:  # interleaved, so machine noise hits every mode alike
+        for mode in FIT_ERROR_SCOPES:  # interleaved, so machine noise hits every mode alike
             options = SolveOptions(batch_size=bs, fit_error=mode)
             fps_by_mode[mode].append(solver.solve(verts, times, options).frames_per_second)
     per_batch = [solver.solve(verts[i0 : i0 + bs], times[i0 : i0 + bs], headline)

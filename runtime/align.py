@@ -118,53 +118,6 @@ def _det3(m: np.ndarray) -> float:
     return float(a * (e * i - f * h) - b * (d * i - f * g) + c * (d * h - e * g))
 
 
-def _fit(
-    source: np.ndarray, target: np.ndarray, scale: bool, weights: np.ndarray | None
-) -> tuple[RigidTransform, float]:
-    """Vectorised fit; returns the transform and the weighted mean squared residual.
-
-    Written for the hot path: reductions are matmuls with a weight vector (far cheaper than
-    ``mean(axis=0)`` at this size), and only the target is centred, since Σ w b = 0 makes
-    Σ w b (s - μs)^T equal Σ w b s^T.
-    """
-    src = source.astype(np.float64, copy=False)
-    tgt = target.astype(np.float64, copy=False)
-    n = src.shape[0]
-    w = np.full(n, 1.0 / n) if weights is None else weights / weights.sum()
-    mu_s = w @ src
-    mu_t = w @ tgt
-    b = tgt - mu_t
-    wb = b * w[:, None] if weights is not None else b * (1.0 / n)
-    cov = wb.T @ src  # cov[i, j] = Σ_n w_n b[n, i] s[n, j]
-    second = float(w @ np.einsum("ij,ij->i", src, src))
-    var_s = second - float(mu_s @ mu_s)
-    if var_s <= 1e-12 * second:  # cancellation residue: the points coincide
-        var_s = 0.0
-    var_t = float(wb.ravel() @ b.ravel())
-    transform, trace_ds = _from_covariance(cov, mu_s, mu_t, var_s, scale)
-    # Residual in closed form (Umeyama eq. 41 and its scale-free analogue), no second pass.
-    mse = var_t - trace_ds**2 / var_s if scale else var_t + var_s - 2.0 * trace_ds
-    return transform, max(mse, 0.0)
-
-
-def fit_rigid(
-    source: np.ndarray,
-    target: np.ndarray,
-    *,
-    scale: bool = False,
-    weights: np.ndarray | None = None,
-) -> RigidTransform:
-    """Least-squares ``target ≈ s R source + t`` (Umeyama 1991).
-
-    source, target: (N, 3) any float dtype, N >= 3. weights: (N,) non-negative or None.
-    Returns a RigidTransform in float64; scale is 1.0 unless ``scale=True``.
-    """
-    src = np.asarray(source)
-    tgt = np.asarray(target)
-    w = None if weights is None else np.asarray(weights, dtype=np.float64)
-    _check(src, tgt, w)
-    return _fit(src, tgt, scale, w)[0]
-
 
 def fit_rigid_naive(
     source: np.ndarray,
@@ -173,7 +126,8 @@ def fit_rigid_naive(
     scale: bool = False,
     weights: np.ndarray | None = None,
 ) -> RigidTransform:
-    """Twin of fit_rigid with explicit loops over points; for tests only."""
+    """Twin of fit_rigid_batch for one frame, with explicit loops over points and optional
+    weights (N,); for tests only. source, target (N, 3), N >= 3."""
     src = np.asarray(source, dtype=np.float64)
     tgt = np.asarray(target, dtype=np.float64)
     n = src.shape[0]
@@ -197,39 +151,12 @@ def fit_rigid_naive(
     return _from_covariance(cov, mu_s, mu_t, var_s, scale)[0]
 
 
-def stabilise(
-    points: np.ndarray,
-    stable_indices: np.ndarray,
-    neutral_stable: np.ndarray,
-    *,
-    scale: bool = False,
-) -> tuple[RigidTransform, float]:
-    """The transform taking this frame's stable vertices onto the neutral's, and the fit residual.
-
-    points (V, 3) float32 frame; stable_indices (S,) int; neutral_stable (S, 3) the neutral's
-    stable vertices (precompute ``neutral[stable_indices]`` once per bundle).
-    Returns ``(transform, rms)``: apply ``transform`` to just the vertices the model needs
-    (``transform.apply(points[input_indices])``), never to all V; ``rms`` is the root-mean-square
-    distance (mesh units) left between the aligned stable vertices and the neutral's.
-    Shapes are checked; index bounds are the caller's (the bundle validates them once).
-    """
-    stable = np.take(points, stable_indices, axis=0)
-    if stable.shape != neutral_stable.shape or stable.ndim != 2 or stable.shape[1] != 3:
-        raise AlignError(
-            f"stable vertices {stable.shape} do not match neutral_stable {neutral_stable.shape}"
-        )
-    if stable.shape[0] < 3:
-        raise AlignError(f"need at least 3 stable vertices, got {stable.shape[0]}")
-    transform, mse = _fit(stable, neutral_stable, scale, None)
-    return transform, math.sqrt(mse)
-
-
 @dataclass(frozen=True)
 class StableTarget:
-    """What stabilisation needs of the neutral's stable vertices, computed once per bundle.
+    """What the fit needs of the target points (the neutral's stable vertices), computed once.
 
-    centred_over_n (3, S) float64: (neutral_stable - mean).T / S; mean (3,); var (mean squared
-    distance to the mean); ones_over_n (S,) float64, all 1/S.
+    centred_over_n (3, S) float64: (target - mean).T / S; mean (3,); var (mean squared distance
+    to the mean); ones_over_n (S,) float64, all 1/S.
     """
 
     centred_over_n: np.ndarray
@@ -254,26 +181,100 @@ def stable_target(neutral_stable: np.ndarray) -> StableTarget:
                         np.full(n, 1.0 / n))
 
 
-def stabilise_fast(
-    points: np.ndarray, stable_indices: np.ndarray, target: StableTarget, *, scale: bool = False
-) -> tuple[RigidTransform, float]:
-    """Same result as ``stabilise(points, stable_indices, neutral_stable)``, for the hot path.
+@dataclass(frozen=True)
+class RigidBatch:
+    """Per-frame similarity transforms ``y = scale * rotation @ x + translation``.
 
-    points (V, 3) float32; stable_indices (S,) int; target from ``stable_target(neutral_stable)``.
-    The target's centring and variance are precomputed, so a frame costs one gather, one
-    conversion, three small reductions and the 3 x 3 SVD. Returns ``(transform, rms)``.
+    rotation (B, 3, 3), translation (B, 3), scale (B,), mse (B,) mean squared residual of the
+    fit; float64. The live server holds a batch of one, ``rigcast solve`` a batch of many.
     """
-    src = np.take(points, stable_indices, axis=0).astype(np.float64)
-    if src.shape != (target.count, 3):
-        raise AlignError(f"stable vertices {src.shape} do not match the target's "
-                         f"({target.count}, 3)")
-    cov = target.centred_over_n @ src  # cov[i, j] = (1/S) Σ_n (t - μt)[n, i] s[n, j]
-    mu_s = target.ones_over_n @ src
-    second = float(np.vdot(src, src)) / target.count
-    var_s = second - float(mu_s @ mu_s)
-    if var_s <= 1e-12 * second:  # cancellation residue: the points coincide
-        var_s = 0.0
-    transform, trace_ds = _from_covariance(cov, mu_s, target.mean, var_s, scale)
-    var_t = target.var
-    mse = var_t - trace_ds**2 / var_s if scale else var_t + var_s - 2.0 * trace_ds
-    return transform, math.sqrt(max(mse, 0.0))
+
+    rotation: np.ndarray
+    translation: np.ndarray
+    scale: np.ndarray
+    mse: np.ndarray
+
+    def __len__(self) -> int:
+        return int(self.scale.shape[0])
+
+    def frames(self, start: int, stop: int) -> RigidBatch:
+        """The transforms of frames ``start:stop``."""
+        sl = slice(start, stop)
+        return RigidBatch(self.rotation[sl], self.translation[sl], self.scale[sl], self.mse[sl])
+
+    def pose(self, index: int) -> RigidTransform:
+        """Frame ``index`` as a RigidTransform."""
+        return RigidTransform(self.rotation[index], self.translation[index],
+                              float(self.scale[index]))
+
+    @property
+    def rms(self) -> np.ndarray:
+        """(B,) root-mean-square residual of each frame's fit (mesh units)."""
+        out: np.ndarray = np.sqrt(self.mse)
+        return out
+
+    def apply(self, points: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+        """points (B, N, 3) -> (B, N, 3) float32 (into ``out`` when given, (B, N, 3) float32)."""
+        m = (self.scale[:, None, None] * self.rotation).astype(np.float32)
+        # out[b, n, i] = sum_j m[b, i, j] * points[b, n, j] + translation[b, i]
+        res: np.ndarray = np.matmul(points.astype(np.float32, copy=False), m.transpose(0, 2, 1),
+                                    out=out)
+        res += self.translation.astype(np.float32)[:, None, :]
+        return res
+
+
+def fit_rigid_batch(source: np.ndarray, target: np.ndarray | StableTarget, *,
+                    scale: bool = False) -> RigidBatch:
+    """Least-squares ``target ≈ s R source[b] + t`` for every frame at once (Umeyama 1991).
+
+    source (B, S, 3) the frames' stable vertices, any float dtype; target (S, 3) the neutral's,
+    or its ``stable_target`` (computed once per bundle). S >= 3. The rigid fit of the product:
+    the live server calls it with B = 1. Reductions are matmuls against the precomputed target
+    (only the target is centred, since Σ b = 0 makes Σ b (s - μs)^T equal Σ b s^T), and the
+    residual comes in closed form (Umeyama eq. 41 and its scale-free analogue), no second pass.
+    """
+    tgt = target if isinstance(target, StableTarget) else stable_target(target)
+    src = np.asarray(source, dtype=np.float64)
+    if src.ndim != 3 or src.shape[1:] != (tgt.count, 3):
+        raise AlignError(f"source must be (B, {tgt.count}, 3) to fit the target, got {src.shape}")
+    n = tgt.count
+    cov = np.matmul(tgt.centred_over_n, src)  # cov[b, i, j] = (1/S) Σ_n (t - μt)[n, i] s[b, n, j]
+    mu_s = np.matmul(tgt.ones_over_n, src)  # (B, 3)
+    second = np.einsum("bnj,bnj->b", src, src) / n
+    var_s = second - np.einsum("bj,bj->b", mu_s, mu_s)
+    var_s[var_s <= 1e-12 * second] = 0.0  # cancellation residue: the points coincide
+    u, d, vt = np.linalg.svd(cov)
+    rotation = np.matmul(u, vt)
+    # Reflection correction (Umeyama eq. 39-40): flip the weakest axis where U V^T reflects.
+    sign = np.where(_det3_batch(rotation) < 0.0, -1.0, 1.0)
+    if (sign < 0).any():
+        u[:, :, 2] *= sign[:, None]
+        rotation = np.matmul(u, vt)
+    trace_ds = d[:, 0] + d[:, 1] + sign * d[:, 2]
+    if scale:
+        if not np.all(var_s > 0.0):
+            raise AlignError(f"stable vertices coincide in frame {int(np.argmin(var_s))}; "
+                             "scale is undefined")
+        s = trace_ds / var_s
+        mse = tgt.var - trace_ds**2 / var_s
+    else:
+        s = np.ones(src.shape[0])
+        mse = tgt.var + var_s - 2.0 * trace_ds
+    # translation[b] = μt - s[b] R[b] μs[b]
+    translation = tgt.mean[None] - s[:, None] * np.einsum("bij,bj->bi", rotation, mu_s)
+    return RigidBatch(rotation, translation, s, np.maximum(mse, 0.0))
+
+
+def fit_rigid(source: np.ndarray, target: np.ndarray, *, scale: bool = False) -> RigidTransform:
+    """One frame of fit_rigid_batch: source, target (N, 3), N >= 3 -> RigidTransform (float64)."""
+    src = np.asarray(source)
+    tgt = np.asarray(target)
+    _check(src, tgt, None)
+    return fit_rigid_batch(src[None], tgt, scale=scale).pose(0)
+
+
+def _det3_batch(m: np.ndarray) -> np.ndarray:
+    """m (B, 3, 3) -> (B,) determinants by cofactors (np.linalg.det costs more at this size)."""
+    return (m[:, 0, 0] * (m[:, 1, 1] * m[:, 2, 2] - m[:, 1, 2] * m[:, 2, 1])
+            - m[:, 0, 1] * (m[:, 1, 0] * m[:, 2, 2] - m[:, 1, 2] * m[:, 2, 0])
+            + m[:, 0, 2] * (m[:, 1, 0] * m[:, 2, 1] - m[:, 1, 1] * m[:, 2, 0]))

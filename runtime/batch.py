@@ -1,16 +1,20 @@
 """Batch solve: a whole take, mesh frames (T, V, 3) to controls (T, C), as fast as the CPU allows.
 
-The stages are those of the live per-frame pipeline, run over all frames at once:
+The stages are the solve core's (runtime/solve_core.py), the very functions the live server runs
+on a batch of one frame, here on chunks of ``batch_size`` frames:
 
-1. stabilise: batched Umeyama/Kabsch fit of every frame's stable vertices onto the neutral's
-   (Umeyama, IEEE TPAMI 13(4), 1991), applied to the input vertices only;
-2. batched onnxruntime inference of the inverse graph, sessions using all cores;
-3. filter: the SAME causal One Euro filter as live (``OneEuroFilter``, here ``one_euro_series``),
-   or, since offline need not be causal, zero-phase smoothing (``zero_phase_smooth``), or none;
+1. stabilise: the batched Umeyama/Kabsch fit of every frame's stable vertices onto the
+   neutral's (Umeyama, IEEE TPAMI 13(4), 1991), applied to the input vertices only;
+2. batched onnxruntime inference of the inverse graph (and its refinement), sessions using all
+   cores;
+3. filter: the live server's causal One Euro filter, built from the same per-stream settings
+   (``SolveOptions.stream``, a ``config.StreamConfig``: ``rigcast solve --config serve.toml``
+   reads it from the server's file), or, since offline need not be causal, "smooth" (zero-phase
+   smoothing, ``one_euro.zero_phase_smooth``), or none;
 4. clamp to the schema's bounds;
 5. fit error through the forward graph (batched), RMS and max in mesh units, per frame: on a
-   subset of the vertices by default (``fit_subset``: the input and stable vertices plus a fixed
-   random sample, with a stratified RMS estimate), on all of them, or off;
+   subset of the vertices by default (``stages.fit_subset``: the input and stable vertices plus a
+   fixed random sample, with a stratified RMS estimate), on all of them, or off;
 6. off-manifold flags: the adaptive threshold of ``runtime.manifold`` on each frame's max vertex
    error (running median + k MAD, floored by the bundle's training fit error), or a fixed one.
 """
@@ -28,21 +32,42 @@ from typing import Literal
 
 import numpy as np
 import onnxruntime as ort
-from rigcast.runtime.align import fit_rigid
+from rigcast.runtime.align import RigidBatch, fit_rigid_batch
 from rigcast.runtime.bundle import FORWARD_INPUT, FORWARD_OUTPUT, Bundle
-from rigcast.runtime.config import filter_defaults
-from rigcast.runtime.inference import ForwardModel, InverseModel, open_session
-from rigcast.runtime.manifold import ManifoldConfig, floor_for_bundle, off_manifold_thresholds
-from rigcast.runtime.one_euro import OneEuroParams, OneEuroState, zero_phase_smooth
-from rigcast.runtime.pipeline import stabilise_for
+from rigcast.runtime.config import StreamConfig
+from rigcast.runtime.inference import open_session
+from rigcast.runtime.manifold import ManifoldConfig, off_manifold_thresholds
+from rigcast.runtime.one_euro import zero_phase_smooth
+from rigcast.runtime.solve_core import (
+    SolveModel,
+    build_filter,
+    filter_and_clamp,
+    frame_fit_error,
+    infer,
+    open_model,
+    stabilise_for,
+    stabilise_frames,
+)
+from rigcast.runtime.stages import FitSubset, fit_subset
+from rigcast.runtime.stages import fit_error as fit_error_batch
+from rigcast.runtime.stages import fit_error_naive as fit_error_batch_naive
 
 log = logging.getLogger(__name__)
 
-FilterKind = Literal["none", "causal", "zero_phase"]
-FILTERS: tuple[str, ...] = ("none", "causal", "zero_phase")
-FitErrorMode = Literal["full", "subset", "off"]
-FIT_ERROR_MODES: tuple[str, ...] = ("subset", "full", "off")
+# Names other modules import from here.
+__all__ = ["FILTERS", "FIT_ERROR_SCOPES", "BatchError", "BatchSolve", "BatchSolver", "FilterKind",
+           "FitErrorScope", "FitSubset", "RigidBatch", "SolveOptions", "all_cores",
+           "fit_error_batch", "fit_error_batch_naive", "fit_rigid_batch", "fit_subset",
+           "solve_take"]
+
+FilterKind = Literal["none", "causal", "smooth"]
+FILTERS: tuple[str, ...] = ("none", "causal", "smooth")
+# Which vertices the fit error reads. (The server's fit_error is another concept: *when* it runs,
+# config.FitErrorSchedule.)
+FitErrorScope = Literal["full", "subset", "off"]
+FIT_ERROR_SCOPES: tuple[str, ...] = ("subset", "full", "off")
 FIT_SLICE = 128  # frames per forward-model call in the fit error
+_DEFAULT_STREAM = StreamConfig()
 
 
 class BatchError(ValueError):
@@ -57,7 +82,7 @@ class BatchSolve:
     when the fit error was not computed); off_manifold (T,) bool, fit_max above thresholds (T,)
     (NaN when not computed, inf during the detector's warm-up); align_rms (T,) float32 residual
     of the stabilisation (0 when off); seconds of wall time; frames_per_second = T / seconds;
-    fit_error the mode used ("subset", "full", "off") and fit_vertices how many vertices it read.
+    fit_error the scope used ("subset", "full", "off") and fit_vertices how many vertices it read.
     """
 
     controls: np.ndarray
@@ -72,85 +97,6 @@ class BatchSolve:
     fit_vertices: int
 
 
-@dataclass(frozen=True)
-class RigidBatch:
-    """Per-frame similarity transforms ``y = scale * rotation @ x + translation``.
-
-    rotation (T, 3, 3), translation (T, 3), scale (T,), mse (T,) mean squared residual; float64.
-    """
-
-    rotation: np.ndarray
-    translation: np.ndarray
-    scale: np.ndarray
-    mse: np.ndarray
-
-    def frames(self, start: int, stop: int) -> RigidBatch:
-        """The transforms of frames ``start:stop``."""
-        sl = slice(start, stop)
-        return RigidBatch(self.rotation[sl], self.translation[sl], self.scale[sl], self.mse[sl])
-
-    def apply(self, points: np.ndarray) -> np.ndarray:
-        """points (T, N, 3) -> (T, N, 3) float32."""
-        m = (self.scale[:, None, None] * self.rotation).astype(np.float32)
-        # out[t, n, i] = sum_j m[t, i, j] * points[t, n, j] + translation[t, i]
-        out: np.ndarray = np.matmul(points.astype(np.float32, copy=False), m.transpose(0, 2, 1))
-        out += self.translation.astype(np.float32)[:, None, :]
-        return out
-
-
-def fit_rigid_batch(source: np.ndarray, target: np.ndarray, *, scale: bool = False) -> RigidBatch:
-    """Least-squares ``target ≈ s R source[t] + t`` for every frame at once (Umeyama 1991).
-
-    source (T, S, 3) frames' stable vertices; target (S, 3) the neutral's. S >= 3.
-    """
-    src = np.asarray(source, dtype=np.float64)
-    tgt = np.asarray(target, dtype=np.float64)
-    if src.ndim != 3 or src.shape[1:] != tgt.shape or tgt.ndim != 2 or tgt.shape[1] != 3:
-        raise BatchError(
-            f"source must be (T, S, 3) and target (S, 3), got {src.shape} and {tgt.shape}"
-        )
-    if tgt.shape[0] < 3:
-        raise BatchError(f"need at least 3 stable vertices, got {tgt.shape[0]}")
-    n = tgt.shape[0]
-    mu_s = src.mean(axis=1)  # (T, 3)
-    mu_t = tgt.mean(axis=0)  # (3,)
-    b = tgt - mu_t  # (S, 3); sum_n b[n] = 0, so centring the source is not needed in cov
-    # cov[t, i, j] = (1/S) sum_n b[n, i] * src[t, n, j]
-    cov = np.einsum("ni,tnj->tij", b, src) / n
-    var_s = np.einsum("tnj,tnj->t", src, src) / n - np.einsum("tj,tj->t", mu_s, mu_s)
-    var_t = float(np.einsum("ni,ni->", b, b)) / n
-    u, d, vt = np.linalg.svd(cov)
-    det = np.linalg.det(u @ vt)
-    # Reflection correction (Umeyama eq. 39-40): flip the weakest axis where U V^T reflects.
-    sign = np.where(det < 0.0, -1.0, 1.0)
-    u[:, :, 2] *= sign[:, None]
-    rotation = u @ vt
-    trace_ds = d[:, 0] + d[:, 1] + sign * d[:, 2]
-    if scale:
-        if not np.all(var_s > 0.0):
-            raise BatchError(f"stable vertices coincide in frame {int(np.argmin(var_s))}")
-        s = trace_ds / var_s
-        mse = var_t - trace_ds**2 / var_s
-    else:
-        s = np.ones(src.shape[0])
-        mse = var_t + var_s - 2.0 * trace_ds
-    translation = mu_t[None] - s[:, None] * np.einsum("tij,tj->ti", rotation, mu_s)
-    return RigidBatch(rotation, translation, s, np.maximum(mse, 0.0))
-
-
-def fit_rigid_batch_naive(source: np.ndarray, target: np.ndarray, *, scale: bool = False
-                          ) -> RigidBatch:
-    """Twin of fit_rigid_batch: the single-frame ``fit_rigid`` in a loop over frames."""
-    fits = [fit_rigid(frame, target, scale=scale) for frame in np.asarray(source)]
-    rot = np.stack([f.rotation for f in fits])
-    trans = np.stack([f.translation for f in fits])
-    sc = np.array([f.scale for f in fits])
-    moved = np.stack([f.apply(np.asarray(fr, np.float64))
-                      for f, fr in zip(fits, source, strict=True)])
-    mse = ((moved - np.asarray(target, np.float64)[None]) ** 2).sum(-1).mean(-1)
-    return RigidBatch(rot, trans, sc, mse)
-
-
 def all_cores() -> int:
     """CPU cores this process may run on."""
     try:
@@ -159,178 +105,47 @@ def all_cores() -> int:
         return os.cpu_count() or 1
 
 
-def default_params(bundle: Bundle) -> OneEuroParams:
-    """The live server's default One Euro settings, with beta per unit of each control's range."""
-    return filter_params(bundle, *filter_defaults())
-
-
-def filter_params(bundle: Bundle, min_cutoff: float, beta: float,
-                  d_cutoff: float = 1.0) -> OneEuroParams:
-    """Uniform One Euro settings for a bundle's controls; beta per unit of each control's range,
-    as on the live server."""
-    schema = bundle.schema
-    return OneEuroParams.uniform(bundle.control_count, min_cutoff, beta, d_cutoff
-                                 ).per_unit_range(schema.upper - schema.lower)
-
-
 @dataclass(frozen=True)
 class SolveOptions:
     """How a take is solved; validated here, once.
 
-    stabilise / stabilise_scale: remove rigid (or similarity) head motion first; stabilise None
-    follows the bundle (on only when its build found a rigid region; ``pipeline.stabilise_for``).
-    filter: "causal" (the live server's One Euro; ``params``, default the server's, reset after a
-    gap of more than ``gap_s`` seconds), "zero_phase" (offline, no lag; cutoff ``smooth_hz``) or
-    "none". batch_size: frames per onnxruntime call.
-    fit_error: "subset" (default; on the vertices of ``fit_subset``: the inverse's input and
+    stream: the per-stream settings ``rigcast serve`` takes (``config.StreamConfig``: One Euro
+    min_cutoff, beta, d_cutoff and per-group overrides, pass-through, the reset gap ``gap_ms``,
+    stabilise (None follows the bundle, ``solve_core.stabilise_for``), stabilise_scale, a fixed
+    off_manifold_threshold); None: their defaults. Its ``stream`` and ``bundle`` are not used.
+    filter: "causal" (the live server's One Euro filter with those settings), "smooth" (offline,
+    zero-phase, no lag; cutoff ``smooth_hz``) or "none". batch_size: frames per onnxruntime call.
+    fit_error: which vertices the fit error reads: "subset" (default; the inverse's input and
     stable vertices plus ``fit_sample`` others drawn once with a fixed seed), "full" (every
-    vertex) or "off".
-    off_manifold_threshold: a fixed threshold on the frame's max vertex error instead of the
-    adaptive one; manifold: the adaptive detector's settings (None: defaults, with the bundle's
-    floor from ``manifold.floor_for_bundle``).
+    vertex) or "off". manifold: the adaptive off-manifold detector's settings (None: defaults,
+    with the bundle's floor from ``manifold.floor_for_bundle``).
     """
 
-    stabilise: bool | None = None
-    stabilise_scale: bool = False
+    stream: StreamConfig | None = None
     filter: FilterKind = "causal"
-    params: OneEuroParams | None = None
-    gap_s: float = 0.25
     smooth_hz: float = 3.0
     batch_size: int = 1024
-    fit_error: FitErrorMode = "subset"
+    fit_error: FitErrorScope = "subset"
     fit_sample: int = 512
-    off_manifold_threshold: float | None = None
     manifold: ManifoldConfig | None = None
 
     def __post_init__(self) -> None:
         if self.filter not in FILTERS:
             raise BatchError(f"filter must be one of {FILTERS}, got {self.filter!r}")
-        if self.fit_error not in FIT_ERROR_MODES:
-            raise BatchError(f"fit_error must be one of {FIT_ERROR_MODES}, got {self.fit_error!r}")
+        if self.fit_error not in FIT_ERROR_SCOPES:
+            raise BatchError(f"fit_error must be one of {FIT_ERROR_SCOPES}, "
+                             f"got {self.fit_error!r}")
         if not isinstance(self.batch_size, int) or self.batch_size < 1:
             raise BatchError(f"batch_size must be an integer >= 1, got {self.batch_size!r}")
         if not isinstance(self.fit_sample, int) or self.fit_sample < 0:
             raise BatchError(f"fit_sample must be an integer >= 0, got {self.fit_sample!r}")
-        for name in ("gap_s", "smooth_hz"):
-            value = getattr(self, name)
-            if not (math.isfinite(value) and value > 0):
-                raise BatchError(f"{name} must be finite and > 0, got {value!r}")
-        thr = self.off_manifold_threshold
-        if thr is not None and not (math.isfinite(thr) and thr > 0):
-            raise BatchError(f"off_manifold_threshold must be finite and > 0, got {thr!r}")
+        if not (math.isfinite(self.smooth_hz) and self.smooth_hz > 0):
+            raise BatchError(f"smooth_hz must be finite and > 0, got {self.smooth_hz!r}")
 
-
-@dataclass(frozen=True)
-class FitSubset:
-    """Vertices the fit error reads, and how to weigh them into an RMS over all V vertices.
-
-    indices (M,) int64: first the ``exact`` vertices always read, then a sample of the rest;
-    weights (M,) float32: 1 for the exact ones, (V - exact) / sample for the sampled ones, so
-    ``sum(weights * d2[indices]) / V`` estimates ``mean(d2)`` without bias (stratified sampling).
-    """
-
-    indices: np.ndarray
-    weights: np.ndarray
-    exact: int
-    vertex_count: int
-
-
-def fit_subset(vertex_count: int, always: np.ndarray, sample: int, seed: int = 0) -> FitSubset:
-    """The fit-error vertices: ``always`` (A,) indices plus ``sample`` of the others, drawn once
-    with ``seed``. All vertices (weights 1) when the others are no more than ``sample``."""
-    exact = np.unique(np.asarray(always, dtype=np.int64))
-    rest = np.setdiff1d(np.arange(vertex_count, dtype=np.int64), exact)
-    if rest.shape[0] <= sample:
-        drawn = rest
-    else:
-        drawn = np.sort(np.random.default_rng(seed).choice(rest, size=sample, replace=False))
-    weights = np.ones(exact.shape[0] + drawn.shape[0], np.float32)
-    if drawn.shape[0]:
-        weights[exact.shape[0] :] = rest.shape[0] / drawn.shape[0]
-    return FitSubset(np.concatenate([exact, drawn]), weights, int(exact.shape[0]), vertex_count)
-
-
-def fit_error_batch(predicted: np.ndarray, observed: np.ndarray, rigid: RigidBatch | None,
-                    weights: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
-    """Per-frame fit error of the forward model's meshes against the observed ones.
-
-    predicted (B, M, 3) forward model output, in the neutral's frame; observed (B, M, 3) the
-    same vertices of the input meshes, moved into that frame by ``rigid`` (None: as they are);
-    weights (M,) per-vertex weights of the RMS (``FitSubset.weights``; None: all 1).
-    Returns (rms (B,), max (B,)) float32, mesh units.
-    """
-    diff = rigid.apply(observed) if rigid is not None else np.array(observed, dtype=np.float32)
-    diff -= predicted
-    d2 = np.einsum("bmx,bmx->bm", diff, diff)  # d2[b, m] = |diff[b, m]|^2
-    mean_d2 = d2.mean(axis=1) if weights is None else (d2 @ weights) / float(weights.sum())
-    return np.sqrt(mean_d2).astype(np.float32), np.sqrt(d2.max(axis=1)).astype(np.float32)
-
-
-def fit_error_batch_naive(predicted: np.ndarray, observed: np.ndarray, rigid: RigidBatch | None,
-                          weights: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
-    """Twin of fit_error_batch: loops over frames and vertices, in float64."""
-    b_count, m_count = predicted.shape[0], predicted.shape[1]
-    w = np.ones(m_count) if weights is None else np.asarray(weights, np.float64)
-    rms, worst = [], []
-    for b in range(b_count):
-        total, peak = 0.0, 0.0
-        for m in range(m_count):
-            p = np.asarray(observed[b, m], np.float64)
-            if rigid is not None:
-                p = rigid.scale[b] * rigid.rotation[b] @ p + rigid.translation[b]
-            d2 = float(np.sum((p - predicted[b, m]) ** 2))
-            total += w[m] * d2
-            peak = max(peak, d2)
-        rms.append(math.sqrt(total / float(w.sum())))
-        worst.append(math.sqrt(peak))
-    return np.array(rms, np.float32), np.array(worst, np.float32)
-
-
-def one_euro_series(x: np.ndarray, t_ns: np.ndarray, params: OneEuroParams, *,
-                    gap_ns: int | None, state: OneEuroState | None = None
-                    ) -> tuple[np.ndarray, OneEuroState | None]:
-    """The live One Euro filter (``OneEuroFilter``) over a run of frames, with its state carried.
-
-    x (T, C), t_ns (T,) int64 sender times -> (y (T, C) float64, state after the last frame).
-    The per-interval smoothing factors are computed for all frames at once; only the recurrence
-    itself loops. Same results as ``OneEuroFilter`` called frame by frame (see the test).
-    """
-    xv = np.asarray(x, dtype=np.float64)
-    t = np.asarray(t_ns, dtype=np.int64)
-    n = xv.shape[0]
-    y = np.empty_like(xv)
-    if n == 0:
-        return y, state
-    prev_t = np.empty(n, np.int64)
-    prev_t[1:] = t[:-1]
-    prev_t[0] = state.t_prev_ns if state is not None else t[0]
-    te = (t - prev_t) * 1e-9  # (T,) seconds, as one_euro_step computes it
-    restart = np.zeros(n, bool)
-    if state is None:
-        restart[0] = True
-    if gap_ns is not None:
-        restart |= (t - prev_t) > gap_ns
-    hold = (te <= 0.0) & ~restart
-    safe = np.where(te > 0.0, te, 1.0)
-    a_d = 1.0 / (1.0 + 1.0 / (2.0 * math.pi * safe[:, None] * params.d_cutoff[None]))  # (T, C)
-    two_pi_te = 2.0 * math.pi * safe  # (T,)
-    mc, beta = params.min_cutoff, params.beta
-    x_prev = state.x_prev if state is not None else xv[0]
-    dx_prev = state.dx_prev if state is not None else np.zeros(xv.shape[1])
-    t_prev = int(prev_t[0])
-    for i in range(n):
-        xi = xv[i]
-        if restart[i]:
-            x_prev, dx_prev = xi.copy(), np.zeros_like(xi)
-        elif not hold[i]:
-            dx = (xi - x_prev) / te[i]
-            dx_prev = a_d[i] * dx + (1.0 - a_d[i]) * dx_prev
-            a = 1.0 / (1.0 + 1.0 / (two_pi_te[i] * (mc + beta * np.abs(dx_prev))))
-            x_prev = a * xi + (1.0 - a) * x_prev
-        if not hold[i]:
-            t_prev = int(t[i])
-        y[i] = x_prev
-    return y, OneEuroState(np.array(x_prev), np.array(dx_prev), t_prev)
+    @property
+    def settings(self) -> StreamConfig:
+        """The per-stream settings in force."""
+        return self.stream if self.stream is not None else _DEFAULT_STREAM
 
 
 GraphCutter = Callable[[bytes, int, np.ndarray], "bytes | None"]
@@ -349,17 +164,12 @@ class BatchSolver:
                  subset_graph: GraphCutter | None = None) -> None:
         self.bundle = bundle
         self.threads = threads or all_cores()
-        self.inverse = InverseModel(bundle, threads=self.threads)
-        self._forward: ForwardModel | None = None
+        self.model: SolveModel = open_model(bundle, label=bundle.name, threads=self.threads)
+        self.inverse = self.model.inverse
+        self.forward = self.model.forward
         self._cutter = subset_graph
         self._subsets: dict[int, tuple[FitSubset, ort.InferenceSession | None]] = {}
         self.neutral_stable = np.asarray(bundle.neutral[bundle.stable_indices], np.float64)
-
-    @property
-    def forward(self) -> ForwardModel:
-        if self._forward is None:
-            self._forward = ForwardModel(self.bundle, threads=self.threads)
-        return self._forward
 
     def fit_subset(self, sample: int) -> FitSubset:
         """The bundle's input and stable vertices plus ``sample`` others (fixed seed 0)."""
@@ -394,11 +204,14 @@ class BatchSolver:
         server does: the filter's lag on fast motion is not a property of the mesh.
         """
         opts = options or SolveOptions()
+        settings = opts.settings
         # Sessions and the fit-error subset are set up once per solver, outside the timing.
         subset, cut = (self._subset(opts.fit_sample) if opts.fit_error == "subset"
                        else (None, None))
-        forward = self.forward if opts.fit_error != "off" else None
-        stabilise = stabilise_for(opts.stabilise, self.bundle, f"solve {self.bundle.name}")
+        fitting = opts.fit_error != "off"
+        stabilise = stabilise_for(settings.stabilise, self.bundle, f"solve {self.bundle.name}")
+        causal = opts.filter == "causal" and not settings.passthrough
+        filt = build_filter(settings, self.bundle.schema) if causal else None
         start = time.perf_counter()
         verts, times = self._check(vertices, times_s)
         t, c, bs = verts.shape[0], self.bundle.control_count, opts.batch_size
@@ -406,34 +219,27 @@ class BatchSolver:
         align_rms = np.zeros(t, np.float32)
         fit_rms = np.full(t, np.nan, np.float32)
         fit_max = np.full(t, np.nan, np.float32)
-        idx_in, idx_st = self.bundle.input_indices, self.bundle.stable_indices
+        model = self.model
 
         def solve_chunk(i0: int) -> RigidBatch | None:
             chunk = verts[i0 : i0 + bs]
             _check_finite(chunk, i0)
-            inputs = np.take(chunk, idx_in, axis=1)
-            rigid = None
-            if stabilise:
-                rigid = fit_rigid_batch(np.take(chunk, idx_st, axis=1), self.neutral_stable,
-                                        scale=opts.stabilise_scale)
-                inputs = rigid.apply(inputs)
-                align_rms[i0 : i0 + bs] = np.sqrt(rigid.mse)
-            solved = self.inverse.solve(np.ascontiguousarray(inputs, np.float32))
-            if not np.isfinite(solved).all():
-                # Finite but extreme input can overflow inside the graph (as on the live path).
-                bad = int(np.argmin(np.isfinite(solved).all(axis=1)))
-                raise BatchError(f"frame {i0 + bad}: the inverse returned NaN or Inf (the mesh "
-                                 "is far outside anything the bundle was trained on)")
-            raw[i0 : i0 + bs] = solved
+            inputs, rigid = stabilise_frames(model, chunk, stabilise=stabilise,
+                                             scale=settings.stabilise_scale)
+            if rigid is not None:
+                align_rms[i0 : i0 + bs] = rigid.rms
+            try:
+                raw[i0 : i0 + bs] = infer(model, inputs, i0)
+            except FloatingPointError as exc:
+                raise BatchError(str(exc)) from None
             return rigid
 
         def predict(controls: np.ndarray) -> np.ndarray:
             """controls (n, C) -> the subset's (n, M, 3), or every vertex (n, V, 3)."""
-            assert forward is not None
             if cut is not None:
                 out: np.ndarray = cut.run([FORWARD_OUTPUT], {FORWARD_INPUT: controls})[0]
                 return out
-            full = forward.evaluate(controls)
+            full = model.forward.evaluate(controls)
             return full if subset is None else np.take(full, subset.indices, axis=1)
 
         def fit_chunk(i0: int, rigid: RigidBatch | None) -> None:
@@ -444,55 +250,57 @@ class BatchSolver:
                 obs = verts[j0:j1] if subset is None else np.take(verts[j0:j1], subset.indices,
                                                                     axis=1)
                 part = rigid.frames(j0 - i0, j1 - i0) if rigid is not None else None
-                fit_rms[j0:j1], fit_max[j0:j1] = fit_error_batch(
-                    predict(raw[j0:j1]), obs, part, subset.weights if subset else None)
+                try:
+                    fit_rms[j0:j1], fit_max[j0:j1] = frame_fit_error(
+                        predict, raw[j0:j1], obs, part, subset.weights if subset else None)
+                except FloatingPointError as exc:
+                    raise BatchError(f"frames {j0}-{j1 - 1}: {exc}") from None
 
-        causal = opts.filter == "causal"
-        controls = np.empty((t, c), np.float64) if causal else raw
-        params = opts.params or default_params(self.bundle)
+        controls = np.empty((t, c), np.float32)
         t_ns = np.round(times * 1e9).astype(np.int64)
-        state: OneEuroState | None = None
+        numbers = np.arange(t, dtype=np.int64)
         with ThreadPoolExecutor(max_workers=self.threads) as pool:
             starts = range(0, t, bs)
             solving = [pool.submit(solve_chunk, i0) for i0 in starts]
-            fitting = []
+            fits = []
             try:
                 for i0, job in zip(starts, solving, strict=True):
                     rigid = job.result()
-                    if forward is not None:
-                        fitting.append(pool.submit(fit_chunk, i0, rigid))
-                    if causal:
-                        controls[i0 : i0 + bs], state = one_euro_series(
-                            raw[i0 : i0 + bs], t_ns[i0 : i0 + bs], params,
-                            gap_ns=round(opts.gap_s * 1e9), state=state)
-                if opts.filter == "zero_phase":
-                    controls = zero_phase_smooth(raw, times, opts.smooth_hz)
-                for fitted in fitting:
+                    if fitting:
+                        fits.append(pool.submit(fit_chunk, i0, rigid))
+                    if opts.filter != "smooth":
+                        i1 = min(i0 + bs, t)
+                        filter_and_clamp(model, filt, raw[i0:i1], t_ns[i0:i1], numbers[i0:i1],
+                                         controls[i0:i1])
+                if opts.filter == "smooth":
+                    filter_and_clamp(model, None, zero_phase_smooth(raw, times, opts.smooth_hz),
+                                     t_ns, None, controls)
+                for fitted in fits:
                     fitted.result()
             except BaseException:
                 pool.shutdown(wait=True, cancel_futures=True)  # a bad frame: skip the rest
                 raise
-        lo, hi = self.bundle.schema.lower, self.bundle.schema.upper
-        clamped = np.clip(controls, lo, hi).astype(np.float32)
-        thresholds, off = self._off_manifold(fit_max, opts)
+        thresholds, off = self._off_manifold(fit_rms, fit_max, opts)
         seconds = time.perf_counter() - start
         log.info("batch solve: %d frames in %.3f s (%.0f frames/s), fit error %s",
                  t, seconds, t / seconds, opts.fit_error)
         fit_vertices = (0 if opts.fit_error == "off" else subset.indices.shape[0]
                         if subset is not None else self.bundle.vertex_count)
-        return BatchSolve(clamped, fit_rms, fit_max, off, thresholds, align_rms, seconds,
+        return BatchSolve(controls, fit_rms, fit_max, off, thresholds, align_rms, seconds,
                           t / seconds, opts.fit_error, fit_vertices)
 
-    def _off_manifold(self, fit_max: np.ndarray, opts: SolveOptions
+    def _off_manifold(self, fit_rms: np.ndarray, fit_max: np.ndarray, opts: SolveOptions
                       ) -> tuple[np.ndarray, np.ndarray]:
+        """As the live server rules: a fixed threshold on the frame's fit RMS, else the adaptive
+        one on its worst vertex."""
         if opts.fit_error == "off":
             return np.full(fit_max.shape, np.nan), np.zeros(fit_max.shape, bool)
-        if opts.off_manifold_threshold is not None:
-            thresholds = np.full(fit_max.shape, opts.off_manifold_threshold)
-        else:
-            config = opts.manifold or ManifoldConfig(
-                floor=floor_for_bundle(self.bundle.manifest, self.bundle.neutral))
-            thresholds = off_manifold_thresholds(fit_max, config)
+        fixed = opts.settings.off_manifold_threshold
+        if fixed is not None:
+            with np.errstate(invalid="ignore"):
+                return np.full(fit_max.shape, fixed), np.asarray(fit_rms > fixed)
+        config = opts.manifold or ManifoldConfig(floor=self.model.floor)
+        thresholds = off_manifold_thresholds(fit_max, config)
         with np.errstate(invalid="ignore"):
             return thresholds, np.asarray(fit_max > thresholds)
 

@@ -39,7 +39,9 @@ from urllib.parse import urlsplit
 
 from rigcast.runtime.protocol import MAX_STREAM_BYTES
 
-FitErrorMode = Literal["after_publish", "every_n", "off"]
+# When the server computes the fit error (after every publish, on every Nth frame, never).
+# Which vertices a batch solve reads for it is another concept: batch.FitErrorScope.
+FitErrorSchedule = Literal["after_publish", "every_n", "off"]
 
 
 class ConfigError(ValueError):
@@ -62,10 +64,16 @@ class GroupFilter:
 
 @dataclass(frozen=True)
 class StreamConfig:
-    """One stream (actor): its bundle, its filter and its stabilisation."""
+    """One stream (actor): its bundle, its filter and its stabilisation.
 
-    stream: str
-    bundle: Path
+    The one options dataclass of the solve's per-stream settings: ``rigcast serve`` holds one per
+    stream, ``rigcast solve`` one for the take (``batch.SolveOptions.stream``, read from the same
+    TOML file with ``--config``). A solve needs neither ``stream`` nor ``bundle``; the server's
+    loader requires ``bundle``.
+    """
+
+    stream: str = "take"
+    bundle: Path = Path()
     # One Euro defaults are a starting point of ours, measured on the demo takes (README, "Tuning
     # the filter"); tune them with the procedure given there. d_cutoff = 1 Hz follows Casiez et al. 2012.
     # beta is per unit of each control's range, so it means the same for weights and angles.
@@ -105,7 +113,7 @@ class StreamConfig:
 def filter_defaults() -> tuple[float, float, float]:
     """(min_cutoff, beta, d_cutoff): StreamConfig's One Euro defaults, the one place they live,
     so that batch solves, the CLI and the server can never disagree."""
-    cfg = StreamConfig(stream="defaults", bundle=Path("unused"))
+    cfg = StreamConfig()
     return cfg.min_cutoff, cfg.beta, cfg.d_cutoff
 
 
@@ -125,7 +133,7 @@ class ServerConfig:
     )
     max_streams: int = _flag("most streams one server holds", 16)
     threads: int = _flag("onnxruntime intra-op threads per session", 1)
-    fit_error: FitErrorMode = _flag(  # noqa: RUF009
+    fit_error: FitErrorSchedule = _flag(  # noqa: RUF009
         "when to compute the fit error: after_publish, every_n, off",
         "after_publish")
     fit_error_every: int = _flag("with fit_error=every_n, compute it on every Nth frame", 10)
@@ -194,8 +202,8 @@ class ServerConfig:
                               "server's secret key and the folder of allowed client keys)")
         if self.input == self.output and not self.input.endswith(":*"):
             raise ConfigError(f"input and output endpoints are the same ({self.input})")
-        if self.fit_error not in get_args(FitErrorMode):
-            raise ConfigError(f"fit_error must be one of {get_args(FitErrorMode)}, "
+        if self.fit_error not in get_args(FitErrorSchedule):
+            raise ConfigError(f"fit_error must be one of {get_args(FitErrorSchedule)}, "
                               f"got {self.fit_error!r}")
         for name in ("threads", "fit_error_every", "window", "max_message_bytes",
                      "max_header_bytes", "max_drain", "input_hwm", "output_hwm", "max_streams",

@@ -12,10 +12,11 @@ Noisy Input in Interactive Systems", CHI 2012:
 
 The first sample passes through with dx̂ = 0.
 
-The live filter (:class:`OneEuroFilter`) runs :func:`one_euro_step_fast`: the same update with
-2 pi folded into precomputed parameter arrays and alpha written as r / (1 + r), r = 2 pi fc te,
-which needs fewer array operations per frame; :func:`one_euro_step` is the plain vectorised form
-and :func:`one_euro_step_naive` the per-control loop, and the tests hold all three together.
+The recurrence is written once, :func:`one_euro_step`: the update with 2 pi folded into
+precomputed parameter arrays and alpha written as r / (1 + r), r = 2 pi fc te, which needs few
+array operations per frame. :class:`OneEuroFilter` runs it for one stream, a frame at a time
+(the live server, a batch of one) or over a run of frames (``rigcast solve``, a batch of many),
+with the same reset rules; :func:`one_euro_step_naive` is its per-control twin for the tests.
 """
 
 from __future__ import annotations
@@ -125,40 +126,9 @@ class OneEuroState:
     t_prev_ns: int
 
 
-def _alpha(te: float, cutoff: np.ndarray) -> np.ndarray:
-    # alpha = 1 / (1 + tau / te) with tau = 1 / (2 pi fc), i.e. 1 / (1 + 1 / (2 pi fc te)).
-    return 1.0 / (1.0 + 1.0 / (_TWO_PI * te * cutoff))
-
-
-def one_euro_step(
-    state: OneEuroState | None, x: np.ndarray, t_ns: int, params: OneEuroParams
-) -> tuple[np.ndarray, OneEuroState]:
-    """One filter update. x (C,) -> (y (C,) float64, new state).
-
-    ``state=None`` starts the filter: y = x. A timestamp not after the previous one (te <= 0) is a
-    repeat: the previous output is held and the state is unchanged.
-    """
-    xv = np.asarray(x, dtype=np.float64)
-    if xv.shape != params.min_cutoff.shape:
-        raise FilterError(f"x has shape {xv.shape}, filter has {len(params)} controls")
-    if state is None:
-        y = xv.copy()
-        return y, OneEuroState(y, np.zeros_like(y), int(t_ns))
-    te = (int(t_ns) - state.t_prev_ns) * 1e-9
-    if te <= 0.0:
-        return state.x_prev.copy(), state
-    dx = (xv - state.x_prev) / te
-    a_d = _alpha(te, params.d_cutoff)
-    dx_hat = a_d * dx + (1.0 - a_d) * state.dx_prev
-    cutoff = params.min_cutoff + params.beta * np.abs(dx_hat)
-    a = _alpha(te, cutoff)
-    y = a * xv + (1.0 - a) * state.x_prev
-    return y, OneEuroState(y, dx_hat, int(t_ns))
-
-
 @dataclass(frozen=True)
 class OneEuroConstants:
-    """Per-control constants of one_euro_step_fast, each (C,) float64: 2 pi min_cutoff,
+    """Per-control constants of one_euro_step, each (C,) float64: 2 pi min_cutoff,
     2 pi beta and 2 pi d_cutoff."""
 
     two_pi_min: np.ndarray
@@ -170,11 +140,13 @@ class OneEuroConstants:
         return cls(_TWO_PI * params.min_cutoff, _TWO_PI * params.beta, _TWO_PI * params.d_cutoff)
 
 
-def one_euro_step_fast(
+def one_euro_step(
     state: OneEuroState | None, x: np.ndarray, t_ns: int, consts: OneEuroConstants
 ) -> tuple[np.ndarray, OneEuroState]:
-    """one_euro_step with precomputed constants; x (C,) -> (y (C,) float64, new state).
+    """One filter update. x (C,) -> (y (C,) float64, new state).
 
+    ``state=None`` starts the filter: y = x. A timestamp not after the previous one (te <= 0) is a
+    repeat: the previous output is held and the state is unchanged.
     alpha(te, fc) = 1 / (1 + 1 / (2 pi fc te)) = r / (1 + r) with r = 2 pi fc te, and
     2 pi fc = 2 pi min_cutoff + 2 pi beta |dx̂|; each blend a x + (1 - a) p is p + a (x - p).
     """
@@ -210,7 +182,8 @@ def one_euro_step_fast(
 def one_euro_step_naive(
     state: OneEuroState | None, x: np.ndarray, t_ns: int, params: OneEuroParams
 ) -> tuple[np.ndarray, OneEuroState]:
-    """Twin of one_euro_step: a scalar loop over controls, written from the paper's pseudocode."""
+    """Twin of one_euro_step (with the plain parameters): a scalar loop over controls, written
+    from the paper's pseudocode."""
     xs = [float(v) for v in np.asarray(x).reshape(-1)]
     if state is None:
         y0 = np.array(xs)
@@ -235,7 +208,7 @@ def one_euro_step_naive(
 
 
 class OneEuroFilter:
-    """Stateful wrapper around one_euro_step for one stream.
+    """One stream's filter: one_euro_step with its state and reset rules.
 
     ``gap_ns``: a sample more than this after the previous one restarts the filter (the new sample
     passes through). ``frame``, when given, also restarts it if the frame number goes backwards or
@@ -287,10 +260,26 @@ class OneEuroFilter:
             self.reset()
             self.resets += 1
         self.filtered = self.state is not None
-        y, self.state = one_euro_step_fast(self.state, x, t_ns, self.consts)
+        y, self.state = one_euro_step(self.state, x, t_ns, self.consts)
         if frame is not None:
             self.last_frame = frame
         return y
+
+    def run(self, x: np.ndarray, t_ns: np.ndarray, frames: np.ndarray | None = None
+            ) -> tuple[np.ndarray, np.ndarray]:
+        """A run of frames, in order, state carried: x (T, C), t_ns (T,) int sender times,
+        frames (T,) or None -> (y (T, C) float64, filtered (T,) bool). The same as calling the
+        filter frame by frame, which is what it does."""
+        xv = np.asarray(x, dtype=np.float64)
+        n = xv.shape[0]
+        y = np.empty_like(xv)
+        filtered = np.zeros(n, dtype=bool)
+        times = [int(t) for t in np.asarray(t_ns).reshape(-1)]
+        numbers = [None] * n if frames is None else [int(f) for f in frames]
+        for i in range(n):
+            y[i] = self(xv[i], times[i], numbers[i])
+            filtered[i] = self.filtered
+        return y, filtered
 
 
 def zero_phase_smooth(x: np.ndarray, times_s: np.ndarray, cutoff_hz: float) -> np.ndarray:

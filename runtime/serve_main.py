@@ -74,6 +74,38 @@ def add_serve_arguments(parser: argparse.ArgumentParser) -> None:
                 StreamConfig, _STREAM_PREFIX)
 
 
+def add_stream_arguments(parser: argparse.ArgumentParser) -> None:
+    """The per-stream options of ``serve`` (the StreamConfig flags) and ``--config``/``--stream``,
+    for ``rigcast solve``: a take is solved with the settings a stream is served with."""
+    parser.add_argument("--config", type=Path, default=None, metavar="FILE.toml",
+                        help="a `rigcast serve` TOML config: solve with the settings of one of "
+                             "its streams (filter, per-group filters, gap, stabilisation); "
+                             "flags override them")
+    parser.add_argument("--stream", default=None, metavar="ID",
+                        help="which stream of --config (default: the first)")
+    _add_fields(parser.add_argument_group("per-stream settings (as `rigcast serve`)"),
+                StreamConfig, _STREAM_PREFIX)
+
+
+def stream_config_from_args(args: argparse.Namespace) -> StreamConfig:
+    """The StreamConfig of ``add_stream_arguments``' options: the stream ``--stream`` (or the
+    first) of ``--config`` when given, with the flags on top; ConfigError on bad values."""
+    every = {name[len(_STREAM_PREFIX):]: value for name, value in vars(args).items()
+             if name.startswith(_STREAM_PREFIX) and value is not None}
+    if args.config is None:
+        if args.stream is not None:
+            raise ConfigError("--stream names a stream of --config; give --config too")
+        return load_config(None, {"streams": {"take": {"bundle": "unused", **every}}}).streams[0]
+    config = load_config(args.config, {"stream_overrides": every})
+    if args.stream is None:
+        return config.streams[0]
+    found = config.stream(args.stream)
+    if found is None:
+        raise ConfigError(f"--stream {args.stream!r}: {args.config} has streams "
+                          f"{[s.stream for s in config.streams]}")
+    return found
+
+
 def parse_bundle_arg(text: str) -> tuple[str, Path]:
     """``STREAM=PATH`` or ``PATH`` -> (stream id, absolute path)."""
     stream, sep, path = text.partition("=")

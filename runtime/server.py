@@ -55,7 +55,6 @@ from rigcast.runtime.pipeline import (
     StreamState,
     head_pose,
     load_stream_model,
-    make_filter,
 )
 from rigcast.runtime.reload import Reloader, check_served, public_model, redact
 from rigcast.runtime.security import ServerSecurity
@@ -325,7 +324,7 @@ class Server:
         previous = pending.get(stream)
         if restarted:  # a new sender or session: its clock starts afresh (docs/protocol.md §4)
             state.last_t_send_ns = None
-            state.filter = make_filter(state.config, state.model)
+            state.restart_filter()
             previous = None
         newest_t = previous[1].t_send_ns if previous else state.last_t_send_ns
         if newest_t is not None and mesh.t_send_ns <= newest_t:

@@ -1,13 +1,14 @@
-"""Batch solve: batched Kabsch against the single-frame fit, equality with the per-frame live
-pipeline, the chunked One Euro and the fit error against their naive twins, subset fit error
-against the full one, zero-phase smoothing without lag, off-manifold flags, bad input."""
+"""Batch solve: equality with a per-frame chain written from the naive twins, the fit error
+against its naive twin, subset fit error against the full one, zero-phase smoothing without lag,
+off-manifold flags, bad input. (The rigid fit's tests are in test_align.py, the filter's in
+test_one_euro.py.)"""
 
 from __future__ import annotations
 
 import numpy as np
 import pytest
 from rigcast.export.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
-from rigcast.runtime.align import fit_rigid, stabilise
+from rigcast.runtime.align import fit_rigid_naive
 from rigcast.runtime.batch import (
     BatchError,
     BatchSolver,
@@ -15,14 +16,14 @@ from rigcast.runtime.batch import (
     fit_error_batch,
     fit_error_batch_naive,
     fit_rigid_batch,
-    fit_rigid_batch_naive,
     fit_subset,
-    one_euro_series,
     solve_take,
 )
 from rigcast.runtime.bundle import Bundle, load_bundle
+from rigcast.runtime.config import GroupFilter, StreamConfig
 from rigcast.runtime.inference import ForwardModel, InverseModel, open_session
-from rigcast.runtime.one_euro import OneEuroFilter, OneEuroParams
+from rigcast.runtime.one_euro import one_euro_step_naive
+from rigcast.runtime.solve_core import filter_params
 
 from rigcast.forward_subset import slice_forward_graph
 
@@ -65,48 +66,23 @@ def _take(t: int, seed: int = 1, head: bool = True) -> tuple[np.ndarray, np.ndar
     return meshes.astype(np.float32), times, truth
 
 
-@pytest.mark.parametrize("scale", [False, True])
-def test_batched_kabsch_agrees_with_single_frame_fit(scale: bool) -> None:
-    rng = np.random.default_rng(3)
-    target = rng.normal(size=(20, 3))
-    rot = _rotations(12, rng, max_angle=3.0)
-    s = rng.uniform(0.5, 2.0, 12) if scale else np.ones(12)
-    src = np.einsum("tij,nj->tni", rot, target) * s[:, None, None] + rng.normal(size=(12, 1, 3))
-    src += rng.normal(scale=0.01, size=src.shape)
-    fast = fit_rigid_batch(src, target, scale=scale)
-    slow = fit_rigid_batch_naive(src, target, scale=scale)
-    np.testing.assert_allclose(fast.rotation, slow.rotation, atol=1e-9)
-    np.testing.assert_allclose(fast.translation, slow.translation, atol=1e-9)
-    np.testing.assert_allclose(fast.scale, slow.scale, atol=1e-9)
-    np.testing.assert_allclose(fast.mse, slow.mse, atol=1e-9)
-    assert np.allclose(np.linalg.det(fast.rotation), 1.0)
-    # and the fit undoes the motion it was given
-    single = fit_rigid(src[0], target, scale=scale)
-    np.testing.assert_allclose(fast.apply(src)[0], single.apply(src[0]), atol=1e-5)
-
-
-def test_batched_kabsch_handles_reflection() -> None:
-    """A mirrored point set must still give a proper rotation (Umeyama 1991, eq. 39-40)."""
-    rng = np.random.default_rng(4)
-    target = rng.normal(size=(10, 3))
-    mirrored = target * np.array([1.0, 1.0, -1.0])
-    fast = fit_rigid_batch(mirrored[None], target)
-    assert np.linalg.det(fast.rotation[0]) == pytest.approx(1.0)
-    np.testing.assert_allclose(fast.rotation[0], fit_rigid(mirrored, target).rotation, atol=1e-9)
-
-
 def _per_frame(bundle: Bundle, meshes: np.ndarray, times: np.ndarray,
-               params: OneEuroParams) -> np.ndarray:
-    """The live pipeline, one frame at a time: stabilise, infer, One Euro, clamp."""
+               settings: StreamConfig) -> np.ndarray:
+    """The solve one frame at a time from the naive twins: the loop-based rigid fit, the
+    inverse, the paper's One Euro loop (restarting after a gap), a clip."""
     model = InverseModel(bundle, threads=1)
-    filt = OneEuroFilter(params, gap_ns=250_000_000)
+    params = filter_params(settings, bundle.schema)
     neutral_stable = bundle.neutral[bundle.stable_indices]
+    state = None
     out = []
     for i, frame in enumerate(meshes):
-        transform, _ = stabilise(frame, bundle.stable_indices, neutral_stable)
-        inputs = transform.apply(frame[bundle.input_indices]).astype(np.float32)
+        fit = fit_rigid_naive(frame[bundle.stable_indices], neutral_stable)
+        inputs = fit.apply(frame[bundle.input_indices].astype(np.float64)).astype(np.float32)
         raw = model.solve(inputs[None])[0]
-        y = filt(raw, round(times[i] * 1e9), i)
+        t_ns = round(times[i] * 1e9)
+        if state is not None and t_ns - state.t_prev_ns > settings.gap_ms * 1e6:
+            state = None
+        y, state = one_euro_step_naive(state, raw, t_ns, params)
         out.append(np.clip(y, bundle.schema.lower, bundle.schema.upper))
     return np.array(out)
 
@@ -114,10 +90,13 @@ def _per_frame(bundle: Bundle, meshes: np.ndarray, times: np.ndarray,
 def test_batch_equals_per_frame_pipeline(bundle: Bundle) -> None:
     meshes, times, _ = _take(300)
     times[150:] += 0.5  # a stream gap: both must reset the filter there
-    params = OneEuroParams.uniform(bundle.control_count, min_cutoff=1.5, beta=0.3)
+    group = bundle.schema.controls[2].group
+    settings = StreamConfig(min_cutoff=1.5, beta=0.3,
+                            d_cutoff=2.0, gap_ms=300.0, stabilise=True,
+                            groups=(GroupFilter(group, 0.7, 1.0, 1.5),))
     batch = solve_take(bundle, meshes, times,
-                       SolveOptions(filter="causal", params=params, batch_size=64))
-    ref = _per_frame(bundle, meshes, times, params)
+                       SolveOptions(stream=settings, filter="causal", batch_size=64))
+    ref = _per_frame(bundle, meshes, times, settings)
     np.testing.assert_allclose(batch.controls, ref, atol=1e-5)
     assert batch.controls.shape == (300, bundle.control_count)
     assert batch.frames_per_second > 0 and batch.seconds > 0
@@ -130,7 +109,8 @@ def test_batch_recovers_controls_under_head_motion(bundle: Bundle) -> None:
     assert float(np.nanmax(result.fit_rms)) < 1e-3
     assert not result.off_manifold.any()
     # without stabilisation the head motion ruins the solve: the stage does real work
-    loose = solve_take(bundle, meshes, times, SolveOptions(filter="none", stabilise=False))
+    loose = solve_take(bundle, meshes, times, SolveOptions(
+        filter="none", stream=StreamConfig(stabilise=False)))
     assert np.abs(loose.controls - truth).max() > 0.1
 
 
@@ -140,7 +120,8 @@ def test_off_manifold_frames_are_flagged(bundle: Bundle) -> None:
     moving = np.setdiff1d(np.arange(bundle.vertex_count), bundle.stable_indices)
     meshes[20, moving] += rng.normal(scale=0.05, size=(moving.size, 3)).astype(np.float32)
     result = solve_take(bundle, meshes, times,
-                        SolveOptions(filter="none", off_manifold_threshold=0.01))
+                        SolveOptions(filter="none", stream=StreamConfig(
+                            off_manifold_threshold=0.01)))
     assert list(np.flatnonzero(result.off_manifold)) == [20]
     assert result.fit_max[20] > result.fit_rms[20] > 0.01
     assert np.all(result.thresholds == 0.01)
@@ -159,10 +140,10 @@ def test_zero_phase_has_no_lag_on_a_symmetric_bump(bundle: Bundle) -> None:
     meshes = rig.evaluate(truth)
     solver = BatchSolver(bundle, threads=1)
     smooth = solver.solve(meshes, times,
-                          SolveOptions(filter="zero_phase", smooth_hz=2.0, fit_error="off"))
+                          SolveOptions(filter="smooth", smooth_hz=2.0, fit_error="off"))
     causal = solver.solve(meshes, times, SolveOptions(
         filter="causal", fit_error="off",
-        params=OneEuroParams.uniform(RIG["controls"], min_cutoff=2.0)))
+        stream=StreamConfig(min_cutoff=2.0, beta=0.0)))
     assert int(np.argmax(smooth.controls[:, 2])) == 120
     assert int(np.argmax(causal.controls[:, 2])) > 123  # a causal low pass lags
     # symmetric input, symmetric output
@@ -191,37 +172,11 @@ def test_bad_takes_are_refused(bundle: Bundle) -> None:
     ("fit_error", "some", "fit_error must be one of"),
     ("batch_size", 0, "batch_size"),
     ("fit_sample", -1, "fit_sample"),
-    ("gap_s", 0.0, "gap_s"),
     ("smooth_hz", float("nan"), "smooth_hz"),
-    ("off_manifold_threshold", -1.0, "off_manifold_threshold"),
 ])
 def test_bad_options_are_refused_by_name(field: str, value: object, match: str) -> None:
     with pytest.raises(BatchError, match=match):
         SolveOptions(**{field: value})  # type: ignore[arg-type]
-
-
-def test_chunked_one_euro_equals_the_live_filter_frame_by_frame() -> None:
-    """one_euro_series over chunks, state carried, against OneEuroFilter one frame at a time,
-    across a stream gap and with per-control parameters."""
-    rng = np.random.default_rng(5)
-    t, c = 400, 6
-    times = np.cumsum(rng.uniform(1 / 90, 1 / 45, t))  # irregular spacing
-    times[250:] += 0.4  # a gap longer than gap_ns: both restart there
-    t_ns = np.round(times * 1e9).astype(np.int64)
-    x = np.cumsum(rng.normal(scale=0.05, size=(t, c)), axis=0)
-    params = OneEuroParams(rng.uniform(0.5, 3.0, c), rng.uniform(0.0, 2.0, c),
-                           rng.uniform(0.5, 2.0, c))
-    live = OneEuroFilter(params, gap_ns=250_000_000)
-    ref = np.array([live(x[i], int(t_ns[i]), i) for i in range(t)])
-    state = None
-    parts = []
-    for i0 in range(0, t, 37):
-        y, state = one_euro_series(x[i0 : i0 + 37], t_ns[i0 : i0 + 37], params,
-                                   gap_ns=250_000_000, state=state)
-        parts.append(y)
-    np.testing.assert_allclose(np.concatenate(parts), ref, rtol=0, atol=1e-12)
-    assert live.resets == 1
-    np.testing.assert_array_equal(np.concatenate(parts)[250], x[250])  # restarted: passes through
 
 
 def test_fit_error_batch_agrees_with_its_naive_twin() -> None:

@@ -13,18 +13,10 @@ from conftest import OTHER, TINY, tiny_rig
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from rigcast.export.synthetic_bundle import forward_graph, inverse_graph
-from rigcast.runtime.align import RigidTransform
 from rigcast.runtime.bundle import BundleError, load_bundle, write_bundle
 from rigcast.runtime.inference import ForwardModel, InverseModel, open_session
 from rigcast.runtime.manifold import floor_for_bundle, training_fit_error
-from rigcast.runtime.pipeline import (
-    clamp,
-    fit_error,
-    fit_error_naive,
-    fit_error_posed,
-    load_stream_model,
-    rotation_to_quaternion,
-)
+from rigcast.runtime.pipeline import load_stream_model, rotation_to_quaternion
 from scipy.spatial.transform import Rotation
 
 
@@ -89,26 +81,6 @@ def test_threshold_comes_from_training_figures_or_the_diagonal(tiny_bundle: Path
     assert training_fit_error({"training": {"inverse_fit_rms": float("nan")}}) is None
 
 
-def test_clamp_reports_clipping() -> None:
-    lo, hi = np.zeros(3, np.float32), np.ones(3, np.float32)
-    out = np.empty(3, np.float32)
-    values, clipped = clamp(np.array([0.5, 0.2, 0.9]), lo, hi, out)
-    assert not clipped and np.allclose(values, [0.5, 0.2, 0.9])
-    values, clipped = clamp(np.array([-0.1, 0.2, 1.5]), lo, hi, out)
-    assert clipped and np.allclose(values, [0.0, 0.2, 1.0])
-
-
-@settings(max_examples=40, deadline=None)
-@given(st.integers(3, 50), st.integers(0, 2**32 - 1))
-def test_fit_error_agrees_with_its_naive_twin(n: int, seed: int) -> None:
-    rng = np.random.default_rng(seed)
-    a = rng.normal(size=(n, 3)).astype(np.float32)
-    b = rng.normal(size=(n, 3)).astype(np.float32)
-    fast, naive = fit_error(a, b), fit_error_naive(a, b)
-    assert fast == pytest.approx(naive, rel=1e-5)
-    assert fit_error(a, a) == (0.0, 0.0)
-
-
 @settings(max_examples=60, deadline=None)
 @given(st.integers(0, 2**32 - 1))
 def test_quaternion_matches_scipy(seed: int) -> None:
@@ -127,17 +99,3 @@ def test_quaternion_of_half_turns() -> None:
         assert abs(q[0]) < 1e-12 and np.allclose(np.abs(q[1:]), axis)
 
 
-@settings(max_examples=30, deadline=None)
-@given(st.integers(3, 200), st.integers(0, 2**32 - 1), st.booleans())
-def test_posed_fit_error_agrees_with_fit_error_of_the_moved_mesh(n: int, seed: int,
-                                                                 posed: bool) -> None:
-    rng = np.random.default_rng(seed)
-    vertices = rng.normal(size=(n, 3)).astype(np.float32)
-    predicted = rng.normal(size=(n, 3)).astype(np.float32)
-    pose = RigidTransform(Rotation.random(random_state=seed).as_matrix(), rng.normal(size=3),
-                          float(rng.uniform(0.5, 2))) if posed else None
-    observed = vertices if pose is None else pose.apply(vertices.astype(np.float64))
-    want = fit_error_naive(predicted, observed)
-    got = fit_error_posed(predicted, vertices, pose, np.empty((n, 3), np.float32),
-                          np.empty(n, np.float32))
-    assert got == pytest.approx(want, rel=1e-4, abs=1e-5)

@@ -14,7 +14,6 @@ from rigcast.runtime.one_euro import (
     OneEuroFilter,
     OneEuroParams,
     one_euro_step,
-    one_euro_step_fast,
     one_euro_step_naive,
     zero_phase_smooth,
 )
@@ -53,16 +52,16 @@ def test_matches_paper_formulas_by_hand() -> None:
     for (t_ms, x), want, want_dx in zip(
         [(0, 0.0), (100, 1.0), (200, 1.0), (350, 2.0)], expected, expected_dx, strict=True
     ):
-        y, state = one_euro_step(state, np.array([x]), t_ms * MS, params)
+        y, state = one_euro_step_naive(state, np.array([x]), t_ms * MS, params)
         assert y[0] == pytest.approx(want, abs=2e-6)
         assert state.dx_prev[0] == pytest.approx(want_dx, abs=2e-5)
-    # The live filter's fast form against the same hand-worked values.
+    # The product's step (live and batch) against the same hand-worked values.
     consts = OneEuroConstants.of(params)
     fast = None
     for (t_ms, x), want, want_dx in zip(
         [(0, 0.0), (100, 1.0), (200, 1.0), (350, 2.0)], expected, expected_dx, strict=True
     ):
-        y, fast = one_euro_step_fast(fast, np.array([x]), t_ms * MS, consts)
+        y, fast = one_euro_step(fast, np.array([x]), t_ms * MS, consts)
         assert y[0] == pytest.approx(want, abs=2e-6)
         assert fast.dx_prev[0] == pytest.approx(want_dx, abs=2e-5)
 
@@ -70,8 +69,8 @@ def test_matches_paper_formulas_by_hand() -> None:
 @settings(max_examples=40, deadline=None)
 @given(seed=st.integers(min_value=0, max_value=2**32 - 1), steps=st.integers(2, 40))
 def test_fast_and_naive_agree(seed: int, steps: int) -> None:
-    # The live filter's step against the per-control loop, with per-control parameters,
-    # irregular intervals and repeated timestamps (te = 0 holds the output).
+    # The product's step against the per-control loop, with per-control parameters,
+    # irregular intervals, repeated timestamps (te = 0 holds the output) and steps back.
     rng = np.random.default_rng(seed)
     c = 7
     params = OneEuroParams(rng.uniform(0.1, 5.0, c), rng.uniform(0.0, 3.0, c),
@@ -80,35 +79,38 @@ def test_fast_and_naive_agree(seed: int, steps: int) -> None:
     fast = naive = None
     t = 0
     for _ in range(steps):
-        t += int(rng.choice([0, 1, 8, 30])) * MS
+        t += int(rng.choice([0, -1, 1, 8, 30])) * MS
         x = rng.normal(size=c).astype(np.float32)
-        y_fast, fast = one_euro_step_fast(fast, x, t, consts)
+        y_fast, fast = one_euro_step(fast, x, t, consts)
         y_naive, naive = one_euro_step_naive(naive, x, t, params)
         np.testing.assert_allclose(y_fast, y_naive, rtol=1e-10, atol=1e-12)
         np.testing.assert_allclose(fast.dx_prev, naive.dx_prev, rtol=1e-9, atol=1e-9)
         assert fast.t_prev_ns == naive.t_prev_ns
 
 
-@settings(max_examples=40, deadline=None)
-@given(
-    seed=st.integers(0, 2**32 - 1),
-    steps=st.integers(2, 20),
-)
-def test_vectorised_and_naive_agree(seed: int, steps: int) -> None:
-    rng = np.random.default_rng(seed)
-    c = 7
-    params = OneEuroParams(
-        rng.uniform(0.1, 5.0, c), rng.uniform(0.0, 2.0, c), rng.uniform(0.1, 5.0, c)
-    )
-    # Irregular spacing, including repeats (te = 0) and a step back in time.
-    times = np.cumsum(rng.choice([0, -1, 4, 8, 9, 33], size=steps)) * MS
-    fast = slow = None
-    for t in times:
-        x = rng.normal(size=c)
-        y_fast, fast = one_euro_step(fast, x, int(t), params)
-        y_slow, slow = one_euro_step_naive(slow, x, int(t), params)
-        np.testing.assert_allclose(y_fast, y_slow, rtol=1e-12, atol=1e-12)
-        np.testing.assert_allclose(fast.dx_prev, slow.dx_prev, rtol=1e-12, atol=1e-12)
+def test_a_run_in_chunks_equals_the_filter_frame_by_frame() -> None:
+    """OneEuroFilter.run (the batch solve) over chunks, state carried, against the filter called
+    one frame at a time (the live server), across a stream gap, with per-control parameters."""
+    rng = np.random.default_rng(5)
+    t, c = 400, 6
+    times = np.cumsum(rng.uniform(1 / 90, 1 / 45, t))  # irregular spacing
+    times[250:] += 0.4  # a gap longer than gap_ns: both restart there
+    t_ns = np.round(times * 1e9).astype(np.int64)
+    x = np.cumsum(rng.normal(scale=0.05, size=(t, c)), axis=0)
+    params = OneEuroParams(rng.uniform(0.5, 3.0, c), rng.uniform(0.0, 2.0, c),
+                           rng.uniform(0.5, 2.0, c))
+    live = OneEuroFilter(params, gap_ns=250_000_000)
+    ref = np.array([live(x[i], int(t_ns[i]), i) for i in range(t)])
+    batch = OneEuroFilter(params, gap_ns=250_000_000)
+    parts, flags = [], []
+    for i0 in range(0, t, 37):
+        y, filtered = batch.run(x[i0 : i0 + 37], t_ns[i0 : i0 + 37], np.arange(i0, min(t, i0 + 37)))
+        parts.append(y)
+        flags.append(filtered)
+    np.testing.assert_array_equal(np.concatenate(parts), ref)
+    assert live.resets == batch.resets == 1
+    np.testing.assert_array_equal(np.concatenate(parts)[250], x[250])  # restarted: passes through
+    assert list(np.flatnonzero(~np.concatenate(flags))) == [0, 250]
 
 
 def test_constant_input_stays_constant() -> None:
@@ -179,7 +181,7 @@ def test_resets_on_time_gap_and_frame_jump() -> None:
 
 
 def test_repeat_timestamp_holds_output() -> None:
-    params = OneEuroParams.uniform(2)
+    params = OneEuroConstants.of(OneEuroParams.uniform(2))
     _, s = one_euro_step(None, np.array([0.0, 1.0]), 5 * MS, params)
     y1, s1 = one_euro_step(s, np.array([1.0, 2.0]), 15 * MS, params)
     y2, s2 = one_euro_step(s1, np.array([100.0, 100.0]), 15 * MS, params)  # te = 0
@@ -191,7 +193,7 @@ def test_repeat_timestamp_holds_output() -> None:
 
 def test_irregular_timestamps_follow_te() -> None:
     # The same jump smooths less after a long interval than after a short one.
-    params = OneEuroParams.uniform(1, min_cutoff=1.0)
+    params = OneEuroConstants.of(OneEuroParams.uniform(1, min_cutoff=1.0))
     _, s = one_euro_step(None, np.array([0.0]), 0, params)
     short, _ = one_euro_step(s, np.array([1.0]), 2 * MS, params)
     long, _ = one_euro_step(s, np.array([1.0]), 50 * MS, params)
@@ -225,7 +227,7 @@ def test_per_group_params() -> None:
     with pytest.raises(FilterError, match="min_cutoff"):
         OneEuroParams.uniform(2, min_cutoff=0.0)
     with pytest.raises(FilterError, match="shape"):
-        one_euro_step(None, np.zeros(3), 0, p)
+        one_euro_step(None, np.zeros(3), 0, OneEuroConstants.of(p))
 
 
 def test_zero_phase_matches_scipy_filtfilt() -> None:

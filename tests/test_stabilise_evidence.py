@@ -55,7 +55,7 @@ def test_solve_and_serve_skip_stabilisation_without_a_rigid_region(tmp_path: Pat
     solver = BatchSolver(bundle, threads=1)
     by_default = solver.solve(meshes, times, SolveOptions(filter="none", fit_error="off"))
     forced = solver.solve(meshes, times, SolveOptions(filter="none", fit_error="off",
-                                                      stabilise=True))
+                                                      stream=StreamConfig(stabilise=True)))
     assert np.abs(forced.controls - controls).max() < 1e-3
     assert np.abs(by_default.controls - controls).max() > 0.05, "the shift was stabilised away"
     model = load_stream_model(path, threads=1, threshold=None, factor=3.0)
