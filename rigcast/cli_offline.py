@@ -12,7 +12,7 @@ from rigcast.cli_common import DEFAULT_FPS, Subparsers, say, sub
 from rigcast.errors import EXIT_OK, UserError
 
 if TYPE_CHECKING:
-    from rigcast.solve_take import SolveSettings
+    from rigcast.solve_take import FilterChoice, SolveSettings
 
 
 def add_build(subs: Subparsers) -> None:
@@ -108,22 +108,15 @@ def add_solve(subs: Subparsers) -> None:
                         "a skinned rig then animate its joints")
     p.add_argument("--bounds", type=Path, default=None,
                    help="the joint bounds the bundle was built with (glTF rigs, with --rig)")
-    p.add_argument("--filter", choices=("none", "causal", "smooth"), default="none",
-                   help="temporal filter")
+    p.add_argument("--filter", choices=("none", "causal", "smooth"), default=None,
+                   help="temporal filter (default: causal, the server's, with --config; else "
+                        "none)")
     p.add_argument("--fps", type=float, default=None,
                    help=f"frame rate of the take (default: the take's own, else {DEFAULT_FPS:g}, "
                         "said when assumed)")
-    p.add_argument("--stabilise", action=argparse.BooleanOptionalAction, default=None,
-                   help="remove rigid head motion (default: only when the bundle's rig has a "
-                        "rigid region, as its build measured)")
-    from rigcast.runtime.config import filter_defaults
+    from rigcast.runtime.serve_main import add_stream_arguments
 
-    min_cutoff, beta, _ = filter_defaults()
-    p.add_argument("--min-cutoff", type=float, default=min_cutoff,
-                   help="One Euro minimum cutoff, Hz (as `rigcast serve`)")
-    p.add_argument("--beta", type=float, default=beta,
-                   help="One Euro speed coefficient per unit of each control's range "
-                        "(as `rigcast serve`)")
+    add_stream_arguments(p)  # --config, --stream and serve's per-stream flags
     p.add_argument("--smooth-hz", type=float, default=3.0,
                    help="cutoff of the zero-phase smoother (--filter smooth), Hz")
     p.add_argument("--fit-error", choices=("subset", "full", "off"), default="subset",
@@ -208,10 +201,12 @@ def cmd_build(args: argparse.Namespace) -> int:
 
 
 def _solve_settings(args: argparse.Namespace) -> SolveSettings:
+    from rigcast.runtime.serve_main import stream_config_from_args
     from rigcast.solve_take import SolveSettings
 
-    return SolveSettings(filter=args.filter, fps=args.fps, stabilise=args.stabilise,
-                         min_cutoff=args.min_cutoff, beta=args.beta, smooth_hz=args.smooth_hz,
+    kind: FilterChoice = args.filter or ("causal" if args.config is not None else "none")
+    return SolveSettings(filter=kind, fps=args.fps, stream=stream_config_from_args(args),
+                         smooth_hz=args.smooth_hz,
                          fit_error=args.fit_error, batch_size=args.batch_size, rig=args.rig,
                          bounds=args.bounds)
 

@@ -17,6 +17,8 @@ from typing import Literal
 
 import numpy as np
 
+from rigcast.runtime.config import StreamConfig
+
 log = logging.getLogger(__name__)
 
 CUT_MIN_FRAMES = 10_000  # takes this long solve with the subset fit error's cut forward graph
@@ -27,14 +29,14 @@ FilterChoice = Literal["none", "causal", "smooth"]
 class SolveSettings:
     """How to solve every take: the `rigcast solve` options, checked by argparse's choices.
 
+    ``stream`` holds the per-stream settings exactly as `rigcast serve` takes them (filter and
+    per-group filters, d_cutoff, gap, stabilisation; from ``--config`` and the same flags).
     ``threads`` is onnxruntime's and the solver's thread count (None: all cores; a batch of
     parallel takes gives each worker 1)."""
 
     filter: FilterChoice = "none"
     fps: float | None = None
-    stabilise: bool | None = None
-    min_cutoff: float | None = None
-    beta: float | None = None
+    stream: StreamConfig = StreamConfig()  # noqa: RUF009 (frozen, so shared safely)
     smooth_hz: float = 3.0
     fit_error: Literal["subset", "full", "off"] = "subset"
     batch_size: int = 1024
@@ -79,9 +81,8 @@ def solve_one(bundle_path: Path, take_path: Path, out: Path,
     from rigcast.animation_out import write_controls
     from rigcast.errors import MismatchError
     from rigcast.forward_subset import slice_forward_graph
-    from rigcast.runtime.batch import BatchSolver, FilterKind, SolveOptions, filter_params
+    from rigcast.runtime.batch import BatchSolver, SolveOptions
     from rigcast.runtime.bundle import load_bundle
-    from rigcast.runtime.config import filter_defaults
     from rigcast.solve_out import flag_lines, frame_quality, head_pose, output_form
     from rigcast.takes import read_take
 
@@ -97,13 +98,9 @@ def solve_one(bundle_path: Path, take_path: Path, out: Path,
     # Cutting the forward graph needs `import onnx` (a second or two); it pays off on long takes.
     cutter = slice_forward_graph if take.vertices.shape[0] >= CUT_MIN_FRAMES else None
     solver = BatchSolver(bundle, threads=settings.threads, subset_graph=cutter)
-    min_cutoff, beta, _ = filter_defaults()
-    params = filter_params(bundle, settings.min_cutoff if settings.min_cutoff is not None
-                           else min_cutoff, settings.beta if settings.beta is not None else beta)
-    kinds: dict[str, FilterKind] = {"none": "none", "causal": "causal", "smooth": "zero_phase"}
-    options = SolveOptions(stabilise=settings.stabilise, filter=kinds[settings.filter],
-                           params=params, smooth_hz=settings.smooth_hz,
-                           fit_error=settings.fit_error, batch_size=settings.batch_size)
+    options = SolveOptions(stream=settings.stream, filter=settings.filter,
+                           smooth_hz=settings.smooth_hz, fit_error=settings.fit_error,
+                           batch_size=settings.batch_size)
     basis, skeleton = output_form(bundle, out, solver.forward, settings.rig, settings.bounds)
     result = solver.solve(take.vertices, take.times_s, options)
     quality = frame_quality(bundle, result, take.times_s)
