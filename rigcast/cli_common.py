@@ -63,12 +63,15 @@ def sub(subs: Subparsers, name: str, summary: str, description: str, examples: s
 
 
 def add_endpoints(p: argparse.ArgumentParser, *, to_help: str, from_help: str,
-                  stream_help: str, to_default: str | None = DEFAULT_INPUT) -> None:
-    """--to, --from and --stream: where a client finds the server, and which stream."""
+                  stream_help: str, to_default: str | None = DEFAULT_INPUT,
+                  many_streams: bool = False) -> None:
+    """--to, --from and --stream: where a client finds the server, and which stream (or, with
+    ``many_streams``, streams: --stream repeated)."""
     p.add_argument("--to", default=to_default, metavar="ENDPOINT", help=to_help)
     p.add_argument("--from", dest="source", default=DEFAULT_OUTPUT, metavar="ENDPOINT",
                    help=from_help)
-    p.add_argument("--stream", default=None, help=stream_help)
+    p.add_argument("--stream", default=None, help=stream_help,
+                   action="append" if many_streams else "store")
     p.add_argument("--server-key", type=Path, default=None, metavar="FILE.key",
                    help="the server's public key (CurveZMQ; from `rigcast keys`)")
     p.add_argument("--client-key", type=Path, default=None, metavar="FILE.key_secret",

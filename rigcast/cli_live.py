@@ -85,43 +85,64 @@ def add_send(subs: Subparsers) -> None:
 
 def add_watch(subs: Subparsers) -> None:
     p = sub(
-        subs, "watch", "live telemetry view in the terminal",
-        "Subscribe to a server's telemetry and show it live: per-stage latency p50, p95 and p99 "
-        "(p50 and p99 with --plain), input fps, drops and rejects by reason, fit error with "
-        "off-manifold frames highlighted, and the most active controls as bars. Ctrl-C ends it.",
+        subs, "watch", "the operator view: every stream's state, live, in the terminal",
+        "Subscribe to a server's publish endpoint and show each stream's health as a state with "
+        "a reason (live; server silent; no input for N s; off-manifold now; latency over the "
+        "frame budget at the stream's rate; bundle quality poor), the fit error against the "
+        "stream's threshold, per-stage latency p50/p95/p99, input fps, drops and rejects by "
+        "reason, and the most active controls as bars. --compact shows one line per actor (8 "
+        "actors fit an 80 x 24 terminal). Only the publish endpoint is needed; --to, when it "
+        "answers, names the controls in the bars. Ctrl-C ends it.",
         "  rigcast watch\n"
-        "  rigcast watch --from tcp://127.0.0.1:6001 --stream actor2\n"
-        "  rigcast watch --once          # one snapshot, then exit (scripts, CI)\n"
-        "  rigcast watch --duration 30   # watch for 30 s\n",
+        "  rigcast watch --compact                       # one line per actor\n"
+        "  rigcast watch --from tcp://10.0.0.5:5571 --to ''   # publish side only\n"
+        "  rigcast watch --once --plain  # one snapshot as text, then exit (scripts, CI)\n"
+        "  rigcast watch --plain --duration 30\n",
         cmd_watch,
     )
-    add_endpoints(p, to_help=SCHEMA_TO, from_help="the server's output (PUB) endpoint",
+    add_endpoints(p, to_help=SCHEMA_TO + " ('' for none)",
+                  from_help="the server's output (PUB) endpoint",
                   stream_help="show only this stream (default: all)")
     p.add_argument("--once", action="store_true",
                    help="print one snapshot after telemetry arrives, then exit")
     add_limits(p, frames=False)
+    p.add_argument("--compact", action="store_true", help="one line per actor")
     p.add_argument("--top", type=int, default=8,
                    help="how many of the most active controls to show")
     p.add_argument("--timeout", type=float, default=10.0,
                    help="with --once: seconds to wait for the first telemetry")
+    p.add_argument("--silent-after", type=float, default=1.0,
+                   help="seconds without any message before the server counts as silent")
     p.add_argument("--plain", action="store_true", help="plain text lines instead of the live view")
 
 
 def add_record(subs: Subparsers) -> None:
     p = sub(
-        subs, "record", "save the published controls of a stream to CSV or JSON",
-        "Subscribe to a server's controls and write the frames of one stream to a file "
-        "(.csv or .json, by extension), until --duration, --frames or Ctrl-C.",
-        "  rigcast record -o live.csv --duration 10\n"
-        "  rigcast record -o actor2.json --stream actor2 --frames 600\n",
+        subs, "record", "record every stream's published controls to NPZ, JSON or CSV",
+        "Subscribe to a server's publish endpoint and record the controls of every stream (or "
+        "the ones named with --stream) in one process, until --duration, --frames or Ctrl-C: "
+        "the sender's frame numbers, times from the sender's timestamps, the flag bits, and "
+        "the head pose the server's telemetry carries. .npz keeps everything; .json the same "
+        "as text; .csv writes one file per stream (the columns `rigcast solve` writes) and a "
+        ".meta.json beside it. The take's name (--take, default the file's name) is in the "
+        "file. Only the publish endpoint is needed; the control names are asked from --to "
+        "when it answers, else the controls are named by index.",
+        "  rigcast record -o take12.npz --duration 60\n"
+        "  rigcast record -o live.csv --stream actor2 --frames 600\n"
+        "  rigcast record -o scene3.npz --stream actor1 --stream actor2 --take scene3_take2\n"
+        "  rigcast record -o mon.json --from tcp://10.0.0.5:5571 --to ''   # publish side only\n",
         cmd_record,
     )
-    p.add_argument("-o", "--out", type=Path, required=True, help="output file, .csv or .json")
-    add_endpoints(p, to_help=SCHEMA_TO, from_help="the server's output (PUB) endpoint",
-                  stream_help=FIRST_STREAM)
+    p.add_argument("-o", "--out", type=Path, required=True, help="output file: .npz, .json or .csv")
+    add_endpoints(p, to_help="the server's input endpoint, asked for the control names ('' "
+                             "for none)",
+                  from_help="the server's output (PUB) endpoint",
+                  stream_help="record this stream (repeat for several; default: every stream)",
+                  many_streams=True)
+    p.add_argument("--take", default=None, help="the take's name (default: the output's name)")
     add_limits(p)
-    p.add_argument("--timeout", type=float, default=5.0,
-                   help="seconds to wait for the schema reply")
+    p.add_argument("--timeout", type=float, default=2.0,
+                   help="seconds to wait for each stream's schema reply")
 
 
 def add_osc(subs: Subparsers) -> None:
@@ -254,6 +275,7 @@ def cmd_send(args: argparse.Namespace) -> int:
 
 
 def cmd_watch(args: argparse.Namespace) -> int:
+    """The view until --duration (0) or Ctrl-C (KeyboardInterrupt: 130 from the caller)."""
     from rigcast.watch import watch_from_args
 
     return watch_from_args(args)
@@ -262,6 +284,8 @@ def cmd_watch(args: argparse.Namespace) -> int:
 def cmd_record(args: argparse.Namespace) -> int:
     from rigcast.record import record_from_args
 
+    if args.to == "":
+        args.to = None
     return record_from_args(args)
 
 

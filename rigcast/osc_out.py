@@ -97,6 +97,7 @@ class RelayStats:
     frames: int
     send_errors: int
     seconds: float
+    interrupted: bool = False  # ended by Ctrl-C
 
 
 def relay(subscriber: ControlsSubscriber, names: Sequence[str], host: str, port: int, *,
@@ -123,15 +124,16 @@ def relay(subscriber: ControlsSubscriber, names: Sequence[str], host: str, port:
                     "closed stage network", host, port)
     start = time.monotonic()
     with socket.socket(family, kind, proto) as udp:
-        frames, errors = _relay_loop(subscriber, udp, target, addresses, frame_address,
-                                     max_frames, duration_s, idle_timeout_s, should_stop)
-    return RelayStats(frames, errors, time.monotonic() - start)
+        frames, errors, interrupted = _relay_loop(subscriber, udp, target, addresses,
+                                                  frame_address, max_frames, duration_s,
+                                                  idle_timeout_s, should_stop)
+    return RelayStats(frames, errors, time.monotonic() - start, interrupted)
 
 
 def _relay_loop(subscriber: ControlsSubscriber, udp: socket.socket, target: Any,
                 addresses: Sequence[str], frame_address: str, max_frames: int | None,
                 duration_s: float | None, idle_timeout_s: float | None,
-                should_stop: Callable[[], bool] | None) -> tuple[int, int]:
+                should_stop: Callable[[], bool] | None) -> tuple[int, int, bool]:
     frames = errors = 0
     start = last = time.monotonic()
     try:
@@ -155,7 +157,8 @@ def _relay_loop(subscriber: ControlsSubscriber, udp: socket.socket, target: Any,
                 log.debug("OSC send failed for frame %d: %s", msg.frame, exc)
     except KeyboardInterrupt:
         log.info("OSC relay stopped by Ctrl-C after %d frames", frames)
-    return frames, errors
+        return frames, errors, True
+    return frames, errors, False
 
 
 def parse_target(text: str) -> tuple[str, int]:
@@ -169,9 +172,8 @@ def parse_target(text: str) -> tuple[str, int]:
 
 def osc_from_args(args: argparse.Namespace) -> int:
     """`rigcast osc`: subscribe to one stream's controls and relay them (see the module)."""
-    from rigcast.errors import EXIT_OK, NoAnswerError, UserError
-    from rigcast.record import fetch_schema
-    from rigcast.watch import curve_from_args, stream_or_discover
+    from rigcast.connect import curve_from_args, fetch_schema, stream_or_discover
+    from rigcast.errors import EXIT_INTERRUPTED, EXIT_OK, NoAnswerError, UserError
 
     try:
         host, port = parse_target(args.osc)
@@ -187,9 +189,9 @@ def osc_from_args(args: argparse.Namespace) -> int:
     with ControlsSubscriber(stream, args.source, curve=curve) as sub:
         stats = relay(sub, schema.names, host, port, prefix=args.prefix, max_frames=args.frames,
                       duration_s=args.duration)
-    if stats.frames == 0:
+    if stats.frames == 0 and not stats.interrupted:
         raise NoAnswerError(f"no controls arrived for stream {stream!r} from {args.source}",
                             "is a sender streaming to the server? (`rigcast send ...`)")
     sys.stdout.write(f"relayed {stats.frames} frames as OSC bundles in {stats.seconds:.1f} s "
                      f"({stats.send_errors} send errors)\n")
-    return EXIT_OK
+    return EXIT_INTERRUPTED if stats.interrupted else EXIT_OK

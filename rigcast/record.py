@@ -1,7 +1,12 @@
-"""Record the controls a server publishes for one stream, and write them as CSV or JSON.
+"""Record what a server publishes: the controls of every stream (or the chosen ones) in one
+process, with the sender's frame numbers, the flags, and the head pose from telemetry; written
+by ``rigcast.recording_out`` as NPZ, JSON or CSV with the take's name.
 
-Times in the file are the sender's timestamps, relative to the first recorded frame, so the
-recording keeps the take's own timing (and its gaps) rather than the network's.
+Only the server's publish endpoint is needed. The control names come from the input endpoint
+when it answers (``--to``); without it the controls are named by index.
+
+Times in the file are the sender's timestamps, relative to each stream's first recorded frame,
+so the recording keeps the take's own timing (and its gaps) rather than the network's.
 """
 
 from __future__ import annotations
@@ -11,18 +16,19 @@ import logging
 import sys
 import time
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
-from rigcast.errors import EXIT_OK, NoAnswerError, UserError
-from rigcast.runtime.client import ControlsSubscriber, MeshSender, ServerError
-from rigcast.runtime.keys import ClientCurve
-from rigcast.runtime.protocol import ControlsMessage, schema_from_reply
-from rigcast.runtime.schema import ControlSchema
-from rigcast.send import request_schema
+from rigcast.connect import fetch_schema
+from rigcast.recording_out import SUFFIXES, StreamRecording, pose_row, write_recording
+from rigcast.runtime.client import Subscriber
+from rigcast.runtime.protocol import ControlsMessage
 
 log = logging.getLogger(__name__)
+
+__all__ = ["Recording", "Session", "collect", "fetch_schema", "record_controls",
+           "record_from_args", "record_streams"]
 
 
 @dataclass(frozen=True)
@@ -42,17 +48,6 @@ class Recording:
     @property
     def count(self) -> int:
         return int(self.frames.shape[0])
-
-    def times_s(self) -> np.ndarray:
-        """(T,) seconds from the first frame's send time; strictly increasing."""
-        if self.count == 0:
-            return np.zeros(0)
-        t = (self.t_send_ns - self.t_send_ns[0]).astype(np.float64) / 1e9
-        # Equal timestamps (a coarse sender clock) would break writers that need increasing times.
-        for i in range(1, t.shape[0]):
-            if t[i] <= t[i - 1]:
-                t[i] = t[i - 1] + 1e-6
-        return t
 
 
 def collect(messages: list[ControlsMessage], arrived_ns: list[int], stream: str) -> Recording:
@@ -83,21 +78,50 @@ def collect(messages: list[ControlsMessage], arrived_ns: list[int], stream: str)
     )
 
 
-def record_controls(
-    subscriber: ControlsSubscriber,
-    *,
-    duration_s: float | None = None,
-    max_frames: int | None = None,
-    idle_timeout_s: float | None = None,
-    should_stop: Callable[[], bool] | None = None,
-) -> Recording:
-    """Receive the subscriber's controls until ``duration_s``, ``max_frames``, Ctrl-C,
-    ``should_stop()``, or ``idle_timeout_s`` without a message."""
-    messages: list[ControlsMessage] = []
-    arrived: list[int] = []
+@dataclass
+class _Stream:
+    messages: list[ControlsMessage] = field(default_factory=list)
+    arrived: list[int] = field(default_factory=list)
+    pose: dict[int, list[float]] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class Session:
+    """What one recording run received, per stream; ``interrupted`` when Ctrl-C ended it."""
+
+    streams: dict[str, Recording]
+    poses: dict[str, dict[int, list[float]]]
+    interrupted: bool
+
+    def for_file(self, names: dict[str, tuple[str, ...]]) -> list[StreamRecording]:
+        """Streams with frames, as the writers take them (controls named by ``names``)."""
+        out = []
+        for stream, rec in self.streams.items():
+            if rec.count == 0:
+                continue
+            poses = self.poses.get(stream, {})
+            width = rec.values.shape[1]
+            label = names.get(stream)
+            if label is None or len(label) != width:
+                label = tuple(f"#{i}" for i in range(width))
+            frames = np.array(sorted(poses), dtype=np.int64)
+            pose = (np.array([poses[f] for f in frames.tolist()], np.float64) if poses
+                    else np.zeros((0, 8)))
+            out.append(StreamRecording(stream, label, rec.frames, rec.t_send_ns, rec.t_recv_ns,
+                                       rec.t_pub_ns, rec.flags, rec.values, frames, pose))
+        return out
+
+
+def record_streams(subscriber: Subscriber, *, duration_s: float | None = None,
+                   max_frames: int | None = None, idle_timeout_s: float | None = None,
+                   should_stop: Callable[[], bool] | None = None) -> Session:
+    """Receive controls (and telemetry, for the head pose) until ``duration_s``, ``max_frames``
+    frames of every stream, ``idle_timeout_s`` without controls, ``should_stop()`` or Ctrl-C."""
+    streams: dict[str, _Stream] = {}
     start = last = time.monotonic()
+    interrupted = False
     try:
-        while max_frames is None or len(messages) < max_frames:
+        while True:
             now = time.monotonic()
             if duration_s is not None and now - start >= duration_s:
                 break
@@ -105,46 +129,69 @@ def record_controls(
                 break
             if should_stop is not None and should_stop():
                 break
+            if max_frames is not None and streams and all(
+                    len(s.messages) >= max_frames for s in streams.values()):
+                break
             msg = subscriber.recv(timeout_ms=50)
-            if isinstance(msg, ControlsMessage) and msg.stream == subscriber.stream:
-                messages.append(msg)
-                arrived.append(time.time_ns())
+            if isinstance(msg, ControlsMessage):
+                got = streams.setdefault(msg.stream, _Stream())
+                if max_frames is None or len(got.messages) < max_frames:
+                    got.messages.append(msg)
+                    got.arrived.append(time.time_ns())
                 last = time.monotonic()
+            elif isinstance(msg, dict) and msg.get("type") == "telemetry":
+                row = pose_row(msg.get("pose") or {})
+                frame = msg.get("last_frame")
+                if row is not None and isinstance(frame, int):
+                    streams.setdefault(str(msg["stream"]), _Stream()).pose[frame] = row
     except KeyboardInterrupt:
-        log.info("recording stopped by Ctrl-C after %d frames", len(messages))
-    return collect(messages, arrived, subscriber.stream)
+        interrupted = True
+        log.info("recording stopped by Ctrl-C")
+    return Session({name: collect(s.messages, s.arrived, name) for name, s in streams.items()},
+                   {name: s.pose for name, s in streams.items()}, interrupted)
 
 
-def fetch_schema(endpoint: str, stream: str, timeout_s: float,
-                 curve: ClientCurve | None = None) -> ControlSchema:
-    with MeshSender(endpoint, curve=curve) as sender:
-        try:
-            reply = request_schema(sender, stream, timeout_s)
-        except TimeoutError:
-            raise NoAnswerError(
-                f"no server answered at {endpoint} within {timeout_s:g} s") from None
-        except ServerError as err:
-            raise UserError(f"the server at {endpoint} refused stream {stream!r} ({err})",
-                            "pass --stream with a stream the server serves") from None
-    return schema_from_reply(reply)
+def record_controls(subscriber: Subscriber, *, duration_s: float | None = None,
+                    max_frames: int | None = None, idle_timeout_s: float | None = None,
+                    should_stop: Callable[[], bool] | None = None) -> Recording:
+    """One stream's controls (the subscriber's first stream) as a Recording."""
+    session = record_streams(subscriber, duration_s=duration_s, max_frames=max_frames,
+                             idle_timeout_s=idle_timeout_s, should_stop=should_stop)
+    stream = subscriber.streams[0] if subscriber.streams else next(iter(session.streams), "")
+    return session.streams.get(stream) or collect([], [], stream)
 
 
 def record_from_args(args: argparse.Namespace) -> int:
-    from rigcast.animation_out import write_controls
-    from rigcast.watch import curve_from_args, stream_or_discover
+    from rigcast.connect import curve_from_args, schema_or_none
+    from rigcast.errors import EXIT_INTERRUPTED, EXIT_OK, NoAnswerError, UserError
 
-    if args.out.suffix.lower() not in (".csv", ".json"):
-        raise UserError(f"{args.out}: record writes .csv or .json, not {args.out.suffix!r}",
-                        "give an output path ending in .csv or .json", code=2)
+    suffix = args.out.suffix.lower()
+    if suffix not in SUFFIXES:
+        raise UserError(f"{args.out}: record writes .npz, .json or .csv, not {suffix!r}",
+                        "give an output path ending in .npz, .json or .csv", code=2)
     curve = curve_from_args(args)
-    stream = stream_or_discover(args.stream, args.source, args.timeout, curve)
-    schema = fetch_schema(args.to, stream, args.timeout, curve)
-    with ControlsSubscriber(stream, args.source, curve=curve) as sub:
-        rec = record_controls(sub, duration_s=args.duration, max_frames=args.frames)
-    if rec.count == 0:
-        raise NoAnswerError(f"no controls arrived for stream {stream!r} from {args.source}",
+    chosen = list(dict.fromkeys(args.stream)) if args.stream else None
+    take = args.take or args.out.stem
+    with Subscriber(args.source, streams=chosen, telemetry=True, curve=curve) as sub:
+        sys.stderr.write(f"recording {', '.join(chosen) if chosen else 'every stream'} from "
+                         f"{args.source} as take {take!r}; Ctrl-C stops\n")
+        sys.stderr.flush()
+        session = record_streams(sub, duration_s=args.duration, max_frames=args.frames)
+    names = {}
+    for stream in session.streams:
+        schema = schema_or_none(args.to, stream, args.timeout, curve)
+        if schema is not None:
+            names[stream] = schema.names
+    streams = session.for_file(names)
+    if not streams:
+        if session.interrupted:
+            return EXIT_INTERRUPTED
+        raise NoAnswerError(f"no controls arrived from {args.source}",
                             "is a sender streaming to the server? (`rigcast send ...`)")
-    write_controls(args.out, schema, rec.values, rec.times_s())
-    sys.stdout.write(f"recorded {rec.count} frames of stream {stream!r} "
-                     f"(frames {int(rec.frames[0])}..{int(rec.frames[-1])}) to {args.out}\n")
-    return EXIT_OK
+    files = write_recording(args.out, take, streams)
+    for s in streams:
+        sys.stdout.write(f"recorded {s.count} frames of stream {s.stream!r} (frames "
+                         f"{int(s.frames[0])}..{int(s.frames[-1])}, {s.pose.shape[0]} head-pose "
+                         f"samples{'' if s.stream in names else ', controls named by index'})\n")
+    sys.stdout.write(f"take {take!r} written to {', '.join(str(f) for f in files)}\n")
+    return EXIT_INTERRUPTED if session.interrupted else EXIT_OK

@@ -25,8 +25,8 @@ from typing import Any
 
 import numpy as np
 
-from rigcast.errors import EXIT_OK, MismatchError, NoAnswerError, UserError
-from rigcast.runtime.client import MeshSender, ServerError
+from rigcast.errors import EXIT_OK, MismatchError
+from rigcast.runtime.client import MeshSender
 
 log = logging.getLogger(__name__)
 
@@ -143,48 +143,12 @@ def corrupt_message(kind: str, stream: str, frame: int, vertices: np.ndarray,
     raise RehearsalError(f"unknown corruption {kind!r}; known: {CORRUPTIONS}")
 
 
-_REPLY_CAP = 1 << 20
-
-
-def request_schema(sender: MeshSender, stream: str, timeout_s: float) -> dict[str, Any]:
-    """``MeshSender.request_schema`` that accepts replies up to 1 MiB.
-
-    The client decodes replies with the 4 KiB header cap meant for incoming mesh headers, and the
-    schema reply of a rig with ~45 controls is larger than that, so the reply would be dropped.
-    Raises TimeoutError or ServerError as the client does.
-    """
-    from rigcast.runtime import protocol
-
-    sender.socket.send(protocol.encode_schema_request(stream))
-    deadline = time.monotonic() + timeout_s
-    while (left := deadline - time.monotonic()) > 0:
-        if not sender.socket.poll(int(left * 1000) + 1):
-            continue
-        raw = sender.socket.recv_multipart()[0]
-        try:
-            reply = protocol.decode_header(raw, max_header_bytes=_REPLY_CAP)
-        except protocol.FrameError as err:
-            log.warning("undecodable reply from the server: %s", err)
-            continue
-        if reply.get("stream") != stream:
-            continue
-        if reply["type"] == "schema_reply":
-            return reply
-        if reply["type"] == "error" and reply.get("frame") is None:
-            raise ServerError(reply)
-    raise TimeoutError(f"no schema_reply for stream {stream!r} within {timeout_s} s")
-
-
 def check_server(sender: MeshSender, stream: str, vertex_count: int, timeout_s: float,
                  endpoint: str) -> dict[str, Any]:
     """Ask for the stream's schema; raise when there is no answer or the rig does not match."""
-    try:
-        reply = request_schema(sender, stream, timeout_s)
-    except TimeoutError:
-        raise NoAnswerError(f"no server answered at {endpoint} within {timeout_s:g} s") from None
-    except ServerError as err:
-        raise UserError(f"the server at {endpoint} refused stream {stream!r} ({err})",
-                        "pass --stream with a stream the server serves") from None
+    from rigcast.connect import schema_reply
+
+    reply = schema_reply(endpoint, stream, timeout_s, sender=sender)
     if int(reply["vertices"]) != vertex_count:
         raise MismatchError(
             f"the take has {vertex_count} vertices but stream {stream!r} at {endpoint} serves "
@@ -273,8 +237,8 @@ def stream_take(
 
 
 def send_from_args(args: argparse.Namespace) -> int:
+    from rigcast.connect import curve_from_args, stream_or_discover
     from rigcast.takes import read_take
-    from rigcast.watch import curve_from_args, stream_or_discover
 
     # Every option is checked before the take is read or a server is asked.
     if args.fps is not None and not (math.isfinite(args.fps) and args.fps > 0):

@@ -1,15 +1,19 @@
 """A small client for the rigcast server, and the reference for clients in other languages.
 
-MeshSender (DEALER) sends mesh frames and requests to the server's ROUTER; ControlsSubscriber
-(SUB) reads controls, telemetry and events from its PUB. The wire format is docs/protocol.md.
+MeshSender (DEALER) sends mesh frames and requests (schema, reload) to the server's ROUTER;
+Subscriber (SUB) reads controls, telemetry and events of one stream, several or all from its PUB
+(ControlsSubscriber: one stream); discover_streams names the streams a server publishes. Every
+rigcast command that talks to a server goes through these. The wire format is docs/protocol.md.
 """
 
 from __future__ import annotations
 
 import logging
+import math
 import secrets
 import time
 from collections import deque
+from collections.abc import Sequence
 from typing import Any
 
 import numpy as np
@@ -130,7 +134,77 @@ class MeshSender:
         self.close()
 
 
-class ControlsSubscriber:
+class Subscriber:
+    """A SUB on the server's PUB: controls, telemetry and events of one stream, several, or
+    all of them (``streams=None``), decoded. Needs only the publish endpoint, so a monitoring
+    machine never needs the server's input."""
+
+    def __init__(
+        self,
+        endpoint: str = DEFAULT_OUTPUT,
+        *,
+        streams: Sequence[str] | None = None,
+        controls: bool = True,
+        telemetry: bool = False,
+        events: bool = False,
+        context: zmq.Context | None = None,
+        rcvhwm: int = 1000,
+        curve: ClientCurve | None = None,
+    ) -> None:
+        self.streams = None if streams is None else tuple(streams)
+        prefixes = [p for p, on in ((protocol.TOPIC_CONTROLS, controls),
+                                    (protocol.TOPIC_TELEMETRY, telemetry)) if on]
+        if self.streams is None:
+            subscriptions = list(prefixes)
+        else:
+            subscriptions = [p + s.encode("utf-8") for p in prefixes for s in self.streams]
+        if events:
+            subscriptions.append(protocol.TOPIC_EVENTS)
+        self.topics: set[bytes] = set(subscriptions)
+        self.socket = (context or zmq.Context.instance()).socket(zmq.SUB)
+        self.socket.setsockopt(zmq.RCVHWM, rcvhwm)
+        self.socket.setsockopt(zmq.LINGER, 0)
+        for topic in subscriptions:
+            self.socket.setsockopt(zmq.SUBSCRIBE, topic)
+        if curve is not None:
+            curve.apply(self.socket)
+        self.socket.connect(endpoint)
+        self.last_heard = -math.inf  # time.monotonic() of the last message of any kind
+
+    def _wanted(self, topic: bytes) -> bool:
+        # Subscriptions are prefix matches ("ctl.a" also receives "ctl.ab"): with named streams
+        # the topic is compared exactly; with all streams every subscribed prefix is wanted.
+        return self.streams is None or topic in self.topics
+
+    def recv(self, timeout_ms: int = 1000) -> protocol.ControlsMessage | dict[str, Any] | None:
+        """The next wanted message, or None after timeout_ms. Any message the server sends,
+        even one this version cannot decode, updates ``last_heard``."""
+        deadline = time.monotonic() + timeout_ms / 1000
+        while True:
+            left = int((deadline - time.monotonic()) * 1000)
+            if not self.socket.poll(max(left, 0), zmq.POLLIN):
+                return None
+            frames = self.socket.recv_multipart()
+            self.last_heard = time.monotonic()
+            if self._wanted(frames[0]):
+                try:
+                    return protocol.decode_published(frames)
+                except protocol.FrameError as err:
+                    log.debug("undecodable message on %r: %s", frames[0], err)
+            if time.monotonic() >= deadline:  # other streams' traffic must not hold us past it
+                return None
+
+    def close(self) -> None:
+        self.socket.close(linger=0)
+
+    def __enter__(self) -> Subscriber:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+
+class ControlsSubscriber(Subscriber):
     """Receives one stream's controls and, if asked, its telemetry and the server's events."""
 
     def __init__(
@@ -146,48 +220,31 @@ class ControlsSubscriber:
         curve: ClientCurve | None = None,
     ) -> None:
         self.stream = stream
-        name = stream.encode("utf-8")
-        self.topics: set[bytes] = set()
-        if controls:
-            self.topics.add(protocol.TOPIC_CONTROLS + name)
-        if telemetry:
-            self.topics.add(protocol.TOPIC_TELEMETRY + name)
-        if events:
-            self.topics.add(protocol.TOPIC_EVENTS)
-        self.socket = (context or zmq.Context.instance()).socket(zmq.SUB)
-        self.socket.setsockopt(zmq.RCVHWM, rcvhwm)
-        self.socket.setsockopt(zmq.LINGER, 0)
-        for topic in self.topics:
-            self.socket.setsockopt(zmq.SUBSCRIBE, topic)
-        if curve is not None:
-            curve.apply(self.socket)
-        self.socket.connect(endpoint)
-
-    def recv(self, timeout_ms: int = 1000) -> protocol.ControlsMessage | dict[str, Any] | None:
-        """The next message for this subscription, or None after timeout_ms.
-
-        Subscriptions are prefix matches ("ctl.a" also receives "ctl.ab"), so the topic is
-        compared exactly here and other streams' messages are skipped.
-        """
-        deadline = time.monotonic() + timeout_ms / 1000
-        while True:
-            left = int((deadline - time.monotonic()) * 1000)
-            if not self.socket.poll(max(left, 0), zmq.POLLIN):
-                return None
-            frames = self.socket.recv_multipart()
-            if frames[0] in self.topics:
-                try:
-                    return protocol.decode_published(frames)
-                except protocol.FrameError as err:
-                    log.warning("undecodable message on %r: %s", frames[0], err)
-            if time.monotonic() >= deadline:  # other streams' traffic must not hold us past it
-                return None
-
-    def close(self) -> None:
-        self.socket.close(linger=0)
+        super().__init__(endpoint, streams=(stream,), controls=controls, telemetry=telemetry,
+                         events=events, context=context, rcvhwm=rcvhwm, curve=curve)
 
     def __enter__(self) -> ControlsSubscriber:
         return self
 
-    def __exit__(self, *exc: object) -> None:
-        self.close()
+
+def discover_streams(endpoint: str = DEFAULT_OUTPUT, *, timeout_s: float = 3.0,
+                     settle_s: float = 0.3, curve: ClientCurve | None = None,
+                     context: zmq.Context | None = None) -> list[str]:
+    """The stream ids a server's telemetry names, in the order first heard: waits up to
+    ``timeout_s`` for the first, then ``settle_s`` more for the others (every stream's telemetry
+    goes out each tick). TimeoutError when none is heard."""
+    with Subscriber(endpoint, controls=False, telemetry=True, curve=curve,
+                    context=context) as sub:
+        found: list[str] = []
+        deadline = time.monotonic() + timeout_s
+        while (left := deadline - time.monotonic()) > 0:
+            msg = sub.recv(int(left * 1000) + 1)
+            if isinstance(msg, dict) and msg.get("type") == "telemetry":
+                if msg["stream"] not in found:
+                    found.append(str(msg["stream"]))
+                if len(found) == 1:
+                    deadline = min(deadline, time.monotonic() + settle_s)
+    if not found:
+        raise TimeoutError(f"no telemetry from {endpoint} within {timeout_s:g} s to learn the "
+                           "stream ids")
+    return found

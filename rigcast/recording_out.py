@@ -1,0 +1,144 @@
+"""Recordings to files: NPZ (every stream, everything), JSON, or CSV (one file per stream).
+
+Every format keeps, per stream, the sender's frame numbers (not row numbers), the times (from the
+sender's timestamps, relative to the stream's first recorded frame), the flag bits and the
+controls, and the take's name; NPZ and JSON also keep the server's timestamps and the head-pose
+samples the server's telemetry carried (about 10 per second, each with the frame it belongs to).
+
+- ``.npz``: ``take``, ``streams``; per stream ``<s>/names``, ``<s>/frame``, ``<s>/time_s``,
+  ``<s>/t_send_ns``, ``<s>/t_recv_ns``, ``<s>/t_pub_ns``, ``<s>/flags``, ``<s>/values`` (T, C)
+  and ``<s>/pose_frame`` (P,), ``<s>/pose`` (P, 8): tx ty tz qx qy qz qw scale.
+- ``.json``: {"take", "streams": {s: {"controls", "frame", "time_s", "flags", "values", "pose"}}}.
+- ``.csv``: ``frame,time_s,<controls...>,off_manifold,clamped,stale`` (the columns
+  ``rigcast.animation_out.read_csv`` reads); several streams go to ``<stem>.<stream>.csv``; the
+  take's name and the pose samples go beside it in ``<stem>.meta.json``.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+import logging
+import re
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from rigcast.runtime.protocol import FLAG_CLAMPED, FLAG_OFF_MANIFOLD, FLAG_STALE
+
+log = logging.getLogger(__name__)
+
+SUFFIXES = (".npz", ".json", ".csv")
+POSE_FIELDS = ("tx", "ty", "tz", "qx", "qy", "qz", "qw", "scale")
+_CSV_FLAGS = (("off_manifold", FLAG_OFF_MANIFOLD), ("clamped", FLAG_CLAMPED),
+              ("stale", FLAG_STALE))
+
+
+@dataclass(frozen=True)
+class StreamRecording:
+    """One stream's frames, sorted by the sender's frame number. frames, t_*_ns, flags (T,)
+    int64; values (T, C) float32; names (C,) (``#0``... when no schema was available);
+    pose_frame (P,) int64 and pose (P, 8) float64 (POSE_FIELDS) from telemetry."""
+
+    stream: str
+    names: tuple[str, ...]
+    frames: np.ndarray
+    t_send_ns: np.ndarray
+    t_recv_ns: np.ndarray
+    t_pub_ns: np.ndarray
+    flags: np.ndarray
+    values: np.ndarray
+    pose_frame: np.ndarray
+    pose: np.ndarray
+
+    @property
+    def count(self) -> int:
+        return int(self.frames.shape[0])
+
+    def times_s(self) -> np.ndarray:
+        """(T,) seconds from the first frame's send time; strictly increasing (equal stamps of a
+        coarse sender clock are spread by 1 µs, as writers need increasing times)."""
+        if self.count == 0:
+            return np.zeros(0)
+        t = (self.t_send_ns - self.t_send_ns[0]).astype(np.float64) / 1e9
+        for i in range(1, t.shape[0]):
+            if t[i] <= t[i - 1]:
+                t[i] = t[i - 1] + 1e-6
+        return t
+
+
+def pose_row(pose: Mapping[str, Any]) -> list[float] | None:
+    """A telemetry ``pose`` dict (quaternion_wxyz, translation, scale) -> POSE_FIELDS order."""
+    try:
+        w, x, y, z = (float(v) for v in pose["quaternion_wxyz"])
+        tx, ty, tz = (float(v) for v in pose["translation"])
+        return [tx, ty, tz, x, y, z, w, float(pose.get("scale", 1.0))]
+    except (KeyError, TypeError, ValueError):
+        return None
+
+
+def _safe(stream: str) -> str:
+    return re.sub(r"[^A-Za-z0-9_.-]", "_", stream)
+
+
+def write_recording(path: Path, take: str, streams: Sequence[StreamRecording]) -> list[Path]:
+    """Write the streams to ``path`` (format by suffix); returns the files written."""
+    suffix = path.suffix.lower()
+    if suffix == ".npz":
+        return [_write_npz(path, take, streams)]
+    if suffix == ".json":
+        return [_write_json(path, take, streams)]
+    return _write_csvs(path, take, streams)
+
+
+def _write_npz(path: Path, take: str, streams: Sequence[StreamRecording]) -> Path:
+    arrays: dict[str, Any] = {"take": np.array(take), "streams": np.array([s.stream
+                                                                           for s in streams])}
+    for s in streams:
+        arrays.update({f"{s.stream}/names": np.array(s.names), f"{s.stream}/frame": s.frames,
+                       f"{s.stream}/time_s": s.times_s(), f"{s.stream}/t_send_ns": s.t_send_ns,
+                       f"{s.stream}/t_recv_ns": s.t_recv_ns, f"{s.stream}/t_pub_ns": s.t_pub_ns,
+                       f"{s.stream}/flags": s.flags, f"{s.stream}/values": s.values,
+                       f"{s.stream}/pose_frame": s.pose_frame, f"{s.stream}/pose": s.pose})
+    with path.open("wb") as fh:
+        np.savez_compressed(fh, **arrays)
+    return path
+
+
+def _pose_json(s: StreamRecording) -> list[dict[str, Any]]:
+    return [{"frame": int(f), **dict(zip(POSE_FIELDS, map(float, row), strict=True))}
+            for f, row in zip(s.pose_frame, s.pose, strict=True)]
+
+
+def _write_json(path: Path, take: str, streams: Sequence[StreamRecording]) -> Path:
+    doc = {"take": take, "streams": {s.stream: {
+        "controls": list(s.names), "frame": s.frames.tolist(), "time_s": s.times_s().tolist(),
+        "t_send_ns": s.t_send_ns.tolist(), "t_pub_ns": s.t_pub_ns.tolist(),
+        "flags": s.flags.tolist(), "values": s.values.astype(float).tolist(),
+        "pose": _pose_json(s)} for s in streams}}
+    path.write_text(json.dumps(doc))
+    return path
+
+
+def _write_csvs(path: Path, take: str, streams: Sequence[StreamRecording]) -> list[Path]:
+    written = []
+    for s in streams:
+        target = path if len(streams) == 1 else path.with_name(
+            f"{path.stem}.{_safe(s.stream)}{path.suffix}")
+        with target.open("w", newline="") as fh:
+            writer = csv.writer(fh)
+            writer.writerow(["frame", "time_s", *s.names, *(n for n, _ in _CSV_FLAGS)])
+            for i, t in enumerate(s.times_s()):
+                flags = int(s.flags[i])
+                writer.writerow([int(s.frames[i]), repr(float(t)),
+                                 *(repr(float(v)) for v in s.values[i]),
+                                 *(int(bool(flags & bit)) for _, bit in _CSV_FLAGS)])
+        written.append(target)
+    meta = path.with_name(f"{path.stem}.meta.json")
+    meta.write_text(json.dumps({"take": take, "files": {s.stream: w.name for s, w in
+                                                        zip(streams, written, strict=True)},
+                                "pose": {s.stream: _pose_json(s) for s in streams}}))
+    return [*written, meta]
