@@ -51,9 +51,6 @@ log = logging.getLogger(__name__)
 
 MAD_TO_SIGMA = 1.4826  # 1 / Phi^-1(3/4): MAD -> standard deviation for Gaussian data (from memory)
 
-# Manifest keys that may hold the inverse's training fit error in mesh units: flat under
-# "training", then nested under "training.inverse".
-_TRAINING_KEYS = ("inverse_fit_rms", "inverse_mesh_rms", "inverse_rms")
 # The floor is this many times the training fit error (the old fixed threshold's factor).
 FLOOR_FACTOR = 3.0
 # With no training figure: 0.1% of the neutral's bounding-box diagonal (a starting point of ours).
@@ -97,19 +94,34 @@ class ManifoldConfig:
             raise ManifoldError(f"floor must be finite and >= 0, got {self.floor!r}")
 
 
+@dataclass(frozen=True)
+class TrainingSection:
+    """What the runtime reads of a bundle manifest's ``training`` section.
+
+    inverse_fit_rms: the inverse's fit error on its training data, mesh units, or None. The
+    build (export/build_finish.py) writes it as ``training.inverse.mean_err``, hand-built
+    bundles (export/synthetic_bundle.py) as ``training.inverse_fit_rms``; nothing else does.
+    """
+
+    inverse_fit_rms: float | None
+
+    @classmethod
+    def read(cls, manifest: Mapping[str, Any]) -> TrainingSection:
+        training = manifest.get("training")
+        if not isinstance(training, Mapping):
+            return cls(None)
+        nested = training.get("inverse")
+        value = training.get("inverse_fit_rms")
+        if value is None and isinstance(nested, Mapping):
+            value = nested.get("mean_err")
+        if isinstance(value, int | float) and math.isfinite(value) and value > 0:
+            return cls(float(value))
+        return cls(None)
+
+
 def training_fit_error(manifest: Mapping[str, Any]) -> float | None:
     """The inverse's fit error on its training data (mesh units) from a bundle manifest, if any."""
-    training = manifest.get("training")
-    if not isinstance(training, Mapping):
-        return None
-    nested = training.get("inverse")
-    candidates = [training.get(key) for key in _TRAINING_KEYS]
-    if isinstance(nested, Mapping):
-        candidates.append(nested.get("mean_err"))
-    for value in candidates:
-        if isinstance(value, int | float) and math.isfinite(value) and value > 0:
-            return float(value)
-    return None
+    return TrainingSection.read(manifest).inverse_fit_rms
 
 
 def floor_for_bundle(

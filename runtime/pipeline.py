@@ -25,6 +25,7 @@ import numpy as np
 from rigcast.runtime import protocol
 from rigcast.runtime.align import RigidBatch, RigidTransform
 from rigcast.runtime.config import StreamConfig
+from rigcast.runtime.head_pose import HeadPose, rotation_to_quaternion
 from rigcast.runtime.manifold import ManifoldConfig, ManifoldTracker
 from rigcast.runtime.solve_core import (
     SolveModel,
@@ -44,8 +45,24 @@ log = logging.getLogger(__name__)
 
 # The names the server and the reloader use for a stream's model.
 StreamModel = SolveModel
-__all__ = ["FrameResult", "StreamModel", "StreamState", "check_compatible", "head_pose",
+__all__ = ["FrameResult", "PendingFrame", "StreamModel", "StreamState", "check_compatible",
            "load_stream_model", "rotation_to_quaternion"]
+
+
+@dataclass(frozen=True, slots=True)
+class PendingFrame:
+    """A stream's newest valid mesh of one drain, waiting to be processed (runtime/server.py).
+
+    t_recv_ns: wall clock at receipt; perf_recv_ns: perf_counter_ns at receipt; decode_ns: its
+    decode time; keep: the received ZeroMQ frames, which ``mesh.vertices`` views without a copy,
+    held until the frame's fit error has run."""
+
+    identity: bytes
+    mesh: protocol.MeshFrame
+    t_recv_ns: int
+    perf_recv_ns: int
+    decode_ns: int
+    keep: Any
 
 
 @dataclass(frozen=True)
@@ -62,6 +79,7 @@ class FrameResult:
     flags: int
     stage_ns: tuple[int, int, int, int, int, int]
     rigid: RigidBatch | None  # the frame's stabilising fit (a batch of one), None when off
+    head_pose: HeadPose | None  # the head motion the fit removed, as published
 
     @property
     def pose(self) -> RigidTransform | None:
@@ -84,7 +102,6 @@ class StreamState:
         self.pending_off_manifold = False
         self.dropped_since_publish = 0
         self.frames_since_fit = 0
-        self.last_pose: RigidTransform | None = None
         self.swap(model)
 
     def restart_filter(self) -> None:
@@ -143,15 +160,16 @@ class StreamState:
         if self.dropped_since_publish:
             flags |= protocol.FLAG_STALE
             self.dropped_since_publish = 0
+        head = None if rigid is None else HeadPose.from_stabiliser(rigid.pose(0))
         t_pub = time.time_ns()
         send(protocol.encode_controls(cfg.stream, mesh.frame, mesh.t_send_ns, t_recv_ns, t_pub,
-                                      values[0], flags))
+                                      values[0], flags, head))
         t4 = time.perf_counter_ns()
         self.last_t_send_ns = mesh.t_send_ns
         self.telemetry.filter_resets = self.filter.resets
         stage_ns = (decode_ns, t1 - t0, t2 - t1, t3 - t2, t4 - t3, t4 - recv_perf_ns)
         return FrameResult(cfg.stream, mesh.frame, mesh.t_send_ns, t_recv_ns, t_pub,
-                           values[0].copy(), solved, flags, stage_ns, rigid)
+                           values[0].copy(), solved, flags, stage_ns, rigid, head)
 
     def wants_fit(self, mode: str, every: int) -> bool:
         if mode == "off":
@@ -178,41 +196,3 @@ class StreamState:
             self.pending_off_manifold = True
         self.telemetry.record_fit(result.frame, rms, worst, off)
         return rms, worst, off
-
-
-def rotation_to_quaternion(rotation: np.ndarray) -> np.ndarray:
-    """rotation (3, 3) proper rotation -> unit quaternion (4,) as (w, x, y, z), w >= 0.
-
-    Shepperd's method (J. Guidance and Control 1(3), 1978): take the largest of the four squared
-    components from the trace and the diagonal, then the others from off-diagonal sums.
-    """
-    m = np.asarray(rotation, dtype=np.float64)
-    tr = m[0, 0] + m[1, 1] + m[2, 2]
-    candidates = np.array([tr, m[0, 0], m[1, 1], m[2, 2]])
-    i = int(np.argmax(candidates))
-    if i == 0:
-        s = 2.0 * math.sqrt(1.0 + tr)
-        q = [0.25 * s, (m[2, 1] - m[1, 2]) / s, (m[0, 2] - m[2, 0]) / s, (m[1, 0] - m[0, 1]) / s]
-    elif i == 1:
-        s = 2.0 * math.sqrt(1.0 + m[0, 0] - m[1, 1] - m[2, 2])
-        q = [(m[2, 1] - m[1, 2]) / s, 0.25 * s, (m[0, 1] + m[1, 0]) / s, (m[0, 2] + m[2, 0]) / s]
-    elif i == 2:
-        s = 2.0 * math.sqrt(1.0 + m[1, 1] - m[0, 0] - m[2, 2])
-        q = [(m[0, 2] - m[2, 0]) / s, (m[0, 1] + m[1, 0]) / s, 0.25 * s, (m[1, 2] + m[2, 1]) / s]
-    else:
-        s = 2.0 * math.sqrt(1.0 + m[2, 2] - m[0, 0] - m[1, 1])
-        q = [(m[1, 0] - m[0, 1]) / s, (m[0, 2] + m[2, 0]) / s, (m[1, 2] + m[2, 1]) / s, 0.25 * s]
-    out = np.array(q)
-    out /= np.linalg.norm(out)
-    return out if out[0] >= 0 else -out
-
-
-def head_pose(stabiliser: RigidTransform) -> dict[str, Any]:
-    """The head's pose relative to the neutral (the inverse of the stabilising transform)."""
-    pose = stabiliser.inverse()
-    return {
-        "quaternion_wxyz": rotation_to_quaternion(pose.rotation).tolist(),
-        "translation": pose.translation.tolist(),
-        "scale": float(pose.scale),
-        "angle_deg": pose.angle_deg,
-    }

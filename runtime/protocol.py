@@ -15,8 +15,8 @@ from typing import Any
 
 import msgpack
 import numpy as np
+from rigcast.runtime.head_pose import HeadPose
 from rigcast.runtime.nesting import nesting_within
-from rigcast.runtime.schema import ControlSchema
 
 log = logging.getLogger(__name__)
 
@@ -99,6 +99,7 @@ class ControlsMessage:
     t_pub_ns: int
     flags: int
     values: np.ndarray
+    head_pose: HeadPose | None = None  # the head motion stabilisation removed; None when off
 
     def has(self, flag: int) -> bool:
         return bool(self.flags & flag)
@@ -159,27 +160,16 @@ def encode_controls(
     t_pub_ns: int,
     values: np.ndarray,
     flags: int,
+    head_pose: HeadPose | None = None,
 ) -> list[bytes]:
-    """[topic, header, payload] for the PUB socket. values (C,) -> C little-endian float32."""
+    """[topic, header, payload] for the PUB socket. values (C,) -> C little-endian float32;
+    ``head_pose`` goes in the header's versioned ``head_pose`` map (nil when not stabilised)."""
     vals = np.ascontiguousarray(values, dtype=_F32).reshape(-1)
     header = pack({"v": PROTOCOL_VERSION, "type": "controls", "stream": stream,
                    "frame": int(frame), "t_send_ns": int(t_send_ns), "t_recv_ns": int(t_recv_ns),
-                   "t_pub_ns": int(t_pub_ns), "flags": int(flags), "count": int(vals.shape[0])})
+                   "t_pub_ns": int(t_pub_ns), "flags": int(flags), "count": int(vals.shape[0]),
+                   "head_pose": None if head_pose is None else head_pose.to_controls_wire()})
     return [_topic(TOPIC_CONTROLS, stream), header, vals.tobytes()]
-
-
-def encode_error(
-    reason: str, message: str, stream: str | None = None, frame: int | None = None
-) -> bytes:
-    """One-frame error reply (ROUTER -> DEALER). ``versions`` lists what the server speaks."""
-    if reason not in REASONS:
-        raise ValueError(f"unknown rejection reason {reason!r}")
-    return pack({"v": PROTOCOL_VERSION, "type": "error", "reason": reason, "stream": stream,
-                 "frame": frame, "message": message, "versions": list(SUPPORTED_VERSIONS)})
-
-
-def encode_frame_error(err: FrameError) -> bytes:
-    return encode_error(err.reason, err.message, err.stream, err.frame)
 
 
 def encode_schema_request(stream: str, versions: Sequence[int] = SUPPORTED_VERSIONS) -> bytes:
@@ -200,58 +190,8 @@ def negotiate_version(client_versions: Sequence[int], stream: str | None = None)
     return max(common)
 
 
-def encode_schema_reply(
-    stream: str,
-    schema: ControlSchema,
-    *,
-    bundle: str,
-    bundle_version: int,
-    fingerprint: str,
-    vertices: int,
-    version: int = PROTOCOL_VERSION,
-) -> bytes:
-    """Schema reply; ``version`` is the negotiated protocol version (see negotiate_version)."""
-    controls = [{"name": c.name, "min": float(c.minimum), "max": float(c.maximum),
-                 "default": float(c.default), "group": c.group, "pair": c.pair}
-                for c in schema.controls]
-    return pack({"v": int(version), "type": "schema_reply", "stream": stream,
-                 "protocol_versions": list(SUPPORTED_VERSIONS), "bundle": bundle,
-                 "bundle_version": int(bundle_version), "fingerprint": fingerprint,
-                 "vertices": int(vertices), "controls": controls})
-
-
 def encode_reload_request(stream: str, bundle: str) -> bytes:
     return pack({"v": PROTOCOL_VERSION, "type": "reload", "stream": stream, "bundle": str(bundle)})
-
-
-def encode_reload_reply(stream: str, ok: bool, message: str, **extra: Any) -> bytes:
-    """Reload reply; ``extra`` may add e.g. ``bundle`` and ``fingerprint``."""
-    header: dict[str, Any] = {"v": PROTOCOL_VERSION, "type": "reload_reply", "stream": stream,
-                              "ok": bool(ok), "message": message}
-    _merge(header, extra)
-    return pack(header)
-
-
-def encode_telemetry(stream: str, fields: Mapping[str, Any]) -> list[bytes]:
-    """[topic, header] telemetry for one stream; ``fields`` are merged into the header map."""
-    header: dict[str, Any] = {"v": PROTOCOL_VERSION, "type": "telemetry", "stream": stream}
-    _merge(header, fields)
-    return [_topic(TOPIC_TELEMETRY, stream), pack(header)]
-
-
-def encode_event(
-    kind: str, stream: str | None = None, fields: Mapping[str, Any] | None = None
-) -> list[bytes]:
-    """[b"evt", header] server event (``kind`` e.g. "reject", "reload"), fields merged in."""
-    header: dict[str, Any] = {"v": PROTOCOL_VERSION, "type": "event", "kind": kind,
-                              "stream": stream}
-    _merge(header, fields or {})
-    return [TOPIC_EVENTS, pack(header)]
-
-
-def encode_reject_event(err: FrameError) -> list[bytes]:
-    return encode_event("reject", err.stream, {"reason": err.reason, "frame": err.frame,
-                                               "message": err.message})
 
 
 def _merge(header: dict[str, Any], fields: Mapping[str, Any]) -> None:
@@ -304,6 +244,8 @@ _FIELDS: dict[str, dict[str, Any]] = {
     "controls": {"stream": _stream_ok, "frame": _u64, "t_send_ns": _i64, "t_recv_ns": _i64,
                  "t_pub_ns": _i64, "flags": _u64, "count": _u64},
     "telemetry": {"stream": _stream_ok},
+    "heartbeat": {"t_ns": _i64, "period_s": lambda x: isinstance(x, float),
+                  "streams": lambda x: isinstance(x, list)},
     "event": {"kind": lambda x: isinstance(x, str), "stream": _opt_str},
 }
 MESSAGE_TYPES: tuple[str, ...] = tuple(_FIELDS)
@@ -433,8 +375,19 @@ def decode_request(
     return header, payload
 
 
-# The client-side decoders (controls, published messages, replies) live in protocol_client.py
-# and are re-exported here, so ``protocol.decode_controls`` and the rest stay the one API.
+# Typed server -> client messages (telemetry, heartbeats, events, replies) are defined and
+# encoded in messages.py, the client-side decoders live in protocol_client.py; both are
+# re-exported here, so ``protocol.encode_event``, ``protocol.decode_controls`` and the rest stay
+# the one API.
+from rigcast.runtime.messages import (  # noqa: E402 (it needs the names above)
+    encode_error as encode_error,
+)
+from rigcast.runtime.messages import encode_event as encode_event  # noqa: E402
+from rigcast.runtime.messages import encode_frame_error as encode_frame_error  # noqa: E402
+from rigcast.runtime.messages import encode_reject_event as encode_reject_event  # noqa: E402
+from rigcast.runtime.messages import encode_reload_reply as encode_reload_reply  # noqa: E402
+from rigcast.runtime.messages import encode_schema_reply as encode_schema_reply  # noqa: E402
+from rigcast.runtime.messages import encode_telemetry as encode_telemetry  # noqa: E402
 from rigcast.runtime.protocol_client import (  # noqa: E402 (it needs the names above)
     decode_controls as decode_controls,
 )

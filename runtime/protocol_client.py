@@ -7,6 +7,7 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 import numpy as np
+from rigcast.runtime.head_pose import HeadPose
 from rigcast.runtime.protocol import (
     _F32,
     MAX_REPLY_HEADER_BYTES,
@@ -51,12 +52,15 @@ def decode_controls(frames: Sequence[Any]) -> ControlsMessage:
                          frame=header["frame"])
     values = np.frombuffer(view, dtype=_F32).copy()
     values.flags.writeable = False
+    pose = header.get("head_pose")  # versioned (docs/protocol.md §5.1); absent from old servers
     return ControlsMessage(stream, header["frame"], header["t_send_ns"], header["t_recv_ns"],
-                           header["t_pub_ns"], header["flags"], values)
+                           header["t_pub_ns"], header["flags"], values,
+                           HeadPose.from_wire(pose) if isinstance(pose, dict) else None)
 
 
 def decode_published(frames: Sequence[Any]) -> ControlsMessage | dict[str, Any]:
-    """Any PUB message: controls -> ControlsMessage; telemetry and events -> header dict."""
+    """Any PUB message: controls -> ControlsMessage; telemetry, heartbeats and events -> header
+    dict."""
     if len(frames) < 2:
         raise FrameError("malformed", f"a published message has >= 2 frames, got {len(frames)}")
     topic = bytes(frames[0])
@@ -66,6 +70,7 @@ def decode_published(frames: Sequence[Any]) -> ControlsMessage | dict[str, Any]:
         raise FrameError("malformed", f"telemetry and events have 2 frames, got {len(frames)}")
     header = decode_header(frames[1], max_header_bytes=MAX_REPLY_HEADER_BYTES)
     expected = {"telemetry": lambda h: _topic(TOPIC_TELEMETRY, h["stream"]),
+                "heartbeat": lambda h: TOPIC_TELEMETRY,
                 "event": lambda h: TOPIC_EVENTS}.get(header["type"])
     if expected is None or topic != expected(header):
         raise FrameError("malformed", f"topic {topic!r} does not fit a {header['type']!r} message")

@@ -47,24 +47,26 @@ from rigcast.runtime.config import ServerConfig
 from rigcast.runtime.fairness import FitScheduler
 from rigcast.runtime.inference import ORT_ERRORS
 from rigcast.runtime.limits import Incoming, RateLimitedLog, ReadLimits, read_message, user_id
+from rigcast.runtime.messages import OffManifoldEvent, ProcessingErrorEvent, ReloadReply, SchemaReply
 from rigcast.runtime.one_euro import FilterError
 from rigcast.runtime.ownership import StreamGuard, peer_of, session_of
 from rigcast.runtime.pipeline import (
     FrameResult,
+    PendingFrame,
     StreamModel,
     StreamState,
-    head_pose,
     load_stream_model,
 )
 from rigcast.runtime.reload import Reloader, check_served, public_model, redact
 from rigcast.runtime.security import ServerSecurity
 from rigcast.runtime.sockets import bind_pub, bind_router, bound_endpoint, close_all
+from rigcast.runtime.telemetry import heartbeat, telemetry
 
 log = logging.getLogger(__name__)
 
 _TICK_CAP_S = 0.05  # the loop wakes at least this often to see stop flags and reload results
 _FULL_GC_EVERY = 100  # ticks between full collections (10 s at the default 10 Hz)
-_Pending = tuple[bytes, protocol.MeshFrame, int, int, int, Any]
+HEARTBEAT_S = 0.5  # a heartbeat on the telemetry topic this often (docs/protocol.md §5.4)
 _IDLE_CHECK_S = 1.0  # how often idle streams are looked for
 
 
@@ -92,6 +94,7 @@ class Server:
         self.limits = ReadLimits(config.max_header_bytes, config.max_message_bytes)
         self._log = RateLimitedLog(log)
         self._next_tick = 0.0
+        self._next_heartbeat = 0.0
         self._next_idle_check = 0.0
         self._ticks = 0
 
@@ -202,11 +205,14 @@ class Server:
             if now >= self._next_tick and (drained or now >= self._next_tick + period):
                 self.tick()
                 self._next_tick = max(self._next_tick + period, now)
+            if now >= self._next_heartbeat:
+                self.publish_heartbeat()
+                self._next_heartbeat = now + HEARTBEAT_S
 
     def drain(self) -> None:
         """Read every queued message (up to max_drain), then process each stream's newest."""
         assert self.router is not None
-        pending: dict[str, _Pending] = {}
+        pending: dict[str, PendingFrame] = {}
         for _ in range(self.config.max_drain):
             try:
                 msg = read_message(self.router, self.limits)
@@ -219,12 +225,12 @@ class Server:
                 self._log("processing_error", logging.ERROR, "a message could not be handled; "
                           "the server goes on", exc_info=True)
         fitting = self.config.fit_error != "off"
-        for stream, (identity, mesh, t_recv, perf_recv, decode_ns, keep) in pending.items():
+        for stream, p in pending.items():
             state = self.streams[stream]
-            result = self._process(state, identity, mesh, t_recv, perf_recv, decode_ns)
+            result = self._process(state, p)
             if (result is not None and fitting
                     and state.wants_fit(self.config.fit_error, self.config.fit_error_every)
-                    and self.fits.offer(stream, (state, result, mesh, keep)) is not None):
+                    and self.fits.offer(stream, (state, result, p)) is not None):
                 state.telemetry.fit_skipped += 1
         # The fit error runs after every publish of this drain, and only while no input waits,
         # so it never delays a frame. The yield first lets the ZeroMQ I/O thread (runnable on
@@ -236,14 +242,13 @@ class Server:
         """Pending fit errors, the streams in turn, each within its time share."""
         self.fits.run(self._input_waiting, self._fit)
 
-    def _fit(self, stream: str, item: tuple[StreamState, FrameResult, protocol.MeshFrame, Any]
-             ) -> None:
-        held, result, mesh, _keep = item
+    def _fit(self, stream: str, item: tuple[StreamState, FrameResult, PendingFrame]) -> None:
+        held, result, pending = item
         state = self.streams.get(stream)
         if state is None or state is not held:
             return  # the stream expired meanwhile
         try:
-            rms, worst, off = state.fit(result, mesh.vertices)
+            rms, worst, off = state.fit(result, pending.mesh.vertices)
         except (FloatingPointError, *ORT_ERRORS) as exc:
             # The frame is already published and counted; only its fit error is lost, which
             # telemetry counts as a skipped fit (a rejection would count the frame twice).
@@ -252,14 +257,14 @@ class Server:
                       "computed: %s", stream, result.frame, exc)
             return
         if off:
-            self._event("off_manifold", stream, {"frame": result.frame, "rms": rms,
-                                                 "max": worst, "threshold": state.last_threshold})
+            self._publish(OffManifoldEvent(stream, result.frame, rms, worst,
+                                           state.last_threshold).encode())
 
     def _input_waiting(self) -> bool:
         assert self.router is not None
         return bool(int(self.router.getsockopt(zmq.EVENTS)) & zmq.POLLIN)
 
-    def _handle(self, msg: Incoming, pending: dict[str, _Pending]) -> None:
+    def _handle(self, msg: Incoming, pending: dict[str, PendingFrame]) -> None:
         t_recv = time.time_ns()
         perf_recv = time.perf_counter_ns()
         identity = msg.identity
@@ -306,7 +311,7 @@ class Server:
 
     def _accept_mesh(self, identity: bytes, peer: str, header: dict[str, Any], payload: Any,
                      msg: list[zmq.Frame], t_recv: int, perf_recv: int,
-                     pending: dict[str, _Pending]) -> None:
+                     pending: dict[str, PendingFrame]) -> None:
         stream = header["stream"]
         session = session_of(header)
         known = self.streams.get(stream)
@@ -326,21 +331,21 @@ class Server:
             state.last_t_send_ns = None
             state.restart_filter()
             previous = None
-        newest_t = previous[1].t_send_ns if previous else state.last_t_send_ns
+        newest_t = previous.mesh.t_send_ns if previous else state.last_t_send_ns
         if newest_t is not None and mesh.t_send_ns <= newest_t:
             tel.stale += 1
             return
         if stream in pending:
             tel.dropped += 1
             state.dropped_since_publish += 1
-        pending[stream] = (identity, mesh, t_recv, perf_recv, decode_ns, msg)
+        pending[stream] = PendingFrame(identity, mesh, t_recv, perf_recv, decode_ns, msg)
 
-    def _process(self, state: StreamState, identity: bytes, mesh: protocol.MeshFrame,
-                 t_recv: int, perf_recv: int, decode_ns: int) -> FrameResult | None:
+    def _process(self, state: StreamState, p: PendingFrame) -> FrameResult | None:
         assert self.pub is not None
-        pub = self.pub
+        mesh = p.mesh
         try:
-            result = state.process(mesh, t_recv, perf_recv, decode_ns, pub.send_multipart)
+            result = state.process(mesh, p.t_recv_ns, p.perf_recv_ns, p.decode_ns,
+                                   self.pub.send_multipart)
         except (AlignError, np.linalg.LinAlgError, FilterError, FloatingPointError,
                 *ORT_ERRORS) as exc:
             # Finite input the models cannot handle (degenerate stable vertices, values so large
@@ -350,11 +355,11 @@ class Server:
             state.dropped_since_publish += 1  # the next controls carry STALE: a frame is missing
             self._log(f"processing:{mesh.stream}", logging.WARNING, "stream %s frame %d: %s",
                       mesh.stream, mesh.frame, exc)
-            self._event("processing_error", mesh.stream, {"frame": mesh.frame,
-                                                          "message": redact(str(exc))[:200]})
+            self._publish(ProcessingErrorEvent(mesh.stream, mesh.frame,
+                                               redact(str(exc))[:200]).encode())
             return None
         state.telemetry.record(result.stage_ns, result.frame)
-        state.last_pose = result.pose
+        state.telemetry.pose = result.head_pose
         state.telemetry.stabilise_rms = result.stabilise_rms
         return result
 
@@ -390,10 +395,11 @@ class Server:
         # A new id is answered with what it would get, without creating the stream.
         state = self.streams.get(stream) or self._template_for(stream, None)
         bundle = state.model.bundle
-        self._reply(identity, protocol.encode_schema_reply(
+        self._reply(identity, SchemaReply(
             stream, bundle.schema, bundle=state.model.label,
             bundle_version=int(bundle.manifest.get("format_version", 0)),
-            fingerprint=bundle.fingerprint, vertices=bundle.vertex_count, version=version))
+            fingerprint=bundle.fingerprint, vertices=bundle.vertex_count,
+            version=version).encode())
 
     def _start_reload(self, identity: bytes, header: dict[str, Any]) -> None:
         stream = header["stream"]
@@ -404,7 +410,7 @@ class Server:
         refusal = self.reloader.start(identity, stream, header["bundle"], state.model,
                                       state.config.off_manifold_threshold)
         if refusal is not None:  # answered to the asker only: no event for every subscriber
-            self._reply(identity, protocol.encode_reload_reply(stream, False, refusal))
+            self._reply(identity, ReloadReply(stream, False, refusal).encode())
 
     def _finish_reloads(self) -> None:
         self.reloader.finish(self.streams, self._reply, self._event)
@@ -433,14 +439,10 @@ class Server:
                          self.config.stream_idle_s)
 
     def publish_telemetry(self) -> None:
-        now = time.time_ns()
-        server = {"uptime_s": (now - self.t_start_ns) / 1e9, "streams": len(self.streams),
-                  "rejected_by_reason": dict(self.rejected),
-                  "rejected": sum(self.rejected.values())}
-        for stream, state in self.streams.items():
-            tel = state.telemetry
-            if state.last_pose is not None:
-                tel.pose = head_pose(state.last_pose)
-            fields = tel.snapshot(now)
-            fields["server"] = server
-            self._publish(protocol.encode_telemetry(stream, fields))
+        for message in telemetry([s.telemetry for s in self.streams.values()], self.t_start_ns,
+                                 self.rejected):
+            self._publish(message.encode())
+
+    def publish_heartbeat(self) -> None:
+        """The server is alive: a heartbeat on the telemetry topic."""
+        self._publish(heartbeat(list(self.streams), self.t_start_ns, HEARTBEAT_S).encode())

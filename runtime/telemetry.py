@@ -10,11 +10,14 @@ from __future__ import annotations
 
 import logging
 import math
+import time
 from collections import Counter
 from collections.abc import Mapping, Sequence
-from typing import Any
 
 import numpy as np
+from rigcast.runtime.head_pose import HeadPose
+from rigcast.runtime.messages import FitErrorStats, Heartbeat, LatencyStats, ServerStats, Telemetry
+from rigcast.runtime.messages import number_or_none as _f
 
 log = logging.getLogger(__name__)
 
@@ -77,7 +80,7 @@ class RingWindow:
 
 
 class StreamTelemetry:
-    """Counters and windows for one stream, turned into a plain dict by :meth:`snapshot`."""
+    """Counters and windows for one stream, turned into a typed message by :meth:`snapshot`."""
 
     def __init__(self, stream: str, window: int) -> None:
         self.stream = stream
@@ -97,7 +100,7 @@ class StreamTelemetry:
         self.clamped = 0
         self.filter_resets = 0
         self.last_frame: int | None = None
-        self.pose: Mapping[str, Any] | None = None
+        self.pose: HeadPose | None = None
         self.stabilise_rms = math.nan
         self.bundle = ""
 
@@ -128,41 +131,35 @@ class StreamTelemetry:
         spread = int(recent.max() - recent.min())
         return (recent.shape[0] - 1) * 1e9 / spread if spread > 0 else 0.0
 
-    def snapshot(self, now_ns: int) -> dict[str, Any]:
+    def snapshot(self, now_ns: int, server: ServerStats | None = None) -> Telemetry:
         latency = {}
         for name, ring in self.stages.items():
             p = ring.percentiles() / 1e6
-            latency[name] = {"p50_ms": _f(p[0]), "p95_ms": _f(p[1]), "p99_ms": _f(p[2])}
-        return {
-            "bundle": self.bundle,
-            "t_ns": now_ns,
-            "latency": latency,
-            "window": len(self.stages["total"]),
-            "input_fps": self.input_fps(now_ns),
-            "processed": self.processed,
-            "dropped": self.dropped,
-            "stale": self.stale,
-            "rejected": sum(self.rejected.values()),
-            "rejected_by_reason": dict(self.rejected),
-            "clamped": self.clamped,
-            "filter_resets": self.filter_resets,
-            "last_frame": self.last_frame,
-            "fit_error": {
-                "frame": self.last_fit_frame,
-                "skipped": self.fit_skipped,
-                "rms": _f(self.fit_rms.last()),
-                "max": _f(self.fit_max.last()),
-                "rms_mean": _f(self.fit_rms.mean()),
-                "max_mean": _f(self.fit_max.mean()),
-                "off_manifold": self.off_manifold,
-                "last_off_manifold_frame": self.last_off_manifold_frame,
-            },
-            "pose": dict(self.pose) if self.pose is not None else None,
-            "stabilise_rms": _f(self.stabilise_rms),
-        }
+            latency[name] = LatencyStats(_f(p[0]), _f(p[1]), _f(p[2]))
+        fit = FitErrorStats(
+            frame=self.last_fit_frame, skipped=self.fit_skipped, rms=_f(self.fit_rms.last()),
+            max=_f(self.fit_max.last()), rms_mean=_f(self.fit_rms.mean()),
+            max_mean=_f(self.fit_max.mean()), off_manifold=self.off_manifold,
+            last_off_manifold_frame=self.last_off_manifold_frame)
+        return Telemetry(
+            stream=self.stream, bundle=self.bundle, t_ns=now_ns, latency=latency,
+            window=len(self.stages["total"]), input_fps=self.input_fps(now_ns),
+            processed=self.processed, dropped=self.dropped, stale=self.stale,
+            rejected=sum(self.rejected.values()), rejected_by_reason=dict(self.rejected),
+            clamped=self.clamped, filter_resets=self.filter_resets, last_frame=self.last_frame,
+            fit_error=fit, pose=self.pose, stabilise_rms=_f(self.stabilise_rms), server=server)
 
 
-def _f(x: float) -> float | None:
-    """NaN (no data yet) goes out as nil, which every msgpack reader understands."""
-    x = float(x)
-    return None if math.isnan(x) else x
+def telemetry(streams: Sequence[StreamTelemetry], t_start_ns: int,
+              rejected: Mapping[str, int]) -> list[Telemetry]:
+    """Every stream's telemetry now, each with the server-wide figures."""
+    now = time.time_ns()
+    server = ServerStats((now - t_start_ns) / 1e9, len(streams), sum(rejected.values()),
+                         dict(rejected))
+    return [s.snapshot(now, server) for s in streams]
+
+
+def heartbeat(streams: Sequence[str], t_start_ns: int, period_s: float) -> Heartbeat:
+    """The server's heartbeat now (docs/protocol.md §5.4)."""
+    now = time.time_ns()
+    return Heartbeat(now, (now - t_start_ns) / 1e9, tuple(streams), period_s)
