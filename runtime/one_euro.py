@@ -140,43 +140,119 @@ class OneEuroConstants:
         return cls(_TWO_PI * params.min_cutoff, _TWO_PI * params.beta, _TWO_PI * params.d_cutoff)
 
 
+@dataclass(frozen=True)
+class OneEuroRun:
+    """What one_euro_run returns: y (T, C) float64; state after the last frame (None when the
+    run was empty and started from None); filtered (T,) bool, whether each frame was smoothed
+    (not a start or restart); restarts, how many frames restarted the filter; last_frame."""
+
+    y: np.ndarray
+    state: OneEuroState | None
+    filtered: np.ndarray
+    restarts: int
+    last_frame: int | None
+
+
+def one_euro_run(
+    state: OneEuroState | None, x: np.ndarray, t_ns: np.ndarray, consts: OneEuroConstants, *,
+    gap_ns: int | None = None, frames: np.ndarray | None = None, last_frame: int | None = None,
+    max_frame_jump: int | None = None, out: np.ndarray | None = None,
+) -> OneEuroRun:
+    """The One Euro recurrence over a run of frames, in order: x (T, C), t_ns (T,) int sender
+    times, frames (T,) frame numbers or None -> OneEuroRun. The live server runs it on one frame,
+    the batch solve on chunks of many, the state carried between calls.
+
+    Per frame: with no state (start) the sample passes through with dx̂ = 0. A frame more than
+    ``gap_ns`` after the previous one, or whose number goes back from ``last_frame`` or jumps
+    ahead by more than ``max_frame_jump``, restarts the filter (it passes through). A timestamp
+    not after the previous one (te <= 0) is a repeat: the previous output is held and the state
+    is unchanged. Otherwise, with r = 2 pi fc te, alpha(te, fc) = 1 / (1 + 1 / (2 pi fc te)) =
+    r / (1 + r) and 2 pi fc = 2 pi min_cutoff + 2 pi beta |dx̂|; each blend a x + (1 - a) p is
+    p + a (x - p). The rules run on Python ints first; the recurrence then runs in place on
+    three (C,) buffers, so a frame costs a fixed handful of array operations.
+    """
+    xv = np.asarray(x, dtype=np.float64)
+    c = consts.two_pi_min.shape[0]
+    if xv.ndim != 2 or xv.shape[1] != c:
+        raise FilterError(f"x has shape {xv.shape}, filter has {c} controls")
+    n = xv.shape[0]
+    y = np.empty((n, c), np.float64) if out is None else out
+    filtered = np.zeros(n, dtype=bool)
+    times = [int(v) for v in np.asarray(t_ns).reshape(-1).tolist()]
+    numbers = ([None] * n if frames is None
+               else [int(v) for v in np.asarray(frames).reshape(-1).tolist()])
+    # First pass, on Python ints: what each frame does (0 start, 1 hold, 2 update) and its te.
+    kind = [0] * n
+    te = [1.0] * n
+    t_prev = None if state is None else state.t_prev_ns
+    restarts = 0
+    for i in range(n):
+        t, frame = times[i], numbers[i]
+        if t_prev is not None:
+            jump = None if frame is None or last_frame is None else frame - last_frame
+            if ((gap_ns is not None and t - t_prev > gap_ns)
+                    or (jump is not None and (jump < 0 or (max_frame_jump is not None
+                                                           and jump > max_frame_jump)))):
+                t_prev, restarts = None, restarts + 1
+                log.debug("filter reset at t=%d frame=%s", t, frame)
+        if t_prev is None:
+            t_prev = t
+        elif t > t_prev:
+            kind[i], te[i], t_prev = 2, (t - t_prev) * 1e-9, t
+            filtered[i] = True
+        else:
+            kind[i] = 1
+            filtered[i] = True
+        if frame is not None:
+            last_frame = frame
+    # alpha_d = r_d / (1 + r_d), r_d = 2 pi d_cutoff te; dx̂ = dx̂_prev + alpha_d (dx - dx̂_prev);
+    # r = 2 pi fc te; all in place on three (C,) buffers.
+    two_pi_d, two_pi_beta, two_pi_min = consts.two_pi_d, consts.two_pi_beta, consts.two_pi_min
+    if state is None:
+        x_prev, dx_hat = None, np.zeros(c)
+    else:
+        x_prev, dx_hat = state.x_prev, state.dx_prev.copy()
+    d = np.empty(c)
+    r = np.empty(c)
+    a = np.empty(c)
+    for i in range(n):
+        k = kind[i]
+        if k == 0 or x_prev is None:
+            y[i] = xv[i]
+            dx_hat[:] = 0.0
+        elif k == 1:
+            y[i] = x_prev
+        else:
+            te_i = te[i]
+            np.multiply(two_pi_d, te_i, out=r)
+            np.add(r, 1.0, out=a)
+            np.divide(r, a, out=a)  # alpha(te, d_cutoff)
+            np.subtract(xv[i], x_prev, out=d)
+            np.multiply(d, 1.0 / te_i, out=r)  # dx
+            r -= dx_hat
+            r *= a
+            dx_hat += r
+            np.abs(dx_hat, out=r)
+            r *= two_pi_beta
+            r += two_pi_min
+            r *= te_i  # r = 2 pi fc te
+            np.add(r, 1.0, out=a)
+            r /= a  # alpha(te, fc)
+            d *= r
+            np.add(x_prev, d, out=y[i])
+        x_prev = y[i]
+    new_state = state if x_prev is None or t_prev is None else OneEuroState(
+        x_prev.copy(), dx_hat, t_prev)
+    return OneEuroRun(y, new_state, filtered, restarts, last_frame)
+
+
 def one_euro_step(
     state: OneEuroState | None, x: np.ndarray, t_ns: int, consts: OneEuroConstants
 ) -> tuple[np.ndarray, OneEuroState]:
-    """One filter update. x (C,) -> (y (C,) float64, new state).
-
-    ``state=None`` starts the filter: y = x. A timestamp not after the previous one (te <= 0) is a
-    repeat: the previous output is held and the state is unchanged.
-    alpha(te, fc) = 1 / (1 + 1 / (2 pi fc te)) = r / (1 + r) with r = 2 pi fc te, and
-    2 pi fc = 2 pi min_cutoff + 2 pi beta |dx̂|; each blend a x + (1 - a) p is p + a (x - p).
-    """
-    xv = np.asarray(x, dtype=np.float64)
-    if xv.shape != consts.two_pi_min.shape:
-        raise FilterError(f"x has shape {xv.shape}, filter has {consts.two_pi_min.shape[0]} "
-                          "controls")
-    if state is None:
-        y = xv.copy()
-        return y, OneEuroState(y, np.zeros_like(y), int(t_ns))
-    te = (int(t_ns) - state.t_prev_ns) * 1e-9
-    if te <= 0.0:
-        return state.x_prev.copy(), state
-    x_prev, dx_prev = state.x_prev, state.dx_prev
-    r = consts.two_pi_d * te
-    a = r / (r + 1.0)  # alpha(te, d_cutoff)
-    dx_hat = xv - x_prev
-    dx_hat *= 1.0 / te  # dx
-    dx_hat -= dx_prev
-    dx_hat *= a
-    dx_hat += dx_prev  # dx̂ = dx̂_prev + alpha_d (dx - dx̂_prev)
-    np.abs(dx_hat, out=r)
-    r *= consts.two_pi_beta
-    r += consts.two_pi_min
-    r *= te  # r = 2 pi fc te
-    np.divide(r, r + 1.0, out=a)  # alpha(te, fc)
-    y = xv - x_prev
-    y *= a
-    y += x_prev
-    return y, OneEuroState(y, dx_hat, int(t_ns))
+    """one_euro_run on one frame without reset rules: x (C,) -> (y (C,) float64, new state)."""
+    run = one_euro_run(state, np.asarray(x).reshape(1, -1), np.array([t_ns]), consts)
+    assert run.state is not None
+    return run.y[0], run.state
 
 
 def one_euro_step_naive(
@@ -239,47 +315,31 @@ class OneEuroFilter:
         self.state = None
         self.last_frame = None
 
-    def _gap(self, t_ns: int, frame: int | None) -> bool:
-        if self.state is None:
-            return False
-        if self.gap_ns is not None and t_ns - self.state.t_prev_ns > self.gap_ns:
-            return True
-        if frame is not None and self.last_frame is not None:
-            jump = frame - self.last_frame
-            if jump < 0 or (self.max_frame_jump is not None and jump > self.max_frame_jump):
-                return True
-        return False
-
     def __call__(self, x: np.ndarray, t_ns: int, frame: int | None = None) -> np.ndarray:
         """x (C,) -> y (C,) float64."""
-        if self.passthrough:
-            self.filtered = False
-            return np.array(x, dtype=np.float64)
-        if self._gap(t_ns, frame):
-            log.debug("filter reset at t=%d frame=%s", t_ns, frame)
-            self.reset()
-            self.resets += 1
-        self.filtered = self.state is not None
-        y, self.state = one_euro_step(self.state, x, t_ns, self.consts)
-        if frame is not None:
-            self.last_frame = frame
-        return y
+        y, _ = self.run(np.asarray(x).reshape(1, -1), np.array([t_ns]),
+                        None if frame is None else np.array([frame]))
+        return y[0]
 
-    def run(self, x: np.ndarray, t_ns: np.ndarray, frames: np.ndarray | None = None
-            ) -> tuple[np.ndarray, np.ndarray]:
+    def run(self, x: np.ndarray, t_ns: np.ndarray, frames: np.ndarray | None = None,
+            out: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
         """A run of frames, in order, state carried: x (T, C), t_ns (T,) int sender times,
-        frames (T,) or None -> (y (T, C) float64, filtered (T,) bool). The same as calling the
-        filter frame by frame, which is what it does."""
-        xv = np.asarray(x, dtype=np.float64)
-        n = xv.shape[0]
-        y = np.empty_like(xv)
-        filtered = np.zeros(n, dtype=bool)
-        times = [int(t) for t in np.asarray(t_ns).reshape(-1)]
-        numbers = [None] * n if frames is None else [int(f) for f in frames]
-        for i in range(n):
-            y[i] = self(xv[i], times[i], numbers[i])
-            filtered[i] = self.filtered
-        return y, filtered
+        frames (T,) or None -> (y (T, C) float64 (into ``out`` when given), filtered (T,)
+        bool). ``filtered`` (the attribute) says whether the last frame was smoothed."""
+        if self.passthrough:
+            y = np.array(x, dtype=np.float64) if out is None else out
+            if out is not None:
+                out[...] = x
+            self.filtered = False
+            return y, np.zeros(y.shape[0], dtype=bool)
+        run = one_euro_run(self.state, x, t_ns, self.consts, gap_ns=self.gap_ns, frames=frames,
+                           last_frame=self.last_frame, max_frame_jump=self.max_frame_jump,
+                           out=out)
+        self.state, self.last_frame = run.state, run.last_frame
+        self.resets += run.restarts
+        if run.filtered.shape[0]:
+            self.filtered = bool(run.filtered[-1])
+        return run.y, run.filtered
 
 
 def zero_phase_smooth(x: np.ndarray, times_s: np.ndarray, cutoff_hz: float) -> np.ndarray:

@@ -188,7 +188,9 @@ def test_repeat_timestamp_holds_output() -> None:
     y3, s3 = one_euro_step(s2, np.array([100.0, 100.0]), 14 * MS, params)  # te < 0
     np.testing.assert_array_equal(y2, y1)
     np.testing.assert_array_equal(y3, y1)
-    assert s3 is s1 and np.all(np.isfinite(y3))
+    assert s3.t_prev_ns == s1.t_prev_ns and np.all(np.isfinite(y3))  # the state is unchanged
+    np.testing.assert_array_equal(s3.x_prev, s1.x_prev)
+    np.testing.assert_array_equal(s3.dx_prev, s1.dx_prev)
 
 
 def test_irregular_timestamps_follow_te() -> None:
