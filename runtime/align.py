@@ -246,22 +246,25 @@ def fit_rigid_batch(source: np.ndarray, target: np.ndarray | StableTarget, *,
     u, d, vt = np.linalg.svd(cov)
     rotation = np.matmul(u, vt)
     # Reflection correction (Umeyama eq. 39-40): flip the weakest axis where U V^T reflects.
-    sign = np.where(_det3_batch(rotation) < 0.0, -1.0, 1.0)
-    if (sign < 0).any():
-        u[:, :, 2] *= sign[:, None]
+    flip = np.linalg.det(rotation) < 0.0
+    trace_ds = d.sum(axis=1)
+    if flip.any():
+        u[flip, :, 2] *= -1.0
         rotation = np.matmul(u, vt)
-    trace_ds = d[:, 0] + d[:, 1] + sign * d[:, 2]
+        trace_ds -= 2.0 * flip * d[:, 2]
+    # rotated[b] = R[b] μs[b]
+    rotated = np.einsum("bij,bj->bi", rotation, mu_s)
     if scale:
         if not np.all(var_s > 0.0):
             raise AlignError(f"stable vertices coincide in frame {int(np.argmin(var_s))}; "
                              "scale is undefined")
         s = trace_ds / var_s
         mse = tgt.var - trace_ds**2 / var_s
+        rotated *= s[:, None]
     else:
         s = np.ones(src.shape[0])
         mse = tgt.var + var_s - 2.0 * trace_ds
-    # translation[b] = μt - s[b] R[b] μs[b]
-    translation = tgt.mean[None] - s[:, None] * np.einsum("bij,bj->bi", rotation, mu_s)
+    translation = tgt.mean - rotated  # μt - s R μs
     return RigidBatch(rotation, translation, s, np.maximum(mse, 0.0))
 
 
@@ -271,10 +274,3 @@ def fit_rigid(source: np.ndarray, target: np.ndarray, *, scale: bool = False) ->
     tgt = np.asarray(target)
     _check(src, tgt, None)
     return fit_rigid_batch(src[None], tgt, scale=scale).pose(0)
-
-
-def _det3_batch(m: np.ndarray) -> np.ndarray:
-    """m (B, 3, 3) -> (B,) determinants by cofactors (np.linalg.det costs more at this size)."""
-    return (m[:, 0, 0] * (m[:, 1, 1] * m[:, 2, 2] - m[:, 1, 2] * m[:, 2, 1])
-            - m[:, 0, 1] * (m[:, 1, 0] * m[:, 2, 2] - m[:, 1, 2] * m[:, 2, 0])
-            + m[:, 0, 2] * (m[:, 1, 0] * m[:, 2, 1] - m[:, 1, 1] * m[:, 2, 0]))
