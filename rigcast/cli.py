@@ -80,8 +80,8 @@ def _setup_logging(verbosity: int) -> None:
 
 def _interrupt(signum: int, frame: FrameType | None) -> None:
     """First Ctrl-C: raise KeyboardInterrupt (cleanup runs, the command exits 130); from then
-    on a Ctrl-C ends the process at once, so a stuck cleanup never needs a third press and no
-    traceback is printed."""
+    on, while the command cleans up, a Ctrl-C ends the process at once with 130, so a stuck
+    cleanup never needs a third press and no traceback is printed."""
     signal.signal(signal.SIGINT, _force_exit)
     raise KeyboardInterrupt
 
@@ -91,33 +91,39 @@ def _force_exit(signum: int, frame: FrameType | None) -> None:
     os._exit(EXIT_INTERRUPTED)
 
 
-def _run_with_ctrl_c(handler: Handler, args: argparse.Namespace) -> int:
-    """Run the command with ``_interrupt`` on SIGINT (main thread only: tests call ``main``
-    from others). After an interrupted command the force-exit handler stays, so a Ctrl-C during
-    interpreter shutdown (thread joins, atexit) prints no traceback either; otherwise the
-    previous handler is put back."""
-    if threading.current_thread() is not threading.main_thread():
-        return run_guarded(lambda: handler(args))
-    previous = signal.signal(signal.SIGINT, _interrupt)
-    code = EXIT_INTERRUPTED
-    try:
-        code = run_guarded(lambda: handler(args))
-    finally:
-        if code == EXIT_INTERRUPTED:
-            signal.signal(signal.SIGINT, _force_exit)
-        else:
-            signal.signal(signal.SIGINT, previous)
-    return code
-
-
 def main(argv: Sequence[str] | None = None) -> int:
-    parser = build_parser()
-    args = parser.parse_args(argv)
-    if args.command is None:
-        parser.print_help()
-        return EXIT_OK
-    _setup_logging(args.verbose)
-    return _run_with_ctrl_c(args.handler, args)
+    """Parse, then run the subcommand: its return value is the exit code.
+
+    SIGINT (main thread only: tests call ``main`` from others) is ``_interrupt`` from the first
+    line, so a Ctrl-C while the subcommand's modules load is 130 too. After an interrupted
+    command SIGINT is ignored for the few tenths of a second the interpreter takes to exit:
+    Python's finalisation resets a Python-level handler to the default, under which another
+    Ctrl-C would kill the process by the signal (status -2, not 130), but it leaves an ignored
+    signal ignored (CPython's signal module, _PySignal_Fini). Otherwise the previous handler is
+    put back."""
+    in_main = threading.current_thread() is threading.main_thread()
+    previous = signal.signal(signal.SIGINT, _interrupt) if in_main else None
+    code: int | None = None
+    try:
+        try:
+            parser = build_parser()
+            args = parser.parse_args(argv)
+        except KeyboardInterrupt:
+            sys.stderr.write("rigcast: interrupted\n")
+            code = EXIT_INTERRUPTED
+            return code
+        if args.command is None:
+            parser.print_help()
+            code = EXIT_OK
+            return code
+        _setup_logging(args.verbose)
+        handler: Handler = args.handler
+        code = run_guarded(lambda: handler(args))
+        return code
+    finally:
+        if in_main:
+            signal.signal(signal.SIGINT, signal.SIG_IGN if code == EXIT_INTERRUPTED
+                          else previous if previous is not None else signal.default_int_handler)
 
 
 if __name__ == "__main__":  # pragma: no cover
