@@ -82,7 +82,9 @@ class BatchSolve:
     when the fit error was not computed); off_manifold (T,) bool, fit_max above thresholds (T,)
     (NaN when not computed, inf during the detector's warm-up); align_rms (T,) float32 residual
     of the stabilisation (0 when off); seconds of wall time; frames_per_second = T / seconds;
-    fit_error the scope used ("subset", "full", "off") and fit_vertices how many vertices it read.
+    fit_error the scope used ("subset", "full", "off") and fit_vertices how many vertices it read;
+    rigid the fits that stabilised the frames (the head pose is their inverse,
+    ``head_pose.HeadPose.from_stabiliser(rigid.pose(t))``), None when not stabilised.
     """
 
     controls: np.ndarray
@@ -95,6 +97,7 @@ class BatchSolve:
     frames_per_second: float
     fit_error: str
     fit_vertices: int
+    rigid: RigidBatch | None = None  # each frame's stabilising fit (T frames); None when off
 
 
 def all_cores() -> int:
@@ -217,6 +220,8 @@ class BatchSolver:
         t, c, bs = verts.shape[0], self.bundle.control_count, opts.batch_size
         raw = np.empty((t, c), np.float32)
         align_rms = np.zeros(t, np.float32)
+        fits = (RigidBatch(np.empty((t, 3, 3)), np.empty((t, 3)), np.empty(t), np.empty(t))
+                if stabilise else None)
         fit_rms = np.full(t, np.nan, np.float32)
         fit_max = np.full(t, np.nan, np.float32)
         model = self.model
@@ -226,8 +231,12 @@ class BatchSolver:
             _check_finite(chunk, i0)
             inputs, rigid = stabilise_frames(model, chunk, stabilise=stabilise,
                                              scale=settings.stabilise_scale)
-            if rigid is not None:
+            if rigid is not None and fits is not None:
                 align_rms[i0 : i0 + bs] = rigid.rms
+                for mine, part in zip((fits.rotation, fits.translation, fits.scale, fits.mse),
+                                      (rigid.rotation, rigid.translation, rigid.scale, rigid.mse),
+                                      strict=True):
+                    mine[i0 : i0 + bs] = part
             try:
                 raw[i0 : i0 + bs] = infer(model, inputs, i0)
             except FloatingPointError as exc:
@@ -262,12 +271,12 @@ class BatchSolver:
         with ThreadPoolExecutor(max_workers=self.threads) as pool:
             starts = range(0, t, bs)
             solving = [pool.submit(solve_chunk, i0) for i0 in starts]
-            fits = []
+            fitted_chunks = []
             try:
                 for i0, job in zip(starts, solving, strict=True):
                     rigid = job.result()
                     if fitting:
-                        fits.append(pool.submit(fit_chunk, i0, rigid))
+                        fitted_chunks.append(pool.submit(fit_chunk, i0, rigid))
                     if opts.filter != "smooth":
                         i1 = min(i0 + bs, t)
                         filter_and_clamp(model, filt, raw[i0:i1], t_ns[i0:i1], numbers[i0:i1],
@@ -275,7 +284,7 @@ class BatchSolver:
                 if opts.filter == "smooth":
                     filter_and_clamp(model, None, zero_phase_smooth(raw, times, opts.smooth_hz),
                                      t_ns, None, controls)
-                for fitted in fits:
+                for fitted in fitted_chunks:
                     fitted.result()
             except BaseException:
                 pool.shutdown(wait=True, cancel_futures=True)  # a bad frame: skip the rest
@@ -287,7 +296,7 @@ class BatchSolver:
         fit_vertices = (0 if opts.fit_error == "off" else subset.indices.shape[0]
                         if subset is not None else self.bundle.vertex_count)
         return BatchSolve(controls, fit_rms, fit_max, off, thresholds, align_rms, seconds,
-                          t / seconds, opts.fit_error, fit_vertices)
+                          t / seconds, opts.fit_error, fit_vertices, fits)
 
     def _off_manifold(self, fit_rms: np.ndarray, fit_max: np.ndarray, opts: SolveOptions
                       ) -> tuple[np.ndarray, np.ndarray]:

@@ -258,3 +258,19 @@ def test_chunk_size_does_not_change_the_result(bundle: Bundle) -> None:
     np.testing.assert_allclose(one.fit_max, many.fit_max, rtol=1e-5)
     np.testing.assert_array_equal(one.off_manifold, many.off_manifold)
 
+
+
+def test_the_solve_returns_the_fits_that_stabilised_each_frame(bundle: Bundle) -> None:
+    """BatchSolve.rigid is the stabilising fit of every frame (so writers need not fit again),
+    across chunks; None when the solve does not stabilise."""
+    meshes, times, _ = _take(70, seed=6)
+    solver = BatchSolver(bundle, threads=2)
+    result = solver.solve(meshes, times, SolveOptions(batch_size=16, fit_error="off"))
+    assert result.rigid is not None and len(result.rigid) == 70
+    ref = fit_rigid_batch(meshes[:, bundle.stable_indices], solver.neutral_stable)
+    np.testing.assert_allclose(result.rigid.rotation, ref.rotation, atol=1e-12)
+    np.testing.assert_allclose(result.rigid.translation, ref.translation, atol=1e-12)
+    np.testing.assert_allclose(np.sqrt(result.rigid.mse), result.align_rms, rtol=1e-5, atol=1e-7)
+    off = solver.solve(meshes, times, SolveOptions(stream=StreamConfig(stabilise=False),
+                                                   fit_error="off"))
+    assert off.rigid is None
