@@ -195,7 +195,7 @@ def _run(config: CheckConfig, meshes: list[np.ndarray], controls: int, notes: li
     stream = config.stream or STREAM
     with tempfile.TemporaryDirectory(prefix="rigcast-latency-") as tmp:
         work = Path(tmp)
-        say(f"floor: echo process, {config.floor_duration_s:g} s at {config.fps:g} fps ...")
+        say(f"floor: echo process, {config.floor_duration_s:.1f} s at {config.fps:g} fps ...")
         echo_cmd = [sys.executable, "-m", "rigcast.latency_probe", "--ready",
                     str(work / "echo.json"), "--stream", stream, "--controls", str(controls)]
         with _process(echo_cmd, work / "echo.json", "echo", 0, config, notes) as (_, ends):
