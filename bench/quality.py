@@ -55,6 +55,7 @@ from rigcast.runtime.bundle import Bundle, load_bundle
 from rigcast.runtime.config import filter_defaults
 from rigcast.runtime.inference import ForwardModel
 from rigcast.runtime.one_euro import OneEuroFilter, OneEuroParams
+from rigcast.runtime.refine import RefineSettings
 from rigcast.runtime.schema import ControlSchema
 
 log = logging.getLogger("bench.quality")
@@ -78,6 +79,8 @@ class Sizes:
     optim: bool
     zoo_max_vertices: int
     zoo_max_controls: int
+    cache: str | None = None  # a str, so the sizes stay JSON in the report
+    refine_current: bool = False
 
 
 @dataclass(frozen=True)
@@ -104,17 +107,17 @@ def _quick_config() -> Any:
                 inverse=make(InverseConfig, steps=250, max_seconds=15.0))
 
 
-def build(rig: Rig, path: Path, quick: bool) -> tuple[Path, Any, float, float]:
+def build(rig: Rig, path: Path, quick: bool, cache: Path | None = None
+          ) -> tuple[Path, Any, float, float]:
     """A bundle from the default build (tiny training with ``quick``): (bundle path, torch
-    forward model or None, the build's forward % of D, build seconds). No cache."""
+    forward model or None, the build's forward % of D, build seconds). With ``cache``, a build
+    of the same rig and settings is reused (its seconds are then the original build's)."""
     from rigcast.export.build import build_bundle
 
     t0 = time.perf_counter()
-    if quick:
-        result = build_bundle(rig, path, _quick_config(), progress=_Progress())
-    else:
-        result = build_bundle(rig, path, progress=_Progress())
-    seconds = time.perf_counter() - t0
+    config = _quick_config() if quick else None
+    result = build_bundle(rig, path, config, cache_dir=cache, progress=_Progress())
+    seconds = float(result.seconds) if result.cached else time.perf_counter() - t0
     model = getattr(result, "forward_model", None)
     if model is not None:
         model.eval()
@@ -269,10 +272,15 @@ def run_rig(name: str, out: Path, sizes: Sizes) -> dict[str, Any]:
     say(f"{name}: {rig.vertex_count} vertices, {rig.control_count} controls, "
         f"linear={rig.linear}, rigid region={entry['rigid_region']}")
     path, forward, build_pct, build_s = build(rig, out / "bundles" / f"{name}.rigcast",
-                                              sizes.quick)
+                                              sizes.quick,
+                                              Path(sizes.cache) if sizes.cache else None)
     say(f"{name}: built in {build_s:.1f}s")
     bundle = load_bundle(path)
     solver = BatchSolver(bundle)
+    refiner = solver.inverse.refiner
+    if sizes.refine_current and refiner is not None:
+        refiner.settings = RefineSettings()  # the runtime's defaults, not the bundle's record
+    entry["refine_settings"] = dataclasses.asdict(refiner.settings) if refiner else None
     lin = linearise_rig(rig)
     truth_c = sample_controls(s, sizes.clean_poses, sparsity=SparsityConfig(), seed=HELDOUT_SEED)
     mesh_c = rig.evaluate(truth_c)
@@ -403,6 +411,12 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--take-frames", type=int, default=600)
     ap.add_argument("--optim", action="store_true", help="add the old per-frame Adam row")
     ap.add_argument("--quick", action="store_true", help="small sizes for a smoke run")
+    ap.add_argument("--cache", type=Path, default=None,
+                    help="build cache folder: rebuilds of the same rig and settings are reused "
+                    "(to re-score after a runtime change)")
+    ap.add_argument("--refine-current", action="store_true",
+                    help="solve with the runtime's current refinement defaults instead of those "
+                    "each bundle recorded (re-scores cached builds after a runtime change)")
     ap.add_argument("--dry-run", action="store_true", help="print the rigs and seeds, then stop")
     args = ap.parse_args(argv)
     names = [n for n in args.rigs.split(",") if n]
@@ -417,14 +431,17 @@ def main(argv: list[str] | None = None) -> int:
     if any(x < 0 for x in seeds) or args.zoo < 0 or args.clean_poses < 1:
         ap.error("zoo seeds, --zoo and --clean-poses must be non-negative (poses at least 1)")
     names += [f"zoo-{x}" for x in seeds]
+    cache = str(args.cache) if args.cache else None
     if args.quick:
         sizes = Sizes(take_frames=120, clean_poses=min(args.clean_poses, 48), nlls_clean_poses=16,
                       optim_steps=60, quick=True, optim=args.optim, zoo_max_vertices=1200,
-                      zoo_max_controls=12)
+                      zoo_max_controls=12, cache=cache,
+                      refine_current=args.refine_current)
     else:
         sizes = Sizes(take_frames=args.take_frames, clean_poses=args.clean_poses,
                       nlls_clean_poses=args.nlls_clean_poses, optim_steps=250, quick=False,
-                      optim=args.optim, zoo_max_vertices=20000, zoo_max_controls=150)
+                      optim=args.optim, zoo_max_vertices=20000, zoo_max_controls=150,
+                      cache=cache, refine_current=args.refine_current)
     say(f"zoo seeds this run: {seeds} (replay with --zoo-seeds {','.join(map(str, seeds))})")
     print(f"zoo seeds: {seeds}", flush=True)
     if args.dry_run:

@@ -156,10 +156,8 @@ def refine_settings(bundle: Bundle) -> RefineSettings:
     if not isinstance(section, dict):
         return RefineSettings()
     try:
-        return RefineSettings(**{k: section[k] for k in ("steps", "kappa", "wake_share", "prior",
-                                                         "damping", "snap")
-                                 if k in section})
-    except (TypeError, RefineError) as exc:
+        return RefineSettings.from_manifest(section)
+    except RefineError as exc:
         raise BundleError(f"bundle manifest 'refine' section is invalid: {exc}") from None
 
 

@@ -16,12 +16,25 @@ normalised controls u = (c - lo) / (hi - lo) and the residual's squared norm. Ea
    and the forward model's diffuse error explain little, and waking on significance alone
    woke controls to soak up that error (false activity) and noise (jitter).
    At-rest controls therefore stay exactly at rest, and a lost expression is brought back.
-2. **Step.** On the fit plus a pull ``prior`` towards the network's answer u0,
-   (H_AA + (damping + prior) diag(H_AA)) delta_A = g_A - prior diag(H_AA) (u - u0)_A with H the
-   bundle's fixed Gauss-Newton matrix (a chord method: the gradient is exact, the curvature
-   fixed), then a clip to the bounds. The fit reads only the K input vertices, so alone it fits
-   their noise; the network, trained on noisy inputs, is the prior that tempers it.
-3. **Safeguard.** A frame whose cost (fit plus pull) grew keeps its previous controls and stops.
+2. **Step.** A maximum a posteriori step with a Gaussian prior of standard deviation
+   ``prior_sd`` (share of the range) around the network's answer u0:
+
+       (H_AA + damping diag(H_AA) + lam I) delta_A = g_A - lam (u - u0)_A,
+       lam = sigma^2 / prior_sd^2
+
+   with H the bundle's fixed Gauss-Newton matrix (a chord method: the gradient is exact, the
+   curvature fixed), then a clip to the bounds. sigma^2, the frame's noise variance per
+   coordinate, is what the residual would keep after a full Gauss-Newton step on the active
+   controls: (|r|^2 - g_A^T H_AA^-1 g_A) / (3K - |A|), the residual less the decrease the step
+   predicts, per remaining degree of freedom. So the pull adapts to the frame: on a clean mesh
+   almost nothing is left, the fit wins, and an expression the network shrank comes back in
+   full; on a noisy mesh the fit on K vertices would chase the noise, and the network (trained
+   on noisy inputs) tempers it. (Tikhonov regularisation weighted as in a Bayesian linear model,
+   Bishop, "Pattern Recognition and Machine Learning", 2006, 3.3, with the noise variance
+   estimated from the residual's degrees of freedom.) An older, fixed pull ``prior`` (relative
+   to the curvature's diagonal) stays for bundles built with it.
+3. **Safeguard.** A frame whose cost (fit plus pull) grew tries half the step, then a quarter;
+   if none lowers the cost it keeps its controls and stops.
 
 Finally, controls within ``snap`` of their default (share of the range) return to it exactly.
 Frames are independent: a batch of one (live) and a batch of many (``rigcast solve``) take the
@@ -31,8 +44,9 @@ same path.
 from __future__ import annotations
 
 import logging
-from collections.abc import Callable
-from dataclasses import dataclass
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, fields
+from typing import Any
 
 import numpy as np
 
@@ -55,24 +69,49 @@ class RefineSettings:
     pull towards the network's answer, relative to the curvature's diagonal (the network was
     trained on noisy inputs, so it carries a prior the fit on K vertices lacks); damping:
     Levenberg-Marquardt damping relative to the curvature's diagonal; snap: share of the range
-    within which a control returns to its default. The defaults are ours, a compromise measured
-    on a zoo rig (noisy-take error against jitter and false activity; see the issue note), not
-    tuned per rig."""
+    within which a control returns to its default; prior_sd: the standard deviation, in shares of
+    the range, of the Gaussian prior around the network's answer (0 = none); backtrack: step
+    halvings tried when a full step raises the cost. ``prior`` is the older fixed pull, 0 in new
+    builds. The defaults are ours, measured on the built-in rigs and fresh zoo rigs together
+    (recoverability, noise-free error, false activity, noisy-take error and jitter), not tuned
+    per rig."""
 
-    steps: int = 3
+    steps: int = 5
     kappa: float = 4.0
     wake_share: float = 0.5
-    prior: float = 0.5
-    damping: float = 1.0
+    prior: float = 0.0
+    damping: float = 0.1
     snap: float = 0.002
+    prior_sd: float = 0.02
+    backtrack: int = 2
 
     def __post_init__(self) -> None:
         if not isinstance(self.steps, int) or not 0 <= self.steps <= 50:
             raise RefineError(f"refine steps must be an integer in 0..50, got {self.steps!r}")
-        for name in ("kappa", "wake_share", "prior", "damping", "snap"):
+        for name in ("kappa", "wake_share", "prior", "damping", "snap", "prior_sd"):
             value = getattr(self, name)
             if not (np.isfinite(value) and value >= 0):
                 raise RefineError(f"refine {name} must be finite and >= 0, got {value!r}")
+        if not isinstance(self.backtrack, int) or not 0 <= self.backtrack <= 10:
+            raise RefineError(f"refine backtrack must be an integer in 0..10, got "
+                              f"{self.backtrack!r}")
+
+    @classmethod
+    def from_manifest(cls, section: Mapping[str, Any]) -> RefineSettings:
+        """The settings a bundle's manifest ``refine`` section records. A bundle built before the
+        adaptive prior has no ``prior_sd`` or ``backtrack``: it keeps the steps it was checked
+        with (no adaptive prior, no halving)."""
+        names = {f.name for f in fields(cls)}
+        unknown = sorted(set(section) - names)
+        if unknown:
+            raise RefineError(f"unknown refine setting(s) {unknown}")
+        kw = dict(section)
+        kw.setdefault("prior_sd", 0.0)
+        kw.setdefault("backtrack", 0)
+        try:
+            return cls(**kw)
+        except TypeError as exc:
+            raise RefineError(f"refine settings are invalid: {exc}") from None
 
 
 def active_set(u: np.ndarray, d: np.ndarray, g: np.ndarray, rss: np.ndarray,
@@ -93,21 +132,24 @@ def active_set(u: np.ndarray, d: np.ndarray, g: np.ndarray, rss: np.ndarray,
     return free
 
 
-def solve_active(hessian: np.ndarray, g: np.ndarray, free: np.ndarray, damping: float
-                 ) -> np.ndarray:
+def solve_active(hessian: np.ndarray, g: np.ndarray, free: np.ndarray, damping: float,
+                 ridge: np.ndarray | None = None) -> np.ndarray:
     """The damped Gauss-Newton step on each frame's active controls.
 
-    hessian (C, C); g (N, C); free (N, C) bool -> delta (N, C), zero outside the active set.
+    hessian (C, C); g (N, C); free (N, C) bool; each active diagonal entry becomes
+    H_cc (1 + damping) + ridge_n, ridge (N,) (zeros if None) -> delta (N, C), zero outside the
+    active set.
     Each frame's system is gathered to its own active controls, padded to the batch's largest
     active count with identity rows, and solved in one batched call.
     """
     n, c = g.shape
     delta = np.zeros((n, c), np.float64)
+    ridge = np.zeros(n) if ridge is None else np.asarray(ridge, np.float64)
     if n == 1:  # the live path: one frame, plain indexing is several times cheaper
         a = np.flatnonzero(free[0])
         if a.size:
             h = hessian[np.ix_(a, a)]
-            h[np.diag_indices(a.size)] *= 1.0 + damping
+            h[np.diag_indices(a.size)] = h[np.diag_indices(a.size)] * (1.0 + damping) + ridge[0]
             delta[0, a] = np.linalg.solve(h, g[0, a])
         return delta
     counts = free.sum(axis=1)
@@ -120,15 +162,15 @@ def solve_active(hessian: np.ndarray, g: np.ndarray, free: np.ndarray, damping: 
     sub = np.where(pair, hessian[idx[:, :, None], idx[:, None, :]], 0.0)  # (N, W, W)
     diag = np.einsum("nii->ni", sub)  # (N, W) view of each frame's diagonal
     eye = np.where(valid, 1.0 + damping, 1.0)
-    sub[:, np.arange(width), np.arange(width)] = np.where(valid, diag * eye, 1.0)
+    sub[:, np.arange(width), np.arange(width)] = np.where(valid, diag * eye + ridge[:, None], 1.0)
     rhs = np.where(valid, np.take_along_axis(g, idx, axis=1), 0.0)
     step = np.linalg.solve(sub, rhs[..., None])[..., 0]  # (N, W)
     np.put_along_axis(delta, idx, np.where(valid, step, 0.0), axis=1)
     return delta
 
 
-def solve_active_naive(hessian: np.ndarray, g: np.ndarray, free: np.ndarray, damping: float
-                       ) -> np.ndarray:
+def solve_active_naive(hessian: np.ndarray, g: np.ndarray, free: np.ndarray, damping: float,
+                       ridge: np.ndarray | None = None) -> np.ndarray:
     """Per-frame twin of ``solve_active``: index lists and one small solve per frame."""
     delta = np.zeros(g.shape, np.float64)
     for i in range(g.shape[0]):
@@ -136,7 +178,8 @@ def solve_active_naive(hessian: np.ndarray, g: np.ndarray, free: np.ndarray, dam
         if not a:
             continue
         h = np.array([[hessian[p, q] for q in a] for p in a], np.float64)
-        h[np.diag_indices(len(a))] *= 1.0 + damping
+        for j in range(len(a)):
+            h[j, j] = h[j, j] * (1.0 + damping) + (0.0 if ridge is None else float(ridge[i]))
         delta[i, a] = np.linalg.solve(h, g[i, a])
     return delta
 
@@ -167,6 +210,19 @@ class Refiner:
         self.d = np.clip((np.asarray(defaults, np.float64) - self.lower) / self.span, 0.0, 1.0)
         self.coords = int(coords)
 
+    def prior_weight(self, g: np.ndarray, rss: np.ndarray, free: np.ndarray) -> np.ndarray:
+        """g (N, C) gradient, rss (N,) residual squared norms, free (N, C) the active set ->
+        (N,) lam = sigma^2 / prior_sd^2 with sigma^2 the residual a full Gauss-Newton step would
+        leave, per remaining degree of freedom (0 without an adaptive prior)."""
+        sd = self.settings.prior_sd
+        if sd <= 0.0:
+            return np.zeros(rss.shape, np.float64)
+        full = solve_active(self.hessian, g, free, 0.0)
+        left = np.maximum(rss - (g * full).sum(axis=1), 0.0)
+        dof = np.maximum(self.coords - free.sum(axis=1), 1)
+        out: np.ndarray = left / dof / sd**2
+        return out
+
     def _evaluate(self, u: np.ndarray, mesh: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         c = (self.lower + self.span * u).astype(np.float32)
         g, rss = self.gradient(c, mesh)
@@ -186,19 +242,30 @@ class Refiner:
                               s.wake_share) & live[:, None]
             if not free.any():
                 break
-            pull = g - s.prior * self.diag * (u - u0)  # the prior's gradient, towards u0
-            step = solve_active(self.hessian, pull, free, s.damping + s.prior)
-            trial = np.clip(u + step, 0.0, 1.0)
-            if np.abs(trial - u).max() < 1e-6:  # converged: nothing left to gain
+            lam = self.prior_weight(g, rss, free)  # (N,) the adaptive pull, per frame
+            fixed = s.prior * self.diag  # (C,) the older fixed pull
+            pull = g - (lam[:, None] + fixed) * (u - u0)
+            step = solve_active(self.hessian, pull, free, s.damping + s.prior, lam)
+            cost = rss + ((lam[:, None] + fixed) * (u - u0) ** 2).sum(axis=1)
+            accepted = np.zeros(u.shape[0], dtype=bool)
+            share = 1.0
+            for _halving in range(s.backtrack + 1):
+                trial = np.clip(u + share * step, 0.0, 1.0)
+                if np.abs(trial - u).max() < 1e-6:  # converged: nothing left to gain
+                    break
+                g_new, rss_new = self._evaluate(trial, mesh)
+                cost_new = rss_new + ((lam[:, None] + fixed) * (trial - u0) ** 2).sum(axis=1)
+                better = (cost_new <= cost) & live & ~accepted & np.isfinite(rss_new)
+                u = np.where(better[:, None], trial, u)
+                g = np.where(better[:, None], g_new, g)
+                rss = np.where(better, rss_new, rss)
+                accepted |= better
+                if accepted[live].all():
+                    break
+                share *= 0.5
+            if not accepted.any():
                 break
-            g_new, rss_new = self._evaluate(trial, mesh)
-            cost, cost_new = (rss + s.prior * ((u - u0) ** 2 * self.diag).sum(axis=1),
-                              rss_new + s.prior * ((trial - u0) ** 2 * self.diag).sum(axis=1))
-            better = (cost_new <= cost) & live & np.isfinite(rss_new)
-            u = np.where(better[:, None], trial, u)
-            g = np.where(better[:, None], g_new, g)
-            rss = np.where(better, rss_new, rss)
-            live &= better
+            live &= accepted
         u = np.where(np.abs(u - self.d) <= s.snap, self.d, u)
         out: np.ndarray = (self.lower + self.span * u).astype(np.float32)
         return out
