@@ -67,7 +67,7 @@ def test_refine_reaches_the_bounded_least_squares_optimum_on_a_linear_rig() -> N
     guess = np.clip(truth + 0.08 * rng.standard_normal(truth.shape) * (truth > 0), 0, 1)
     guess[:, 0] = 0.0  # a lost expression: the network left control 0 at rest
     refiner = Refiner(gradient, a.T @ a, np.zeros(c), np.ones(c), np.zeros(c), a.shape[0],
-                      RefineSettings(steps=8, prior=0.0, damping=0.05))
+                      RefineSettings(steps=8, prior=0.0, damping=0.05, tol=1e-6))
     got = refiner.refine(guess.astype(np.float32), mesh)
     ref = np.stack([lsq_linear(a, m.reshape(-1), bounds=(0, 1), method="bvls").x for m in mesh])
     np.testing.assert_allclose(got, ref, atol=2e-4)
