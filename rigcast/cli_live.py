@@ -34,6 +34,10 @@ def add_serve(subs: Subparsers) -> None:
         show_defaults=False,  # the server's flags state their defaults themselves
     )
     serve_main.add_serve_arguments(p)
+    p.add_argument("--quiet", action="store_true",
+                   help="print nothing at start and no status lines (errors still print)")
+    p.add_argument("--status-every", type=float, default=5.0, metavar="SECONDS",
+                   help="seconds between status lines (default: 5)")
 
 
 def add_keys(subs: Subparsers) -> None:
@@ -244,11 +248,16 @@ def cmd_serve(args: argparse.Namespace) -> int:
     import threading
     from types import FrameType
 
-    from rigcast.errors import EXIT_INTERRUPTED, EXIT_OK
+    from rigcast.cli_common import say
+    from rigcast.errors import EXIT_INTERRUPTED, EXIT_OK, UserError
     from rigcast.runtime import serve_main
     from rigcast.runtime.server import Server
+    from rigcast.serve_status import StatusPrinter, startup_lines
 
-    server = Server(serve_main.config_from_args(args))
+    if not args.status_every > 0:
+        raise UserError(f"--status-every must be > 0, got {args.status_every}", code=2)
+    config = serve_main.config_from_args(args)
+    server = Server(config)
     got: list[int] = []
 
     def on_signal(signum: int, frame: FrameType | None) -> None:
@@ -264,7 +273,19 @@ def cmd_serve(args: argparse.Namespace) -> int:
     server.startup()
     if args.ready_file is not None:
         serve_main.write_ready_file(args.ready_file, server)
-    server.run()
+    status = None
+    if not args.quiet:
+        for line in startup_lines(config, server.input_endpoint, server.output_endpoint):
+            say(line)
+        if config.curve_secret_key is None:  # the status reader would need keys of its own
+            status = StatusPrinter(server.output_endpoint, say, args.status_every)
+            status.start()
+            say(f"a status line every {args.status_every:g} s (--quiet to silence); Ctrl-C stops")
+    try:
+        server.run()
+    finally:
+        if status is not None:
+            status.stop()
     return EXIT_INTERRUPTED if got and got[0] == signal.SIGINT else EXIT_OK
 
 

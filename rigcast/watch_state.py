@@ -8,7 +8,7 @@ States, the first that applies (``health``):
   figures are then old and shown as such;
 - ``waiting``: the stream has sent no telemetry yet;
 - ``no input``: the stream's input counters (processed, dropped, stale, rejected) have not
-  moved for ``no_input_after_s``: no sender, or a sender that stopped;
+  moved for ``no_input_after_s`` (no sender, or a sender that stopped), or are still 0;
 - ``off-manifold``: a frame was flagged off the rig's manifold in the last 1.5 s;
 - ``over budget``: the server's p95 time per frame is over the frame budget at the stream's
   input rate (1 / fps);
@@ -165,6 +165,8 @@ class WatchState:
             return Health(SILENT, f"nothing from the server {heard}")
         if not view.telemetry:
             return Health(WAITING, "no telemetry for this stream yet")
+        if view.input_total == 0:
+            return Health(NO_INPUT, "no input yet")
         idle = now - view.input_changed_at
         if idle > self.no_input_after_s:
             return Health(NO_INPUT, f"no input for {idle:.0f} s" if idle >= 1.5
