@@ -1,5 +1,6 @@
 """Record what a server publishes: the controls of every stream (or the chosen ones) in one
-process, with the sender's frame numbers, the flags, and the head pose from telemetry; written
+process, with the sender's frame numbers, the flags, and the head pose (each controls message's,
+from servers that send it; else telemetry's samples, about 10 a second); written
 by ``rigcast.recording_out`` as NPZ, JSON or CSV with the take's name.
 
 Only the server's publish endpoint is needed. The control names come from the input endpoint
@@ -83,6 +84,7 @@ class _Stream:
     messages: list[ControlsMessage] = field(default_factory=list)
     arrived: list[int] = field(default_factory=list)
     pose: dict[int, list[float]] = field(default_factory=dict)
+    pose_per_frame: bool = False
 
 
 @dataclass(frozen=True)
@@ -138,12 +140,21 @@ def record_streams(subscriber: Subscriber, *, duration_s: float | None = None,
                 if max_frames is None or len(got.messages) < max_frames:
                     got.messages.append(msg)
                     got.arrived.append(time.time_ns())
+                    pose = getattr(msg, "head_pose", None)  # per frame, from newer servers
+                    row = pose_row(pose.to_wire()) if pose is not None else None
+                    if row is not None:
+                        if not got.pose_per_frame:  # per-frame poses replace the samples
+                            got.pose.clear()
+                            got.pose_per_frame = True
+                        got.pose[msg.frame] = row
                 last = time.monotonic()
             elif isinstance(msg, dict) and msg.get("type") == "telemetry":
+                # Older servers carry the pose only in telemetry (about 10 a second).
+                got = streams.setdefault(str(msg["stream"]), _Stream())
                 row = pose_row(msg.get("pose") or {})
                 frame = msg.get("last_frame")
-                if row is not None and isinstance(frame, int):
-                    streams.setdefault(str(msg["stream"]), _Stream()).pose[frame] = row
+                if row is not None and isinstance(frame, int) and not got.pose_per_frame:
+                    got.pose[frame] = row
     except KeyboardInterrupt:
         interrupted = True
         log.info("recording stopped by Ctrl-C")

@@ -78,6 +78,8 @@ def test_every_stream_in_one_npz_with_frame_numbers_flags_and_take(
             # the tiny rigs' inverses are exact: the last frames are the sent controls
             np.testing.assert_allclose(z[f"{stream}/values"][-5:], value, atol=1e-3)
             assert z[f"{stream}/pose"].shape[1] == 8
+            # poses come with the controls (one per stabilised frame) or from telemetry
+            assert set(z[f"{stream}/pose_frame"].tolist()) <= set(frames.tolist())
 
 
 def test_chosen_stream_to_csv_and_json(tmp_path: Path, two_streams: dict[str, str]) -> None:
