@@ -1,4 +1,5 @@
-"""glTF files from other exporters: the Khronos sample models SimpleSkin and SimpleMorph (CC0,
+"""glTF files from other exporters: the Khronos sample models SimpleSkin and SimpleMorph (public
+domain, CC0 1.0) and RiggedSimple and RiggedFigure (by Cesium, CC BY 4.0; licences and sources in
 tests/data/khronos/LICENSE.md), every animation channel and interpolation of the glTF 2.0
 specification ("Animations", Appendix C), both buffer data-URI media types, and the last key of
 a take whose duration the rate does not divide."""
@@ -19,12 +20,16 @@ from scipy.spatial.transform import Rotation
 
 from rigcast.gltf_take import frame_times
 from rigcast.takes import DEFAULT_FPS, TakeError, read_take
+from tests.gltf_validator import assert_valid
 
 DATA = Path(__file__).parent / "data" / "khronos"
 SKIN, MORPH = DATA / "SimpleSkin.gltf", DATA / "SimpleMorph.gltf"
+RIGGED_SIMPLE, RIGGED_FIGURE = DATA / "RiggedSimple.gltf", DATA / "RiggedFigure.gltf"
+SAMPLES = [SKIN, MORPH, RIGGED_SIMPLE, RIGGED_FIGURE]
+SAMPLE_IDS = [p.stem for p in SAMPLES]
 
 
-@pytest.mark.parametrize("path", [SKIN, MORPH], ids=["SimpleSkin", "SimpleMorph"])
+@pytest.mark.parametrize("path", SAMPLES, ids=SAMPLE_IDS)
 def test_sample_files_are_intact(path: Path) -> None:
     """Every buffer decodes to its byteLength and every accessor matches its stored min/max
     (glTF 2.0, "Accessors": min and max are the component-wise bounds of the data)."""
@@ -33,12 +38,32 @@ def test_sample_files_are_intact(path: Path) -> None:
     gltf = pygltflib.GLTF2().load(str(path))
     reader = GltfReader(gltf, path)
     for i, buf in enumerate(gltf.buffers):
-        assert buf.uri.startswith("data:application/gltf-buffer;base64,")
+        assert buf.uri.startswith(("data:application/gltf-buffer;base64,",
+                                   "data:application/octet-stream;base64,"))
         assert len(reader.buffer(i)) == buf.byteLength
     for i, acc in enumerate(gltf.accessors):
         data = reader.read(i)
         np.testing.assert_allclose(data.min(axis=0), acc.min, atol=1e-3)
         np.testing.assert_allclose(data.max(axis=0), acc.max, atol=1e-3)
+    assert_valid(path)  # the Khronos validator finds no errors (it checks bounds, views, skins)
+
+
+def test_rigged_samples_read_as_takes() -> None:
+    """RiggedSimple's 50 keys 1/24 s apart are a baked take; RiggedFigure's two keys (0 and
+    1.25 s) are sampled at the default rate, last key kept. RiggedFigure has split normals: 370
+    vertices at 130 distinct positions (the case issue 14 names), and every copy of a position
+    moves with it."""
+    simple = read_take(RIGGED_SIMPLE)
+    assert simple.fps_source == "file" and simple.frame_count == 50
+    assert simple.fps == pytest.approx(24.0, rel=1e-5)
+    figure = read_take(RIGGED_FIGURE)
+    assert figure.fps_source == "default" and figure.frame_count == 76
+    assert figure.times_s[-1] == pytest.approx(1.25)
+    positions, inverse = np.unique(figure.vertices[0], axis=0, return_inverse=True)
+    assert figure.vertex_count == 370 and positions.shape[0] == 130
+    inverse = inverse.reshape(-1)
+    first = np.unique(inverse, return_index=True)[1]  # one vertex of each position
+    np.testing.assert_allclose(figure.vertices[:, first[inverse]], figure.vertices, atol=1e-6)
 
 
 def test_simple_skin_take_matches_hand_computed_pose() -> None:
@@ -199,37 +224,66 @@ def _rigcast(*args: str, timeout: float = 900.0) -> None:
     assert proc.returncode == 0, proc.stderr[-3000:]
 
 
+# The joints each animation moves, on the axes it moves them (intrinsic XYZ in the joint's rest
+# frame, docs/rig-sources.md), with a margin: what a user states about the rig in a bounds file.
 SKIN_BOUNDS = '{"joints": {"node_2": {"z": [-100, 100]}}}'
-# A build at default settings takes minutes to tens of minutes on 2 shared cores: opt in.
+RIGGED_SIMPLE_BOUNDS = '{"joints": {"Bone.001": {"x": [-60, 60]}}}'  # animation: x -34..0
+RIGGED_FIGURE_BOUNDS = json.dumps({"joints": {  # animation: x 0..14, -4..0, 0..42 and -41..0
+    "neck_joint_1": {"x": [-30, 30]}, "neck_joint_2": {"x": [-30, 30]},
+    "arm_joint_L_1": {"x": [-60, 60], "y": [-30, 30], "z": [-30, 30]},
+    "arm_joint_R_1": {"x": [-60, 60], "y": [-30, 30], "z": [-30, 30]}}})
+CASES = [pytest.param(SKIN, SKIN_BOUNDS, id="SimpleSkin"),
+         pytest.param(MORPH, None, id="SimpleMorph"),
+         pytest.param(RIGGED_SIMPLE, RIGGED_SIMPLE_BOUNDS, id="RiggedSimple"),
+         pytest.param(RIGGED_FIGURE, RIGGED_FIGURE_BOUNDS, id="RiggedFigure")]
+# A build at default settings takes minutes to tens of minutes on 2 shared cores (measured
+# figures: bench/khronos_samples.py and its JSON), too long for CI: opt in. CI runs the same
+# route with a reduced schedule, held to a looser bound (the 0.1 % is not checked there).
 FULL = pytest.mark.skipif(not os.environ.get("RIGCAST_FULL_SAMPLES"),
                           reason="default-settings sample builds: set RIGCAST_FULL_SAMPLES=1")
-# Training has time budgets, so a reduced build's accuracy depends on the machine's load: with
-# --samples 800 --steps 300 --epochs 20, SimpleMorph measured 0.05 % and 0.26 % of the diagonal
-# in two runs, SimpleSkin 0.91 %. Only default-settings builds are held to the 0.1 % bound.
+REDUCED = ["--samples", "600", "--steps", "200", "--epochs", "100"]
 
 
-@FULL
-@pytest.mark.timeout(3600)
-@pytest.mark.parametrize(("sample", "bounds", "budget"), [
-    pytest.param(SKIN, SKIN_BOUNDS, [], id="SimpleSkin-defaults"),  # 0.011 %, 25 min build
-    pytest.param(MORPH, None, [], id="SimpleMorph-defaults"),
-])
-def test_sample_builds_and_solves_its_own_animation(tmp_path: Path, sample: Path,
-                                                    bounds: str | None, budget: list[str]
-                                                    ) -> None:
-    """`rigcast build` from the original file, `rigcast solve` of its own animation, and the
-    solve's glTF re-evaluated (glTF 2.0 morph targets and skinning) against the original take:
-    mean vertex error <= 0.1 % of the diagonal (issue 14's acceptance)."""
-    bundle, out = tmp_path / "sample.rcb", tmp_path / "solved.gltf"
-    build = ["build", str(sample), "-o", str(bundle), *budget, "--quiet"]
-    _rigcast(*build, *(["--bounds", bounds] if bounds else []), timeout=3500)
-    solve = ["solve", str(bundle), str(sample), "-o", str(out)]
-    skinned = ["--rig", f"gltf:{sample}", "--bounds", bounds] if bounds else []
-    _rigcast(*solve, *skinned)
+def build_and_solve(workdir: Path, sample: Path, bounds: str | None, schedule: list[str],
+                    timeout: float = 3500.0) -> tuple[float, float]:
+    """`rigcast build` from the original file and `rigcast solve` of its own animation, as a
+    user runs them; the solve's glTF is read back (glTF 2.0 morph targets and skinning) and
+    compared with the original take. Returns (mean vertex error, mean distance of the take from
+    its first frame), both in % of the take's bounding-box diagonal."""
+    bundle, out = workdir / f"{sample.stem}.rcb", workdir / f"{sample.stem}.solved.gltf"
+    rig_bounds = ["--bounds", bounds] if bounds else []
+    _rigcast("build", str(sample), "-o", str(bundle), *schedule, "--quiet", *rig_bounds,
+             timeout=timeout)
+    _rigcast("solve", str(bundle), str(sample), "-o", str(out),
+             *(["--rig", f"gltf:{sample}", *rig_bounds] if bounds else []))
     original, solved = read_take(sample), read_take(out)
     assert solved.frame_count == original.frame_count
     np.testing.assert_allclose(solved.times_s, original.times_s, atol=1e-6)
     flat = original.vertices.reshape(-1, 3)
     diag = float(np.linalg.norm(flat.max(0) - flat.min(0)))
     err = float(np.linalg.norm(solved.vertices - original.vertices, axis=-1).mean())
-    assert err <= 1e-3 * diag, f"mean vertex error {100 * err / diag:.4f} % of the diagonal"
+    motion = float(np.linalg.norm(original.vertices - original.vertices[:1], axis=-1).mean())
+    return 100 * err / diag, 100 * motion / diag
+
+
+@FULL
+@pytest.mark.timeout(3600)
+@pytest.mark.parametrize(("sample", "bounds"), CASES)
+def test_sample_builds_and_solves_its_own_animation(tmp_path: Path, sample: Path,
+                                                    bounds: str | None) -> None:
+    """Issue 14's acceptance, at default settings: mean vertex error <= 0.1 % of the diagonal."""
+    err, _ = build_and_solve(tmp_path, sample, bounds, [])
+    assert err <= 0.1, f"mean vertex error {err:.4f} % of the diagonal"
+
+
+@pytest.mark.timeout(900)
+@pytest.mark.parametrize(("sample", "bounds"), CASES)
+def test_sample_route_with_a_reduced_schedule(tmp_path: Path, sample: Path,
+                                              bounds: str | None) -> None:
+    """The same route with a small schedule (training is a fixed schedule, not a time budget,
+    so the result does not depend on load): the solve follows the animation, its error under a
+    quarter of how far the take moves from its first frame and under 1 % of the diagonal;
+    bounds for a smoke test (common practice, no source), not the acceptance's 0.1 %."""
+    err, motion = build_and_solve(tmp_path, sample, bounds, REDUCED, timeout=800)
+    assert err <= 1.0 and err <= 0.25 * motion, (
+        f"mean vertex error {err:.4f} % of the diagonal; the take moves {motion:.4f} %")
