@@ -25,13 +25,16 @@ from typing import Any
 
 import numpy as np
 from rigcast.export.rig import Rig
+from rigcast.runtime.errors import RigcastError
 from scipy.optimize import least_squares, lsq_linear
 
 log = logging.getLogger(__name__)
 
 
-class BaselineError(ValueError):
+class BaselineError(RigcastError, ValueError):
     """A baseline was given inconsistent inputs; the message names the bad value."""
+
+    advice = "give the baseline a take and controls of the same rig"
 
 
 @dataclass(frozen=True)

@@ -41,6 +41,7 @@ from rigcast.export.executor import (
 )
 from rigcast.export.rig import Rig
 from rigcast.export.sampling import SamplingConfig, sample_chunk
+from rigcast.runtime.errors import RigcastError
 from rigcast.runtime.schema import ControlSchema, SchemaError
 
 log = logging.getLogger(__name__)
@@ -54,8 +55,10 @@ DEFAULT_IN_FLIGHT = 8
 Progress = Callable[[int, int], None]
 
 
-class DatasetError(Exception):
+class DatasetError(RigcastError):
     """A dataset folder or array set is missing, corrupt, or belongs to another rig or config."""
+
+    advice = "give the dataset of this rig, or sample the rig again with `rigcast build`"
 
 
 @dataclass(frozen=True)

@@ -15,14 +15,17 @@ from typing import Any
 
 import numpy as np
 from rigcast.export.rig import Rig
+from rigcast.runtime.errors import RigcastError
 
 log = logging.getLogger(__name__)
 
 DEFAULT_WORKERS = 2
 
 
-class ExecutorError(Exception):
+class ExecutorError(RigcastError):
     """An executor setting is invalid, a scheduler cannot be reached, or a worker died."""
+
+    advice = "check --workers and --scheduler; `rigcast build --help` describes them"
 
 
 class SerialExecutor(Executor):

@@ -12,13 +12,14 @@ from dataclasses import dataclass
 
 import numpy as np
 from rigcast.export.take_synth import bbox_diagonal
+from rigcast.runtime.errors import RigcastError
 
 log = logging.getLogger(__name__)
 
 __all__ = [
     "ACTIVE_FRACTION",
-    "ControlError",
-    "VertexError",
+    "ControlErrorStats",
+    "VertexErrorStats",
     "active_controls",
     "active_controls_naive",
     "bbox_diagonal",
@@ -34,12 +35,14 @@ __all__ = [
 ACTIVE_FRACTION = 0.01
 
 
-class MetricError(ValueError):
+class MetricError(RigcastError, ValueError):
     """Arrays given to a metric have incompatible shapes; the message names them."""
+
+    advice = "compare arrays of the same frames, vertices and controls"
 
 
 @dataclass(frozen=True)
-class VertexError:
+class VertexErrorStats:
     """mean/max over all frames and vertices; per_frame_mean/per_frame_max: (T,)."""
 
     mean: float
@@ -49,7 +52,7 @@ class VertexError:
 
 
 @dataclass(frozen=True)
-class ControlError:
+class ControlErrorStats:
     """Mean absolute control error over frames and controls, raw and as a fraction of range."""
 
     mean_abs: float
@@ -79,10 +82,10 @@ def vertex_distances_naive(pred: np.ndarray, ref: np.ndarray) -> np.ndarray:
     return out
 
 
-def vertex_error(pred: np.ndarray, ref: np.ndarray) -> VertexError:
+def vertex_error(pred: np.ndarray, ref: np.ndarray) -> VertexErrorStats:
     """pred, ref: (T, V, 3) -> mean and max distance, overall and per frame."""
     d = vertex_distances(pred, ref)
-    return VertexError(
+    return VertexErrorStats(
         mean=float(d.mean()),
         max=float(d.max()),
         per_frame_mean=d.mean(axis=1),
@@ -99,13 +102,13 @@ def _ranges(lower: np.ndarray, upper: np.ndarray) -> np.ndarray:
 
 def control_error(
     pred: np.ndarray, truth: np.ndarray, lower: np.ndarray, upper: np.ndarray
-) -> ControlError:
+) -> ControlErrorStats:
     """pred, truth: (T, C); lower, upper: (C,) -> mean |pred - truth|, raw and per range."""
     pred, truth = np.asarray(pred, dtype=np.float64), np.asarray(truth, dtype=np.float64)
     _same_shape(pred, truth, "control_error")
     err = np.abs(pred - truth)
     norm = err / _ranges(lower, upper)
-    return ControlError(
+    return ControlErrorStats(
         mean_abs=float(err.mean()), mean_abs_norm=float(norm.mean()), max_abs_norm=float(norm.max())
     )
 

@@ -25,6 +25,7 @@ import onnxruntime as ort
 import torch
 from rigcast.export.models import ForwardApproximator, InverseNetwork
 from rigcast.runtime.bundle import FORWARD_INPUT, FORWARD_OUTPUT, INVERSE_INPUT, INVERSE_OUTPUT
+from rigcast.runtime.errors import RigcastError
 from torch import nn
 
 log = logging.getLogger(__name__)
@@ -37,8 +38,10 @@ PARITY_TOL = 1e-5
 PARITY_BATCHES = (1, 7, 32)
 
 
-class ExportError(RuntimeError):
+class ExportError(RigcastError, RuntimeError):
     """An exported graph failed the checker, the opset pin, or the parity check."""
+
+    advice = "the build's ONNX export failed its own checks; rebuild, and report it if it stays"
 
 
 def _export(module: nn.Module, example: torch.Tensor | tuple[torch.Tensor, ...],

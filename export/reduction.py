@@ -18,12 +18,15 @@ from __future__ import annotations
 import logging
 
 import numpy as np
+from rigcast.runtime.errors import RigcastError
 
 log = logging.getLogger(__name__)
 
 
-class ReductionError(ValueError):
+class ReductionError(RigcastError, ValueError):
     """A vertex selection was asked for something impossible; the message names the value."""
+
+    advice = "ask for fewer vertices than the mesh has, or for a mesh that moves"
 
 
 def motion_rms(neutral: np.ndarray, vertices: np.ndarray) -> np.ndarray:

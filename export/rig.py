@@ -10,13 +10,17 @@ from abc import ABC, abstractmethod
 from collections.abc import Callable
 
 import numpy as np
+from rigcast.runtime.errors import EXIT_USAGE, RigcastError
 from rigcast.runtime.schema import ControlSchema
 
 log = logging.getLogger(__name__)
 
 
-class RigError(Exception):
+class RigError(RigcastError):
     """A rig could not be loaded or evaluated; the message names the source and the problem."""
+
+    advice = "check the rig spec; `rigcast build --help` lists the sources and their forms"
+    exit_code = EXIT_USAGE
 
 
 def evaluate_in_chunks(chunk_fn: Callable[[np.ndarray], np.ndarray], controls: np.ndarray,

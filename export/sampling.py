@@ -13,14 +13,18 @@ from dataclasses import asdict, dataclass, field
 from typing import Any
 
 import numpy as np
+from rigcast.runtime.errors import EXIT_USAGE, RigcastError
 from rigcast.runtime.schema import ControlSchema
 from scipy.stats import qmc
 
 METHODS = ("sobol", "lhs")
 
 
-class SamplingError(ValueError):
+class SamplingError(RigcastError, ValueError):
     """A sampling config value is invalid; the message names the field and the value."""
+
+    advice = "fix that sampling setting; `rigcast build --help` lists the build's options"
+    exit_code = EXIT_USAGE
 
 
 def _check_int(name: str, value: Any, minimum: int) -> None:

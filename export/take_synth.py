@@ -22,12 +22,16 @@ from dataclasses import dataclass
 
 import numpy as np
 from rigcast.export.rig import Rig
+from rigcast.runtime.errors import EXIT_USAGE, RigcastError
 
 log = logging.getLogger(__name__)
 
 
-class TakeError(ValueError):
+class SynthError(RigcastError, ValueError):
     """A synthetic-take parameter is out of range; the message names it and its value."""
+
+    advice = "choose values in the ranges named above"
+    exit_code = EXIT_USAGE
 
 
 @dataclass(frozen=True)
@@ -108,7 +112,7 @@ def control_trajectories(
     if pick_weights is not None:
         pw = np.asarray(pick_weights, dtype=np.float64)
         if pw.shape != (c,) or np.any(pw < 0) or not pw.sum() > 0:
-            raise TakeError(f"pick_weights must be (C,) = ({c},) non-negative, got {pw.shape}")
+            raise SynthError(f"pick_weights must be (C,) = ({c},) non-negative, got {pw.shape}")
         p = pw / pw.sum()
     for _ in range(n_events):
         attack, hold, release = (
@@ -244,18 +248,18 @@ def synth_take(
     controls the expressions use (e.g. more jaw for a speech-like take).
     """
     if frames < 2:
-        raise TakeError(f"frames must be at least 2, got {frames}")
+        raise SynthError(f"frames must be at least 2, got {frames}")
     if not fps > 0:
-        raise TakeError(f"fps must be positive, got {fps}")
+        raise SynthError(f"fps must be positive, got {fps}")
     for name, value in (
         ("noise_sigma", noise_sigma),
         ("wobble_sigma", wobble_sigma),
         ("bulge_size", bulge_size),
     ):
         if not 0.0 <= value < 1.0:
-            raise TakeError(f"{name} is a fraction of the bbox diagonal in [0, 1), got {value}")
+            raise SynthError(f"{name} is a fraction of the bbox diagonal in [0, 1), got {value}")
     if not 0 <= off_manifold_frames <= frames // 4:
-        raise TakeError(
+        raise SynthError(
             f"off_manifold_frames must be in [0, frames // 4 = {frames // 4}], "
             f"got {off_manifold_frames}"
         )
@@ -273,7 +277,8 @@ def synth_take(
     )
     if talk_control is not None:
         if not 0 <= talk_control < len(schema):
-            raise TakeError(f"talk_control must be a control index in [0, {len(schema)}), got {talk_control}")
+            raise SynthError(f"talk_control must be a control index in [0, {len(schema)}), "
+                             f"got {talk_control}")
         j = talk_control
         talk = speech_track(times, np.random.default_rng(seed + 104_729))
         room = float(schema.upper[j] - schema.defaults[j])

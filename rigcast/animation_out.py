@@ -1,5 +1,6 @@
 """Write solved controls as animation: CSV and JSON here; glTF 2.0 in ``rigcast.gltf_out``,
-OpenUSD in ``rigcast.usd_out``; ``write_controls`` picks by the output file's extension.
+OpenUSD in ``rigcast.usd_out``; ``rigcast.controls_out.write_controls`` picks by the output
+file's extension (a module of its own, so that the writers do not import each other).
 
 - ``.csv``: header ``frame,time_s,<control names...>`` then, when given, the per-frame quality
   ``fit_rms,fit_max,off_manifold,clamped,stale`` (flags 0/1; an empty fit error was not computed)
@@ -30,11 +31,11 @@ import numpy as np
 
 from rigcast.frame_info import FLAG_NAMES, POSE_COLUMNS, FrameQuality, HeadPose
 from rigcast.runtime.bundle import Bundle
+from rigcast.runtime.errors import RigcastError
 from rigcast.runtime.schema import ControlSchema
 
 if TYPE_CHECKING:
     from rigcast.export.rig import Rig
-    from rigcast.skeleton import Skeleton
 
 log = logging.getLogger(__name__)
 
@@ -44,8 +45,10 @@ QUALITY_COLUMNS = ("fit_rms", "fit_max", *FLAG_NAMES)
 
 
 
-class AnimationError(ValueError):
+class AnimationError(RigcastError, ValueError):
     """Controls or a rig cannot be written in the asked format; the message says why."""
+
+    advice = "choose another output path or format; `rigcast solve --help` lists them"
 
 
 @dataclass(frozen=True)
@@ -294,37 +297,6 @@ def read_json(path: str | Path) -> tuple[ControlSchema, np.ndarray, np.ndarray]:
         raise AnimationError(f"{path}: malformed controls file ({type(exc).__name__}: "
                              f"{exc})") from None
     return schema, controls.reshape(-1, len(schema)), times
-
-
-OUTPUT_SUFFIXES = (".csv", ".json", ".gltf", ".glb", ".usda", ".usdc", ".usd")
-
-
-def write_controls(path: str | Path, schema: ControlSchema, controls: np.ndarray,
-                   times_s: np.ndarray, *, fps: float | None = None,
-                   basis: MorphBasis | None = None, skeleton: Skeleton | None = None,
-                   quality: FrameQuality | None = None, head: HeadPose | None = None) -> Path:
-    """Write by extension: .csv, .json, .gltf/.glb (``basis`` and/or ``skeleton``) or
-    .usda/.usdc/.usd (the same, through usd-core). ``quality`` and ``head`` go into every
-    format that can hold them (glTF: the head pose only, on the root node)."""
-    path = Path(path)
-    suffix = path.suffix.lower()
-    if suffix == ".csv":
-        return write_csv(path, schema.names, controls, times_s, quality=quality, head=head)
-    if suffix == ".json":
-        return write_json(path, schema, controls, times_s, fps=fps, quality=quality, head=head)
-    if suffix in (".gltf", ".glb"):
-        from rigcast.gltf_out import write_gltf
-
-        return write_gltf(path, controls, times_s, basis=basis, skeleton=skeleton, head=head,
-                          fps=fps)
-    if suffix in (".usda", ".usdc", ".usd"):
-        from rigcast.usd_out import write_usd
-
-        return write_usd(path, schema, controls, times_s, basis=basis, skeleton=skeleton,
-                         head=head, quality=quality, fps=fps)
-    raise AnimationError(
-        f"{path}: unknown output format {suffix!r}; use {', '.join(OUTPUT_SUFFIXES)}"
-    )
 
 
 def default_times(frames: int, fps: float) -> np.ndarray:

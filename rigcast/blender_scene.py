@@ -36,13 +36,18 @@ from typing import Any
 
 import numpy as np
 
+from rigcast.runtime.errors import EXIT_USAGE, RigcastError
+
 log = logging.getLogger(__name__)
 
 _AXES = "xyz"
 
 
-class BlendError(ValueError):
+class BlendError(RigcastError, ValueError):
     """The .blend cannot be used as a rig; the message names what is wrong."""
+
+    advice = "fix the .blend as named above; `rigcast build --help` lists the rig sources"
+    exit_code = EXIT_USAGE
 
 
 @dataclass(frozen=True)

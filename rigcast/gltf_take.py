@@ -21,7 +21,7 @@ from typing import Any
 
 import numpy as np
 
-from rigcast.takes import DEFAULT_FPS, TakeError, rate_of
+from rigcast.take_common import DEFAULT_FPS, TakeError, rate_of
 
 log = logging.getLogger(__name__)
 

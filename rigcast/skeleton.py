@@ -25,12 +25,15 @@ from rigcast.export.gltf_eval import (
     morph_positions,
     skin_points,
 )
+from rigcast.runtime.errors import RigcastError
 
 log = logging.getLogger(__name__)
 
 
-class SkeletonError(ValueError):
+class SkeletonError(RigcastError, ValueError):
     """A rig has no skeleton that the writers can express; the message says why."""
+
+    advice = "write the controls instead (CSV or JSON); `rigcast solve --help` lists the formats"
 
 
 @dataclass(frozen=True)

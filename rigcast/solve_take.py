@@ -78,7 +78,7 @@ def solve_one(bundle_path: Path, take_path: Path, out: Path,
     The output is written to a temporary name beside ``out`` and renamed when complete, so an
     interrupted solve never leaves a file that looks finished (batches resume on that).
     """
-    from rigcast.animation_out import write_controls
+    from rigcast.controls_out import write_controls
     from rigcast.errors import MismatchError
     from rigcast.forward_subset import slice_forward_graph
     from rigcast.runtime.batch import BatchSolver, SolveOptions

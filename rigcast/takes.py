@@ -28,13 +28,12 @@ from typing import Any
 
 import numpy as np
 
+from rigcast.take_common import DEFAULT_FPS, TakeError, rate_of
+
+__all__ = ["DEFAULT_FPS", "Take", "TakeError", "natural_key", "rate_of", "read_obj_vertices",
+           "read_take"]
+
 log = logging.getLogger(__name__)
-
-DEFAULT_FPS = 60.0  # the one default of `send` and `solve` (live capture rate, common practice)
-
-
-class TakeError(ValueError):
-    """A take cannot be read; the message names the file and the problem."""
 
 
 @dataclass(frozen=True)
@@ -156,12 +155,6 @@ def _finish(verts: np.ndarray, times: np.ndarray | None, source: str, fps: float
         rate = fps or (rate_of(np.diff(t)) if t.shape[0] > 1 else DEFAULT_FPS)
     return _announce(Take(np.ascontiguousarray(verts, dtype=np.float32), t, source, float(rate),
                           origin))
-
-
-def rate_of(steps: np.ndarray) -> float:
-    """Frames per second of time steps (N,): 1 / median, to 9 significant digits (so that
-    steps of 1/30 s read as 30, not 30.000000000000007)."""
-    return float(f"{1.0 / float(np.median(steps)):.9g}")
 
 
 def _announce(take: Take) -> Take:

@@ -36,6 +36,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from rigcast.runtime.errors import RigcastError
 from rigcast.runtime.schema import ControlSchema, SchemaError
 
 log = logging.getLogger(__name__)
@@ -54,8 +55,10 @@ _MEMBERS = ("manifest.json", "arrays.npz", "inverse.onnx", "forward.onnx")
 _OPTIONAL = ("refine.onnx",)
 
 
-class BundleError(Exception):
+class BundleError(RigcastError):
     """A bundle is missing, corrupt, or inconsistent; the message says which part and why."""
+
+    advice = "rebuild the bundle with `rigcast build`, or give the path of a good one"
 
 
 @dataclass(frozen=True)

@@ -16,12 +16,16 @@ from pathlib import Path
 import zmq
 import zmq.auth
 from rigcast.runtime.config import ConfigError
+from rigcast.runtime.errors import EXIT_USAGE, RigcastError
 
 log = logging.getLogger(__name__)
 
 
-class KeyFileError(ConfigError):
+class KeyFileError(ConfigError, RigcastError):
     """A key file or folder is missing or unreadable; the message names it."""
+
+    advice = "create keys with `rigcast keys`, or give the folder that holds them"
+    exit_code = EXIT_USAGE
 
 
 def create_key_pair(folder: Path, name: str) -> tuple[Path, Path]:

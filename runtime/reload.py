@@ -37,6 +37,7 @@ from typing import Any
 from rigcast.runtime import protocol
 from rigcast.runtime.bundle import BundleError
 from rigcast.runtime.config import ServerConfig
+from rigcast.runtime.errors import RigcastError
 from rigcast.runtime.pipeline import StreamModel, StreamState, check_compatible, load_stream_model
 from rigcast.runtime.schema import SchemaError
 
@@ -45,8 +46,10 @@ log = logging.getLogger(__name__)
 _ABS_PATH = re.compile(r"(?:[A-Za-z]:)?[/\\][^\s'\"]*[/\\]([^/\\\s'\"]+)")
 
 
-class ReloadRefused(ValueError):
+class ReloadRefused(RigcastError, ValueError):
     """A reload is refused; the message is safe to send to the client."""
+
+    advice = "reload a bundle from one of the server's allowed folders"
 
 
 def allowed_folders(config: ServerConfig) -> tuple[Path, ...]:

@@ -12,10 +12,14 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+from rigcast.runtime.errors import EXIT_USAGE, RigcastError
 
 
-class SchemaError(ValueError):
+class SchemaError(RigcastError, ValueError):
     """A control schema is malformed; the message names the control and the bad field."""
+
+    advice = "fix the control schema (each control needs name, min and max)"
+    exit_code = EXIT_USAGE
 
 
 @dataclass(frozen=True)

@@ -13,6 +13,7 @@ import time
 from collections.abc import Callable
 
 import zmq
+from rigcast.runtime.errors import RigcastError
 
 log = logging.getLogger(__name__)
 
@@ -20,8 +21,11 @@ log = logging.getLogger(__name__)
 Prepare = Callable[[zmq.Socket], None]  # security options (runtime/security.py), set before bind
 
 
-class BindError(OSError):
+class BindError(RigcastError, OSError):
     """An endpoint could not be bound (port in use, bad interface); the message names it."""
+
+    advice = ("another process (maybe another rigcast server) holds that port; pick another "
+              "port or stop the other process")
 
 
 def _bind(sock: zmq.Socket, endpoint: str, role: str) -> None:

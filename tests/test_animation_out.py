@@ -18,10 +18,10 @@ from rigcast.animation_out import (
     morph_basis,
     read_csv,
     read_json,
-    write_controls,
     write_csv,
     write_json,
 )
+from rigcast.controls_out import write_controls
 from rigcast.gltf_out import write_gltf
 from tests.gltf_validator import assert_valid, errors, validate
 

@@ -18,7 +18,8 @@ from rigcast.runtime.batch import fit_rigid_batch
 from rigcast.runtime.schema import Control, ControlSchema
 from scipy.spatial.transform import Rotation
 
-from rigcast.animation_out import read_csv_columns, write_controls
+from rigcast.animation_out import read_csv_columns
+from rigcast.controls_out import write_controls
 from rigcast.frame_info import (
     FrameQuality,
     HeadPose,
