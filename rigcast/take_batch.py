@@ -24,6 +24,10 @@ import json
 import logging
 import math
 import multiprocessing
+import os
+import signal
+import threading
+import time
 from collections.abc import Callable, Iterable, Sequence
 from concurrent.futures import ProcessPoolExecutor, as_completed
 from dataclasses import asdict, dataclass, fields, replace
@@ -253,7 +257,8 @@ def solve_takes(bundle: Path, takes: Sequence[Path], out_dir: Path, *, suffix: s
                 finished(i, run_job(jobs[i]))
         else:
             context = multiprocessing.get_context("spawn")
-            with ProcessPoolExecutor(min(workers, len(todo)), mp_context=context) as pool:
+            with ProcessPoolExecutor(min(workers, len(todo)), mp_context=context,
+                                     initializer=_worker_init, initargs=(os.getpid(),)) as pool:
                 try:
                     futures = {pool.submit(run_job, jobs[i]): i for i in todo}
                     for future in as_completed(futures):
@@ -265,6 +270,21 @@ def solve_takes(bundle: Path, takes: Sequence[Path], out_dir: Path, *, suffix: s
         kept = tuple(r for r in rows if r is not None)
         csv_path, md_path = write_summary(out_dir, kept)
     return BatchResult(kept, csv_path, md_path)
+
+
+def _worker_init(parent: int) -> None:
+    """In each local worker: Ctrl-C is the parent's to handle (a terminal sends SIGINT to the
+    whole process group, and a worker's KeyboardInterrupt would print a traceback), and a
+    worker whose parent is gone (a forced exit on a second Ctrl-C) exits instead of living on
+    as an orphan."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+    def watch_parent() -> None:
+        while os.getppid() == parent:
+            time.sleep(0.5)
+        os._exit(1)
+
+    threading.Thread(target=watch_parent, name="parent-watch", daemon=True).start()
 
 
 def _on_dask(scheduler: str, jobs: Sequence[TakeJob], index: Sequence[int],

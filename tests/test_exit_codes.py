@@ -77,6 +77,8 @@ class Running:
         code = self.proc.wait(30)
         for reader in self.readers:  # they end at the pipes' end of file
             reader.join(10)
+        # A pipe still open means a child (a pool worker) outlived the command.
+        assert not any(r.is_alive() for r in self.readers), "a child process outlived it"
         for stream in (self.proc.stdout, self.proc.stderr):
             if stream is not None:
                 stream.close()
