@@ -37,6 +37,7 @@ from rigcast.export.executor import make_executor
 from rigcast.export.rig import Rig
 from rigcast.export.sampling import SamplingConfig, SparsityConfig, sample_controls
 from rigcast.runtime.bundle import Bundle, BundleError, load_bundle
+from rigcast.runtime.errors import RigcastError
 
 import rigcast
 
@@ -50,8 +51,10 @@ _CHECK_SEED_OFFSET = 7919
 RIGID_LIMIT = 1e-5
 
 
-class BuildError(RuntimeError):
+class BuildError(RigcastError, RuntimeError):
     """A build could not run or its result failed a check; the message names the stage."""
+
+    advice = "check the build options; `rigcast build --help` lists them"
 
 
 def _forward_default() -> Any:

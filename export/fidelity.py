@@ -28,6 +28,7 @@ from typing import Any
 import numpy as np
 from rigcast.export import metrics
 from rigcast.export.rig import Rig
+from rigcast.runtime.errors import RigcastError
 from rigcast.runtime.schema import ControlSchema
 
 log = logging.getLogger(__name__)
@@ -43,7 +44,7 @@ SAME_MESH_RESIDUAL = 0.1
 REST_TOLERANCE = 1e-6
 
 
-class FidelityError(ValueError):
+class FidelityError(RigcastError, ValueError):
     """A fidelity check got inconsistent inputs; the message names the bad value."""
 
 
@@ -240,7 +241,7 @@ def jitter_vs_truth(pred: np.ndarray, truth: np.ndarray, schema: ControlSchema) 
 
 
 @dataclass(frozen=True)
-class MeshError:
+class MeshErrorStats:
     """Through the real rig: ``mean`` over frames and vertices; ``worst_frame`` the largest
     per-frame mean; ``max_vertex`` the largest single vertex distance; ``per_frame`` (N,)."""
 
@@ -250,10 +251,10 @@ class MeshError:
     per_frame: np.ndarray
 
 
-def mesh_error(rig: Rig, controls: np.ndarray, reference: np.ndarray) -> MeshError:
+def mesh_error(rig: Rig, controls: np.ndarray, reference: np.ndarray) -> MeshErrorStats:
     """controls (N, C) rendered by the real rig against reference meshes (N, V, 3)."""
     err = metrics.vertex_error(rig.evaluate(controls), reference)
-    return MeshError(err.mean, float(err.per_frame_mean.max()), err.max, err.per_frame_mean)
+    return MeshErrorStats(err.mean, float(err.per_frame_mean.max()), err.max, err.per_frame_mean)
 
 
 @dataclass(frozen=True)

@@ -40,6 +40,7 @@ from rigcast.export.models import (
     ForwardApproximator,
     InverseNetwork,
 )
+from rigcast.runtime.errors import RigcastError
 
 log = logging.getLogger(__name__)
 
@@ -47,7 +48,7 @@ Progress = Callable[[str, int, int], None]
 TORCH_THREADS = 2
 
 
-class TrainError(ValueError):
+class TrainError(RigcastError, ValueError):
     """Training inputs are unusable; the message names the bad value."""
 
 

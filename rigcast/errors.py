@@ -75,8 +75,6 @@ _NOT_YET_ROOTED = (
      "check the take and the solve options; `rigcast solve --help` lists them", EXIT_FAILURE),
     ("rigcast.runtime.client", "ServerError",
      "check --stream and the server's streams (`rigcast watch` lists them)", EXIT_FAILURE),
-    ("rigcast.export.build", "BuildError",
-     "check the build options; `rigcast build --help` lists them", EXIT_FAILURE),
     ("rigcast.send", "RehearsalError",
      "choose values in the ranges named above; `rigcast send --help` lists them", EXIT_USAGE),
 )

@@ -49,6 +49,7 @@ from dataclasses import dataclass, fields
 from typing import Any
 
 import numpy as np
+from rigcast.runtime.errors import RigcastError
 
 log = logging.getLogger(__name__)
 
@@ -56,7 +57,7 @@ log = logging.getLogger(__name__)
 GradientFn = Callable[[np.ndarray, np.ndarray], tuple[np.ndarray, np.ndarray]]
 
 
-class RefineError(ValueError):
+class RefineError(RigcastError, ValueError):
     """Refinement settings or inputs are unusable; the message names the bad value."""
 
 
