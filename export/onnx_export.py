@@ -155,16 +155,16 @@ def export_forward(model: ForwardApproximator, seed: int = 0) -> tuple[bytes, fl
     return data, worst
 
 
-def export_refine(model: ForwardApproximator, indices: np.ndarray, example_meshes: np.ndarray,
-                  seed: int = 0) -> tuple[bytes, float]:
-    """Export the refinement graph (export/refine.py): inputs ``controls`` (N, C) and ``mesh``
-    (N, K, 3) -> outputs ``gradient`` (N, C) and ``residual_sq`` (N,).
+def export_refine(graph: nn.Module, lower: np.ndarray, upper: np.ndarray,
+                  example_meshes: np.ndarray, seed: int = 0) -> tuple[bytes, float]:
+    """Export the refinement graph (``export.refine.RefineGraph``, built by its module): inputs
+    ``controls`` (N, C) and ``mesh`` (N, K, 3) -> outputs ``gradient`` (N, C) and
+    ``residual_sq`` (N,).
 
-    example_meshes: (M, K, 3) realistic inputs for the parity check, paired with random controls
-    within the bounds. Parity is relative to the largest magnitude of each output.
-    returns: (model bytes, worst relative parity error).
+    lower, upper: (C,) control bounds; example_meshes: (M, K, 3) realistic inputs for the parity
+    check, paired with random controls within the bounds. Parity is relative to the largest
+    magnitude of each output. returns: (model bytes, worst relative parity error).
     """
-    from rigcast.export.refine import RefineGraph
     from rigcast.runtime.bundle import (
         REFINE_CONTROLS,
         REFINE_GRADIENT,
@@ -172,9 +172,9 @@ def export_refine(model: ForwardApproximator, indices: np.ndarray, example_meshe
         REFINE_RESIDUAL,
     )
 
-    graph = RefineGraph(model, indices).eval()
+    graph = graph.eval()
     rng = np.random.default_rng(seed)
-    lo, hi = model.lower.numpy(), model.upper.numpy()
+    lo, hi = np.asarray(lower, np.float32), np.asarray(upper, np.float32)
     mesh = np.asarray(example_meshes, np.float32)
     ctrl = (lo + (hi - lo) * rng.random((mesh.shape[0], lo.shape[0]))).astype(np.float32)
     example = (torch.from_numpy(ctrl), torch.from_numpy(mesh))

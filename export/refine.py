@@ -152,5 +152,7 @@ def refine_parts(forward: ForwardApproximator, indices: np.ndarray, poses: np.nd
     from rigcast.export.onnx_export import export_refine
 
     hessian = gauss_newton_matrix(forward, indices, poses)
-    data, parity = export_refine(forward, indices, example_meshes)
+    graph = RefineGraph(forward, indices)
+    data, parity = export_refine(graph, forward.lower.numpy(), forward.upper.numpy(),
+                                 example_meshes)
     return data, hessian, parity

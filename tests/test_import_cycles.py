@@ -24,8 +24,6 @@ KNOWN_CYCLES = {
                "rigcast.runtime.protocol_client"}),
     # export/build.py re-exports build_finish and take_fit, which import build's config
     frozenset({"rigcast.export.build", "rigcast.export.build_finish", "rigcast.export.take_fit"}),
-    # export/refine.py calls onnx_export.export_refine, which builds refine.RefineGraph
-    frozenset({"rigcast.export.onnx_export", "rigcast.export.refine"}),
 }
 
 

@@ -195,7 +195,8 @@ def test_refine_graph_gradient_matches_autograd() -> None:
         g, rss = RefineGraph(fwd, idx)(torch.from_numpy(ctrl), torch.from_numpy(mesh))
     np.testing.assert_allclose(g.numpy(), refine_gradient_naive(fwd, idx, ctrl, mesh),
                                rtol=1e-4, atol=1e-4)
-    data, parity = export_refine(fwd, idx, mesh)
+    data, parity = export_refine(RefineGraph(fwd, idx), fwd.lower.numpy(), fwd.upper.numpy(),
+                                 mesh)
     got = session(data).run(None, {REFINE_CONTROLS: ctrl, REFINE_MESH: mesh})
     np.testing.assert_allclose(got[0], g.numpy(), rtol=1e-4, atol=1e-4)
     np.testing.assert_allclose(got[1], rss.numpy(), rtol=1e-4)
