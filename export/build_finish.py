@@ -14,7 +14,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from rigcast.export.build import (
+from rigcast.export.build_config import (
     BUNDLE_NAME,
     CHECKPOINT,
     RIGID_LIMIT,

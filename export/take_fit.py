@@ -8,7 +8,7 @@ import time
 from pathlib import Path
 
 import numpy as np
-from rigcast.export.build import (
+from rigcast.export.build_config import (
     _CHECK_SEED_OFFSET,
     BuildConfig,
     BuildError,

@@ -22,8 +22,6 @@ KNOWN_CYCLES = {
     # runtime/protocol.py re-exports the encoders of runtime/messages.py, which imports protocol
     frozenset({"rigcast.runtime.messages", "rigcast.runtime.protocol",
                "rigcast.runtime.protocol_client"}),
-    # export/build.py re-exports build_finish and take_fit, which import build's config
-    frozenset({"rigcast.export.build", "rigcast.export.build_finish", "rigcast.export.take_fit"}),
 }
 
 
