@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import base64
 import json
-import os
 from pathlib import Path
 
 import numpy as np
@@ -236,16 +235,10 @@ CASES = [pytest.param(SKIN, SKIN_BOUNDS, id="SimpleSkin"),
          pytest.param(MORPH, None, id="SimpleMorph"),
          pytest.param(RIGGED_SIMPLE, RIGGED_SIMPLE_BOUNDS, id="RiggedSimple"),
          pytest.param(RIGGED_FIGURE, RIGGED_FIGURE_BOUNDS, id="RiggedFigure")]
-# A build at default settings takes minutes to tens of minutes on 2 shared cores (measured
-# figures: bench/khronos_samples.py and its JSON), too long for CI: opt in. CI runs the same
-# route with a reduced schedule, held to a looser bound (the 0.1 % is not checked there).
-# Measured on 2 cores at load average 9-13 (niced, beside other builds), mean vertex error in %
-# of the diagonal: defaults, RiggedFigure 0.042 (build 4,978 s), SimpleSkin 0.011 (25 min, an
-# earlier run); reduced, SimpleSkin 0.25, SimpleMorph 0.025, RiggedSimple 0.033, RiggedFigure
-# 0.16 (90-605 s a test at that load).
-FULL = pytest.mark.skipif(not os.environ.get("RIGCAST_FULL_SAMPLES"),
-                          reason="default-settings sample builds: set RIGCAST_FULL_SAMPLES=1")
-REDUCED = ["--samples", "600", "--steps", "200", "--epochs", "100"]
+# A build at default settings takes about a minute per sample on 2 cores
+# (`python bench/khronos_samples.py --out F.json`, 2026-12-04, load average 3-5): mean vertex
+# error in % of the diagonal, SimpleMorph 0.030 (build 46 s), RiggedSimple 0.013 (69 s),
+# SimpleSkin 0.014 (43 s), RiggedFigure 0.019 (81 s). So CI runs the acceptance itself.
 
 
 def build_and_solve(workdir: Path, sample: Path, bounds: str | None, schedule: list[str],
@@ -270,24 +263,12 @@ def build_and_solve(workdir: Path, sample: Path, bounds: str | None, schedule: l
     return 100 * err / diag, 100 * motion / diag
 
 
-@FULL
-@pytest.mark.timeout(3600)
+@pytest.mark.timeout(1200)
 @pytest.mark.parametrize(("sample", "bounds"), CASES)
 def test_sample_builds_and_solves_its_own_animation(tmp_path: Path, sample: Path,
                                                     bounds: str | None) -> None:
-    """Issue 14's acceptance, at default settings: mean vertex error <= 0.1 % of the diagonal."""
-    err, _ = build_and_solve(tmp_path, sample, bounds, [])
+    """Issue 14's acceptance, at default settings: mean vertex error <= 0.1 % of the diagonal,
+    and under a tenth of how far the take moves from its first frame (the solve follows it)."""
+    err, motion = build_and_solve(tmp_path, sample, bounds, [])
     assert err <= 0.1, f"mean vertex error {err:.4f} % of the diagonal"
-
-
-@pytest.mark.timeout(900)
-@pytest.mark.parametrize(("sample", "bounds"), CASES)
-def test_sample_route_with_a_reduced_schedule(tmp_path: Path, sample: Path,
-                                              bounds: str | None) -> None:
-    """The same route with a small schedule (training is a fixed schedule, not a time budget,
-    so the result does not depend on load): the solve follows the animation, its error under a
-    quarter of how far the take moves from its first frame and under 1 % of the diagonal;
-    bounds for a smoke test (common practice, no source), not the acceptance's 0.1 %."""
-    err, motion = build_and_solve(tmp_path, sample, bounds, REDUCED, timeout=800)
-    assert err <= 1.0 and err <= 0.25 * motion, (
-        f"mean vertex error {err:.4f} % of the diagonal; the take moves {motion:.4f} %")
+    assert err <= 0.1 * motion, f"error {err:.4f} % against motion {motion:.4f} %"
