@@ -152,7 +152,7 @@ def solve_active(hessian: np.ndarray, g: np.ndarray, free: np.ndarray, damping: 
     if n == 1:  # the live path: one frame, plain indexing is several times cheaper
         a = np.flatnonzero(free[0])
         if a.size:
-            h = hessian[np.ix_(a, a)]
+            h = hessian[a[:, None], a]
             h[np.diag_indices(a.size)] = h[np.diag_indices(a.size)] * (1.0 + damping) + ridge[0]
             delta[0, a] = np.linalg.solve(h, g[0, a])
         return delta
