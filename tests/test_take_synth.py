@@ -7,7 +7,7 @@ import pytest
 from rigcast.export.metrics import active_controls, jitter
 from rigcast.export.rig import Rig
 from rigcast.export.take_synth import (
-    TakeError,
+    SynthError,
     bbox_diagonal,
     envelope,
     rotation_xyz,
@@ -148,7 +148,7 @@ def test_pick_weights_choose_the_controls(rig: SmallRig) -> None:
     take = synth_take(rig, frames=300, seed=9, pick_weights=weights)
     moved = np.flatnonzero(np.abs(take.controls_true - rig.schema.defaults).max(axis=0) > 0)
     assert set(moved) == {3, 10}
-    with pytest.raises(TakeError, match="pick_weights"):
+    with pytest.raises(SynthError, match="pick_weights"):
         synth_take(rig, frames=300, pick_weights=-weights)
 
 
@@ -162,7 +162,7 @@ def test_pick_weights_choose_the_controls(rig: SmallRig) -> None:
     ],
 )
 def test_bad_parameters_are_named(rig: SmallRig, kwargs: dict, word: str) -> None:
-    with pytest.raises(TakeError, match=word):
+    with pytest.raises(SynthError, match=word):
         synth_take(rig, **kwargs)
 
 
@@ -187,5 +187,5 @@ def test_talk_control_moves_only_that_control_and_leaves_the_rest_of_the_take() 
     np.testing.assert_array_equal(plain.controls_true[:, others], talky.controls_true[:, others])
     assert np.all(talky.controls_true[:, 3] >= plain.controls_true[:, 3])
     assert talky.controls_true[:, 3].max() > 0.3
-    with pytest.raises(TakeError, match="talk_control"):
+    with pytest.raises(SynthError, match="talk_control"):
         synth_take(rig, frames=240, talk_control=99)
