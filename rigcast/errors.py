@@ -7,12 +7,6 @@ Every error a user can cause ends up here, once, as
 Every error the product raises on purpose derives from ``rigcast.runtime.errors.RigcastError``,
 which carries its advice and exit code (see that module for the codes), so a single isinstance
 test turns any of them into its line. ZeroMQ and operating-system errors get their own lines here.
-
-Until their owners make them derive from the root, five classes are matched by name
-(``_NOT_YET_ROOTED``; tests/test_error_root.py fails when one of them derives from it, so the
-list can only shrink). Matching by name finds a class in ``sys.modules`` without importing it:
-an exception of a type can only exist if that type's module was imported, which keeps
-``rigcast serve`` from paying for torch just to know ``BuildError``.
 """
 
 from __future__ import annotations
@@ -66,18 +60,6 @@ class NoAnswerError(UserError):
         )
 
 
-# (module, class, advice, exit code) of the classes whose files still give them a builtin base;
-# each entry goes when its class derives from RigcastError (a one-line change in its own file).
-_NOT_YET_ROOTED = (
-    ("rigcast.runtime.config", "ConfigError",
-     "fix that setting; `rigcast serve --help` lists them all", EXIT_USAGE),
-    ("rigcast.runtime.batch", "BatchError",
-     "check the take and the solve options; `rigcast solve --help` lists them", EXIT_FAILURE),
-    ("rigcast.runtime.client", "ServerError",
-     "check --stream and the server's streams (`rigcast watch` lists them)", EXIT_FAILURE),
-    ("rigcast.send", "RehearsalError",
-     "choose values in the ranges named above; `rigcast send --help` lists them", EXIT_USAGE),
-)
 
 
 def _one_line(text: str) -> str:
@@ -137,11 +119,6 @@ def explain(exc: BaseException) -> tuple[str, int] | None:
     """
     if isinstance(exc, RigcastError):
         return _compose(str(exc), exc.advice), exc.exit_code
-    for module_name, name, todo, code in _NOT_YET_ROOTED:
-        module = sys.modules.get(module_name)
-        cls = getattr(module, name, None) if module is not None else None
-        if isinstance(cls, type) and isinstance(exc, cls):
-            return _compose(str(exc), todo), code
     zmq_line = _zmq_line(exc)
     if zmq_line is not None:
         return zmq_line

@@ -28,6 +28,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from rigcast.runtime.client import ControlsSubscriber
+from rigcast.runtime.errors import RigcastError
 from rigcast.runtime.protocol import ControlsMessage
 
 log = logging.getLogger(__name__)
@@ -37,7 +38,7 @@ OSC_FORBIDDEN = set(" #*,/?[]{}")  # OSC 1.0, "OSC Address Patterns"
 DEFAULT_PREFIX = "/rigcast"
 
 
-class OscError(ValueError):
+class OscError(RigcastError, ValueError):
     """A bad OSC target, prefix or name; the message names it."""
 
 

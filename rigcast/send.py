@@ -27,6 +27,7 @@ import numpy as np
 
 from rigcast.errors import EXIT_OK, MismatchError
 from rigcast.runtime.client import MeshSender
+from rigcast.runtime.errors import EXIT_USAGE, RigcastError
 
 log = logging.getLogger(__name__)
 
@@ -35,8 +36,11 @@ SEND, DROP = "send", "drop"
 _BAD_HEADER = b"\xc1 this is not msgpack"  # 0xc1 is the one byte msgpack never uses
 
 
-class RehearsalError(ValueError):
+class RehearsalError(RigcastError, ValueError):
     """A rehearsal option is out of range; the message names it."""
+
+    advice = "choose values in the ranges named above; `rigcast send --help` lists them"
+    exit_code = EXIT_USAGE
 
 
 @dataclass(frozen=True)

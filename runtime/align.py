@@ -12,11 +12,12 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
+from rigcast.runtime.errors import RigcastError
 
 log = logging.getLogger(__name__)
 
 
-class AlignError(ValueError):
+class AlignError(RigcastError, ValueError):
     """Point sets that cannot be aligned (wrong shapes, too few or coincident points)."""
 
 

@@ -35,6 +35,7 @@ import onnxruntime as ort
 from rigcast.runtime.align import RigidBatch, fit_rigid_batch
 from rigcast.runtime.bundle import FORWARD_INPUT, FORWARD_OUTPUT, Bundle
 from rigcast.runtime.config import StreamConfig
+from rigcast.runtime.errors import RigcastError
 from rigcast.runtime.inference import open_session
 from rigcast.runtime.manifold import ManifoldConfig, off_manifold_thresholds
 from rigcast.runtime.one_euro import zero_phase_smooth
@@ -70,8 +71,10 @@ FIT_SLICE = 128  # frames per forward-model call in the fit error
 _DEFAULT_STREAM = StreamConfig()
 
 
-class BatchError(ValueError):
+class BatchError(RigcastError, ValueError):
     """A take or option the batch solve cannot use; the message names the bad value."""
+
+    advice = "check the take and the solve options; `rigcast solve --help` lists them"
 
 
 @dataclass(frozen=True)

@@ -19,6 +19,7 @@ from typing import Any
 import numpy as np
 import zmq
 from rigcast.runtime import protocol
+from rigcast.runtime.errors import RigcastError
 from rigcast.runtime.keys import ClientCurve
 
 log = logging.getLogger(__name__)
@@ -27,8 +28,10 @@ DEFAULT_INPUT = "tcp://127.0.0.1:5570"
 DEFAULT_OUTPUT = "tcp://127.0.0.1:5571"
 
 
-class ServerError(RuntimeError):
+class ServerError(RigcastError, RuntimeError):
     """The server answered a request with an error reply; ``reply`` is the decoded header."""
+
+    advice = "check --stream and the server's streams (`rigcast watch` lists them)"
 
     def __init__(self, reply: dict[str, Any]) -> None:
         super().__init__(f"{reply.get('reason')}: {reply.get('message')}")

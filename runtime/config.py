@@ -37,6 +37,7 @@ from pathlib import Path
 from typing import Any, Literal, get_args, get_origin
 from urllib.parse import urlsplit
 
+from rigcast.runtime.errors import EXIT_USAGE, RigcastError
 from rigcast.runtime.protocol import MAX_STREAM_BYTES
 
 # When the server computes the fit error (after every publish, on every Nth frame, never).
@@ -44,8 +45,11 @@ from rigcast.runtime.protocol import MAX_STREAM_BYTES
 FitErrorSchedule = Literal["after_publish", "every_n", "off"]
 
 
-class ConfigError(ValueError):
+class ConfigError(RigcastError, ValueError):
     """A config value is missing, unknown, or bad; the message names the key."""
+
+    advice = "fix that setting; `rigcast serve --help` lists them all"
+    exit_code = EXIT_USAGE
 
 
 def _flag(help_text: str, default: Any) -> Any:

@@ -46,6 +46,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+from rigcast.runtime.errors import RigcastError
 
 log = logging.getLogger(__name__)
 
@@ -57,7 +58,7 @@ FLOOR_FACTOR = 3.0
 FALLBACK_FLOOR_OF_DIAGONAL = 0.001
 
 
-class ManifoldError(ValueError):
+class ManifoldError(RigcastError, ValueError):
     """A detector setting or input out of range; the message names it."""
 
 

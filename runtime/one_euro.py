@@ -27,6 +27,7 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 
 import numpy as np
+from rigcast.runtime.errors import RigcastError
 from rigcast.runtime.schema import ControlSchema
 
 log = logging.getLogger(__name__)
@@ -34,7 +35,7 @@ log = logging.getLogger(__name__)
 _TWO_PI = 2.0 * math.pi
 
 
-class FilterError(ValueError):
+class FilterError(RigcastError, ValueError):
     """Bad filter parameters or input shapes; the message names the value."""
 
 

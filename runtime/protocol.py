@@ -15,6 +15,7 @@ from typing import Any
 
 import msgpack
 import numpy as np
+from rigcast.runtime.errors import RigcastError
 from rigcast.runtime.head_pose import HeadPose
 from rigcast.runtime.nesting import nesting_within
 
@@ -61,7 +62,7 @@ _I64 = 2**63
 _F32 = np.dtype("<f4")
 
 
-class FrameError(ValueError):
+class FrameError(RigcastError, ValueError):
     """A message that is rejected; ``reason`` is one of REASONS and goes on the wire."""
 
     def __init__(

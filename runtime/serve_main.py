@@ -23,10 +23,9 @@ from collections.abc import Sequence
 from pathlib import Path
 from typing import Any, Literal, get_args, get_origin
 
-from rigcast.runtime.bundle import BundleError
 from rigcast.runtime.config import ConfigError, ServerConfig, StreamConfig, flag_fields, load_config
+from rigcast.runtime.errors import RigcastError
 from rigcast.runtime.server import Server
-from rigcast.runtime.sockets import BindError
 
 log = logging.getLogger(__name__)
 
@@ -162,12 +161,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     logging.basicConfig(level=args.log_level, format="%(asctime)s %(name)s %(message)s")
     try:
         return run(config_from_args(args), ready_file=args.ready_file)
-    except ConfigError as exc:  # usage, as in `rigcast serve`
-        sys.stderr.write(f"rigcast: error: serve: {exc}\n")
-        return 2
-    except (BundleError, BindError) as exc:  # the work failed
-        sys.stderr.write(f"rigcast: error: serve: {exc}\n")
-        return 1
+    except RigcastError as exc:  # one line and the error's own exit code, as in `rigcast serve`
+        advice = f" — {exc.advice}" if exc.advice else ""
+        sys.stderr.write(f"rigcast: error: serve: {exc}{advice}\n")
+        return exc.exit_code
 
 
 if __name__ == "__main__":
