@@ -150,7 +150,7 @@ def test_shapes_are_localised_and_mirrored(face_linear: Rig) -> None:
 
 def test_jaw_rotation_matches_scipy(head: Rig) -> None:
     """The jaw is two-bone LBS: p + w (R (p - c) + c - p), R about +x (SciPy as the reference)."""
-    from rigcast.export.demo_rigs import _JAW_PIVOT, _jaw_weights
+    from rigcast.export.demo_face import JAW_PIVOT, jaw_weights
 
     s = head.schema
     pose = s.defaults.astype(np.float64)
@@ -158,8 +158,8 @@ def test_jaw_rotation_matches_scipy(head: Rig) -> None:
     got = head.evaluate(pose[None])[0]
     n = head.neutral.astype(np.float64)
     rot = Rotation.from_euler("x", 18.0, degrees=True)
-    w = _jaw_weights(n)[:, None]
-    want = n + w * (rot.apply(n - _JAW_PIVOT) + _JAW_PIVOT - n)
+    w = jaw_weights(n)[:, None]
+    want = n + w * (rot.apply(n - JAW_PIVOT) + JAW_PIVOT - n)
     np.testing.assert_allclose(got, want, atol=1e-5)
     front = np.flatnonzero(n[:, 2] > 0.4)
     chin = int(front[np.argmin(n[front, 1])])  # the lowest vertex on the front
