@@ -1,9 +1,9 @@
 """What `rigcast solve` writes besides the controls, computed once for every output format.
 
 - the per-frame quality (``FrameQuality``) from the batch solve and the take's times;
-- the head pose (``HeadPose``): the stabilisation fit of each frame's stable vertices onto the
-  bundle's neutral, inverted. ``fit_rigid_batch`` is the function the batch solve itself runs
-  (Umeyama 1991), on the same vertices, so the pose is the motion the solve removed;
+- the head pose (``HeadPose``): the solve's own stabilisation fits (``BatchSolve.rigid``, each
+  frame's stable vertices onto the bundle's neutral, Umeyama 1991), inverted, so the pose is
+  exactly the motion the solve removed, with or without scale, and the take is not fitted twice;
 - the rig for glTF/USD: a skinned rig (``--rig``) writes its skeleton, whose fingerprint must be
   the bundle's; otherwise the blendshapes are read off the bundle's forward model.
 """
@@ -29,7 +29,7 @@ from rigcast.frame_info import (
     identity_pose,
     stale_frames,
 )
-from rigcast.runtime.batch import BatchSolve, fit_rigid_batch
+from rigcast.runtime.batch import BatchSolve
 from rigcast.runtime.bundle import Bundle
 from rigcast.skeleton import Skeleton, skeleton_from_rig
 
@@ -62,24 +62,13 @@ def frame_quality(bundle: Bundle, result: BatchSolve, times_s: np.ndarray) -> Fr
     )
 
 
-def head_pose(bundle: Bundle, vertices: np.ndarray, *, stabilise: bool = True,
-              scale: bool = False) -> HeadPose:
-    """vertices (T, V, 3) -> the head pose of every frame (identity when not stabilising).
-
-    The solve's caller passes ``stabilise`` as ``(result.align_rms > 0).any()``: BatchSolve
-    records a zero alignment residual on every frame exactly when it did not stabilise.
-    """
-    if not stabilise:
-        return identity_pose(vertices.shape[0])
-    neutral = np.asarray(bundle.neutral[bundle.stable_indices], np.float64)
-    poses = []
-    for s in range(0, vertices.shape[0], 4096):  # bounded memory on long takes
-        fit = fit_rigid_batch(np.take(vertices[s : s + 4096], bundle.stable_indices, axis=1),
-                              neutral, scale=scale)
-        poses.append(head_pose_from_fit(fit.rotation, fit.translation, fit.scale))
-    return HeadPose(np.concatenate([p.translation for p in poses]),
-                    np.concatenate([p.rotation for p in poses]),
-                    np.concatenate([p.scale for p in poses]))
+def head_pose(result: BatchSolve) -> HeadPose:
+    """The head pose of every frame of a batch solve: the inverse of the fits that stabilised its
+    frames (``result.rigid``), identity on every frame when the solve did not stabilise."""
+    if result.rigid is None:
+        return identity_pose(result.controls.shape[0])
+    fits = result.rigid
+    return head_pose_from_fit(fits.rotation, fits.translation, fits.scale)
 
 
 def checked_rig(bundle: Bundle, rig_spec: str, bounds: Path | None) -> Any:

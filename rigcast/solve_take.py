@@ -104,7 +104,7 @@ def solve_one(bundle_path: Path, take_path: Path, out: Path,
     basis, skeleton = output_form(bundle, out, solver.forward, settings.rig, settings.bounds)
     result = solver.solve(take.vertices, take.times_s, options)
     quality = frame_quality(bundle, result, take.times_s)
-    head = head_pose(bundle, take.vertices, stabilise=bool((result.align_rms > 0).any()))
+    head = head_pose(result)
     partial = out.with_name(f".{out.stem}.partial{out.suffix}")
     try:
         if out.suffix.lower() == ".blend":

@@ -138,6 +138,44 @@ def test_khronos_simple_skin_rig_writes_back_as_a_skin(tmp_path: Path) -> None:
     np.testing.assert_allclose(take.vertices, rig.evaluate(controls), atol=1e-5)
 
 
+
+def test_head_pose_is_the_solves_own_stabilisation(tiny_bundle: Path) -> None:
+    """The head pose is the inverse of the fits the solve stabilised with (BatchSolve.rigid), so
+    a solve that removes scale (--stabilise-scale) writes that scale too; a second rigid-only fit
+    of the take would give scale 1. Umeyama 1991 recovers an exact similarity."""
+    from rigcast.runtime.batch import BatchSolver, SolveOptions
+    from rigcast.runtime.bundle import load_bundle
+    from rigcast.runtime.config import StreamConfig
+
+    from rigcast.solve_out import head_pose
+
+    bundle = load_bundle(tiny_bundle)
+    t = 12
+    moved = _head(t, seed=5)
+    truth = HeadPose(moved.translation, moved.rotation, np.linspace(0.9, 1.2, t))
+    neutral = np.broadcast_to(bundle.neutral.astype(np.float64), (t, *bundle.neutral.shape))
+    frames = truth.apply(neutral).astype(np.float32)
+    times = np.arange(t) / 30.0
+    solver = BatchSolver(bundle, threads=1)
+    scaled = solver.solve(frames, times, SolveOptions(filter="none", stream=StreamConfig(
+        stabilise=True, stabilise_scale=True)))
+    assert scaled.rigid is not None
+    head = head_pose(scaled)
+    np.testing.assert_allclose(head.scale, truth.scale, rtol=1e-5)
+    np.testing.assert_allclose(head.translation, truth.translation, atol=1e-5)
+    np.testing.assert_allclose(np.abs(np.einsum("ti,ti->t", head.rotation, truth.rotation)), 1.0,
+                               atol=1e-6)
+    rigid = solver.solve(frames, times, SolveOptions(filter="none", stream=StreamConfig(
+        stabilise=True)))
+    assert np.all(head_pose(rigid).scale == 1.0)  # a rigid solve removes no scale
+    off = solver.solve(frames, times, SolveOptions(filter="none", stream=StreamConfig(
+        stabilise=False)))
+    assert off.rigid is None
+    still = head_pose(off)
+    np.testing.assert_array_equal(still.translation, np.zeros((t, 3)))
+    np.testing.assert_array_equal(still.rotation, np.tile([0.0, 0.0, 0.0, 1.0], (t, 1)))
+    np.testing.assert_array_equal(still.scale, np.ones(t))
+
 # --- the solve command ----------------------------------------------------------------------------
 
 
