@@ -275,7 +275,8 @@ def cmd_serve(args: argparse.Namespace) -> int:
         serve_main.write_ready_file(args.ready_file, server)
     status = None
     if not args.quiet:
-        for line in startup_lines(config, server.input_endpoint, server.output_endpoint):
+        for line in startup_lines(config, server.input_endpoint, server.output_endpoint,
+                                  None if server.metrics is None else server.metrics.url):
             say(line)
         if config.curve_secret_key is None:  # the status reader would need keys of its own
             status = StatusPrinter(server.output_endpoint, say, args.status_every)

@@ -16,11 +16,14 @@ from rigcast.watch_state import WatchState
 log = logging.getLogger(__name__)
 
 
-def startup_lines(config: Any, input_endpoint: str, output_endpoint: str) -> list[str]:
+def startup_lines(config: Any, input_endpoint: str, output_endpoint: str,
+                  metrics_url: str | None = None) -> list[str]:
     """Endpoints, then one line per configured stream with its bundle."""
     auth = "CURVE" if getattr(config, "curve_secret_key", None) else "no authentication"
     lines = [f"serving: mesh frames in on {input_endpoint}; controls, telemetry and events out "
              f"on {output_endpoint} ({auth})"]
+    if metrics_url is not None:
+        lines.append(f"metrics: Prometheus text format on {metrics_url}")
     for stream in getattr(config, "streams", ()):
         lines.append(f"  stream {stream.stream}: bundle {stream.bundle}")
     return lines

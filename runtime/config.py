@@ -149,6 +149,12 @@ class ServerConfig:
         "floor of the adaptive off-manifold rule = this x the bundle's training fit error", 3.0
     )
     telemetry_hz: float = _flag("telemetry messages per second per stream", 10.0)
+    metrics_port: int | None = _flag(
+        "serve Prometheus metrics over HTTP on this port (0: any free port); needs the metrics "
+        "extra (pip install 'rigcast[metrics]')", None)
+    metrics_host: str = _flag(
+        "address of the metrics endpoint; a non-loopback one needs --allow-remote and, being "
+        "plain HTTP, --insecure-no-auth", "127.0.0.1")
     window: int = _flag("sliding window for latency percentiles, in frames", 1000)
     max_message_bytes: int = _flag("largest accepted mesh payload, in bytes", 16 * 1024 * 1024)
     busy_poll_us: int = _flag(
@@ -201,6 +207,9 @@ class ServerConfig:
                     "off: give curve_secret_key and authorized_keys (--curve-secret-key, "
                     "--authorized-keys; make keys with `rigcast keys`), or pass "
                     "--insecure-no-auth to accept every peer")
+        if self.metrics_port is not None:
+            _check_metrics(self.metrics_host, self.metrics_port, self.allow_remote,
+                           self.insecure_no_auth)
         if (self.curve_secret_key is None) != (self.authorized_keys is None):
             raise ConfigError("curve_secret_key and authorized_keys go together (CURVE needs the "
                               "server's secret key and the folder of allowed client keys)")
@@ -263,6 +272,24 @@ def _check_endpoint(endpoint: str, key: str, allow_remote: bool) -> None:
             f"{key} {endpoint} is not a loopback address; the server would be reachable from the "
             "network. Pass allow_remote (--allow-remote) to do this on a closed stage network"
         )
+
+
+def _check_metrics(host: str, port: int, allow_remote: bool, insecure_no_auth: bool) -> None:
+    """The metrics endpoint binds as the sockets do: loopback, or a closed network on purpose
+    (allow_remote), and without authentication only when said so (insecure_no_auth)."""
+    if not 0 <= port <= 65535:
+        raise ConfigError(f"metrics_port must be 0..65535, got {port}")
+    if not host or "/" in host:
+        raise ConfigError(f"metrics_host must be a host address like 127.0.0.1, got {host!r}")
+    if is_loopback(f"tcp://[{host}]:{port}" if ":" in host else f"tcp://{host}:{port}"):
+        return
+    if not allow_remote:
+        raise ConfigError(f"metrics_host {host} is not a loopback address; pass allow_remote "
+                          "(--allow-remote) to expose metrics on a closed stage network")
+    if not insecure_no_auth:
+        raise ConfigError(f"metrics_host {host}: the metrics endpoint is plain HTTP without "
+                          "authentication; pass --insecure-no-auth to accept that, or keep it "
+                          "on 127.0.0.1 and scrape through an SSH tunnel")
 
 
 def _positive(value: float, key: str) -> None:

@@ -133,7 +133,8 @@ def config_from_args(args: argparse.Namespace) -> ServerConfig:
 def write_ready_file(path: Path, server: Server) -> None:
     tmp = path.with_name(path.name + ".partial")
     tmp.write_text(json.dumps({"input": server.input_endpoint, "output": server.output_endpoint,
-                               "pid": os.getpid(), "streams": sorted(server.streams)}))
+                               "pid": os.getpid(), "streams": sorted(server.streams),
+                               "metrics": None if server.metrics is None else server.metrics.url}))
     tmp.replace(path)
 
 

@@ -35,7 +35,6 @@ import threading
 import time
 from collections import Counter
 from dataclasses import replace
-from pathlib import Path
 from types import FrameType
 from typing import Any
 
@@ -53,12 +52,12 @@ from rigcast.runtime.ownership import StreamGuard, peer_of, session_of
 from rigcast.runtime.pipeline import (
     FrameResult,
     PendingFrame,
-    StreamModel,
     StreamState,
-    load_stream_model,
 )
-from rigcast.runtime.reload import Reloader, check_served, public_model, redact
+from rigcast.runtime.reload import Reloader, redact
 from rigcast.runtime.security import ServerSecurity
+from rigcast.runtime.serve_streams import open_streams
+from rigcast.runtime.service_metrics import MetricsEndpoint, ServerView, start_metrics
 from rigcast.runtime.sockets import bind_pub, bind_router, bound_endpoint, close_all
 from rigcast.runtime.telemetry import heartbeat, telemetry
 
@@ -97,6 +96,7 @@ class Server:
         self._next_heartbeat = 0.0
         self._next_idle_check = 0.0
         self._ticks = 0
+        self.metrics: MetricsEndpoint | None = None  # serve --metrics-port
 
     # --- lifecycle -------------------------------------------------------------------------
 
@@ -104,22 +104,7 @@ class Server:
         """Load every bundle (each distinct path once), open sessions, bind. Raises BundleError,
         sockets.BindError, keys.KeyFileError."""
         cfg = self.config
-        models: dict[tuple[Path, float | None], StreamModel] = {}
-        for s in cfg.streams:
-            key = (s.bundle.resolve(), s.off_manifold_threshold)
-            model = models.get(key)
-            if model is None:
-                check_served(s.bundle, cfg)  # size caps, no ONNX external data
-                model = public_model(load_stream_model(
-                    s.bundle, threads=cfg.threads, threshold=s.off_manifold_threshold,
-                    factor=cfg.off_manifold_factor))
-                models[key] = model
-            self.streams[s.stream] = StreamState(s, model, cfg.window)
-            rule = (f"fit RMS above {model.fixed_threshold:.4g}"
-                    if model.fixed_threshold is not None
-                    else f"adaptive, floor {model.floor:.4g}")
-            log.info("stream %s: bundle %s (%d vertices, %d controls, off-manifold: %s)",
-                     s.stream, s.bundle, model.vertex_count, model.bundle.control_count, rule)
+        self.streams = open_streams(cfg)
         self.security = security = ServerSecurity(self.ctx, cfg)
         try:
             self.router = bind_router(self.ctx, cfg.input, rcvhwm=cfg.input_hwm,
@@ -128,8 +113,11 @@ class Server:
                                       prepare=security.prepare)
             self.pub = bind_pub(self.ctx, cfg.output, sndhwm=cfg.output_hwm,
                                 linger_ms=cfg.linger_ms, prepare=security.prepare)
+            if cfg.metrics_port is not None:  # MetricsError is an OSError too
+                self.metrics = start_metrics(self._metrics_view(), cfg.metrics_host,
+                                             cfg.metrics_port, remote=cfg.allow_remote)
         except OSError:
-            close_all(self.router, linger_ms=0)
+            close_all(self.router, self.pub, linger_ms=0)
             security.stop()
             raise
         security.watch(self.router, self.pub)
@@ -138,6 +126,11 @@ class Server:
         log.info("serving: mesh frames in on %s, controls out on %s (%s)", self.input_endpoint,
                  self.output_endpoint, "CURVE" if security.curve else "no authentication")
         self.started.set()
+
+    def _metrics_view(self) -> ServerView:
+        return ServerView(streams=lambda: [s.telemetry for s in list(self.streams.values())],
+                          rejected=lambda: dict(self.rejected),
+                          uptime_s=lambda: (time.time_ns() - self.t_start_ns) / 1e9)
 
     def request_stop(self) -> None:
         """Ask the loop to exit (any thread); it does within about 50 ms."""
@@ -177,6 +170,8 @@ class Server:
         if self.security is not None:
             self.security.stop(self.router, self.pub)
         close_all(self.router, self.pub, linger_ms=linger)
+        if self.metrics is not None:
+            self.metrics.stop()
         log.info("stopped")
 
     # --- main loop -------------------------------------------------------------------------

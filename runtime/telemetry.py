@@ -8,6 +8,7 @@ the full history with ``np.percentile``, and the tests check they agree.
 
 from __future__ import annotations
 
+import bisect
 import logging
 import math
 import time
@@ -23,6 +24,10 @@ log = logging.getLogger(__name__)
 
 STAGES = ("decode", "align", "infer", "filter", "publish", "total")
 QUANTILES = (50.0, 95.0, 99.0)
+# Latency histogram bucket bounds in seconds: powers of two from 0.25 ms, with the frame budgets at
+# 120, 60, 30 and 15 fps among them (8.3, 16.7, 33.3, 66.7 ms), so "over budget" reads off a bucket.
+LATENCY_BUCKETS_S = (0.00025, 0.0005, 0.001, 0.002, 0.004, 0.0083, 0.0167, 0.0333, 0.0667, 0.125,
+                     0.25, 0.5, 1.0)
 
 
 def percentiles_fast(values: np.ndarray, qs: Sequence[float] = QUANTILES) -> np.ndarray:
@@ -79,6 +84,37 @@ class RingWindow:
         return float(self.values().mean()) if self.count else math.nan
 
 
+class LatencyHistogram:
+    """Counts of durations per bucket since start, for the Prometheus histograms
+    (runtime/service_metrics.py). A duration d falls in the first bucket whose bound b has
+    d <= b (Prometheus' ``le``), else in the overflow bucket; :func:`histogram_naive` is the twin."""
+
+    def __init__(self, bounds_s: Sequence[float] = LATENCY_BUCKETS_S) -> None:
+        self.bounds_s = tuple(float(b) for b in bounds_s)
+        self._bounds_ns = [b * 1e9 for b in self.bounds_s]
+        self.counts = [0] * (len(self.bounds_s) + 1)
+        self.sum_ns = 0
+
+    def observe(self, duration_ns: int) -> None:
+        self.counts[bisect.bisect_left(self._bounds_ns, duration_ns)] += 1
+        self.sum_ns += duration_ns
+
+    def cumulative(self) -> tuple[list[tuple[str, float]], float]:
+        """([(le, count of durations <= le), ..., ("+Inf", all)], sum in seconds)."""
+        counts = list(self.counts)  # one copy: the server thread may add meanwhile
+        running, out = 0, []
+        for bound, count in zip((*self.bounds_s, math.inf), counts, strict=True):
+            running += count
+            out.append(("+Inf" if math.isinf(bound) else repr(bound), float(running)))
+        return out, self.sum_ns / 1e9
+
+
+def histogram_naive(durations_ns: Sequence[int], bounds_s: Sequence[float]) -> list[float]:
+    """Twin of LatencyHistogram: cumulative counts of durations <= each bound, then all."""
+    d = np.asarray(durations_ns, dtype=np.float64)
+    return [float((d <= b * 1e9).sum()) for b in bounds_s] + [float(d.shape[0])]
+
+
 class StreamTelemetry:
     """Counters and windows for one stream, turned into a typed message by :meth:`snapshot`."""
 
@@ -86,6 +122,7 @@ class StreamTelemetry:
         self.stream = stream
         self.window = window
         self.stages = {name: RingWindow(window) for name in STAGES}
+        self.histograms = {name: LatencyHistogram() for name in STAGES}
         self.arrivals = RingWindow(256)
         self.fit_rms = RingWindow(window, np.float64)
         self.fit_max = RingWindow(window, np.float64)
@@ -109,8 +146,10 @@ class StreamTelemetry:
 
     def record(self, stage_ns: Sequence[int], frame: int) -> None:
         """stage_ns: durations in STAGES order (ns), total last."""
-        for ring, value in zip(self.stages.values(), stage_ns, strict=True):
+        for ring, hist, value in zip(self.stages.values(), self.histograms.values(), stage_ns,
+                                     strict=True):
             ring.push(value)
+            hist.observe(value)
         self.processed += 1
         self.last_frame = frame
 
