@@ -205,7 +205,11 @@ def _solve_settings(args: argparse.Namespace) -> SolveSettings:
     from rigcast.solve_take import SolveSettings
 
     kind: FilterChoice = args.filter or ("causal" if args.config is not None else "none")
-    return SolveSettings(filter=kind, fps=args.fps, stream=stream_config_from_args(args),
+    stream = stream_config_from_args(args)
+    if stream.on_off_manifold != "pass":
+        say(f"on_off_manifold={stream.on_off_manifold} is for live streams; a solve keeps every "
+            "frame's controls and lists the off-manifold ranges in its summary")
+    return SolveSettings(filter=kind, fps=args.fps, stream=stream,
                          smooth_hz=args.smooth_hz,
                          fit_error=args.fit_error, batch_size=args.batch_size, rig=args.rig,
                          bounds=args.bounds)

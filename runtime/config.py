@@ -26,34 +26,29 @@ first configured stream (own filter state), up to ``max_streams`` streams in all
 
 from __future__ import annotations
 
-import ipaddress
-import math
 import tomllib
-import types
 import typing
 from collections.abc import Mapping
 from dataclasses import MISSING, dataclass, field, fields, replace
 from pathlib import Path
-from typing import Any, Literal, get_args, get_origin
-from urllib.parse import urlsplit
+from typing import Any, Literal, get_args
 
-from rigcast.runtime.errors import EXIT_USAGE, RigcastError
+from rigcast.runtime.config_checks import ConfigError as ConfigError  # re-exported
+from rigcast.runtime.config_checks import check_endpoint, check_metrics, coerce, non_negative, positive
+from rigcast.runtime.config_checks import is_loopback as is_loopback  # re-exported
 from rigcast.runtime.protocol import MAX_STREAM_BYTES
 
 # When the server computes the fit error (after every publish, on every Nth frame, never).
 # Which vertices a batch solve reads for it is another concept: batch.FitErrorScope.
 FitErrorSchedule = Literal["after_publish", "every_n", "off"]
+# What a live stream publishes while its frames are off-manifold (the flag is set in every case):
+# the solved controls, the last good controls, or controls easing towards them.
+OffManifoldAction = Literal["pass", "hold", "ease"]
 
 
-class ConfigError(RigcastError, ValueError):
-    """A config value is missing, unknown, or bad; the message names the key."""
-
-    advice = "fix that setting; `rigcast serve --help` lists them all"
-    exit_code = EXIT_USAGE
-
-
-def _flag(help_text: str, default: Any) -> Any:
-    return field(default=default, metadata={"help": help_text})
+def _flag(help_text: str, default: Any, *, live: bool = False) -> Any:
+    """A field that is also a command-line flag; ``live``: a live stream's only (not a solve's)."""
+    return field(default=default, metadata={"help": help_text, "live": live})
 
 
 @dataclass(frozen=True)
@@ -95,6 +90,13 @@ class StreamConfig:
         "a fixed fit RMS (mesh units) above which a frame is off-manifold; default: the "
         "adaptive rule (running median + 6 MAD of the worst-vertex error)", None
     )
+    on_off_manifold: OffManifoldAction = _flag(  # noqa: RUF009
+        "live: what to publish while frames are off-manifold (flag set in every case): pass "
+        "(the solved controls), hold (the last good controls), ease (towards them)", "pass",
+        live=True)
+    off_manifold_ease_ms: float = _flag(
+        "live, with on_off_manifold=ease: time constant of the ease towards the last good "
+        "controls, in ms", 100.0, live=True)
     groups: tuple[GroupFilter, ...] = ()
 
     def __post_init__(self) -> None:
@@ -103,15 +105,18 @@ class StreamConfig:
             raise ConfigError(f"stream id must be a non-empty string, got {self.stream!r}")
         if len(self.stream.encode()) > MAX_STREAM_BYTES:
             raise ConfigError(f"{where}: stream id longer than {MAX_STREAM_BYTES} bytes (UTF-8)")
-        for name in ("min_cutoff", "d_cutoff", "gap_ms"):
-            _positive(getattr(self, name), f"{where}.{name}")
-        _non_negative(self.beta, f"{where}.beta")
+        if self.on_off_manifold not in get_args(OffManifoldAction):
+            raise ConfigError(f"{where}.on_off_manifold must be one of "
+                              f"{get_args(OffManifoldAction)}, got {self.on_off_manifold!r}")
+        for name in ("min_cutoff", "d_cutoff", "gap_ms", "off_manifold_ease_ms"):
+            positive(getattr(self, name), f"{where}.{name}")
+        non_negative(self.beta, f"{where}.beta")
         if self.off_manifold_threshold is not None:
-            _positive(self.off_manifold_threshold, f"{where}.off_manifold_threshold")
+            positive(self.off_manifold_threshold, f"{where}.off_manifold_threshold")
         for g in self.groups:
-            _positive(g.min_cutoff, f"{where}.groups.{g.group}.min_cutoff")
-            _positive(g.d_cutoff, f"{where}.groups.{g.group}.d_cutoff")
-            _non_negative(g.beta, f"{where}.groups.{g.group}.beta")
+            positive(g.min_cutoff, f"{where}.groups.{g.group}.min_cutoff")
+            positive(g.d_cutoff, f"{where}.groups.{g.group}.d_cutoff")
+            non_negative(g.beta, f"{where}.groups.{g.group}.beta")
 
 
 def filter_defaults() -> tuple[float, float, float]:
@@ -199,7 +204,7 @@ class ServerConfig:
         if dupes:
             raise ConfigError(f"stream ids configured twice: {dupes}")
         for name in ("input", "output"):
-            _check_endpoint(getattr(self, name), name, self.allow_remote)
+            check_endpoint(getattr(self, name), name, self.allow_remote)
             if (not is_loopback(getattr(self, name)) and self.curve_secret_key is None
                     and not self.insecure_no_auth):
                 raise ConfigError(
@@ -208,7 +213,7 @@ class ServerConfig:
                     "--authorized-keys; make keys with `rigcast keys`), or pass "
                     "--insecure-no-auth to accept every peer")
         if self.metrics_port is not None:
-            _check_metrics(self.metrics_host, self.metrics_port, self.allow_remote,
+            check_metrics(self.metrics_host, self.metrics_port, self.allow_remote,
                            self.insecure_no_auth)
         if (self.curve_secret_key is None) != (self.authorized_keys is None):
             raise ConfigError("curve_secret_key and authorized_keys go together (CURVE needs the "
@@ -218,6 +223,10 @@ class ServerConfig:
         if self.fit_error not in get_args(FitErrorSchedule):
             raise ConfigError(f"fit_error must be one of {get_args(FitErrorSchedule)}, "
                               f"got {self.fit_error!r}")
+        holding = [s.stream for s in self.streams if s.on_off_manifold != "pass"]
+        if holding and self.fit_error == "off":
+            raise ConfigError(f"streams {holding} hold off-manifold frames, but fit_error is "
+                              "off, so no frame is ever found off-manifold")
         for name in ("threads", "fit_error_every", "window", "max_message_bytes",
                      "max_header_bytes", "max_drain", "input_hwm", "output_hwm", "max_streams",
                      "handshake_timeout_ms", "max_connections", "reload_max_file_bytes",
@@ -229,15 +238,15 @@ class ServerConfig:
             raise ConfigError(f"busy_poll_us must be 0..1000000, got {self.busy_poll_us}")
         if self.linger_ms < 0:
             raise ConfigError(f"linger_ms must be >= 0, got {self.linger_ms}")
-        _positive(self.telemetry_hz, "telemetry_hz")
-        _positive(self.fit_error_max_share, "fit_error_max_share")
+        positive(self.telemetry_hz, "telemetry_hz")
+        positive(self.fit_error_max_share, "fit_error_max_share")
         if self.fit_error_max_share > 1.0:
             raise ConfigError(f"fit_error_max_share must be at most 1, "
                               f"got {self.fit_error_max_share}")
-        _positive(self.off_manifold_factor, "off_manifold_factor")
+        positive(self.off_manifold_factor, "off_manifold_factor")
         for name in ("owner_timeout_s", "stream_idle_s", "max_clock_step_s"):
-            _positive(getattr(self, name), name)
-        _non_negative(self.reload_min_interval_s, "reload_min_interval_s")
+            positive(getattr(self, name), name)
+        non_negative(self.reload_min_interval_s, "reload_min_interval_s")
 
     def stream(self, stream_id: str) -> StreamConfig | None:
         for s in self.streams:
@@ -246,101 +255,9 @@ class ServerConfig:
         return None
 
 
-def is_loopback(endpoint: str) -> bool:
-    """True when a ZeroMQ endpoint cannot be reached from another machine."""
-    scheme = endpoint.split("://", 1)[0]
-    if scheme in ("ipc", "inproc"):
-        return True
-    host = urlsplit(endpoint).hostname or ""
-    if host == "localhost":
-        return True
-    try:
-        return ipaddress.ip_address(host).is_loopback
-    except ValueError:
-        return False  # "*", an interface name, or a host name: reachable as far as we can tell
-
-
-def _check_endpoint(endpoint: str, key: str, allow_remote: bool) -> None:
-    if not isinstance(endpoint, str) or "://" not in endpoint:
-        raise ConfigError(f"{key} must be a ZeroMQ endpoint like tcp://127.0.0.1:5570, "
-                          f"got {endpoint!r}")
-    scheme = endpoint.split("://", 1)[0]
-    if scheme not in ("tcp", "ipc", "inproc"):
-        raise ConfigError(f"{key}: transport {scheme!r} is not supported (tcp, ipc, inproc)")
-    if not is_loopback(endpoint) and not allow_remote:
-        raise ConfigError(
-            f"{key} {endpoint} is not a loopback address; the server would be reachable from the "
-            "network. Pass allow_remote (--allow-remote) to do this on a closed stage network"
-        )
-
-
-def _check_metrics(host: str, port: int, allow_remote: bool, insecure_no_auth: bool) -> None:
-    """The metrics endpoint binds as the sockets do: loopback, or a closed network on purpose
-    (allow_remote), and without authentication only when said so (insecure_no_auth)."""
-    if not 0 <= port <= 65535:
-        raise ConfigError(f"metrics_port must be 0..65535, got {port}")
-    if not host or "/" in host:
-        raise ConfigError(f"metrics_host must be a host address like 127.0.0.1, got {host!r}")
-    if is_loopback(f"tcp://[{host}]:{port}" if ":" in host else f"tcp://{host}:{port}"):
-        return
-    if not allow_remote:
-        raise ConfigError(f"metrics_host {host} is not a loopback address; pass allow_remote "
-                          "(--allow-remote) to expose metrics on a closed stage network")
-    if not insecure_no_auth:
-        raise ConfigError(f"metrics_host {host}: the metrics endpoint is plain HTTP without "
-                          "authentication; pass --insecure-no-auth to accept that, or keep it "
-                          "on 127.0.0.1 and scrape through an SSH tunnel")
-
-
-def _positive(value: float, key: str) -> None:
-    if not (isinstance(value, int | float) and math.isfinite(value) and value > 0):
-        raise ConfigError(f"{key} must be a positive number, got {value!r}")
-
-
-def _non_negative(value: float, key: str) -> None:
-    if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
-        raise ConfigError(f"{key} must be a number >= 0, got {value!r}")
-
-
 def flag_fields(cls: type) -> list[Any]:
     """The dataclass fields of ``cls`` that are also command-line flags."""
     return [f for f in fields(cls) if "help" in f.metadata]
-
-
-def _coerce(value: Any, hint: Any, key: str) -> Any:
-    """Check a TOML value against a field's type hint and convert it (str -> Path, int -> float)."""
-    origin = get_origin(hint)
-    if origin in (typing.Union, types.UnionType):
-        options = get_args(hint)
-        if value is None and type(None) in options:
-            return None
-        inner = [o for o in options if o is not type(None)]
-        return _coerce(value, inner[0], key)
-    if origin is Literal:
-        if value not in get_args(hint):
-            raise ConfigError(f"{key} must be one of {list(get_args(hint))}, got {value!r}")
-        return value
-    if hint is bool:
-        if not isinstance(value, bool):
-            raise ConfigError(f"{key} must be true or false, got {value!r}")
-        return value
-    if hint is int:
-        if isinstance(value, bool) or not isinstance(value, int):
-            raise ConfigError(f"{key} must be an integer, got {value!r}")
-        return value
-    if hint is float:
-        if isinstance(value, bool) or not isinstance(value, int | float):
-            raise ConfigError(f"{key} must be a number, got {value!r}")
-        return float(value)
-    if hint is str:
-        if not isinstance(value, str):
-            raise ConfigError(f"{key} must be a string, got {value!r}")
-        return value
-    if hint is Path:
-        if not isinstance(value, str | Path):
-            raise ConfigError(f"{key} must be a path, got {value!r}")
-        return Path(value)
-    raise ConfigError(f"{key}: unsupported config type {hint!r}")  # pragma: no cover
 
 
 def _fields_from(cls: type, data: Mapping[str, Any], where: str, skip: set[str]) -> dict[str, Any]:
@@ -354,7 +271,7 @@ def _fields_from(cls: type, data: Mapping[str, Any], where: str, skip: set[str])
     out = {}
     for name, value in data.items():
         key = f"{where}.{name}" if where else name
-        out[name] = _coerce(value, hints[name], key)
+        out[name] = coerce(value, hints[name], key)
     return out
 
 

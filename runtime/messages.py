@@ -223,6 +223,7 @@ class Telemetry:
     pose: HeadPose | None
     stabilise_rms: float | None
     server: ServerStats | None = None
+    held: int = 0  # frames published with held or eased controls while off-manifold
 
     def to_wire(self) -> dict[str, Any]:
         """The header map's fields after v, type and stream."""
@@ -235,7 +236,7 @@ class Telemetry:
             "filter_resets": self.filter_resets, "last_frame": self.last_frame,
             "fit_error": vars(self.fit_error),
             "pose": None if self.pose is None else self.pose.to_wire(),
-            "stabilise_rms": self.stabilise_rms,
+            "stabilise_rms": self.stabilise_rms, "held": self.held,
         }
         if self.server is not None:
             fields["server"] = {**vars(self.server),

@@ -39,6 +39,7 @@ from rigcast.runtime.solve_core import (
     stabilise_for,
     stabilise_frames,
 )
+from rigcast.runtime.stages import ease_towards
 from rigcast.runtime.telemetry import StreamTelemetry
 
 log = logging.getLogger(__name__)
@@ -80,6 +81,7 @@ class FrameResult:
     stage_ns: tuple[int, int, int, int, int, int]
     rigid: RigidBatch | None  # the frame's stabilising fit (a batch of one), None when off
     head_pose: HeadPose | None  # the head motion the fit removed, as published
+    unheld: np.ndarray | None = None  # (C,) the filter's controls when held or eased (FLAG_HELD)
 
     @property
     def pose(self) -> RigidTransform | None:
@@ -102,11 +104,18 @@ class StreamState:
         self.pending_off_manifold = False
         self.dropped_since_publish = 0
         self.frames_since_fit = 0
+        # Hold on flagged frames (config.OffManifoldAction): the last fit's verdict, the
+        # controls of the newest frame found on the manifold, and the last published controls.
+        self.off_now = False
+        self.last_good: np.ndarray | None = None
+        self.last_published: np.ndarray | None = None
         self.swap(model)
 
     def restart_filter(self) -> None:
-        """A new sender or session: the filter starts over."""
+        """A new sender or session: the filter starts over, and nothing is held from before."""
         self.filter = build_filter(self.config, self.model.bundle.schema)
+        self.off_now = False
+        self.last_good = None
 
     def swap(self, model: SolveModel) -> None:
         """Install a model between frames; buffers follow its sizes, filter state is kept."""
@@ -123,6 +132,7 @@ class StreamState:
                          if model.fixed_threshold is None else None)
         self.last_threshold = (math.inf if model.fixed_threshold is None
                                else model.fixed_threshold)
+        self.off_now = False
 
     def is_stale(self, t_send_ns: int) -> bool:
         """A frame not newer (by the sender's clock) than the last one processed."""
@@ -147,8 +157,15 @@ class StreamState:
         self._frame[0] = mesh.frame
         values, filtered, clipped = filter_and_clamp(model, self.filter, solved, self._t,
                                                      self._frame, self._controls)
+        unheld = None
+        if self.off_now and cfg.on_off_manifold != "pass" and self.last_good is not None:
+            unheld = values[0].copy()
+            values[0] = self._held(mesh.t_send_ns)
         t3 = time.perf_counter_ns()
         flags = 0
+        if unheld is not None:  # the flag stays set on every held frame
+            flags |= protocol.FLAG_HELD | protocol.FLAG_OFF_MANIFOLD
+            self.telemetry.held += 1
         if filtered[0]:
             flags |= protocol.FLAG_FILTERED
         if clipped[0]:
@@ -168,8 +185,21 @@ class StreamState:
         self.last_t_send_ns = mesh.t_send_ns
         self.telemetry.filter_resets = self.filter.resets
         stage_ns = (decode_ns, t1 - t0, t2 - t1, t3 - t2, t4 - t3, t4 - recv_perf_ns)
-        return FrameResult(cfg.stream, mesh.frame, mesh.t_send_ns, t_recv_ns, t_pub,
-                           values[0].copy(), solved, flags, stage_ns, rigid, head)
+        result = FrameResult(cfg.stream, mesh.frame, mesh.t_send_ns, t_recv_ns, t_pub,
+                             values[0].copy(), solved, flags, stage_ns, rigid, head, unheld)
+        self.last_published = result.controls
+        return result
+
+    def _held(self, t_send_ns: int) -> np.ndarray:
+        """(C,) what a frame published while off-manifold carries: the last good controls
+        (hold), or one step from the last published controls towards them (ease), over the
+        sender's time since the previous frame. Both stay within bounds (a convex mix)."""
+        assert self.last_good is not None
+        if self.config.on_off_manifold == "hold" or self.last_published is None:
+            return self.last_good
+        dt_s = 0.0 if self.last_t_send_ns is None else (t_send_ns - self.last_t_send_ns) / 1e9
+        return ease_towards(self.last_published, self.last_good, dt_s,
+                            self.config.off_manifold_ease_ms / 1e3)
 
     def wants_fit(self, mode: str, every: int) -> bool:
         if mode == "off":
@@ -194,5 +224,8 @@ class StreamState:
             self.last_threshold = self.manifold.threshold
         if off:
             self.pending_off_manifold = True
+        else:  # what a held frame goes back to: this frame's own controls, before any hold
+            self.last_good = result.controls if result.unheld is None else result.unheld
+        self.off_now = off
         self.telemetry.record_fit(result.frame, rms, worst, off)
         return rms, worst, off

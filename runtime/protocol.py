@@ -28,8 +28,9 @@ FLAG_FILTERED = 1
 FLAG_CLAMPED = 2
 FLAG_OFF_MANIFOLD = 4
 FLAG_STALE = 8
+FLAG_HELD = 16
 FLAGS = {"filtered": FLAG_FILTERED, "clamped": FLAG_CLAMPED,
-         "off_manifold": FLAG_OFF_MANIFOLD, "stale": FLAG_STALE}
+         "off_manifold": FLAG_OFF_MANIFOLD, "stale": FLAG_STALE, "held": FLAG_HELD}
 
 REASONS: tuple[str, ...] = (
     "bad_vertex_count",

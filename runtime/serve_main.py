@@ -43,9 +43,13 @@ def _flag_type(hint: Any) -> tuple[Any, dict[str, Any]]:
     return hint, {}
 
 
-def _add_fields(group: argparse._ArgumentGroup, cls: type, prefix: str) -> None:
+def _add_fields(group: argparse._ArgumentGroup, cls: type, prefix: str, *,
+                live: bool = True) -> None:
+    """One flag per field with a ``help``; ``live`` False leaves out the live-only ones."""
     hints = typing.get_type_hints(cls)
     for f in flag_fields(cls):
+        if f.metadata.get("live") and not live:
+            continue
         flag = "--" + f.name.replace("_", "-")
         base, extra = _flag_type(hints[f.name])
         dest = prefix + f.name
@@ -83,7 +87,7 @@ def add_stream_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--stream", default=None, metavar="ID",
                         help="which stream of --config (default: the first)")
     _add_fields(parser.add_argument_group("per-stream settings (as `rigcast serve`)"),
-                StreamConfig, _STREAM_PREFIX)
+                StreamConfig, _STREAM_PREFIX, live=False)
 
 
 def stream_config_from_args(args: argparse.Namespace) -> StreamConfig:

@@ -78,6 +78,8 @@ class TelemetryCollector:
             "frames_off_manifold": ("frames whose fit error exceeded the threshold",
                                     lambda t: t.off_manifold),
             "frames_clamped": ("frames with a control clamped to its bounds", lambda t: t.clamped),
+            "frames_held": ("frames published with held or eased controls while off-manifold",
+                            lambda t: t.held),
             "fit_skipped": ("fit errors not computed (time share, errors)",
                             lambda t: t.fit_skipped),
             "filter_resets": ("One Euro filter restarts after a gap", lambda t: t.filter_resets),

@@ -144,3 +144,14 @@ def fit_error_naive(predicted: np.ndarray, observed: np.ndarray, rigid: RigidBat
         rms.append(math.sqrt(total / float(w.sum())))
         worst.append(math.sqrt(peak))
     return np.array(rms), np.array(worst)
+
+
+def ease_towards(current: np.ndarray, target: np.ndarray, dt_s: float, tau_s: float
+                 ) -> np.ndarray:
+    """current (C,), target (C,) -> (C,) float32: one step of a first-order ease (an exponential
+    approach with time constant ``tau_s``) over ``dt_s`` seconds, ``current + (1 - exp(-dt/tau))
+    (target - current)``; so after t seconds of steps, whatever their sizes, the distance left
+    is exp(-t/tau) of the start's. dt_s <= 0 leaves ``current``."""
+    alpha = -math.expm1(-max(dt_s, 0.0) / tau_s)  # 1 - exp(-dt/tau), exact for small dt
+    out: np.ndarray = (current + np.float32(alpha) * (target - current)).astype(np.float32)
+    return out

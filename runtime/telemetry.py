@@ -135,6 +135,7 @@ class StreamTelemetry:
         self.last_fit_frame: int | None = None
         self.fit_skipped = 0
         self.clamped = 0
+        self.held = 0  # frames published with held or eased controls (FLAG_HELD)
         self.filter_resets = 0
         self.last_frame: int | None = None
         self.pose: HeadPose | None = None
@@ -186,7 +187,8 @@ class StreamTelemetry:
             processed=self.processed, dropped=self.dropped, stale=self.stale,
             rejected=sum(self.rejected.values()), rejected_by_reason=dict(self.rejected),
             clamped=self.clamped, filter_resets=self.filter_resets, last_frame=self.last_frame,
-            fit_error=fit, pose=self.pose, stabilise_rms=_f(self.stabilise_rms), server=server)
+            fit_error=fit, pose=self.pose, stabilise_rms=_f(self.stabilise_rms), server=server,
+            held=self.held)
 
 
 def telemetry(streams: Sequence[StreamTelemetry], t_start_ns: int,
