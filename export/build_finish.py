@@ -25,7 +25,7 @@ from rigcast.export.build_config import (
     _versions,
 )
 from rigcast.export.rig import Rig
-from rigcast.runtime.bundle import load_bundle, write_bundle
+from rigcast.runtime.bundle import RefineProjection, load_bundle, write_bundle
 
 log = logging.getLogger(__name__)
 
@@ -75,13 +75,14 @@ def finish(
     from rigcast.export.build_check import check_served
     from rigcast.export.models import EDGE_MARGIN, REST_BAND, save_checkpoint
     from rigcast.export.onnx_export import OPSET, export_forward, export_inverse
-    from rigcast.export.refine import refine_parts
+    from rigcast.export.refine import projected_refine_parts
     from rigcast.runtime.refine import RefineSettings
 
     t = time.perf_counter()
     inv_bytes, inv_parity = export_inverse(inv, check_x[:16][:, inputs])
     fwd_bytes, fwd_parity = export_forward(fwd)
-    ref_bytes, hessian, ref_parity = refine_parts(fwd, inputs, poses, check_x[:16][:, inputs])
+    ref_bytes, hessian, ref_idx, ref_basis, ref_offset, ref_parity = projected_refine_parts(
+        fwd, poses, check_x[:16])
     timings["export"] = time.perf_counter() - t
     if progress is not None:
         progress("export", 1, 1)
@@ -125,7 +126,8 @@ def finish(
     # then go into the manifest of the final one.
     parts = {"name": rig.name, "schema": rig.schema, "neutral": rig.neutral, "faces": rig.faces,
              "stable_indices": stable, "input_indices": inputs, "inverse_onnx": inv_bytes,
-             "forward_onnx": fwd_bytes, "refine_onnx": ref_bytes, "refine_hessian": hessian}
+             "forward_onnx": fwd_bytes, "refine_onnx": ref_bytes, "refine_hessian": hessian,
+             "refine_projection": RefineProjection(ref_idx, ref_basis, ref_offset)}
     write_bundle(out_path, extra=extra, **parts)
     served = check_served(out_path, rig, check_x, float(fwd_rep.mean_err))
     training.update(check_mean_err=served.rig_mean_err,

@@ -193,3 +193,40 @@ def export_refine(graph: nn.Module, lower: np.ndarray, upper: np.ndarray,
         raise ExportError(f"refine graph differs from torch by {worst:.3g} (relative, > 1e-4)")
     log.info("exported refine: %d bytes, parity %.2g", len(data), worst)
     return data, worst
+
+
+def export_refine_core(graph: nn.Module, lower: np.ndarray, upper: np.ndarray,
+                       example_projections: np.ndarray, seed: int = 0) -> tuple[bytes, float]:
+    """Export the projected refinement graph (``export.refine.RefineCore``): inputs ``controls``
+    (N, C) and ``projection`` (N, R) -> outputs ``gradient`` (N, C) float32 and ``quad`` (N,)
+    float64. example_projections (M, R): realistic projections, paired with random controls
+    within the bounds for the parity check (relative to each output's largest magnitude).
+    returns: (model bytes, worst relative parity error)."""
+    from rigcast.runtime.bundle import (
+        REFINE_CONTROLS,
+        REFINE_GRADIENT,
+        REFINE_PROJECTION,
+        REFINE_QUAD,
+    )
+
+    graph = graph.eval()
+    rng = np.random.default_rng(seed)
+    lo, hi = np.asarray(lower, np.float32), np.asarray(upper, np.float32)
+    proj = np.asarray(example_projections, np.float32)
+    ctrl = (lo + (hi - lo) * rng.random((proj.shape[0], lo.shape[0]))).astype(np.float32)
+    example = (torch.from_numpy(ctrl), torch.from_numpy(proj))
+    data = _export(graph, example, [REFINE_CONTROLS, REFINE_PROJECTION],
+                   [REFINE_GRADIENT, REFINE_QUAD])
+    check_graph(data, "refine")
+    sess = session(data)
+    worst = 0.0
+    with torch.no_grad():
+        refs = graph(*example)
+    got = sess.run(None, {REFINE_CONTROLS: ctrl, REFINE_PROJECTION: proj})
+    for g, r in zip(got, refs, strict=True):
+        ref = r.numpy()
+        worst = max(worst, float(np.max(np.abs(g - ref)) / max(float(np.max(np.abs(ref))), 1e-12)))
+    if not worst <= 1e-4:
+        raise ExportError(f"refine graph differs from torch by {worst:.3g} (relative, > 1e-4)")
+    log.info("exported refine: %d bytes, parity %.2g", len(data), worst)
+    return data, worst

@@ -31,7 +31,10 @@ from rigcast.runtime.bundle import (
     REFINE_CONTROLS,
     REFINE_GRADIENT,
     REFINE_MESH,
+    REFINE_PROJECTION,
+    REFINE_QUAD,
     REFINE_RESIDUAL,
+    RefineProjection,
     write_bundle,
 )
 from rigcast.runtime.schema import Control, ControlSchema
@@ -237,6 +240,55 @@ def refine_graph(rig: SyntheticRig) -> tuple[bytes, np.ndarray]:
     return _finish(graph), a.astype(np.float64) @ a.T.astype(np.float64)
 
 
+def projected_refine_graph(rig: SyntheticRig, cap: int = 4096
+                           ) -> tuple[bytes, np.ndarray, RefineProjection]:
+    """The projected refinement of the linear rig (see export/refine.py ``RefineCore``, with no
+    correction MLP): ``(controls (N, C), projection (N, C)) -> (gradient (N, C), quad (N,))``,
+    z = (c - lo) / span, e = p - G z, gradient = e, quad = z^T G z - 2 z^T p (float64), on the
+    vertices ``export.refine.refine_vertices`` picks. Returns (bytes, hessian, projection)."""
+    from rigcast.export.refine import refine_vertices
+
+    n_controls = rig.deltas.shape[0]
+    lo, hi = rig.schema.lower, rig.schema.upper
+    span = (hi - lo).astype(np.float32)
+    scaled = rig.deltas.astype(np.float64) * span[:, None, None]  # (C, V, 3) per unit of u
+    idx = refine_vertices((scaled**2).sum(axis=2).T, cap=cap)
+    a = scaled[:, idx].reshape(n_controls, -1)  # (C, 3S)
+    gram = a @ a.T
+    inits = [
+        numpy_helper.from_array(lo, "lo"),
+        numpy_helper.from_array(span, "span"),
+        numpy_helper.from_array(gram, "gram"),
+        numpy_helper.from_array(np.array([1], dtype=np.int64), "axis"),
+        numpy_helper.from_array(np.array(2.0), "two"),
+    ]
+    nodes = [
+        helper.make_node("Sub", [REFINE_CONTROLS, "lo"], ["shifted"]),
+        helper.make_node("Div", ["shifted", "span"], ["u"]),
+        helper.make_node("Cast", ["u"], ["z"], to=TensorProto.DOUBLE),
+        helper.make_node("Cast", [REFINE_PROJECTION], ["p"], to=TensorProto.DOUBLE),
+        helper.make_node("MatMul", ["z", "gram"], ["gz"]),
+        helper.make_node("Sub", ["p", "gz"], ["e"]),
+        helper.make_node("Cast", ["e"], [REFINE_GRADIENT], to=TensorProto.FLOAT),
+        helper.make_node("Mul", ["p", "two"], ["p2"]),
+        helper.make_node("Sub", ["gz", "p2"], ["w"]),
+        helper.make_node("Mul", ["z", "w"], ["zw"]),
+        helper.make_node("ReduceSum", ["zw", "axis"], [REFINE_QUAD], keepdims=0),
+    ]
+    graph = helper.make_graph(
+        nodes,
+        "synthetic_refine_projected",
+        [helper.make_tensor_value_info(REFINE_CONTROLS, TensorProto.FLOAT, ["N", n_controls]),
+         helper.make_tensor_value_info(REFINE_PROJECTION, TensorProto.FLOAT, ["N", n_controls])],
+        [helper.make_tensor_value_info(REFINE_GRADIENT, TensorProto.FLOAT, ["N", n_controls]),
+         helper.make_tensor_value_info(REFINE_QUAD, TensorProto.DOUBLE, ["N"])],
+        inits,
+    )
+    at_lo = rig.neutral[idx] + np.einsum("c,cvk->vk", lo.astype(np.float64), rig.deltas[:, idx])
+    offset = at_lo.reshape(-1).astype(np.float32)  # the mesh at u = 0
+    return _finish(graph), gram, RefineProjection(idx, a.astype(np.float32), offset)
+
+
 def _finish(graph: onnx.GraphProto) -> bytes:
     model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", OPSET)])
     model.ir_version = 8
@@ -257,20 +309,26 @@ def build_synthetic_bundle(
     fit_rms: float | None = None,
     name: str = "synthetic",
     rigid_region: bool = True,
-    refine: bool = False,
+    refine: bool | Literal["inputs", "projected"] = False,
 ) -> Path:
     """Write a synthetic bundle to ``path`` and return the path.
 
     ``fit_rms`` goes into the manifest's ``training.inverse_fit_rms`` (mesh units), the figure the
-    server derives its default off-manifold threshold from. ``refine`` adds the refinement graph
-    (``refine_graph``), so the solve costs what a built bundle's does.
+    server derives its default off-manifold threshold from. ``refine`` adds a refinement graph,
+    so the solve costs what a built bundle's does: True or "projected" the projected form
+    (``projected_refine_graph``, what builds write), "inputs" the older input-vertex form
+    (``refine_graph``).
     """
     rig = make_synthetic_rig(vertices, controls, inputs=inputs, stable=stable, seed=seed)
     extra: dict[str, object] = {"synthetic": {"inverse": inverse, "seed": seed},
                                 "stabilise": {"rigid_region": rigid_region}}
     if fit_rms is not None:
         extra["training"] = {"inverse_fit_rms": float(fit_rms)}
-    refine_bytes, hessian = refine_graph(rig) if refine else (None, None)
+    refine_bytes, hessian, projection = None, None, None
+    if refine == "inputs":
+        refine_bytes, hessian = refine_graph(rig)
+    elif refine:
+        refine_bytes, hessian, projection = projected_refine_graph(rig)
     return write_bundle(
         path,
         name=name,
@@ -284,4 +342,5 @@ def build_synthetic_bundle(
         extra=extra,
         refine_onnx=refine_bytes,
         refine_hessian=hessian,
+        refine_projection=projection,
     )

@@ -10,10 +10,15 @@ A bundle is a ZIP archive (stored, not compressed) with these members:
                       in the neutral's frame (after head stabilisation);
                       output ``controls`` float32 (N, C), always within the schema's bounds;
 - ``forward.onnx``    input ``controls`` float32 (N, C); output ``vertices`` float32 (N, V, 3);
-- ``refine.onnx``     optional: inputs ``controls`` (N, C) and ``mesh`` (N, K, 3), outputs
-                      ``gradient`` (N, C) and ``residual_sq`` (N,) for the Gauss-Newton steps
-                      after the network (runtime/refine.py); with it, ``arrays.npz`` holds
-                      ``refine_hessian`` (C, C) float64 and the manifest a ``refine`` section.
+- ``refine.onnx``     optional, for the Gauss-Newton steps after the network (runtime/refine.py);
+                      with it, ``arrays.npz`` holds ``refine_hessian`` (C, C) float64 and the
+                      manifest a ``refine`` section. Two forms:
+                      * projected (bundles since the all-vertex refinement): ``arrays.npz`` also
+                        holds ``refine_indices`` (S,) int64, ``refine_basis`` (R, 3S) float32 and
+                        ``refine_offset`` (3S,) float32; the graph maps ``controls`` (N, C) and
+                        ``projection`` (N, R) to ``gradient`` (N, C) and ``quad`` (N,) float64;
+                      * input-vertex (older bundles): ``controls`` (N, C) and ``mesh`` (N, K, 3)
+                        to ``gradient`` (N, C) and ``residual_sq`` (N,).
 
 The manifest's ``stabilise`` section records whether the rig has a rigid region (measured by the
 build), which sets whether ``serve`` and ``solve`` stabilise by default.
@@ -51,6 +56,8 @@ REFINE_CONTROLS = "controls"
 REFINE_MESH = "mesh"
 REFINE_GRADIENT = "gradient"
 REFINE_RESIDUAL = "residual_sq"
+REFINE_PROJECTION = "projection"
+REFINE_QUAD = "quad"
 _MEMBERS = ("manifest.json", "arrays.npz", "inverse.onnx", "forward.onnx")
 _OPTIONAL = ("refine.onnx",)
 
@@ -59,6 +66,17 @@ class BundleError(RigcastError):
     """A bundle is missing, corrupt, or inconsistent; the message says which part and why."""
 
     advice = "rebuild the bundle with `rigcast build`, or give the path of a good one"
+
+
+@dataclass(frozen=True)
+class RefineProjection:
+    """What the all-vertex refinement reads: the S vertices it fits (indices (S,) int64), the
+    forward model's linear and residual bases on them in normalised controls (basis (R, 3S)
+    float32, R = C + P) and its offset there (offset (3S,) float32: neutral plus bias)."""
+
+    indices: np.ndarray
+    basis: np.ndarray = field(repr=False)
+    offset: np.ndarray = field(repr=False)
 
 
 @dataclass(frozen=True)
@@ -76,6 +94,7 @@ class Bundle:
     forward_onnx: bytes = field(repr=False)
     refine_onnx: bytes | None = field(default=None, repr=False)
     refine_hessian: np.ndarray | None = field(default=None, repr=False)  # (C, C) float64
+    refine_projection: RefineProjection | None = field(default=None, repr=False)
 
     @property
     def rigid_region(self) -> bool:
@@ -124,6 +143,7 @@ def write_bundle(
     extra: Mapping[str, Any] | None = None,
     refine_onnx: bytes | None = None,
     refine_hessian: np.ndarray | None = None,
+    refine_projection: RefineProjection | None = None,
 ) -> Path:
     """Write a bundle atomically (temp file + rename) and return its path.
 
@@ -141,6 +161,12 @@ def write_bundle(
                               "input_indices": inputs}
     if refine_hessian is not None:
         stored["refine_hessian"] = np.ascontiguousarray(refine_hessian, np.float64)
+    if refine_projection is not None:
+        if refine_onnx is None:
+            raise BundleError("refine_projection needs refine_onnx")
+        stored.update(refine_indices=np.ascontiguousarray(refine_projection.indices, np.int64),
+                      refine_basis=np.ascontiguousarray(refine_projection.basis, np.float32),
+                      refine_offset=np.ascontiguousarray(refine_projection.offset, np.float32))
     buf = io.BytesIO()
     np.savez(buf, **stored)
     arrays = buf.getvalue()
@@ -241,6 +267,8 @@ def parse_bundle(blobs: Mapping[str, bytes], path: Path | None = None) -> Bundle
         with np.load(io.BytesIO(blobs["arrays.npz"]), allow_pickle=False) as npz:
             arrays = {k: npz[k] for k in ("neutral", "faces", "stable_indices", "input_indices")}
             hessian = npz["refine_hessian"] if "refine_hessian" in npz.files else None
+            projected = {k: npz[k] for k in ("refine_indices", "refine_basis", "refine_offset")
+                         if k in npz.files}
     except (KeyError, ValueError, OSError, EOFError, zipfile.BadZipFile) as exc:
         raise BundleError(f"{where}: arrays.npz is unreadable ({exc})") from None
     for name, kinds in (("neutral", "fiu"), ("faces", "iu"), ("stable_indices", "iu"),
@@ -272,6 +300,7 @@ def parse_bundle(blobs: Mapping[str, bytes], path: Path | None = None) -> Bundle
                               f"{hessian.shape} {hessian.dtype}")
         hessian = hessian.astype(np.float64, copy=False)
         hessian.setflags(write=False)
+    projection = _refine_projection(projected, hessian, neutral.shape[0], where)
     for a in (neutral, faces, stable, inputs):
         a.setflags(write=False)
     return Bundle(
@@ -286,7 +315,37 @@ def parse_bundle(blobs: Mapping[str, bytes], path: Path | None = None) -> Bundle
         forward_onnx=blobs["forward.onnx"],
         refine_onnx=refine,
         refine_hessian=hessian,
+        refine_projection=projection,
     )
+
+
+def _refine_projection(arrays: Mapping[str, np.ndarray], hessian: np.ndarray | None,
+                       vertex_count: int, where: str) -> RefineProjection | None:
+    """The projected refinement's arrays, checked against each other; None when absent."""
+    if not arrays:
+        return None
+    if len(arrays) != 3 or hessian is None:
+        raise BundleError(f"{where}: refine_indices, refine_basis and refine_offset come together, "
+                          "with refine.onnx")
+    idx, basis, offset = arrays["refine_indices"], arrays["refine_basis"], arrays["refine_offset"]
+    if idx.ndim != 1 or idx.dtype.kind not in "iu" or not idx.size:
+        raise BundleError(f"{where}: refine_indices must be a non-empty list of integers")
+    if int(idx.min()) < 0 or int(idx.max()) >= vertex_count:
+        raise BundleError(f"{where}: refine_indices out of range 0..{vertex_count - 1}")
+    coords = 3 * idx.shape[0]
+    if (basis.ndim != 2 or basis.shape[1] != coords or basis.shape[0] < hessian.shape[0]
+            or basis.dtype.kind != "f" or not np.isfinite(basis).all()):
+        raise BundleError(f"{where}: refine_basis must be finite (R >= {hessian.shape[0]}, "
+                          f"{coords}) floats, got {basis.shape} {basis.dtype}")
+    if offset.shape != (coords,) or offset.dtype.kind != "f" or not np.isfinite(offset).all():
+        raise BundleError(f"{where}: refine_offset must be finite ({coords},) floats, got "
+                          f"{offset.shape}")
+    out = RefineProjection(idx.astype(np.int64, copy=False),
+                           np.ascontiguousarray(basis, np.float32),
+                           np.ascontiguousarray(offset, np.float32))
+    for a in (out.indices, out.basis, out.offset):
+        a.setflags(write=False)
+    return out
 
 
 def _check_arrays(

@@ -21,11 +21,13 @@ from rigcast.runtime.bundle import (
     REFINE_CONTROLS,
     REFINE_GRADIENT,
     REFINE_MESH,
+    REFINE_PROJECTION,
+    REFINE_QUAD,
     REFINE_RESIDUAL,
     Bundle,
     BundleError,
 )
-from rigcast.runtime.refine import RefineError, Refiner, RefineSettings
+from rigcast.runtime.refine import RefineError, Refiner, RefineSettings, project
 
 log = logging.getLogger(__name__)
 
@@ -119,10 +121,13 @@ def check_forward_rest(rest: np.ndarray, neutral: np.ndarray) -> None:
 
 
 class InverseModel:
-    """The bundle's solve: mesh subset (N, K, 3) -> controls (N, C).
+    """The bundle's solve: the frame's solve points (N, len(point_indices), 3) -> controls (N, C).
 
-    The inverse graph, then, when the bundle has a refinement graph and ``refine`` is not
-    ``RefineSettings(steps=0)``, the bounded Gauss-Newton steps of ``runtime.refine``.
+    The inverse graph on the first K points (the network's input vertices), then, when the
+    bundle has a refinement graph and ``refine`` is not ``RefineSettings(steps=0)``, the bounded
+    Gauss-Newton steps of ``runtime.refine`` on the vertices the refinement fits: the points
+    after the first K for a projected refinement, the K input vertices for an older one.
+    ``point_indices``: the vertices a caller gathers (in the neutral's frame) for ``solve``.
     """
 
     def __init__(self, bundle: Bundle, *, threads: int = 1,
@@ -133,20 +138,31 @@ class InverseModel:
         _check_io(self.session, "inverse", INVERSE_INPUT, (self.k, 3), INVERSE_OUTPUT, (self.c,))
         self._outputs = [INVERSE_OUTPUT]
         self.refiner: Refiner | None = None
+        self.point_indices = np.asarray(bundle.input_indices, np.int64)
         if bundle.refine_onnx is not None and bundle.refine_hessian is not None:
             self.refiner = _refiner(bundle, threads, refine)
+            if bundle.refine_projection is not None:
+                self.point_indices = np.concatenate([self.point_indices,
+                                                     bundle.refine_projection.indices])
+        self.point_indices.setflags(write=False)
         out = _warm_up("inverse", self.solve,
-                       np.asarray(bundle.neutral[bundle.input_indices], np.float32)[None])
+                       np.asarray(bundle.neutral[self.point_indices], np.float32)[None])
         if out.shape != (1, self.c):
             raise BundleError(f"inverse graph returned shape {out.shape}, expected (1, {self.c})")
         if not np.isfinite(out).all():
             raise BundleError("inverse graph returns NaN or Inf on the neutral mesh")
 
-    def solve(self, mesh_subset: np.ndarray) -> np.ndarray:
-        """mesh_subset (N, K, 3) float32 -> controls (N, C) float32."""
-        result: np.ndarray = self.session.run(self._outputs, {INVERSE_INPUT: mesh_subset})[0]
+    def solve(self, points: np.ndarray) -> np.ndarray:
+        """points (N, len(point_indices), 3) float32 -> controls (N, C) float32."""
+        k = self.k
+        if points.ndim != 3 or points.shape[1:] != (self.point_indices.shape[0], 3):
+            raise BundleError(f"solve needs the frames' {self.point_indices.shape[0]} solve "
+                              f"points (N, {self.point_indices.shape[0]}, 3), got {points.shape}")
+        net_in = points if points.shape[1] == k else np.ascontiguousarray(points[:, :k])
+        result: np.ndarray = self.session.run(self._outputs, {INVERSE_INPUT: net_in})[0]
         if self.refiner is not None and np.isfinite(result).all():
-            result = self.refiner.refine(result, mesh_subset)
+            result = self.refiner.refine(result, points[:, k:] if points.shape[1] > k
+                                         else net_in)
         return result
 
 
@@ -164,23 +180,39 @@ def refine_settings(bundle: Bundle) -> RefineSettings:
 def _refiner(bundle: Bundle, threads: int, settings: RefineSettings | None) -> Refiner:
     assert bundle.refine_onnx is not None and bundle.refine_hessian is not None
     session = open_session(bundle.refine_onnx, threads=threads)
-    k = int(bundle.input_indices.shape[0])
+    projected = bundle.refine_projection
+    want_in = [REFINE_CONTROLS, REFINE_MESH if projected is None else REFINE_PROJECTION]
+    names = [REFINE_GRADIENT, REFINE_RESIDUAL if projected is None else REFINE_QUAD]
     got_in = sorted(i.name for i in session.get_inputs())
     got_out = {o.name for o in session.get_outputs()}
-    if got_in != sorted([REFINE_CONTROLS, REFINE_MESH]) or not {REFINE_GRADIENT,
-                                                                  REFINE_RESIDUAL} <= got_out:
-        raise BundleError(f"refine graph must map ({REFINE_CONTROLS!r}, {REFINE_MESH!r}) to "
-                          f"({REFINE_GRADIENT!r}, {REFINE_RESIDUAL!r}); has {got_in} -> "
-                          f"{sorted(got_out)}")
-    names = [REFINE_GRADIENT, REFINE_RESIDUAL]
-
-    def gradient(controls: np.ndarray, mesh: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        g, rss = session.run(names, {REFINE_CONTROLS: controls, REFINE_MESH: mesh})
-        return g, rss
-
+    if got_in != sorted(want_in) or not set(names) <= got_out:
+        raise BundleError(f"refine graph must map {tuple(want_in)} to {tuple(names)}; has "
+                          f"{got_in} -> {sorted(got_out)}")
     schema = bundle.schema
-    return Refiner(gradient, bundle.refine_hessian, schema.lower, schema.upper, schema.defaults,
-                   3 * k, settings or refine_settings(bundle))
+    chosen = settings or refine_settings(bundle)
+    if projected is None:
+        def gradient(controls: np.ndarray, mesh: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+            g, rss = session.run(names, {REFINE_CONTROLS: controls, REFINE_MESH: mesh})
+            return g, rss
+
+        return Refiner(gradient, bundle.refine_hessian, schema.lower, schema.upper,
+                       schema.defaults, 3 * int(bundle.input_indices.shape[0]), chosen)
+    r = projected.basis.shape[0]
+
+    def gradient_projected(controls: np.ndarray, state: np.ndarray
+                           ) -> tuple[np.ndarray, np.ndarray]:
+        proj = state[:, :r].astype(np.float32)
+        g, quad = session.run(names, {REFINE_CONTROLS: controls, REFINE_PROJECTION: proj})
+        return g, state[:, r] + quad
+
+    basis = projected.basis.astype(np.float64)  # see ``project``
+    offset = projected.offset.astype(np.float64)
+
+    def prepare(points: np.ndarray) -> np.ndarray:
+        return project(points, basis, offset)
+
+    return Refiner(gradient_projected, bundle.refine_hessian, schema.lower, schema.upper,
+                   schema.defaults, 3 * int(projected.indices.shape[0]), chosen, prepare)
 
 
 class ForwardModel:

@@ -120,7 +120,7 @@ class StreamState:
     def swap(self, model: SolveModel) -> None:
         """Install a model between frames; buffers follow its sizes, filter state is kept."""
         self.model = model
-        k = model.bundle.input_indices.shape[0]
+        k = model.inverse.point_indices.shape[0]
         self._inputs = np.empty((1, k, 3), dtype=np.float32)
         self._controls = np.empty((1, model.bundle.control_count), dtype=np.float32)
         self._t = np.zeros(1, np.int64)

@@ -1,9 +1,20 @@
 """Refinement: a few bounded, sparse Gauss-Newton steps after the inverse network.
 
 The network's answer is close, but a regression is never exactly the least-squares optimum, and
-it can miss a small, local expression. The bundle's refinement graph (export/refine.py) returns,
-for controls and the K input vertices, the gradient g = J(u)^T r of the forward model's fit in
-normalised controls u = (c - lo) / (hi - lo) and the residual's squared norm. Each step then:
+it can miss a small, local expression. The bundle's refinement graph (export/refine.py) returns
+the gradient g = J(u)^T r of the forward model's fit in normalised controls
+u = (c - lo) / (hi - lo), and the residual's squared norm, on the vertices the refinement reads:
+
+- **projected** (bundles since the all-vertex refinement): the S vertices that carry the rig's
+  motion (all of them on most rigs). Each frame is projected once onto the forward model's bases,
+  p = A y with y = x_S - offset, A = [W; B] (R, 3S); then every step works in R = C + P numbers:
+  for z = [u; MLP(u)], A r = p - G z with G = A A^T, and |r|^2 = |y|^2 + z^T G z - 2 z^T p,
+  exact on all S vertices at the cost of one projection per frame (``project``);
+- **input-vertex** (older bundles): the K input vertices of the network, through a graph that
+  evaluates the forward model on them at every step. Fitting K of V vertices leaves the fit's
+  noise about sqrt(V / K) times that of a fit on all of them.
+
+Each step then:
 
 1. **Active set.** A control takes part when it is away from its default, or when it is at its
    default and the residual correlates with its mesh effect beyond what noise explains:
@@ -53,8 +64,11 @@ from rigcast.runtime.errors import RigcastError
 
 log = logging.getLogger(__name__)
 
-#: (controls (N, C) float32, mesh (N, K, 3) float32) -> (gradient (N, C), residual_sq (N,))
+#: (controls (N, C) float32, per-frame state (N, ...)) -> (gradient (N, C), residual_sq (N,)).
+#: The state is what ``Refiner.prepare`` made of the frames (the frames themselves without it).
 GradientFn = Callable[[np.ndarray, np.ndarray], tuple[np.ndarray, np.ndarray]]
+#: frames' refinement vertices (N, S, 3) float32 -> per-frame state (N, ...)
+PrepareFn = Callable[[np.ndarray], np.ndarray]
 
 
 class RefineError(RigcastError, ValueError):
@@ -118,6 +132,28 @@ class RefineSettings:
             return cls(**kw)
         except TypeError as exc:
             raise RefineError(f"refine settings are invalid: {exc}") from None
+
+
+def project(points: np.ndarray, basis: np.ndarray, offset: np.ndarray) -> np.ndarray:
+    """points (N, S, 3) float32; basis (R, 3S) (float64 keeps a batch of many and a batch of one
+    equal to ~1e-12: float32 products of different lengths round differently); offset (3S,)
+    -> state (N, R + 1) float64: the projection p = basis @ y (columns :R) and |y|^2 (column R),
+    y = points - offset."""
+    n = points.shape[0]
+    y = points.reshape(n, -1).astype(np.float64) - offset  # (N, 3S)
+    out = np.empty((n, basis.shape[0] + 1), np.float64)
+    out[:, :-1] = y @ basis.T
+    out[:, -1] = np.einsum("ij,ij->i", y, y)
+    return out
+
+
+def project_naive(points: np.ndarray, basis: np.ndarray, offset: np.ndarray) -> np.ndarray:
+    """Float64, frame-by-frame twin of ``project``, from the definition."""
+    out = []
+    for frame in np.asarray(points, np.float64):
+        y = frame.reshape(-1) - np.asarray(offset, np.float64)
+        out.append([*(np.asarray(basis, np.float64) @ y), float(y @ y)])
+    return np.asarray(out, np.float64).reshape(len(out), basis.shape[0] + 1)
 
 
 def active_set(u: np.ndarray, d: np.ndarray, g: np.ndarray, rss: np.ndarray,
@@ -194,12 +230,15 @@ class Refiner:
     """Bounded sparse Gauss-Newton after the network; see the module docstring.
 
     gradient: the refinement graph as a function; hessian (C, C) its fixed Gauss-Newton matrix
-    in normalised controls; lower, upper, defaults (C,); coords = 3K.
+    in normalised controls; lower, upper, defaults (C,); coords: 3 x the vertices it fits;
+    prepare: what each frame becomes before the steps (``project`` for a projected bundle;
+    None: the frames themselves).
     """
 
     def __init__(self, gradient: GradientFn, hessian: np.ndarray, lower: np.ndarray,
                  upper: np.ndarray, defaults: np.ndarray, coords: int,
-                 settings: RefineSettings | None = None) -> None:
+                 settings: RefineSettings | None = None,
+                 prepare: PrepareFn | None = None) -> None:
         c = lower.shape[0]
         h = np.asarray(hessian, np.float64)
         if h.shape != (c, c) or not np.isfinite(h).all():
@@ -215,6 +254,7 @@ class Refiner:
         self.span = np.asarray(upper, np.float64) - self.lower
         self.d = np.clip((np.asarray(defaults, np.float64) - self.lower) / self.span, 0.0, 1.0)
         self.coords = int(coords)
+        self.prepare = prepare
 
     def prior_weight(self, g: np.ndarray, rss: np.ndarray, free: np.ndarray) -> np.ndarray:
         """g (N, C) gradient, rss (N,) residual squared norms, free (N, C) the active set ->
@@ -235,11 +275,14 @@ class Refiner:
         return np.asarray(g, np.float64), np.asarray(rss, np.float64)
 
     def refine(self, controls: np.ndarray, mesh: np.ndarray) -> np.ndarray:
-        """controls (N, C) the network's answer; mesh (N, K, 3) its input -> (N, C) float32."""
+        """controls (N, C) the network's answer; mesh (N, S, 3) the vertices the refinement
+        fits, in the neutral's frame -> (N, C) float32."""
         s = self.settings
         u = np.clip((np.asarray(controls, np.float64) - self.lower) / self.span, 0.0, 1.0)
         if s.steps == 0 or u.shape[0] == 0:
             return np.asarray(controls, np.float32)
+        if self.prepare is not None:
+            mesh = self.prepare(mesh)
         u0 = u.copy()
         g, rss = self._evaluate(u, mesh)
         live = np.arange(u.shape[0])  # frames still refining; the others are done

@@ -131,13 +131,14 @@ def build_filter(settings: StreamConfig, schema: ControlSchema) -> OneEuroFilter
 
 def stabilise_frames(model: SolveModel, frames: np.ndarray, *, stabilise: bool, scale: bool,
                      inputs: np.ndarray | None = None) -> tuple[np.ndarray, RigidBatch | None]:
-    """frames (B, V, 3) float32 -> (the inverse's input vertices (B, K, 3) float32, moved into
-    the neutral's frame when ``stabilise``; the frames' rigid fits or None). ``inputs``
-    (B, K, 3) float32, when given, receives the input vertices."""
+    """frames (B, V, 3) float32 -> (the solve points (B, P, 3) float32, the P vertices
+    ``model.inverse.point_indices`` (the network's inputs, then those the refinement fits),
+    moved into the neutral's frame when ``stabilise``; the frames' rigid fits or None).
+    ``inputs`` (B, P, 3) float32, when given, receives the points."""
     bundle = model.bundle
     rigid = (fit_rigid_batch(np.take(frames, bundle.stable_indices, axis=1), model.stable_target,
                              scale=scale) if stabilise else None)
-    return gather_inputs(frames, bundle.input_indices, rigid, inputs), rigid
+    return gather_inputs(frames, model.inverse.point_indices, rigid, inputs), rigid
 
 
 def infer(model: SolveModel, inputs: np.ndarray, first_frame: int = 0) -> np.ndarray:

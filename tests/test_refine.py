@@ -203,25 +203,77 @@ def test_refine_graph_gradient_matches_autograd() -> None:
     assert parity <= 1e-4
 
 
-def test_a_bundle_with_refinement_solves_through_it(tmp_path) -> None:
-    """The synthetic bundle's refinement graph (ONNX built by hand) through InverseModel: a
-    noisy, sparse pose whose network answer is off comes back to the pose."""
+def test_projected_refine_core_matches_the_direct_fit_on_its_vertices() -> None:
+    """RefineCore's gradient and |r|^2 from one projection per frame equal autograd's gradient
+    and the residual computed vertex by vertex on the same S vertices; the vertex choice keeps
+    every control's information; ``project`` matches its float64 twin."""
+    torch = pytest.importorskip("torch")
+    from rigcast.export.models import ForwardApproximator
+    from rigcast.export.onnx_export import session
+    from rigcast.export.refine import (
+        projected_refine_parts,
+        refine_gradient_naive,
+        refine_vertices,
+        vertex_information,
+    )
+    from rigcast.runtime.bundle import REFINE_CONTROLS, REFINE_PROJECTION
+    from rigcast.runtime.refine import project, project_naive
+
+    rng = np.random.default_rng(1)
+    v, c, p = 60, 5, 6
+    basis = np.linalg.qr(rng.standard_normal((3 * v, p)))[0].T
+    weight = rng.standard_normal((c, 3 * v))
+    weight[:, 3 * 50 :] = 0.0  # vertices 50.. move only through the correction basis
+    fwd = ForwardApproximator(rng.standard_normal((v, 3)), -np.ones(c), 2 * np.ones(c),
+                              weight, rng.standard_normal(3 * v) * 0.1, basis, (16, 16))
+    with torch.no_grad():
+        for prm in fwd.correction.parameters():
+            prm.copy_(torch.randn_like(prm) * 0.5)
+    poses = rng.uniform(-1, 2, (40, c)).astype(np.float32)
+    data, hessian, idx, a, offset, parity = projected_refine_parts(fwd, poses, cap=10_000,
+                                                                   share=1.0)
+    assert parity <= 1e-4 and hessian.shape == (c, c) and a.shape == (c + p, 3 * idx.size)
+    info = vertex_information(fwd, poses)
+    assert info.shape == (v, c)
+    kept = refine_vertices(info, share=0.9, cap=10_000)
+    assert (info[kept].sum(0) >= 0.9 * info.sum(0) - 1e-12).all()  # each control's share kept
+    assert refine_vertices(info, share=0.9, cap=7).size == 7
+    ctrl = rng.uniform(-1, 2, (7, c)).astype(np.float32)
+    mesh = rng.standard_normal((7, v, 3)).astype(np.float32)
+    pts = np.ascontiguousarray(mesh[:, idx])
+    state = project(pts, a, offset)
+    np.testing.assert_allclose(state, project_naive(pts, a, offset), rtol=1e-4, atol=1e-3)
+    g, quad = session(data).run(None, {REFINE_CONTROLS: ctrl,
+                                       REFINE_PROJECTION: state[:, :-1].astype(np.float32)})
+    np.testing.assert_allclose(g, refine_gradient_naive(fwd, idx, ctrl, pts), rtol=1e-3,
+                               atol=1e-3)
+    with torch.no_grad():
+        direct = ((pts - fwd(torch.from_numpy(ctrl)).numpy()[:, idx]) ** 2).sum(axis=(1, 2))
+    np.testing.assert_allclose(state[:, -1] + quad, direct, rtol=1e-4)
+
+
+@pytest.mark.parametrize("form", ["inputs", "projected"])
+def test_a_bundle_with_refinement_solves_through_it(tmp_path, form) -> None:
+    """The synthetic bundle's refinement graph (ONNX built by hand, in both forms) through
+    InverseModel: a sparse pose whose network answer is off comes back to the pose."""
     from rigcast.export.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
     from rigcast.runtime.bundle import load_bundle
     from rigcast.runtime.inference import InverseModel
 
     spec = {"vertices": 400, "controls": 8, "inputs": 60, "stable": 16, "seed": 3}
-    path = build_synthetic_bundle(tmp_path / "r.rcb", **spec, inverse="mlp", refine=True)
+    path = build_synthetic_bundle(tmp_path / "r.rcb", **spec, inverse="mlp", refine=form)
     bundle = load_bundle(path)
     assert bundle.refine_onnx is not None and bundle.refine_hessian is not None
     rig = make_synthetic_rig(spec["vertices"], spec["controls"], inputs=spec["inputs"],
                              stable=spec["stable"], seed=spec["seed"])
     truth = np.zeros((5, 8))
     truth[:, 2], truth[:, 5] = 0.7, 0.3
-    mesh = rig.evaluate(truth)[:, bundle.input_indices].astype(np.float32)
+    assert (bundle.refine_projection is not None) == (form == "projected")
     model = InverseModel(bundle, refine=RefineSettings(steps=8, prior=0.0, damping=0.05))
     assert model.refiner is not None
-    raw = model.session.run(None, {"mesh": mesh})[0]  # an untrained MLP: far off
+    mesh = rig.evaluate(truth)[:, model.point_indices].astype(np.float32)
+    inputs = np.ascontiguousarray(mesh[:, : bundle.input_indices.shape[0]])
+    raw = model.session.run(None, {"mesh": inputs})[0]  # an untrained MLP: far off
     got = model.solve(mesh)
     assert np.abs(raw - truth).max() > 0.1
     np.testing.assert_allclose(got, truth, atol=1e-3)
