@@ -85,6 +85,12 @@ def add_send(subs: Subparsers) -> None:
     p.add_argument("--seed", type=int, default=0, help="seed of the rehearsal's randomness")
     p.add_argument("--timeout", type=float, default=5.0,
                    help="seconds to wait for the schema reply")
+    p.add_argument("--timecode", default=None, metavar="HH:MM:SS:FF",
+                   help="stamp frames with SMPTE timecode from this one on (HH:MM:SS;FF for "
+                        "drop-frame); it counts with the frame numbers")
+    p.add_argument("--tc-rate", default=None, metavar="RATE",
+                   help="the timecode's rate: 23.976, 24, 25, 29.97, 30, 47.952, 48, 50, 59.94 or "
+                        "60 (default: the --fps rate when it is one)")
 
 
 def add_watch(subs: Subparsers) -> None:

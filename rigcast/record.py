@@ -1,5 +1,6 @@
 """Record what a server publishes: the controls of every stream (or the chosen ones) in one
-process, with the sender's frame numbers, the flags, and the head pose (each controls message's,
+process, with the sender's frame numbers, the flags, the SMPTE timecode the sender stamped, and
+the head pose (each controls message's,
 from servers that send it; else telemetry's samples, about 10 a second); written
 by ``rigcast.recording_out`` as NPZ, JSON or CSV with the take's name.
 
@@ -45,6 +46,8 @@ class Recording:
     arrived_ns: np.ndarray
     flags: np.ndarray
     values: np.ndarray
+    timecode: np.ndarray | None = None  # (T,) str, the sender's SMPTE timecode ("" if none)
+    tc_rate: np.ndarray | None = None  # (T,) str, its rate ("" if none)
 
     @property
     def count(self) -> int:
@@ -76,6 +79,8 @@ def collect(messages: list[ControlsMessage], arrived_ns: list[int], stream: str)
         arrived_ns=np.array([arrived_ns[i] for i in keep], dtype=np.int64),
         flags=col(lambda m: m.flags),
         values=values,
+        timecode=np.array([getattr(messages[i], "timecode", None) or "" for i in keep], dtype=str),
+        tc_rate=np.array([getattr(messages[i], "tc_rate", None) or "" for i in keep], dtype=str),
     )
 
 
@@ -110,7 +115,8 @@ class Session:
             pose = (np.array([poses[f] for f in frames.tolist()], np.float64) if poses
                     else np.zeros((0, 8)))
             out.append(StreamRecording(stream, label, rec.frames, rec.t_send_ns, rec.t_recv_ns,
-                                       rec.t_pub_ns, rec.flags, rec.values, frames, pose))
+                                       rec.t_pub_ns, rec.flags, rec.values, frames, pose,
+                                       rec.timecode, rec.tc_rate))
         return out
 
 

@@ -6,12 +6,14 @@ controls, and the take's name; NPZ and JSON also keep the server's timestamps an
 samples the server's telemetry carried (about 10 per second, each with the frame it belongs to).
 
 - ``.npz``: ``take``, ``streams``; per stream ``<s>/names``, ``<s>/frame``, ``<s>/time_s``,
-  ``<s>/t_send_ns``, ``<s>/t_recv_ns``, ``<s>/t_pub_ns``, ``<s>/flags``, ``<s>/values`` (T, C)
-  and ``<s>/pose_frame`` (P,), ``<s>/pose`` (P, 8): tx ty tz qx qy qz qw scale.
-- ``.json``: {"take", "streams": {s: {"controls", "frame", "time_s", "flags", "values", "pose"}}}.
+  ``<s>/t_send_ns``, ``<s>/t_recv_ns``, ``<s>/t_pub_ns``, ``<s>/flags``, ``<s>/values`` (T, C),
+  ``<s>/pose_frame`` (P,), ``<s>/pose`` (P, 8): tx ty tz qx qy qz qw scale, and
+  ``<s>/timecode``, ``<s>/tc_rate`` (T,) str: the sender's SMPTE timecode per frame ("" if none).
+- ``.json``: {"take", "streams": {s: {"controls", "frame", "time_s", "flags", "values", "pose",
+  "timecode", "tc_rate"}}} (null where a frame had no timecode).
 - ``.csv``: ``frame,time_s,<controls...>,off_manifold,clamped,stale`` (the columns
   ``rigcast.animation_out.read_csv`` reads); several streams go to ``<stem>.<stream>.csv``; the
-  take's name and the pose samples go beside it in ``<stem>.meta.json``.
+  take's name, the pose samples and the timecodes go beside it in ``<stem>.meta.json``.
 """
 
 from __future__ import annotations
@@ -53,6 +55,14 @@ class StreamRecording:
     values: np.ndarray
     pose_frame: np.ndarray
     pose: np.ndarray
+    timecode: np.ndarray | None = None  # (T,) str SMPTE timecodes, "" where a frame had none
+    tc_rate: np.ndarray | None = None  # (T,) str their rates
+
+    def timecodes(self) -> tuple[list[str | None], list[str | None]]:
+        """(timecode per frame, rate per frame), None where a frame had none."""
+        def strs(a: np.ndarray | None) -> list[str | None]:
+            return [None] * self.count if a is None else [str(x) or None for x in a.tolist()]
+        return strs(self.timecode), strs(self.tc_rate)
 
     @property
     def count(self) -> int:
@@ -103,6 +113,9 @@ def _write_npz(path: Path, take: str, streams: Sequence[StreamRecording]) -> Pat
                        f"{s.stream}/t_recv_ns": s.t_recv_ns, f"{s.stream}/t_pub_ns": s.t_pub_ns,
                        f"{s.stream}/flags": s.flags, f"{s.stream}/values": s.values,
                        f"{s.stream}/pose_frame": s.pose_frame, f"{s.stream}/pose": s.pose})
+        tc, rate = s.timecodes()
+        arrays[f"{s.stream}/timecode"] = np.array([x or "" for x in tc], dtype=str)
+        arrays[f"{s.stream}/tc_rate"] = np.array([x or "" for x in rate], dtype=str)
     with path.open("wb") as fh:
         np.savez_compressed(fh, **arrays)
     return path
@@ -113,12 +126,17 @@ def _pose_json(s: StreamRecording) -> list[dict[str, Any]]:
             for f, row in zip(s.pose_frame, s.pose, strict=True)]
 
 
+def _timecode_json(s: StreamRecording) -> dict[str, list[str | None]]:
+    tc, rate = s.timecodes()
+    return {"timecode": tc, "tc_rate": rate}
+
+
 def _write_json(path: Path, take: str, streams: Sequence[StreamRecording]) -> Path:
     doc = {"take": take, "streams": {s.stream: {
         "controls": list(s.names), "frame": s.frames.tolist(), "time_s": s.times_s().tolist(),
         "t_send_ns": s.t_send_ns.tolist(), "t_pub_ns": s.t_pub_ns.tolist(),
         "flags": s.flags.tolist(), "values": s.values.astype(float).tolist(),
-        "pose": _pose_json(s)} for s in streams}}
+        "pose": _pose_json(s), **_timecode_json(s)} for s in streams}}
     path.write_text(json.dumps(doc))
     return path
 
@@ -140,5 +158,6 @@ def _write_csvs(path: Path, take: str, streams: Sequence[StreamRecording]) -> li
     meta = path.with_name(f"{path.stem}.meta.json")
     meta.write_text(json.dumps({"take": take, "files": {s.stream: w.name for s, w in
                                                         zip(streams, written, strict=True)},
-                                "pose": {s.stream: _pose_json(s) for s in streams}}))
+                                "pose": {s.stream: _pose_json(s) for s in streams},
+                                "timecode": {s.stream: _timecode_json(s) for s in streams}}))
     return [*written, meta]

@@ -28,6 +28,7 @@ import numpy as np
 from rigcast.errors import EXIT_OK, MismatchError
 from rigcast.runtime.client import MeshSender
 from rigcast.runtime.errors import EXIT_USAGE, RigcastError
+from rigcast.runtime.timecode import RATES, Timecode, frames_to_timecode, parse_timecode
 
 log = logging.getLogger(__name__)
 
@@ -176,11 +177,14 @@ def stream_take(
     corrupt_at: dict[int, str] | None = None,
     on_frame: Callable[[int, str], None] | None = None,
     should_stop: Callable[[], bool] | None = None,
+    timecode: Timecode | None = None,
 ) -> SendStats:
     """Send frames paced at ``fps`` until the take ends (or loops for ``duration_s`` /
     ``max_frames``). ``corrupt_at`` forces a corruption kind at given frame numbers (the demo's
     fixed corrupt frames). Frame numbers keep counting over loops and over dropped frames, so the
     server sees the gaps. Returns the stats; ``send_times_ns`` maps frame -> sender timestamp.
+    ``timecode``: frame 0's SMPTE timecode; frame n is stamped n frames later (the timecode
+    runs on over loops and over frames not sent, as a camera's does).
     """
     if not (math.isfinite(fps) and fps > 0):
         raise RehearsalError(f"fps must be a positive number, got {fps}")
@@ -199,6 +203,7 @@ def stream_take(
     stats = SendStats()
     start = time.perf_counter()
     frame = 0
+    tc0 = None if timecode is None else timecode.to_frames()
     while limit is None or frame < limit:
         elapsed = time.perf_counter() - start
         if duration_s is not None and elapsed >= duration_s:
@@ -218,7 +223,9 @@ def stream_take(
             verts = spoil_frame(vertices[i], None if poses is None else poses[i], noise_abs, rng)
             t_ns = time.time_ns()
             if action == SEND:
-                if sender.send(stream, frame, verts, t_send_ns=t_ns):
+                tc = (None if timecode is None or tc0 is None
+                      else frames_to_timecode(tc0 + frame, timecode.rate, timecode.drop_frame))
+                if sender.send(stream, frame, verts, t_send_ns=t_ns, timecode=tc):
                     stats.sent += 1
                     stats.send_times_ns[frame] = t_ns
                 else:
@@ -252,6 +259,7 @@ def send_from_args(args: argparse.Namespace) -> int:
                           seed=args.seed)
     take = read_take(args.take, fps=args.fps)
     fps = float(args.fps or take.fps)
+    timecode = start_timecode(args.timecode, args.tc_rate, fps)
     curve = curve_from_args(args)
     stream = stream_or_discover(args.stream, args.source, args.timeout, curve)
     with MeshSender(args.to, curve=curve) as sender:
@@ -259,6 +267,21 @@ def send_from_args(args: argparse.Namespace) -> int:
         log.info("server at %s serves %s for stream %s", args.to, reply.get("bundle"), stream)
         stats = stream_take(sender, take.vertices, take.times_s, stream=stream, fps=fps,
                             loop=args.loop, duration_s=args.duration, max_frames=args.frames,
-                            rehearsal=rehearsal)
+                            rehearsal=rehearsal, timecode=timecode)
     sys.stdout.write(stats.line() + "\n")
     return EXIT_OK
+
+
+def start_timecode(text: str | None, rate: str | None, fps: float) -> Timecode | None:
+    """``--timecode`` at ``--tc-rate`` (default: the rate named like the sending fps, e.g. 24 or
+    29.97); TimecodeError (exit 2) naming what is wrong."""
+    if text is None:
+        if rate is not None:
+            raise RehearsalError("--tc-rate goes with --timecode (the first frame's timecode)")
+        return None
+    if rate is None:
+        rate = next((name for name, r in RATES.items() if abs(float(r) - fps) < 5e-4), None)
+        if rate is None:
+            raise RehearsalError(f"--timecode: {fps:g} fps is not a timecode rate; give "
+                                 f"--tc-rate (one of {', '.join(RATES)})")
+    return parse_timecode(text, rate)

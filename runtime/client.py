@@ -21,6 +21,7 @@ import zmq
 from rigcast.runtime import protocol
 from rigcast.runtime.errors import RigcastError
 from rigcast.runtime.keys import ClientCurve
+from rigcast.runtime.timecode import Timecode
 
 log = logging.getLogger(__name__)
 
@@ -67,14 +68,16 @@ class MeshSender:
         self._replies: deque[dict[str, Any]] = deque(maxlen=10_000)
 
     def send(
-        self, stream: str, frame: int, vertices: np.ndarray, t_send_ns: int | None = None
+        self, stream: str, frame: int, vertices: np.ndarray, t_send_ns: int | None = None,
+        timecode: Timecode | None = None,
     ) -> bool:
-        """Send one mesh frame (V, 3) float32 without copying it; False when it was dropped."""
+        """Send one mesh frame (V, 3) float32 without copying it, stamped with its SMPTE
+        ``timecode`` when given; False when it was dropped."""
         t = time.time_ns() if t_send_ns is None else t_send_ns
         try:
             self.socket.send_multipart(
-                protocol.encode_mesh(stream, frame, t, vertices, self.session), zmq.NOBLOCK,
-                copy=False
+                protocol.encode_mesh(stream, frame, t, vertices, self.session, timecode),
+                zmq.NOBLOCK, copy=False
             )
         except zmq.Again:
             self.dropped += 1

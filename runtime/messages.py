@@ -224,6 +224,8 @@ class Telemetry:
     stabilise_rms: float | None
     server: ServerStats | None = None
     held: int = 0  # frames published with held or eased controls while off-manifold
+    timecode: str | None = None  # the SMPTE timecode of the last processed frame, if it had one
+    tc_rate: str | None = None
 
     def to_wire(self) -> dict[str, Any]:
         """The header map's fields after v, type and stream."""
@@ -237,6 +239,7 @@ class Telemetry:
             "fit_error": vars(self.fit_error),
             "pose": None if self.pose is None else self.pose.to_wire(),
             "stabilise_rms": self.stabilise_rms, "held": self.held,
+            "timecode": self.timecode, "tc_rate": self.tc_rate,
         }
         if self.server is not None:
             fields["server"] = {**vars(self.server),

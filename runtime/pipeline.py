@@ -180,10 +180,11 @@ class StreamState:
         head = None if rigid is None else HeadPose.from_stabiliser(rigid.pose(0))
         t_pub = time.time_ns()
         send(protocol.encode_controls(cfg.stream, mesh.frame, mesh.t_send_ns, t_recv_ns, t_pub,
-                                      values[0], flags, head))
+                                      values[0], flags, head, mesh.timecode))
         t4 = time.perf_counter_ns()
         self.last_t_send_ns = mesh.t_send_ns
         self.telemetry.filter_resets = self.filter.resets
+        self.telemetry.timecode = mesh.timecode
         stage_ns = (decode_ns, t1 - t0, t2 - t1, t3 - t2, t4 - t3, t4 - recv_perf_ns)
         result = FrameResult(cfg.stream, mesh.frame, mesh.t_send_ns, t_recv_ns, t_pub,
                              values[0].copy(), solved, flags, stage_ns, rigid, head, unheld)

@@ -18,6 +18,7 @@ import numpy as np
 from rigcast.runtime.errors import RigcastError
 from rigcast.runtime.head_pose import HeadPose
 from rigcast.runtime.nesting import nesting_within
+from rigcast.runtime.timecode import Timecode, TimecodeError, parse_timecode
 
 log = logging.getLogger(__name__)
 
@@ -88,6 +89,7 @@ class MeshFrame:
     frame: int
     t_send_ns: int
     vertices: np.ndarray
+    timecode: Timecode | None = None  # the sender's SMPTE timecode of the frame, checked
 
 
 @dataclass(frozen=True)
@@ -102,6 +104,8 @@ class ControlsMessage:
     flags: int
     values: np.ndarray
     head_pose: HeadPose | None = None  # the head motion stabilisation removed; None when off
+    timecode: str | None = None  # the mesh frame's SMPTE timecode, echoed (docs/protocol.md §3.1)
+    tc_rate: str | None = None  # its rate, e.g. "24" or "29.97"
 
     def has(self, flag: int) -> bool:
         return bool(self.flags & flag)
@@ -134,12 +138,13 @@ def _topic(prefix: bytes, stream: str) -> bytes:
 
 
 def encode_mesh(
-    stream: str, frame: int, t_send_ns: int, vertices: np.ndarray, session: int | None = None
+    stream: str, frame: int, t_send_ns: int, vertices: np.ndarray, session: int | None = None,
+    timecode: Timecode | None = None,
 ) -> list[bytes | memoryview]:
     """[header, payload] for a mesh frame. vertices (V, 3); sent without a copy when it is
     already C-contiguous little-endian float32 (send the list with ``copy=False``). ``session``
     (uint64, optional) names the sender's run: a new value restarts the stream's timing
-    (docs/protocol.md, the restart rule)."""
+    (docs/protocol.md, the restart rule). ``timecode`` goes in ``timecode`` and ``tc_rate``."""
     v = np.asarray(vertices)
     if v.ndim != 2 or v.shape[1] != 3:
         raise ValueError(f"vertices must be (V, 3), got {v.shape}")
@@ -150,6 +155,8 @@ def encode_mesh(
                               "vertices": int(v.shape[0])}
     if session is not None:
         fields["session"] = int(session)
+    if timecode is not None:
+        fields["timecode"], fields["tc_rate"] = str(timecode), timecode.rate
     header = pack(fields)
     return [header, v.data.cast("B") if v.size else b""]
 
@@ -163,15 +170,20 @@ def encode_controls(
     values: np.ndarray,
     flags: int,
     head_pose: HeadPose | None = None,
+    timecode: Timecode | None = None,
 ) -> list[bytes]:
     """[topic, header, payload] for the PUB socket. values (C,) -> C little-endian float32;
-    ``head_pose`` goes in the header's versioned ``head_pose`` map (nil when not stabilised)."""
+    ``head_pose`` goes in the header's versioned ``head_pose`` map (nil when not stabilised);
+    the mesh frame's ``timecode``, when it had one, in ``timecode`` and ``tc_rate``."""
     vals = np.ascontiguousarray(values, dtype=_F32).reshape(-1)
-    header = pack({"v": PROTOCOL_VERSION, "type": "controls", "stream": stream,
-                   "frame": int(frame), "t_send_ns": int(t_send_ns), "t_recv_ns": int(t_recv_ns),
-                   "t_pub_ns": int(t_pub_ns), "flags": int(flags), "count": int(vals.shape[0]),
-                   "head_pose": None if head_pose is None else head_pose.to_controls_wire()})
-    return [_topic(TOPIC_CONTROLS, stream), header, vals.tobytes()]
+    fields: dict[str, Any] = {
+        "v": PROTOCOL_VERSION, "type": "controls", "stream": stream, "frame": int(frame),
+        "t_send_ns": int(t_send_ns), "t_recv_ns": int(t_recv_ns), "t_pub_ns": int(t_pub_ns),
+        "flags": int(flags), "count": int(vals.shape[0]),
+        "head_pose": None if head_pose is None else head_pose.to_controls_wire()}
+    if timecode is not None:
+        fields["timecode"], fields["tc_rate"] = str(timecode), timecode.rate
+    return [_topic(TOPIC_CONTROLS, stream), pack(fields), vals.tobytes()]
 
 
 def encode_schema_request(stream: str, versions: Sequence[int] = SUPPORTED_VERSIONS) -> bytes:
@@ -359,7 +371,24 @@ def decode_mesh(
         bad = int(np.flatnonzero(~np.isfinite(vertices).all(axis=1))[0])
         raise FrameError("non_finite", f"frame {frame} of stream {stream!r} has NaN or Inf "
                          f"(first at vertex {bad})", stream=stream, frame=frame)
-    return MeshFrame(stream, frame, header["t_send_ns"], vertices)
+    return MeshFrame(stream, frame, header["t_send_ns"], vertices, mesh_timecode(header))
+
+
+def mesh_timecode(header: Mapping[str, Any]) -> Timecode | None:
+    """The mesh header's optional ``timecode`` with its ``tc_rate`` (both or neither), checked:
+    FrameError("malformed") saying what is wrong with it."""
+    text, rate = header.get("timecode"), header.get("tc_rate")
+    if text is None and rate is None:
+        return None
+    stream, frame = header.get("stream"), header.get("frame")
+    if text is None or rate is None:
+        raise FrameError("malformed", f"frame {frame}: timecode and tc_rate go together, got "
+                         f"timecode={text!r:.40} tc_rate={rate!r:.40}", stream=stream, frame=frame)
+    try:
+        return parse_timecode(text, rate)
+    except TimecodeError as exc:
+        raise FrameError("malformed", f"frame {frame}: {exc}", stream=stream,
+                         frame=frame) from None
 
 
 def decode_request(

@@ -53,9 +53,12 @@ def decode_controls(frames: Sequence[Any]) -> ControlsMessage:
     values = np.frombuffer(view, dtype=_F32).copy()
     values.flags.writeable = False
     pose = header.get("head_pose")  # versioned (docs/protocol.md §5.1); absent from old servers
+    tc, rate = header.get("timecode"), header.get("tc_rate")  # optional: senders without it
     return ControlsMessage(stream, header["frame"], header["t_send_ns"], header["t_recv_ns"],
                            header["t_pub_ns"], header["flags"], values,
-                           HeadPose.from_wire(pose) if isinstance(pose, dict) else None)
+                           HeadPose.from_wire(pose) if isinstance(pose, dict) else None,
+                           tc if isinstance(tc, str) else None,
+                           rate if isinstance(rate, str) else None)
 
 
 def decode_published(frames: Sequence[Any]) -> ControlsMessage | dict[str, Any]:

@@ -19,6 +19,7 @@ import numpy as np
 from rigcast.runtime.head_pose import HeadPose
 from rigcast.runtime.messages import FitErrorStats, Heartbeat, LatencyStats, ServerStats, Telemetry
 from rigcast.runtime.messages import number_or_none as _f
+from rigcast.runtime.timecode import Timecode
 
 log = logging.getLogger(__name__)
 
@@ -139,6 +140,7 @@ class StreamTelemetry:
         self.filter_resets = 0
         self.last_frame: int | None = None
         self.pose: HeadPose | None = None
+        self.timecode: Timecode | None = None  # the last processed frame's, when it had one
         self.stabilise_rms = math.nan
         self.bundle = ""
 
@@ -188,7 +190,8 @@ class StreamTelemetry:
             rejected=sum(self.rejected.values()), rejected_by_reason=dict(self.rejected),
             clamped=self.clamped, filter_resets=self.filter_resets, last_frame=self.last_frame,
             fit_error=fit, pose=self.pose, stabilise_rms=_f(self.stabilise_rms), server=server,
-            held=self.held)
+            held=self.held, timecode=None if self.timecode is None else str(self.timecode),
+            tc_rate=None if self.timecode is None else self.timecode.rate)
 
 
 def telemetry(streams: Sequence[StreamTelemetry], t_start_ns: int,
