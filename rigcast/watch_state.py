@@ -68,17 +68,20 @@ class StreamView:
     telemetry_at: float = -math.inf
     input_total: int = -1  # processed + dropped + stale + rejected at the last change
     input_changed_at: float = -math.inf
-    threshold: float | None = None  # the off-manifold threshold (fit RMS), when known
+    threshold: float | None = None  # the off-manifold threshold in force, when known
+    threshold_on: str = "rms"  # the fit figure it limits: "rms" (fixed) or "max" (adaptive)
 
     def off_manifold_recent(self, now: float) -> bool:
         return now - self.off_manifold_at < OFF_MANIFOLD_HOLD_S
 
     def fit_ratio(self) -> float | None:
-        """The latest fit RMS as a multiple of the threshold (1.0 = at the threshold)."""
-        rms = (self.telemetry.get("fit_error") or {}).get("rms")
-        if self.threshold is None or not isinstance(rms, int | float) or self.threshold <= 0:
+        """The latest fit error as a multiple of the threshold in force (1.0 = at it): the RMS
+        against a fixed limit, the worst vertex against the adaptive rule's."""
+        fit = self.telemetry.get("fit_error") or {}
+        value = fit.get("max" if self.threshold_on == "max" else "rms")
+        if self.threshold is None or not isinstance(value, int | float) or self.threshold <= 0:
             return None
-        return float(rms) / self.threshold
+        return float(value) / self.threshold
 
 
 def _number(x: Any) -> float | None:
@@ -131,6 +134,7 @@ class WatchState:
                 threshold = _number(message.get("threshold"))
                 if threshold is not None:
                     self.view(stream).threshold = threshold
+                    self.view(stream).threshold_on = str(message.get("threshold_on") or "rms")
             detail = message.get("reason") or message.get("message") or ""
             frame = message.get("frame")
             at = f" frame {frame}" if frame is not None else ""
@@ -148,6 +152,7 @@ class WatchState:
         threshold = _number(fit.get("threshold"))
         if threshold is not None:
             v.threshold = threshold
+            v.threshold_on = str(fit.get("threshold_on") or "rms")
         total = sum(int(message.get(k) or 0) for k in ("processed", "dropped", "stale",
                                                        "rejected"))
         if total != v.input_total:

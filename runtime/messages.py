@@ -146,11 +146,13 @@ class OffManifoldEvent:
     rms: float
     max: float
     threshold: float
+    threshold_on: str = "rms"  # the figure the threshold limits: "rms" or "max" (adaptive)
 
     def encode(self) -> list[bytes]:
         return _event("off_manifold", self.stream, {"frame": self.frame, "rms": self.rms,
                                                     "max": self.max,
-                                                    "threshold": self.threshold})
+                                                    "threshold": self.threshold,
+                                                    "threshold_on": self.threshold_on})
 
 
 @dataclass(frozen=True)
@@ -189,6 +191,8 @@ class FitErrorStats:
     max_mean: float | None
     off_manifold: int
     last_off_manifold_frame: int | None
+    threshold: float | None = None  # the off-manifold threshold in force (None: warming up)
+    threshold_on: str = "rms"  # which figure it limits: "rms" (a fixed limit) or "max" (adaptive)
 
 
 @dataclass(frozen=True)
@@ -226,6 +230,7 @@ class Telemetry:
     held: int = 0  # frames published with held or eased controls while off-manifold
     timecode: str | None = None  # the SMPTE timecode of the last processed frame, if it had one
     tc_rate: str | None = None
+    bundle_quality: Mapping[str, Any] | None = None  # runtime/bundle_quality.py's verdict
 
     def to_wire(self) -> dict[str, Any]:
         """The header map's fields after v, type and stream."""
@@ -240,6 +245,7 @@ class Telemetry:
             "pose": None if self.pose is None else self.pose.to_wire(),
             "stabilise_rms": self.stabilise_rms, "held": self.held,
             "timecode": self.timecode, "tc_rate": self.tc_rate,
+            "bundle_quality": None if self.bundle_quality is None else dict(self.bundle_quality),
         }
         if self.server is not None:
             fields["server"] = {**vars(self.server),

@@ -24,6 +24,7 @@ from typing import Any
 import numpy as np
 from rigcast.runtime import protocol
 from rigcast.runtime.align import RigidBatch, RigidTransform
+from rigcast.runtime.bundle_quality import bundle_quality
 from rigcast.runtime.config import StreamConfig
 from rigcast.runtime.head_pose import HeadPose, rotation_to_quaternion
 from rigcast.runtime.manifold import ManifoldConfig, ManifoldTracker
@@ -126,12 +127,16 @@ class StreamState:
         self._t = np.zeros(1, np.int64)
         self._frame = np.zeros(1, np.int64)
         self.telemetry.bundle = model.label
+        self.telemetry.bundle_quality = bundle_quality(
+            model.bundle.manifest, model.bundle.control_count).to_wire()
         self.stabilise = stabilise_for(self.config.stabilise, model.bundle, self.config.stream)
         # A new bundle has its own error level: the adaptive detector starts over.
         self.manifold = (ManifoldTracker(ManifoldConfig(floor=model.floor))
                          if model.fixed_threshold is None else None)
         self.last_threshold = (math.inf if model.fixed_threshold is None
                                else model.fixed_threshold)
+        self.telemetry.threshold = model.fixed_threshold  # the adaptive one once warmed up
+        self.telemetry.threshold_on = "rms" if model.fixed_threshold is not None else "max"
         self.off_now = False
 
     def is_stale(self, t_send_ns: int) -> bool:
@@ -223,6 +228,8 @@ class StreamState:
         else:  # adaptive, on the worst vertex; nothing is flagged during its warm-up
             off = self.manifold.update(worst)
             self.last_threshold = self.manifold.threshold
+            self.telemetry.threshold = (self.last_threshold if math.isfinite(self.last_threshold)
+                                        else None)
         if off:
             self.pending_off_manifold = True
         else:  # what a held frame goes back to: this frame's own controls, before any hold

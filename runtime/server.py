@@ -252,8 +252,8 @@ class Server:
                       "computed: %s", stream, result.frame, exc)
             return
         if off:
-            self._publish(OffManifoldEvent(stream, result.frame, rms, worst,
-                                           state.last_threshold).encode())
+            self._publish(OffManifoldEvent(stream, result.frame, rms, worst, state.last_threshold,
+                                           state.telemetry.threshold_on).encode())
 
     def _input_waiting(self) -> bool:
         assert self.router is not None

@@ -16,6 +16,7 @@ HTTP has no authentication, ``insecure_no_auth`` too, and it logs a caution at s
 from __future__ import annotations
 
 import logging
+import math
 import threading
 import time
 from collections.abc import Callable, Iterator, Mapping, Sequence
@@ -114,6 +115,10 @@ class TelemetryCollector:
             "input_fps": ("frames received per second over the last 2 s",
                           lambda t, now: t.input_fps(now)),
             "fit_error_rms": ("the last fit RMS error, mesh units", lambda t, now: t.fit_rms.last()),
+            "fit_error_threshold": ("the off-manifold threshold in force, mesh units, on the RMS "
+                                    "(a fixed limit) or the worst vertex (the adaptive rule); "
+                                    "NaN while the rule warms up",
+                                    lambda t, now: math.nan if t.threshold is None else t.threshold),
         }
         now = time.time_ns()
         for name, (doc, read) in gauges.items():

@@ -14,6 +14,7 @@ import math
 import time
 from collections import Counter
 from collections.abc import Mapping, Sequence
+from typing import Any
 
 import numpy as np
 from rigcast.runtime.head_pose import HeadPose
@@ -141,6 +142,9 @@ class StreamTelemetry:
         self.last_frame: int | None = None
         self.pose: HeadPose | None = None
         self.timecode: Timecode | None = None  # the last processed frame's, when it had one
+        self.threshold: float | None = None  # the off-manifold threshold in force
+        self.threshold_on = "rms"  # "rms" (a fixed limit) or "max" (the adaptive rule)
+        self.bundle_quality: dict[str, Any] | None = None  # the build's self-check verdict
         self.stabilise_rms = math.nan
         self.bundle = ""
 
@@ -182,7 +186,9 @@ class StreamTelemetry:
             frame=self.last_fit_frame, skipped=self.fit_skipped, rms=_f(self.fit_rms.last()),
             max=_f(self.fit_max.last()), rms_mean=_f(self.fit_rms.mean()),
             max_mean=_f(self.fit_max.mean()), off_manifold=self.off_manifold,
-            last_off_manifold_frame=self.last_off_manifold_frame)
+            last_off_manifold_frame=self.last_off_manifold_frame,
+            threshold=None if self.threshold is None else _f(self.threshold),
+            threshold_on=self.threshold_on)
         return Telemetry(
             stream=self.stream, bundle=self.bundle, t_ns=now_ns, latency=latency,
             window=len(self.stages["total"]), input_fps=self.input_fps(now_ns),
@@ -191,7 +197,8 @@ class StreamTelemetry:
             clamped=self.clamped, filter_resets=self.filter_resets, last_frame=self.last_frame,
             fit_error=fit, pose=self.pose, stabilise_rms=_f(self.stabilise_rms), server=server,
             held=self.held, timecode=None if self.timecode is None else str(self.timecode),
-            tc_rate=None if self.timecode is None else self.timecode.rate)
+            tc_rate=None if self.timecode is None else self.timecode.rate,
+            bundle_quality=self.bundle_quality)
 
 
 def telemetry(streams: Sequence[StreamTelemetry], t_start_ns: int,
