@@ -139,7 +139,7 @@ def main() -> None:
     full = solver.solve(verts[:distinct], times[:distinct],
                         SolveOptions(batch_size=bs, fit_error="full"))
 
-    inputs = np.ascontiguousarray(verts[:, bundle.input_indices], np.float32)
+    inputs = np.ascontiguousarray(verts[:, solver.inverse.point_indices], np.float32)
     raw = []
     for _ in range(args.repeats):
         start = time.perf_counter()

@@ -193,12 +193,12 @@ def _build(
     t = time.perf_counter()
     motion = reduction.motion_rms(neutral, dataset.vertices)
     k = config.input_count or reduction.input_count_for(rig.vertex_count)
-    s = config.stable_count or reduction.stable_count_for(rig.vertex_count)
     per_control = max(2, min(8, k // (3 * rig.control_count)))
     regions = reduction.control_region_vertices(fwd.linear_weight.detach().numpy(), neutral,
                                                 per_control)
     inputs = reduction.select_input_vertices(neutral, motion, k, must_include=regions)
-    stable = reduction.select_stable_vertices(neutral, motion, s)
+    stable = (reduction.select_stable_vertices(neutral, motion, config.stable_count)
+              if config.stable_count else reduction.stable_vertices_for(neutral, motion))
     inv, inv_rep = train_inverse(
         fwd,
         dataset.vertices,
