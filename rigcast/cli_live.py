@@ -140,7 +140,8 @@ def add_record(subs: Subparsers) -> None:
         "  rigcast record -o take12.npz --duration 60\n"
         "  rigcast record -o live.csv --stream actor2 --frames 600\n"
         "  rigcast record -o scene3.npz --stream actor1 --stream actor2 --take scene3_take2\n"
-        "  rigcast record -o mon.json --from tcp://10.0.0.5:5571 --to ''   # publish side only\n",
+        "  rigcast record -o mon.json --from tcp://10.0.0.5:5571 --to ''   # publish side only\n"
+        "  rigcast record -o day1.npz --meshes   # server: rigcast serve --publish-meshes raw\n",
         cmd_record,
     )
     p.add_argument("-o", "--out", type=Path, required=True, help="output file: .npz, .json or .csv")
@@ -153,6 +154,11 @@ def add_record(subs: Subparsers) -> None:
     add_limits(p)
     p.add_argument("--timeout", type=float, default=2.0,
                    help="seconds to wait for each stream's schema reply")
+    p.add_argument("--meshes", action="store_true",
+                   help="also keep the meshes of a server started with --publish-meshes, in "
+                        "chunked NPZ beside the output that `rigcast solve` re-solves")
+    p.add_argument("--mesh-chunk", type=int, default=600, metavar="FRAMES",
+                   help="frames per mesh chunk file")
 
 
 def add_osc(subs: Subparsers) -> None:

@@ -23,8 +23,9 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from rigcast.connect import fetch_schema
-from rigcast.recording_out import SUFFIXES, StreamRecording, pose_row, write_recording
+from rigcast.recording_out import SUFFIXES, MeshChunks, StreamRecording, pose_row, write_recording
 from rigcast.runtime.client import Subscriber
+from rigcast.runtime.messages import PublishedMesh
 from rigcast.runtime.protocol import ControlsMessage
 
 log = logging.getLogger(__name__)
@@ -122,9 +123,11 @@ class Session:
 
 def record_streams(subscriber: Subscriber, *, duration_s: float | None = None,
                    max_frames: int | None = None, idle_timeout_s: float | None = None,
-                   should_stop: Callable[[], bool] | None = None) -> Session:
+                   should_stop: Callable[[], bool] | None = None,
+                   on_mesh: Callable[[PublishedMesh], None] | None = None) -> Session:
     """Receive controls (and telemetry, for the head pose) until ``duration_s``, ``max_frames``
-    frames of every stream, ``idle_timeout_s`` without controls, ``should_stop()`` or Ctrl-C."""
+    frames of every stream, ``idle_timeout_s`` without controls, ``should_stop()`` or Ctrl-C;
+    published meshes go to ``on_mesh`` (subscribe with ``meshes=True``)."""
     streams: dict[str, _Stream] = {}
     start = last = time.monotonic()
     interrupted = False
@@ -154,6 +157,9 @@ def record_streams(subscriber: Subscriber, *, duration_s: float | None = None,
                             got.pose_per_frame = True
                         got.pose[msg.frame] = row
                 last = time.monotonic()
+            elif isinstance(msg, PublishedMesh):
+                if on_mesh is not None:
+                    on_mesh(msg)
             elif isinstance(msg, dict) and msg.get("type") == "telemetry":
                 # Older servers carry the pose only in telemetry (about 10 a second).
                 got = streams.setdefault(str(msg["stream"]), _Stream())
@@ -189,11 +195,20 @@ def record_from_args(args: argparse.Namespace) -> int:
     curve = curve_from_args(args)
     chosen = list(dict.fromkeys(args.stream)) if args.stream else None
     take = args.take or args.out.stem
-    with Subscriber(args.source, streams=chosen, telemetry=True, curve=curve) as sub:
+    if args.mesh_chunk < 1:
+        raise UserError(f"--mesh-chunk must be at least 1 frame, got {args.mesh_chunk}", code=2)
+    chunks = MeshChunks(args.out, take, args.mesh_chunk) if args.meshes else None
+    with Subscriber(args.source, streams=chosen, telemetry=True, curve=curve,
+                    meshes=args.meshes) as sub:
         sys.stderr.write(f"recording {', '.join(chosen) if chosen else 'every stream'} from "
-                         f"{args.source} as take {take!r}; Ctrl-C stops\n")
+                         f"{args.source} as take {take!r}"
+                         f"{' with meshes' if args.meshes else ''}; Ctrl-C stops\n")
         sys.stderr.flush()
-        session = record_streams(sub, duration_s=args.duration, max_frames=args.frames)
+        try:
+            session = record_streams(sub, duration_s=args.duration, max_frames=args.frames,
+                                     on_mesh=None if chunks is None else chunks.add)
+        finally:
+            mesh_files = [] if chunks is None else chunks.close()
     names = {}
     for stream in session.streams:
         schema = schema_or_none(args.to, stream, args.timeout, curve)
@@ -211,4 +226,8 @@ def record_from_args(args: argparse.Namespace) -> int:
                          f"{int(s.frames[0])}..{int(s.frames[-1])}, {s.pose.shape[0]} head-pose "
                          f"samples{'' if s.stream in names else ', controls named by index'})\n")
     sys.stdout.write(f"take {take!r} written to {', '.join(str(f) for f in files)}\n")
+    if args.meshes:
+        sys.stdout.write(f"meshes: {len(mesh_files)} chunk file(s) beside it"
+                         f"{'' if mesh_files else ' (none arrived: serve with --publish-meshes)'}"
+                         f"; re-solve with `rigcast solve BUNDLE {args.out.stem}.*.meshes.*.npz`\n")
     return EXIT_INTERRUPTED if session.interrupted else EXIT_OK

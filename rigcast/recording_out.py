@@ -14,6 +14,13 @@ samples the server's telemetry carried (about 10 per second, each with the frame
 - ``.csv``: ``frame,time_s,<controls...>,off_manifold,clamped,stale`` (the columns
   ``rigcast.animation_out.read_csv`` reads); several streams go to ``<stem>.<stream>.csv``; the
   take's name, the pose samples and the timecodes go beside it in ``<stem>.meta.json``.
+
+With ``rigcast record --meshes`` (a server with ``publish_meshes``) the meshes go beside it in
+chunks, ``<stem>.<stream>.meshes.<n>.npz`` (:class:`MeshChunks`), each a take `rigcast solve` reads:
+``vertices`` (N, V, 3) float32, ``times`` (N,) seconds from the stream's first recorded frame,
+``frame``, ``t_send_ns``, ``timecode``, ``tc_rate`` (N,), ``stream``, ``take``, ``space`` (raw or
+stabilised) and ``chunk``. Chunks bound the recorder's memory and keep each file a size a solve
+can load; a folder or glob of them is a batch (`rigcast solve BUNDLE 'rec.*.meshes.*.npz'`).
 """
 
 from __future__ import annotations
@@ -92,6 +99,51 @@ def pose_row(pose: Mapping[str, Any]) -> list[float] | None:
 
 def _safe(stream: str) -> str:
     return re.sub(r"[^A-Za-z0-9_.-]", "_", stream)
+
+
+class MeshChunks:
+    """Writes published meshes (``messages.PublishedMesh``) as they arrive, ``chunk_frames``
+    per file per stream, beside ``path`` (see the module docstring); ``close()`` writes the rest
+    and returns every file written."""
+
+    def __init__(self, path: Path, take: str, chunk_frames: int = 600) -> None:
+        if chunk_frames < 1:
+            raise ValueError(f"chunk_frames must be at least 1, got {chunk_frames}")
+        self.path, self.take, self.chunk_frames = path, take, chunk_frames
+        self.files: list[Path] = []
+        self._rows: dict[str, list[Any]] = {}
+        self._first_ns: dict[str, int] = {}
+        self._chunks: dict[str, int] = {}
+
+    def add(self, mesh: Any) -> None:
+        rows = self._rows.setdefault(mesh.stream, [])
+        self._first_ns.setdefault(mesh.stream, int(mesh.t_send_ns))
+        rows.append((int(mesh.frame), int(mesh.t_send_ns), np.array(mesh.vertices, np.float32),
+                     mesh.timecode or "", mesh.tc_rate or "", str(mesh.space)))
+        if len(rows) >= self.chunk_frames:
+            self._flush(mesh.stream)
+
+    def _flush(self, stream: str) -> None:
+        rows = self._rows.pop(stream, [])
+        if not rows:
+            return
+        n = self._chunks.get(stream, 0)
+        self._chunks[stream] = n + 1
+        frame, t_ns, verts, tc, rate, space = zip(*rows, strict=True)
+        t_send = np.array(t_ns, np.int64)
+        target = self.path.with_name(f"{self.path.stem}.{_safe(stream)}.meshes.{n:04d}.npz")
+        with target.open("wb") as fh:  # uncompressed: the recorder must keep up with the stream
+            np.savez(fh, vertices=np.stack(verts), frame=np.array(frame, np.int64),
+                     times=(t_send - self._first_ns[stream]).astype(np.float64) / 1e9,
+                     t_send_ns=t_send, timecode=np.array(tc, dtype=str),
+                     tc_rate=np.array(rate, dtype=str), stream=np.array(stream),
+                     take=np.array(self.take), space=np.array(space[-1]), chunk=np.array(n))
+        self.files.append(target)
+
+    def close(self) -> list[Path]:
+        for stream in list(self._rows):
+            self._flush(stream)
+        return self.files
 
 
 def write_recording(path: Path, take: str, streams: Sequence[StreamRecording]) -> list[Path]:

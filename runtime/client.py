@@ -21,6 +21,7 @@ import zmq
 from rigcast.runtime import protocol
 from rigcast.runtime.errors import RigcastError
 from rigcast.runtime.keys import ClientCurve
+from rigcast.runtime.messages import PublishedMesh
 from rigcast.runtime.timecode import Timecode
 
 log = logging.getLogger(__name__)
@@ -141,9 +142,9 @@ class MeshSender:
 
 
 class Subscriber:
-    """A SUB on the server's PUB: controls, telemetry and events of one stream, several, or
-    all of them (``streams=None``), decoded. Needs only the publish endpoint, so a monitoring
-    machine never needs the server's input."""
+    """A SUB on the server's PUB: controls, telemetry, events and (``meshes``, when the server
+    publishes them) meshes of one stream, several, or all of them (``streams=None``), decoded.
+    Needs only the publish endpoint, so a monitoring machine never needs the server's input."""
 
     def __init__(
         self,
@@ -156,10 +157,12 @@ class Subscriber:
         context: zmq.Context | None = None,
         rcvhwm: int = 1000,
         curve: ClientCurve | None = None,
+        meshes: bool = False,
     ) -> None:
         self.streams = None if streams is None else tuple(streams)
         prefixes = [p for p, on in ((protocol.TOPIC_CONTROLS, controls),
-                                    (protocol.TOPIC_TELEMETRY, telemetry)) if on]
+                                    (protocol.TOPIC_TELEMETRY, telemetry),
+                                    (protocol.TOPIC_MESHES, meshes)) if on]
         if self.streams is None:
             subscriptions = list(prefixes)
         else:
@@ -182,7 +185,8 @@ class Subscriber:
         # the topic is compared exactly; with all streams every subscribed prefix is wanted.
         return self.streams is None or topic in self.topics
 
-    def recv(self, timeout_ms: int = 1000) -> protocol.ControlsMessage | dict[str, Any] | None:
+    def recv(self, timeout_ms: int = 1000
+             ) -> protocol.ControlsMessage | PublishedMesh | dict[str, Any] | None:
         """The next wanted message, or None after timeout_ms. Any message the server sends,
         even one this version cannot decode, updates ``last_heard``."""
         deadline = time.monotonic() + timeout_ms / 1000

@@ -41,6 +41,8 @@ from rigcast.runtime.protocol import MAX_STREAM_BYTES
 # When the server computes the fit error (after every publish, on every Nth frame, never).
 # Which vertices a batch solve reads for it is another concept: batch.FitErrorScope.
 FitErrorSchedule = Literal["after_publish", "every_n", "off"]
+# Which mesh of each processed frame the server publishes on msh.<stream>, if any.
+MeshPublishing = Literal["off", "raw", "stabilised"]
 # What a live stream publishes while its frames are off-manifold (the flag is set in every case):
 # the solved controls, the last good controls, or controls easing towards them.
 OffManifoldAction = Literal["pass", "hold", "ease"]
@@ -154,6 +156,9 @@ class ServerConfig:
         "floor of the adaptive off-manifold rule = this x the bundle's training fit error", 3.0
     )
     telemetry_hz: float = _flag("telemetry messages per second per stream", 10.0)
+    publish_meshes: MeshPublishing = _flag(  # noqa: RUF009
+        "also publish each processed frame's mesh on msh.<stream> for `rigcast record "
+        "--meshes`: off, raw (as received) or stabilised (moved into the neutral's frame)", "off")
     metrics_port: int | None = _flag(
         "serve Prometheus metrics over HTTP on this port (0: any free port); needs the metrics "
         "extra (pip install 'rigcast[metrics]')", None)
@@ -223,6 +228,9 @@ class ServerConfig:
         if self.fit_error not in get_args(FitErrorSchedule):
             raise ConfigError(f"fit_error must be one of {get_args(FitErrorSchedule)}, "
                               f"got {self.fit_error!r}")
+        if self.publish_meshes not in get_args(MeshPublishing):
+            raise ConfigError(f"publish_meshes must be one of {get_args(MeshPublishing)}, "
+                              f"got {self.publish_meshes!r}")
         holding = [s.stream for s in self.streams if s.on_off_manifold != "pass"]
         if holding and self.fit_error == "off":
             raise ConfigError(f"streams {holding} hold off-manifold frames, but fit_error is "

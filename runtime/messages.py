@@ -14,12 +14,14 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
+import numpy as np
 from rigcast.runtime.head_pose import HeadPose
 from rigcast.runtime.protocol import (
     PROTOCOL_VERSION,
     REASONS,
     SUPPORTED_VERSIONS,
     TOPIC_EVENTS,
+    TOPIC_MESHES,
     TOPIC_TELEMETRY,
     FrameError,
     _merge,
@@ -272,6 +274,32 @@ class Heartbeat:
                 pack({"v": PROTOCOL_VERSION, "type": "heartbeat", "stream": None,
                       "t_ns": int(self.t_ns), "uptime_s": float(self.uptime_s),
                       "period_s": float(self.period_s), "streams": list(self.streams)})]
+
+
+@dataclass(frozen=True)
+class PublishedMesh:
+    """A processed frame's mesh (§5.5, opt-in with ``publish_meshes``): ``vertices`` (V, 3)
+    float32 as received (``space`` "raw") or moved by the stream's rigid fit into the bundle's
+    neutral frame ("stabilised"), with the frame's number, sender time and timecode."""
+
+    stream: str
+    frame: int
+    t_send_ns: int
+    space: str
+    vertices: np.ndarray
+    timecode: str | None = None
+    tc_rate: str | None = None
+
+    def encode(self) -> list[Any]:
+        """[topic, header, payload]; the payload views ``vertices`` (send with copy=False)."""
+        v = np.ascontiguousarray(self.vertices, dtype="<f4")
+        header: dict[str, Any] = {"v": PROTOCOL_VERSION, "type": "published_mesh",
+                                  "stream": self.stream, "frame": int(self.frame),
+                                  "t_send_ns": int(self.t_send_ns), "vertices": int(v.shape[0]),
+                                  "space": self.space}
+        if self.timecode is not None:
+            header["timecode"], header["tc_rate"] = self.timecode, self.tc_rate
+        return [_topic(TOPIC_MESHES, self.stream), pack(header), v.data.cast("B")]
 
 
 def number_or_none(x: float) -> float | None:

@@ -28,6 +28,7 @@ from rigcast.runtime.bundle_quality import bundle_quality
 from rigcast.runtime.config import StreamConfig
 from rigcast.runtime.head_pose import HeadPose, rotation_to_quaternion
 from rigcast.runtime.manifold import ManifoldConfig, ManifoldTracker
+from rigcast.runtime.messages import PublishedMesh
 from rigcast.runtime.solve_core import (
     SolveModel,
     build_filter,
@@ -195,6 +196,19 @@ class StreamState:
                              values[0].copy(), solved, flags, stage_ns, rigid, head, unheld)
         self.last_published = result.controls
         return result
+
+    def published_mesh(self, mesh: protocol.MeshFrame, result: FrameResult, space: str
+                       ) -> list[Any]:
+        """The frames of a processed frame's mesh on msh.<stream>: as received ("raw"), or all
+        V vertices moved by the frame's rigid fit ("stabilised"; as received when the stream
+        does not stabilise)."""
+        vertices = mesh.vertices
+        if space == "stabilised" and result.rigid is not None:
+            vertices = result.rigid.apply(vertices[None])[0]
+        tc = mesh.timecode
+        return PublishedMesh(mesh.stream, mesh.frame, mesh.t_send_ns, space, vertices,
+                             None if tc is None else str(tc),
+                             None if tc is None else tc.rate).encode()
 
     def _held(self, t_send_ns: int) -> np.ndarray:
         """(C,) what a frame published while off-manifold carries: the last good controls

@@ -50,6 +50,7 @@ REASONS: tuple[str, ...] = (
 TOPIC_CONTROLS = b"ctl."
 TOPIC_TELEMETRY = b"tel."
 TOPIC_EVENTS = b"evt"
+TOPIC_MESHES = b"msh."  # opt-in: each processed frame's mesh (ServerConfig.publish_meshes)
 MAX_STREAM_BYTES = 255
 MAX_HEADER_BYTES = 4096
 # Our headers nest two deep (a map holding a list); a deeper one is refused before anything walks
@@ -258,6 +259,8 @@ _FIELDS: dict[str, dict[str, Any]] = {
     "controls": {"stream": _stream_ok, "frame": _u64, "t_send_ns": _i64, "t_recv_ns": _i64,
                  "t_pub_ns": _i64, "flags": _u64, "count": _u64},
     "telemetry": {"stream": _stream_ok},
+    "published_mesh": {"stream": _stream_ok, "frame": _u64, "t_send_ns": _i64, "vertices": _u64,
+                       "space": lambda x: x in ("raw", "stabilised")},
     "heartbeat": {"t_ns": _i64, "period_s": lambda x: isinstance(x, float),
                   "streams": lambda x: isinstance(x, list)},
     "event": {"kind": lambda x: isinstance(x, str), "stream": _opt_str},

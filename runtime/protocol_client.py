@@ -8,11 +8,13 @@ from typing import Any
 
 import numpy as np
 from rigcast.runtime.head_pose import HeadPose
+from rigcast.runtime.messages import PublishedMesh
 from rigcast.runtime.protocol import (
     _F32,
     MAX_REPLY_HEADER_BYTES,
     TOPIC_CONTROLS,
     TOPIC_EVENTS,
+    TOPIC_MESHES,
     TOPIC_TELEMETRY,
     ControlsMessage,
     FrameError,
@@ -61,14 +63,38 @@ def decode_controls(frames: Sequence[Any]) -> ControlsMessage:
                            rate if isinstance(rate, str) else None)
 
 
-def decode_published(frames: Sequence[Any]) -> ControlsMessage | dict[str, Any]:
-    """Any PUB message: controls -> ControlsMessage; telemetry, heartbeats and events -> header
-    dict."""
+def decode_published_mesh(frames: Sequence[Any]) -> PublishedMesh:
+    """[topic, header, payload] on ``msh.<stream>`` -> PublishedMesh (vertices (V, 3) float32,
+    read-only, viewing the received payload)."""
+    if len(frames) != 3:
+        raise FrameError("malformed", f"a published mesh has 3 frames, got {len(frames)}")
+    header = decode_header(frames[1], max_header_bytes=MAX_REPLY_HEADER_BYTES)
+    stream, frame, count = header["stream"], header.get("frame"), header.get("vertices")
+    if header["type"] != "published_mesh" or bytes(frames[0]) != _topic(TOPIC_MESHES, stream):
+        raise FrameError("malformed", f"topic {bytes(frames[0])!r} does not fit a "
+                         f"{header['type']!r} message", stream=stream)
+    view = memoryview(frames[2]).cast("B")
+    if view.nbytes != count * 12:
+        raise FrameError("malformed", f"mesh payload is {view.nbytes} bytes, {count} vertices "
+                         f"need {count * 12}", stream=stream, frame=frame)
+    vertices = np.frombuffer(view, dtype=_F32).reshape(count, 3)
+    vertices.flags.writeable = False
+    tc, rate = header.get("timecode"), header.get("tc_rate")
+    return PublishedMesh(stream, frame, header["t_send_ns"], header["space"], vertices,
+                         tc if isinstance(tc, str) else None,
+                         rate if isinstance(rate, str) else None)
+
+
+def decode_published(frames: Sequence[Any]) -> ControlsMessage | PublishedMesh | dict[str, Any]:
+    """Any PUB message: controls -> ControlsMessage; meshes -> PublishedMesh; telemetry,
+    heartbeats and events -> header dict."""
     if len(frames) < 2:
         raise FrameError("malformed", f"a published message has >= 2 frames, got {len(frames)}")
     topic = bytes(frames[0])
     if topic.startswith(TOPIC_CONTROLS):
         return decode_controls(frames)
+    if topic.startswith(TOPIC_MESHES):
+        return decode_published_mesh(frames)
     if len(frames) != 2:
         raise FrameError("malformed", f"telemetry and events have 2 frames, got {len(frames)}")
     header = decode_header(frames[1], max_header_bytes=MAX_REPLY_HEADER_BYTES)

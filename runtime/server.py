@@ -356,6 +356,9 @@ class Server:
         state.telemetry.record(result.stage_ns, result.frame)
         state.telemetry.pose = result.head_pose
         state.telemetry.stabilise_rms = result.stabilise_rms
+        if self.config.publish_meshes != "off":  # after the controls, without a copy
+            self.pub.send_multipart(state.published_mesh(mesh, result, self.config.publish_meshes),
+                                    copy=False)
         return result
 
     def _reject(self, identity: bytes, err: protocol.FrameError) -> None:
