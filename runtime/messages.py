@@ -16,7 +16,8 @@ from typing import Any
 
 import numpy as np
 from rigcast.runtime.head_pose import HeadPose
-from rigcast.runtime.protocol import (
+from rigcast.runtime.schema import ControlSchema
+from rigcast.runtime.wire import (
     PROTOCOL_VERSION,
     REASONS,
     SUPPORTED_VERSIONS,
@@ -24,11 +25,10 @@ from rigcast.runtime.protocol import (
     TOPIC_MESHES,
     TOPIC_TELEMETRY,
     FrameError,
-    _merge,
-    _topic,
+    merge_fields,
     pack,
+    topic_bytes,
 )
-from rigcast.runtime.schema import ControlSchema
 
 log = logging.getLogger(__name__)
 
@@ -102,7 +102,7 @@ class ReloadReply:
 def _event(kind: str, stream: str | None, fields: Mapping[str, Any]) -> list[bytes]:
     header: dict[str, Any] = {"v": PROTOCOL_VERSION, "type": "event", "kind": kind,
                               "stream": stream}
-    _merge(header, fields)
+    merge_fields(header, fields)
     return [TOPIC_EVENTS, pack(header)]
 
 
@@ -299,7 +299,7 @@ class PublishedMesh:
                                   "space": self.space}
         if self.timecode is not None:
             header["timecode"], header["tc_rate"] = self.timecode, self.tc_rate
-        return [_topic(TOPIC_MESHES, self.stream), pack(header), v.data.cast("B")]
+        return [topic_bytes(TOPIC_MESHES, self.stream), pack(header), v.data.cast("B")]
 
 
 def number_or_none(x: float) -> float | None:
@@ -338,8 +338,8 @@ def encode_reload_reply(stream: str, ok: bool, message: str, *, bundle: str | No
 def encode_telemetry(stream: str, fields: Mapping[str, Any]) -> list[bytes]:
     """[topic, header] telemetry for one stream; ``fields`` are merged into the header map."""
     header: dict[str, Any] = {"v": PROTOCOL_VERSION, "type": "telemetry", "stream": stream}
-    _merge(header, fields)
-    return [_topic(TOPIC_TELEMETRY, stream), pack(header)]
+    merge_fields(header, fields)
+    return [topic_bytes(TOPIC_TELEMETRY, stream), pack(header)]
 
 
 def encode_event(

@@ -1,5 +1,6 @@
 """The client side of the wire format: decoding what the server publishes and replies
-(docs/protocol.md §3.2-§3.4, §5). Re-exported by runtime/protocol.py; import it from there."""
+(docs/protocol.md §3.2-§3.4, §5). Re-exported by runtime/protocol.py; import it from there. It
+builds on runtime/wire.py and runtime/messages.py, never on protocol.py."""
 
 from __future__ import annotations
 
@@ -9,8 +10,9 @@ from typing import Any
 import numpy as np
 from rigcast.runtime.head_pose import HeadPose
 from rigcast.runtime.messages import PublishedMesh
-from rigcast.runtime.protocol import (
-    _F32,
+from rigcast.runtime.schema import ControlSchema
+from rigcast.runtime.wire import (
+    F32,
     MAX_REPLY_HEADER_BYTES,
     TOPIC_CONTROLS,
     TOPIC_EVENTS,
@@ -18,10 +20,9 @@ from rigcast.runtime.protocol import (
     TOPIC_TELEMETRY,
     ControlsMessage,
     FrameError,
-    _topic,
     decode_header,
+    topic_bytes,
 )
-from rigcast.runtime.schema import ControlSchema
 
 
 def topic_stream(topic: bytes, prefix: bytes) -> str | None:
@@ -44,7 +45,7 @@ def decode_controls(frames: Sequence[Any]) -> ControlsMessage:
     if header["type"] != "controls":
         raise FrameError("malformed", f"expected controls, got {header['type']!r}")
     stream = header["stream"]
-    if topic != _topic(TOPIC_CONTROLS, stream):
+    if topic != topic_bytes(TOPIC_CONTROLS, stream):
         raise FrameError("malformed", f"topic {topic!r} does not match stream {stream!r}",
                          stream=stream, frame=header["frame"])
     view = memoryview(frames[2]).cast("B")
@@ -52,7 +53,7 @@ def decode_controls(frames: Sequence[Any]) -> ControlsMessage:
         raise FrameError("malformed", f"controls payload is {view.nbytes} bytes, count "
                          f"{header['count']} needs {header['count'] * 4}", stream=stream,
                          frame=header["frame"])
-    values = np.frombuffer(view, dtype=_F32).copy()
+    values = np.frombuffer(view, dtype=F32).copy()
     values.flags.writeable = False
     pose = header.get("head_pose")  # versioned (docs/protocol.md §5.1); absent from old servers
     tc, rate = header.get("timecode"), header.get("tc_rate")  # optional: senders without it
@@ -70,14 +71,14 @@ def decode_published_mesh(frames: Sequence[Any]) -> PublishedMesh:
         raise FrameError("malformed", f"a published mesh has 3 frames, got {len(frames)}")
     header = decode_header(frames[1], max_header_bytes=MAX_REPLY_HEADER_BYTES)
     stream, frame, count = header["stream"], header.get("frame"), header.get("vertices")
-    if header["type"] != "published_mesh" or bytes(frames[0]) != _topic(TOPIC_MESHES, stream):
+    if header["type"] != "published_mesh" or bytes(frames[0]) != topic_bytes(TOPIC_MESHES, stream):
         raise FrameError("malformed", f"topic {bytes(frames[0])!r} does not fit a "
                          f"{header['type']!r} message", stream=stream)
     view = memoryview(frames[2]).cast("B")
     if view.nbytes != count * 12:
         raise FrameError("malformed", f"mesh payload is {view.nbytes} bytes, {count} vertices "
                          f"need {count * 12}", stream=stream, frame=frame)
-    vertices = np.frombuffer(view, dtype=_F32).reshape(count, 3)
+    vertices = np.frombuffer(view, dtype=F32).reshape(count, 3)
     vertices.flags.writeable = False
     tc, rate = header.get("timecode"), header.get("tc_rate")
     return PublishedMesh(stream, frame, header["t_send_ns"], header["space"], vertices,
@@ -98,7 +99,7 @@ def decode_published(frames: Sequence[Any]) -> ControlsMessage | PublishedMesh |
     if len(frames) != 2:
         raise FrameError("malformed", f"telemetry and events have 2 frames, got {len(frames)}")
     header = decode_header(frames[1], max_header_bytes=MAX_REPLY_HEADER_BYTES)
-    expected = {"telemetry": lambda h: _topic(TOPIC_TELEMETRY, h["stream"]),
+    expected = {"telemetry": lambda h: topic_bytes(TOPIC_TELEMETRY, h["stream"]),
                 "heartbeat": lambda h: TOPIC_TELEMETRY,
                 "event": lambda h: TOPIC_EVENTS}.get(header["type"])
     if expected is None or topic != expected(header):
