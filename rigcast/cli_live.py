@@ -184,6 +184,8 @@ def add_osc(subs: Subparsers) -> None:
 
 
 def add_latency_check(subs: Subparsers) -> None:
+    from rigcast.runtime.serve_main import DeprecatedAlias
+
     p = sub(
         subs, "latency-check", "measure end-to-end latency of your bundle on this machine",
         "Start a server on your bundle and send it frames of its own rig from this process, "
@@ -211,8 +213,11 @@ def add_latency_check(subs: Subparsers) -> None:
     p.add_argument("--server", default=None, metavar="INPUT,OUTPUT",
                    help="endpoints of a running server to measure instead of starting one")
     p.add_argument("--stream", default=None, help="the running server's stream for this bundle")
-    p.add_argument("--fit-error", choices=("after_publish", "every_n", "off"),
-                   default="after_publish", help="the started server's fit error setting")
+    schedules = ("after_publish", "every_n", "off")
+    p.add_argument("--fit-error-schedule", choices=schedules, default="after_publish",
+                   help="when the started server computes the fit error (as `rigcast serve`)")
+    p.add_argument("--fit-error", dest="fit_error_schedule", action=DeprecatedAlias,
+                   new="--fit-error-schedule", choices=schedules, help=argparse.SUPPRESS)
     p.add_argument("--no-pin", dest="pin", action="store_false",
                    help="do not pin the server to CPU 0 and the sender to CPU 1")
     p.add_argument("--out", type=Path, default=Path("rigcast-latency-report"),
@@ -239,7 +244,7 @@ def cmd_latency_check(args: argparse.Namespace) -> int:
     config = CheckConfig(bundle=args.bundle, fps=args.fps, duration_s=args.duration,
                          floor_duration_s=floor, flat_seconds=args.flat_seconds,
                          warmup_s=args.warmup, server=server, stream=args.stream, pin=args.pin,
-                         fit_error=args.fit_error)
+                         fit_error=args.fit_error_schedule)
     result = run_check(config, say)
     for line in summary_lines(result):
         say(line)

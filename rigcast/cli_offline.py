@@ -114,15 +114,18 @@ def add_solve(subs: Subparsers) -> None:
     p.add_argument("--fps", type=float, default=None,
                    help=f"frame rate of the take (default: the take's own, else {DEFAULT_FPS:g}, "
                         "said when assumed)")
-    from rigcast.runtime.serve_main import add_stream_arguments
+    from rigcast.runtime.serve_main import DeprecatedAlias, add_stream_arguments
 
     add_stream_arguments(p)  # --config, --stream and serve's per-stream flags
     p.add_argument("--smooth-hz", type=float, default=3.0,
                    help="cutoff of the zero-phase smoother (--filter smooth), Hz")
-    p.add_argument("--fit-error", choices=("subset", "full", "off"), default="subset",
-                   help="fit error and off-manifold flags: on the bundle's input and stable "
-                        "vertices plus a fixed sample of the others (fast), on every vertex, "
-                        "or not at all")
+    scopes = ("subset", "full", "off")
+    p.add_argument("--fit-error-scope", choices=scopes, default="subset",
+                   help="which vertices the fit error and off-manifold flags read: the bundle's "
+                        "input and stable vertices plus a fixed sample of the others (fast), "
+                        "every vertex, or none (no fit error)")
+    p.add_argument("--fit-error", dest="fit_error_scope", action=DeprecatedAlias,
+                   new="--fit-error-scope", choices=scopes, help=argparse.SUPPRESS)
     p.add_argument("--batch-size", type=int, default=1024,
                    help="frames per onnxruntime call")
 
@@ -211,7 +214,8 @@ def _solve_settings(args: argparse.Namespace) -> SolveSettings:
             "frame's controls and lists the off-manifold ranges in its summary")
     return SolveSettings(filter=kind, fps=args.fps, stream=stream,
                          smooth_hz=args.smooth_hz,
-                         fit_error=args.fit_error, batch_size=args.batch_size, rig=args.rig,
+                         fit_error_scope=args.fit_error_scope, batch_size=args.batch_size,
+                         rig=args.rig,
                          bounds=args.bounds)
 
 

@@ -38,7 +38,7 @@ class SolveSettings:
     fps: float | None = None
     stream: StreamConfig = StreamConfig()  # noqa: RUF009 (frozen, so shared safely)
     smooth_hz: float = 3.0
-    fit_error: Literal["subset", "full", "off"] = "subset"
+    fit_error_scope: Literal["subset", "full", "off"] = "subset"  # which vertices it reads
     batch_size: int = 1024
     rig: str | None = None
     bounds: Path | None = None
@@ -99,7 +99,7 @@ def solve_one(bundle_path: Path, take_path: Path, out: Path,
     cutter = slice_forward_graph if take.vertices.shape[0] >= CUT_MIN_FRAMES else None
     solver = BatchSolver(bundle, threads=settings.threads, subset_graph=cutter)
     options = SolveOptions(stream=settings.stream, filter=settings.filter,
-                           smooth_hz=settings.smooth_hz, fit_error=settings.fit_error,
+                           smooth_hz=settings.smooth_hz, fit_error=settings.fit_error_scope,
                            batch_size=settings.batch_size)
     basis, skeleton = output_form(bundle, out, solver.forward, settings.rig, settings.bounds)
     result = solver.solve(take.vertices, take.times_s, options)

@@ -9,7 +9,7 @@ TOML layout::
 
     input = "tcp://127.0.0.1:5570"
     output = "tcp://127.0.0.1:5571"
-    fit_error = "after_publish"          # or "every_n" / "off"
+    fit_error_schedule = "after_publish" # or "every_n" / "off"
 
     [streams.actor1]
     bundle = "face.rcb"                  # relative paths are relative to the TOML file
@@ -26,6 +26,7 @@ first configured stream (own filter state), up to ``max_streams`` streams in all
 
 from __future__ import annotations
 
+import logging
 import tomllib
 import typing
 from collections.abc import Mapping
@@ -38,8 +39,11 @@ from rigcast.runtime.config_checks import check_endpoint, check_metrics, coerce,
 from rigcast.runtime.config_checks import is_loopback as is_loopback  # re-exported
 from rigcast.runtime.protocol import MAX_STREAM_BYTES
 
-# When the server computes the fit error (after every publish, on every Nth frame, never).
-# Which vertices a batch solve reads for it is another concept: batch.FitErrorScope.
+log = logging.getLogger(__name__)
+
+# When the server computes the fit error (after every publish, on every Nth frame, never):
+# fit_error_schedule, --fit-error-schedule. Which vertices a solve reads for it is another
+# concept: the fit error's scope (batch.FitErrorScope, `rigcast solve --fit-error-scope`).
 FitErrorSchedule = Literal["after_publish", "every_n", "off"]
 # Which mesh of each processed frame the server publishes on msh.<stream>, if any.
 MeshPublishing = Literal["off", "raw", "stabilised"]
@@ -144,10 +148,11 @@ class ServerConfig:
     )
     max_streams: int = _flag("most streams one server holds", 16)
     threads: int = _flag("onnxruntime intra-op threads per session", 1)
-    fit_error: FitErrorSchedule = _flag(  # noqa: RUF009
+    fit_error_schedule: FitErrorSchedule = _flag(  # noqa: RUF009
         "when to compute the fit error: after_publish, every_n, off",
         "after_publish")
-    fit_error_every: int = _flag("with fit_error=every_n, compute it on every Nth frame", 10)
+    fit_error_every: int = _flag("with fit_error_schedule=every_n, compute it on every Nth frame",
+                                 10)
     fit_error_max_share: float = _flag(
         "largest share of the server's time each stream's fit error may take (the streams "
         "take turns); frames past it are skipped (counted), and fits run only while no input "
@@ -225,16 +230,16 @@ class ServerConfig:
                               "server's secret key and the folder of allowed client keys)")
         if self.input == self.output and not self.input.endswith(":*"):
             raise ConfigError(f"input and output endpoints are the same ({self.input})")
-        if self.fit_error not in get_args(FitErrorSchedule):
-            raise ConfigError(f"fit_error must be one of {get_args(FitErrorSchedule)}, "
-                              f"got {self.fit_error!r}")
+        if self.fit_error_schedule not in get_args(FitErrorSchedule):
+            raise ConfigError(f"fit_error_schedule must be one of {get_args(FitErrorSchedule)}, "
+                              f"got {self.fit_error_schedule!r}")
         if self.publish_meshes not in get_args(MeshPublishing):
             raise ConfigError(f"publish_meshes must be one of {get_args(MeshPublishing)}, "
                               f"got {self.publish_meshes!r}")
         holding = [s.stream for s in self.streams if s.on_off_manifold != "pass"]
-        if holding and self.fit_error == "off":
-            raise ConfigError(f"streams {holding} hold off-manifold frames, but fit_error is "
-                              "off, so no frame is ever found off-manifold")
+        if holding and self.fit_error_schedule == "off":
+            raise ConfigError(f"streams {holding} hold off-manifold frames, but "
+                              "fit_error_schedule is off, so no frame is ever found off-manifold")
         for name in ("threads", "fit_error_every", "window", "max_message_bytes",
                      "max_header_bytes", "max_drain", "input_hwm", "output_hwm", "max_streams",
                      "handshake_timeout_ms", "max_connections", "reload_max_file_bytes",
@@ -255,6 +260,11 @@ class ServerConfig:
         for name in ("owner_timeout_s", "stream_idle_s", "max_clock_step_s"):
             positive(getattr(self, name), name)
         non_negative(self.reload_min_interval_s, "reload_min_interval_s")
+
+    @property
+    def fit_error(self) -> FitErrorSchedule:
+        """Deprecated name of ``fit_error_schedule``."""
+        return self.fit_error_schedule
 
     def stream(self, stream_id: str) -> StreamConfig | None:
         for s in self.streams:
@@ -349,12 +359,25 @@ def load_config(path: Path | None, overrides: Mapping[str, Any] | None = None) -
         streams_raw.setdefault(str(sid), {}).update(sdata)
     every = dict(overrides.pop("stream_overrides", {}) or {})
     top = {**data, **{k: v for k, v in overrides.items() if v is not None}}
+    _renamed(top, "fit_error", "fit_error_schedule")
     values = _fields_from(ServerConfig, top, "", skip={"streams"})
     streams = []
     for sid, sdata in streams_raw.items():
         merged = {**sdata, **{k: v for k, v in every.items() if v is not None}}
         streams.append(_stream_from(sid, merged, base_dir))
     return ServerConfig(streams=tuple(streams), **values)
+
+
+def _renamed(values: dict[str, Any], old: str, new: str) -> None:
+    """Move a value given under a key's old name to its new one, with one line saying so."""
+    if values.get(old) is None:
+        values.pop(old, None)
+        return
+    if values.get(new) is not None:
+        raise ConfigError(f"{old} and {new} are the same setting ({old} is its old name); "
+                          f"give {new} only")
+    log.warning("config key %s is now %s (the old name still works for now)", old, new)
+    values[new] = values.pop(old)
 
 
 def with_stream(config: ServerConfig, stream: StreamConfig) -> ServerConfig:

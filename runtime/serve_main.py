@@ -1,7 +1,8 @@
 """Command-line pieces of ``rigcast serve``: flags derived from the config dataclasses, and run().
 
 The flags are not listed here: every field of ServerConfig and StreamConfig that carries a
-``help`` in its metadata becomes one (``fit_error`` -> ``--fit-error``); the StreamConfig ones
+``help`` in its metadata becomes one (``fit_error_schedule`` -> ``--fit-error-schedule``); the
+StreamConfig ones
 apply to every stream. The CLI mounts them with::
 
     add_serve_arguments(subparser)
@@ -23,7 +24,14 @@ from collections.abc import Sequence
 from pathlib import Path
 from typing import Any, Literal, get_args, get_origin
 
-from rigcast.runtime.config import ConfigError, ServerConfig, StreamConfig, flag_fields, load_config
+from rigcast.runtime.config import (
+    ConfigError,
+    FitErrorSchedule,
+    ServerConfig,
+    StreamConfig,
+    flag_fields,
+    load_config,
+)
 from rigcast.runtime.errors import RigcastError
 from rigcast.runtime.server import Server
 
@@ -62,6 +70,22 @@ def _add_fields(group: argparse._ArgumentGroup, cls: type, prefix: str, *,
                                metavar=f.name.upper(), **extra)
 
 
+class DeprecatedAlias(argparse.Action):
+    """An old spelling of a flag: stores into the new flag's ``dest`` and logs one line
+    naming the new spelling. ``new`` is that spelling."""
+
+    def __init__(self, option_strings: Sequence[str], dest: str, new: str = "",
+                 **kwargs: Any) -> None:
+        self.new = new
+        super().__init__(option_strings, dest, **kwargs)
+
+    def __call__(self, parser: argparse.ArgumentParser, namespace: argparse.Namespace,
+                 values: Any, option_string: str | None = None) -> None:
+        log.warning("%s is now %s (the old spelling still works for now)", option_string,
+                    self.new)
+        setattr(namespace, self.dest, values)
+
+
 def add_serve_arguments(parser: argparse.ArgumentParser) -> None:
     """Add the ``serve`` options to ``parser``."""
     parser.add_argument("--config", type=Path, default=None, metavar="FILE.toml",
@@ -73,6 +97,9 @@ def add_serve_arguments(parser: argparse.ArgumentParser) -> None:
                         help="once bound, write the real endpoints and pid here as JSON "
                              "(useful with port '*')")
     _add_fields(parser.add_argument_group("server"), ServerConfig, _SERVER_PREFIX)
+    parser.add_argument("--fit-error", dest=_SERVER_PREFIX + "fit_error_schedule",
+                        action=DeprecatedAlias, new="--fit-error-schedule",
+                        choices=get_args(FitErrorSchedule), help=argparse.SUPPRESS)
     _add_fields(parser.add_argument_group("per-stream (applies to every stream)"),
                 StreamConfig, _STREAM_PREFIX)
 

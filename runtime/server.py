@@ -20,8 +20,8 @@ Reload: a ``reload`` request is loaded and checked on a background thread (runti
 which also decides what may be opened) while frames flow; the model is swapped between frames,
 keeping the filter state. Another vertex count or control schema is refused (ok=false).
 
-Trust: runtime/security.py (CURVE, ZAP, connection cap), runtime/limits.py (parts and bytes per
-message), runtime/ownership.py (one sender per stream, timestamps, sessions).
+Trust: runtime/security.py, runtime/limits.py, runtime/ownership.py. Optional outputs: meshes
+on msh.<stream> (``publish_meshes``), Prometheus metrics (runtime/service_metrics.py).
 """
 
 from __future__ import annotations
@@ -219,12 +219,13 @@ class Server:
                 self.rejected["processing_error"] += 1
                 self._log("processing_error", logging.ERROR, "a message could not be handled; "
                           "the server goes on", exc_info=True)
-        fitting = self.config.fit_error != "off"
+        fitting = self.config.fit_error_schedule != "off"
         for stream, p in pending.items():
             state = self.streams[stream]
             result = self._process(state, p)
             if (result is not None and fitting
-                    and state.wants_fit(self.config.fit_error, self.config.fit_error_every)
+                    and state.wants_fit(self.config.fit_error_schedule,
+                                        self.config.fit_error_every)
                     and self.fits.offer(stream, (state, result, p)) is not None):
                 state.telemetry.fit_skipped += 1
         # The fit error runs after every publish of this drain, and only while no input waits,

@@ -21,7 +21,7 @@ from rigcast.runtime.server import Server
 
 TOML = """
 input = "tcp://127.0.0.1:6001"
-fit_error = "every_n"
+fit_error_schedule = "every_n"
 fit_error_every = 5
 
 [streams.actor1]
@@ -44,7 +44,7 @@ def test_toml_is_read_with_relative_paths_and_group_overrides(tmp_path: Path) ->
     cfg = load_config(write(tmp_path, TOML))
     assert cfg.input == "tcp://127.0.0.1:6001"
     assert cfg.output == "tcp://127.0.0.1:5571"  # default kept
-    assert (cfg.fit_error, cfg.fit_error_every) == ("every_n", 5)
+    assert (cfg.fit_error_schedule, cfg.fit_error_every) == ("every_n", 5)
     (s,) = cfg.streams
     assert s.bundle == tmp_path / "face.rcb"
     assert (s.beta, s.stabilise, s.min_cutoff) == (0.25, False, 1.0)
@@ -53,10 +53,10 @@ def test_toml_is_read_with_relative_paths_and_group_overrides(tmp_path: Path) ->
 
 
 def test_overrides_win_over_the_file(tmp_path: Path) -> None:
-    cfg = load_config(write(tmp_path, TOML), {"telemetry_hz": 30.0, "fit_error": "off",
+    cfg = load_config(write(tmp_path, TOML), {"telemetry_hz": 30.0, "fit_error_schedule": "off",
                                               "stream_overrides": {"beta": 0.9},
                                               "streams": {"b": {"bundle": "/abs/b.rcb"}}})
-    assert (cfg.telemetry_hz, cfg.fit_error) == (30.0, "off")
+    assert (cfg.telemetry_hz, cfg.fit_error_schedule) == (30.0, "off")
     assert [s.stream for s in cfg.streams] == ["actor1", "b"]
     assert all(s.beta == 0.9 for s in cfg.streams)
     assert cfg.stream("b") is not None and cfg.stream("b").bundle == Path("/abs/b.rcb")
@@ -71,7 +71,8 @@ def test_overrides_win_over_the_file(tmp_path: Path) -> None:
         ("[streams.a]\nbundle='x'\nbeta = 'high'", "streams.a.beta must be a number"),
         ("[streams.a]\nbundle='x'\nmin_cutoff = -1", "streams.a.min_cutoff must be a positive"),
         ("threads = 0\n[streams.a]\nbundle='x'", "threads must be at least 1"),
-        ("fit_error = 'sometimes'\n[streams.a]\nbundle='x'", "fit_error must be one of"),
+        ("fit_error_schedule = 'sometimes'\n[streams.a]\nbundle='x'",
+         "fit_error_schedule must be one of"),
         ("allow_remote = 'yes'\n[streams.a]\nbundle='x'", "allow_remote must be true or false"),
         ("[streams.a]\nbeta = 1.0", "streams.a.bundle is missing"),
         ("telemetry_hz = 5", "no streams configured"),
@@ -128,11 +129,11 @@ def test_every_flag_field_is_a_cli_flag_and_reaches_the_config(tmp_path: Path) -
         for f in flag_fields(cls):
             assert prefix + f.name in options, f.name
     args = parser.parse_args(["--config", str(write(tmp_path, TOML)), "--bundle",
-                              "b=other.rcb", "--bundle", "/x/face2.rcb", "--fit-error",
+                              "b=other.rcb", "--bundle", "/x/face2.rcb", "--fit-error-schedule",
                               "after_publish", "--telemetry-hz", "4", "--beta", "0.1",
                               "--no-stabilise", "--threads", "2"])
     cfg = config_from_args(args)
-    assert (cfg.fit_error, cfg.telemetry_hz, cfg.threads) == ("after_publish", 4.0, 2)
+    assert (cfg.fit_error_schedule, cfg.telemetry_hz, cfg.threads) == ("after_publish", 4.0, 2)
     assert [s.stream for s in cfg.streams] == ["actor1", "b", "face2"]
     assert cfg.stream("b").bundle == (Path.cwd() / "other.rcb")
     assert all(s.beta == 0.1 and not s.stabilise for s in cfg.streams)
@@ -142,4 +143,35 @@ def test_bad_flag_value_is_refused_by_the_parser() -> None:
     parser = argparse.ArgumentParser()
     add_serve_arguments(parser)
     with pytest.raises(SystemExit):
-        parser.parse_args(["--fit-error", "sometimes"])
+        parser.parse_args(["--fit-error-schedule", "sometimes"])
+
+
+def test_the_old_fit_error_spellings_still_work_with_a_line_saying_so(
+        tmp_path: Path, caplog: pytest.LogCaptureFixture) -> None:
+    """serve's fit_error (when) is fit_error_schedule and solve's --fit-error (which vertices) is
+    --fit-error-scope: one name per concept (issue 16); the old spellings are kept for now."""
+    old_toml = TOML.replace("fit_error_schedule", "fit_error")
+    with caplog.at_level("WARNING"):
+        cfg = load_config(write(tmp_path, old_toml))
+    assert cfg.fit_error_schedule == "every_n" == cfg.fit_error
+    assert "config key fit_error is now fit_error_schedule" in caplog.text
+    with pytest.raises(ConfigError, match="fit_error and fit_error_schedule are the same"):
+        load_config(write(tmp_path, old_toml), {"fit_error_schedule": "off"})
+    serve = argparse.ArgumentParser()
+    add_serve_arguments(serve)
+    caplog.clear()
+    with caplog.at_level("WARNING"):
+        args = serve.parse_args(["--fit-error", "off"])
+    assert args.server__fit_error_schedule == "off"
+    assert "--fit-error is now --fit-error-schedule" in caplog.text
+    with pytest.raises(SystemExit):
+        serve.parse_args(["--fit-error", "sometimes"])
+    from rigcast.cli import build_parser
+
+    parser = build_parser()
+    caplog.clear()
+    with caplog.at_level("WARNING"):
+        solve = parser.parse_args(["solve", "b.rcb", "t.npz", "-o", "o.csv", "--fit-error", "full"])
+    assert solve.fit_error_scope == "full"
+    assert "--fit-error is now --fit-error-scope" in caplog.text
+    assert parser.parse_args(["solve", "b.rcb", "t.npz", "-o", "o.csv"]).fit_error_scope == "subset"

@@ -118,6 +118,6 @@ def test_one_name_in_config_and_cli_and_checked(tiny_bundle: Path) -> None:
         solve.parse_args(["--on-off-manifold", "hold"])
     with pytest.raises(ConfigError, match="on_off_manifold"):
         server_config({"a": tiny_bundle}, stream_overrides={"on_off_manifold": "freeze"})
-    with pytest.raises(ConfigError, match="fit_error is off"):
-        server_config({"a": tiny_bundle}, fit_error="off",
+    with pytest.raises(ConfigError, match="fit_error_schedule is off"):
+        server_config({"a": tiny_bundle}, fit_error_schedule="off",
                       stream_overrides={"on_off_manifold": "hold"})
