@@ -25,7 +25,7 @@ from rigcast.export.build_config import (
     _versions,
 )
 from rigcast.export.rig import Rig
-from rigcast.runtime.bundle import RefineProjection, load_bundle, write_bundle
+from rigcast.runtime.bundle import load_bundle, write_bundle
 
 log = logging.getLogger(__name__)
 
@@ -81,8 +81,7 @@ def finish(
     t = time.perf_counter()
     inv_bytes, inv_parity = export_inverse(inv, check_x[:16][:, inputs])
     fwd_bytes, fwd_parity = export_forward(fwd)
-    ref_bytes, hessian, ref_idx, ref_basis, ref_offset, ref_parity = projected_refine_parts(
-        fwd, poses, check_x[:16])
+    ref_bytes, hessian, projection, ref_parity = projected_refine_parts(fwd, poses, check_x[:16])
     timings["export"] = time.perf_counter() - t
     if progress is not None:
         progress("export", 1, 1)
@@ -127,7 +126,7 @@ def finish(
     parts = {"name": rig.name, "schema": rig.schema, "neutral": rig.neutral, "faces": rig.faces,
              "stable_indices": stable, "input_indices": inputs, "inverse_onnx": inv_bytes,
              "forward_onnx": fwd_bytes, "refine_onnx": ref_bytes, "refine_hessian": hessian,
-             "refine_projection": RefineProjection(ref_idx, ref_basis, ref_offset)}
+             "refine_projection": projection}
     write_bundle(out_path, extra=extra, **parts)
     served = check_served(out_path, rig, check_x, float(fwd_rep.mean_err))
     training.update(check_mean_err=served.rig_mean_err,

@@ -230,3 +230,28 @@ def export_refine_core(graph: nn.Module, lower: np.ndarray, upper: np.ndarray,
         raise ExportError(f"refine graph differs from torch by {worst:.3g} (relative, > 1e-4)")
     log.info("exported refine: %d bytes, parity %.2g", len(data), worst)
     return data, worst
+
+
+def export_refine_project(graph: nn.Module, example_points: np.ndarray, expected: np.ndarray
+                          ) -> tuple[bytes, float]:
+    """Export the projected refinement's projection graph (``export.refine.ProjectGraph``):
+    input ``points`` (N, S, 3) -> outputs ``projection`` (N, R) and ``norm_sq`` (N,).
+    example_points (M, S, 3) and expected (M, R + 1), the float64 values of
+    ``runtime.refine.project_naive``: the parity check, relative to the largest magnitude of
+    each output. returns: (model bytes, worst relative parity error)."""
+    from rigcast.runtime.bundle import PROJECT_NORM, PROJECT_POINTS, REFINE_PROJECTION
+
+    pts = np.ascontiguousarray(example_points, np.float32)
+    data = _export(graph.eval(), torch.from_numpy(pts), PROJECT_POINTS,
+                   [REFINE_PROJECTION, PROJECT_NORM])
+    check_graph(data, "refine projection")
+    proj, norm = session(data).run(None, {PROJECT_POINTS: pts})
+    worst = 0.0
+    for got, ref in ((proj, expected[:, :-1]), (norm, expected[:, -1])):
+        worst = max(worst, float(np.max(np.abs(got - ref)) / max(float(np.max(np.abs(ref))),
+                                                                  1e-12)))
+    if not worst <= 1e-4:
+        raise ExportError(f"refine projection graph differs from float64 by {worst:.3g} "
+                          "(relative, > 1e-4)")
+    log.info("exported refine projection: %d bytes, parity %.2g", len(data), worst)
+    return data, worst

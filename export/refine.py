@@ -29,6 +29,8 @@ from collections.abc import Sequence
 import numpy as np
 import torch
 from rigcast.export.models import ForwardApproximator, VertexSubset, normalise_controls
+from rigcast.runtime.bundle import RefineProjection
+from rigcast.runtime.refine import project_naive
 from torch import nn
 
 log = logging.getLogger(__name__)
@@ -271,6 +273,27 @@ def refine_vertices(info: np.ndarray, share: float = 0.995, cap: int = 4096) -> 
     return picked.astype(np.int64)
 
 
+class ProjectGraph(nn.Module):
+    """points (N, S, 3) -> (projection (N, R), norm_sq (N,)) float64: p = A y and |y|^2,
+    y = points - offset (the projected refinement's one per-frame product, see ``RefineCore``).
+    In float64: float32 products of a batch of one and of many round differently, and the
+    refinement's steps carried that into the controls at ~2e-6, above the 1e-6 at which a live
+    and an offline solve of the same take must agree."""
+
+    basis_t: torch.Tensor
+    offset: torch.Tensor
+
+    def __init__(self, basis: np.ndarray, offset: np.ndarray) -> None:
+        super().__init__()
+        self.register_buffer("basis_t", torch.from_numpy(np.ascontiguousarray(basis.T,
+                                                                              np.float64)))
+        self.register_buffer("offset", torch.from_numpy(np.asarray(offset, np.float64).copy()))
+
+    def forward(self, points: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        y = points.reshape(points.shape[0], -1).double() - self.offset
+        return y @ self.basis_t, (y * y).sum(dim=1)
+
+
 def projection_arrays(forward: ForwardApproximator, indices: np.ndarray
                       ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """The forward model's bases on vertices ``indices`` (S,): (basis A (R, 3S) float32,
@@ -286,13 +309,14 @@ def projection_arrays(forward: ForwardApproximator, indices: np.ndarray
 
 def projected_refine_parts(forward: ForwardApproximator, poses: np.ndarray,
                            example_points: np.ndarray | None = None, cap: int = 4096,
-                           share: float = 0.995) -> tuple[bytes, np.ndarray, np.ndarray,
-                                                          np.ndarray, np.ndarray, float]:
+                           share: float = 0.995
+                           ) -> tuple[bytes, np.ndarray, RefineProjection, float]:
     """What a bundle needs for the projected refinement: (refine.onnx bytes, hessian (C, C),
-    indices (S,), basis (R, 3S), offset (3S,), parity). poses (M, C): controls the curvature and
-    the vertices' information are averaged over; example_points (E, V, 3): meshes for the export's
-    parity check (random poses through the forward model when None)."""
-    from rigcast.export.onnx_export import export_refine_core
+    the projection (vertex indices and graph), worst parity of the two graphs). poses (M, C):
+    controls the curvature and the vertices' information are averaged over; example_points
+    (E, V, 3): meshes for the exports' parity checks (poses through the forward model when
+    None)."""
+    from rigcast.export.onnx_export import export_refine_core, export_refine_project
 
     info_poses = np.asarray(poses)[:: max(1, len(poses) // 32)][:32]
     indices = refine_vertices(vertex_information(forward, info_poses), share, cap)
@@ -301,11 +325,12 @@ def projected_refine_parts(forward: ForwardApproximator, poses: np.ndarray,
     if example_points is None:
         with torch.no_grad():
             example_points = forward(torch.as_tensor(np.asarray(poses[:16], np.float32))).numpy()
-    pts = np.asarray(example_points, np.float32)[:, indices]
-    y = pts.reshape(pts.shape[0], -1) - offset
-    proj = (y @ basis.T).astype(np.float32)
+    pts = np.ascontiguousarray(np.asarray(example_points, np.float32)[:, indices])
+    project, parity_p = export_refine_project(ProjectGraph(basis, offset), pts,
+                                              project_naive(pts, basis, offset))
+    proj = project_naive(pts, basis, offset)[:, :-1].astype(np.float32)
     data, parity = export_refine_core(RefineCore(forward, gram), forward.lower.numpy(),
                                       forward.upper.numpy(), proj)
     log.info("projected refinement on %d of %d vertices (R = %d)", indices.size,
              forward.vertex_count, basis.shape[0])
-    return data, hessian, indices, basis, offset, parity
+    return data, hessian, RefineProjection(indices, project), max(parity, parity_p)

@@ -28,6 +28,8 @@ from rigcast.runtime.bundle import (
     FORWARD_OUTPUT,
     INVERSE_INPUT,
     INVERSE_OUTPUT,
+    PROJECT_NORM,
+    PROJECT_POINTS,
     REFINE_CONTROLS,
     REFINE_GRADIENT,
     REFINE_MESH,
@@ -286,7 +288,35 @@ def projected_refine_graph(rig: SyntheticRig, cap: int = 4096
     )
     at_lo = rig.neutral[idx] + np.einsum("c,cvk->vk", lo.astype(np.float64), rig.deltas[:, idx])
     offset = at_lo.reshape(-1).astype(np.float32)  # the mesh at u = 0
-    return _finish(graph), gram, RefineProjection(idx, a.astype(np.float32), offset)
+    return _finish(graph), gram, RefineProjection(idx, project_graph(a, offset))
+
+
+def project_graph(basis: np.ndarray, offset: np.ndarray) -> bytes:
+    """ONNX ``points (N, S, 3) -> (projection (N, R), norm_sq (N,))`` float64: y = points - offset,
+    projection = y basis^T, norm_sq = |y|^2 (see ``export.refine.ProjectGraph``)."""
+    r, coords = basis.shape
+    inits = [
+        numpy_helper.from_array(np.array([-1, coords], dtype=np.int64), "flat_shape"),
+        numpy_helper.from_array(np.asarray(offset, np.float64), "offset"),
+        numpy_helper.from_array(np.ascontiguousarray(basis.T, np.float64), "basis_t"),
+        numpy_helper.from_array(np.array([1], dtype=np.int64), "axis"),
+    ]
+    nodes = [
+        helper.make_node("Reshape", [PROJECT_POINTS, "flat_shape"], ["flat32"]),
+        helper.make_node("Cast", ["flat32"], ["flat"], to=TensorProto.DOUBLE),
+        helper.make_node("Sub", ["flat", "offset"], ["y"]),
+        helper.make_node("MatMul", ["y", "basis_t"], [REFINE_PROJECTION]),
+        helper.make_node("Mul", ["y", "y"], ["y2"]),
+        helper.make_node("ReduceSum", ["y2", "axis"], [PROJECT_NORM], keepdims=0),
+    ]
+    graph = helper.make_graph(
+        nodes, "synthetic_refine_project",
+        [helper.make_tensor_value_info(PROJECT_POINTS, TensorProto.FLOAT, ["N", coords // 3, 3])],
+        [helper.make_tensor_value_info(REFINE_PROJECTION, TensorProto.DOUBLE, ["N", r]),
+         helper.make_tensor_value_info(PROJECT_NORM, TensorProto.DOUBLE, ["N"])],
+        inits,
+    )
+    return _finish(graph)
 
 
 def _finish(graph: onnx.GraphProto) -> bytes:

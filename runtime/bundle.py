@@ -14,9 +14,10 @@ A bundle is a ZIP archive (stored, not compressed) with these members:
                       with it, ``arrays.npz`` holds ``refine_hessian`` (C, C) float64 and the
                       manifest a ``refine`` section. Two forms:
                       * projected (bundles since the all-vertex refinement): ``arrays.npz`` also
-                        holds ``refine_indices`` (S,) int64, ``refine_basis`` (R, 3S) float32 and
-                        ``refine_offset`` (3S,) float32; the graph maps ``controls`` (N, C) and
-                        ``projection`` (N, R) to ``gradient`` (N, C) and ``quad`` (N,) float64;
+                        holds ``refine_indices`` (S,) int64, and ``refine_project.onnx`` maps
+                        ``points`` (N, S, 3) to ``projection`` (N, R) and ``norm_sq`` (N,) float64;
+                        the refinement graph maps ``controls`` (N, C) and ``projection``
+                        (N, R) to ``gradient`` (N, C) and ``quad`` (N,) float64;
                       * input-vertex (older bundles): ``controls`` (N, C) and ``mesh`` (N, K, 3)
                         to ``gradient`` (N, C) and ``residual_sq`` (N,).
 
@@ -58,8 +59,10 @@ REFINE_GRADIENT = "gradient"
 REFINE_RESIDUAL = "residual_sq"
 REFINE_PROJECTION = "projection"
 REFINE_QUAD = "quad"
+PROJECT_POINTS = "points"
+PROJECT_NORM = "norm_sq"
 _MEMBERS = ("manifest.json", "arrays.npz", "inverse.onnx", "forward.onnx")
-_OPTIONAL = ("refine.onnx",)
+_OPTIONAL = ("refine.onnx", "refine_project.onnx")
 
 
 class BundleError(RigcastError):
@@ -70,13 +73,15 @@ class BundleError(RigcastError):
 
 @dataclass(frozen=True)
 class RefineProjection:
-    """What the all-vertex refinement reads: the S vertices it fits (indices (S,) int64), the
-    forward model's linear and residual bases on them in normalised controls (basis (R, 3S)
-    float32, R = C + P) and its offset there (offset (3S,) float32: neutral plus bias)."""
+    """What the all-vertex refinement reads: the S vertices it fits (indices (S,) int64) and the
+    graph that projects them onto the forward model's linear and residual bases (project_onnx:
+    points (N, S, 3) -> projection (N, R), R = C + P, and norm_sq (N,), float64; see
+    runtime/refine.py).
+    The projection runs in onnxruntime, whose thread count the caller sets: a small product on
+    a BLAS thread pool stalled for milliseconds on a busy 2-core machine."""
 
     indices: np.ndarray
-    basis: np.ndarray = field(repr=False)
-    offset: np.ndarray = field(repr=False)
+    project_onnx: bytes = field(repr=False)
 
 
 @dataclass(frozen=True)
@@ -164,9 +169,7 @@ def write_bundle(
     if refine_projection is not None:
         if refine_onnx is None:
             raise BundleError("refine_projection needs refine_onnx")
-        stored.update(refine_indices=np.ascontiguousarray(refine_projection.indices, np.int64),
-                      refine_basis=np.ascontiguousarray(refine_projection.basis, np.float32),
-                      refine_offset=np.ascontiguousarray(refine_projection.offset, np.float32))
+        stored["refine_indices"] = np.ascontiguousarray(refine_projection.indices, np.int64)
     buf = io.BytesIO()
     np.savez(buf, **stored)
     arrays = buf.getvalue()
@@ -186,6 +189,8 @@ def write_bundle(
             "inverse.onnx": _sha(inverse_onnx),
             "forward.onnx": _sha(forward_onnx),
             **({"refine.onnx": _sha(refine_onnx)} if refine_onnx is not None else {}),
+            **({"refine_project.onnx": _sha(refine_projection.project_onnx)}
+               if refine_projection is not None else {}),
         },
     }
     clash = set(manifest) & set(owned)
@@ -203,6 +208,8 @@ def write_bundle(
         zf.writestr("forward.onnx", forward_onnx)
         if refine_onnx is not None:
             zf.writestr("refine.onnx", refine_onnx)
+        if refine_projection is not None:
+            zf.writestr("refine_project.onnx", refine_projection.project_onnx)
     tmp.replace(path)
     log.info("wrote bundle %s (%d vertices, %d controls)", path, neutral.shape[0], len(schema))
     return path
@@ -267,8 +274,7 @@ def parse_bundle(blobs: Mapping[str, bytes], path: Path | None = None) -> Bundle
         with np.load(io.BytesIO(blobs["arrays.npz"]), allow_pickle=False) as npz:
             arrays = {k: npz[k] for k in ("neutral", "faces", "stable_indices", "input_indices")}
             hessian = npz["refine_hessian"] if "refine_hessian" in npz.files else None
-            projected = {k: npz[k] for k in ("refine_indices", "refine_basis", "refine_offset")
-                         if k in npz.files}
+            refine_idx = npz["refine_indices"] if "refine_indices" in npz.files else None
     except (KeyError, ValueError, OSError, EOFError, zipfile.BadZipFile) as exc:
         raise BundleError(f"{where}: arrays.npz is unreadable ({exc})") from None
     for name, kinds in (("neutral", "fiu"), ("faces", "iu"), ("stable_indices", "iu"),
@@ -300,7 +306,8 @@ def parse_bundle(blobs: Mapping[str, bytes], path: Path | None = None) -> Bundle
                               f"{hessian.shape} {hessian.dtype}")
         hessian = hessian.astype(np.float64, copy=False)
         hessian.setflags(write=False)
-    projection = _refine_projection(projected, hessian, neutral.shape[0], where)
+    projection = _refine_projection(refine_idx, blobs.get("refine_project.onnx"), hessian,
+                                    neutral.shape[0], where)
     for a in (neutral, faces, stable, inputs):
         a.setflags(write=False)
     return Bundle(
@@ -319,32 +326,20 @@ def parse_bundle(blobs: Mapping[str, bytes], path: Path | None = None) -> Bundle
     )
 
 
-def _refine_projection(arrays: Mapping[str, np.ndarray], hessian: np.ndarray | None,
+def _refine_projection(idx: np.ndarray | None, graph: bytes | None, hessian: np.ndarray | None,
                        vertex_count: int, where: str) -> RefineProjection | None:
-    """The projected refinement's arrays, checked against each other; None when absent."""
-    if not arrays:
+    """The projected refinement's parts, checked; None when absent."""
+    if idx is None and graph is None:
         return None
-    if len(arrays) != 3 or hessian is None:
-        raise BundleError(f"{where}: refine_indices, refine_basis and refine_offset come together, "
-                          "with refine.onnx")
-    idx, basis, offset = arrays["refine_indices"], arrays["refine_basis"], arrays["refine_offset"]
+    if idx is None or graph is None or hessian is None:
+        raise BundleError(f"{where}: refine_indices and refine_project.onnx come together, with "
+                          "refine.onnx")
     if idx.ndim != 1 or idx.dtype.kind not in "iu" or not idx.size:
         raise BundleError(f"{where}: refine_indices must be a non-empty list of integers")
     if int(idx.min()) < 0 or int(idx.max()) >= vertex_count:
         raise BundleError(f"{where}: refine_indices out of range 0..{vertex_count - 1}")
-    coords = 3 * idx.shape[0]
-    if (basis.ndim != 2 or basis.shape[1] != coords or basis.shape[0] < hessian.shape[0]
-            or basis.dtype.kind != "f" or not np.isfinite(basis).all()):
-        raise BundleError(f"{where}: refine_basis must be finite (R >= {hessian.shape[0]}, "
-                          f"{coords}) floats, got {basis.shape} {basis.dtype}")
-    if offset.shape != (coords,) or offset.dtype.kind != "f" or not np.isfinite(offset).all():
-        raise BundleError(f"{where}: refine_offset must be finite ({coords},) floats, got "
-                          f"{offset.shape}")
-    out = RefineProjection(idx.astype(np.int64, copy=False),
-                           np.ascontiguousarray(basis, np.float32),
-                           np.ascontiguousarray(offset, np.float32))
-    for a in (out.indices, out.basis, out.offset):
-        a.setflags(write=False)
+    out = RefineProjection(idx.astype(np.int64, copy=False), graph)
+    out.indices.setflags(write=False)
     return out
 
 

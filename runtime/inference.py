@@ -18,6 +18,8 @@ from rigcast.runtime.bundle import (
     FORWARD_OUTPUT,
     INVERSE_INPUT,
     INVERSE_OUTPUT,
+    PROJECT_NORM,
+    PROJECT_POINTS,
     REFINE_CONTROLS,
     REFINE_GRADIENT,
     REFINE_MESH,
@@ -27,7 +29,7 @@ from rigcast.runtime.bundle import (
     Bundle,
     BundleError,
 )
-from rigcast.runtime.refine import RefineError, Refiner, RefineSettings, project
+from rigcast.runtime.refine import RefineError, Refiner, RefineSettings
 
 log = logging.getLogger(__name__)
 
@@ -197,19 +199,25 @@ def _refiner(bundle: Bundle, threads: int, settings: RefineSettings | None) -> R
 
         return Refiner(gradient, bundle.refine_hessian, schema.lower, schema.upper,
                        schema.defaults, 3 * int(bundle.input_indices.shape[0]), chosen)
-    r = projected.basis.shape[0]
+    project = open_session(projected.project_onnx, threads=threads)
+    got_in = [i.name for i in project.get_inputs()]
+    got_out = {o.name for o in project.get_outputs()}
+    if got_in != [PROJECT_POINTS] or not {REFINE_PROJECTION, PROJECT_NORM} <= got_out:
+        raise BundleError(f"refine projection graph must map {PROJECT_POINTS!r} to "
+                          f"({REFINE_PROJECTION!r}, {PROJECT_NORM!r}); has {got_in} -> "
+                          f"{sorted(got_out)}")
+    outs = [REFINE_PROJECTION, PROJECT_NORM]
+
+    def prepare(points: np.ndarray) -> np.ndarray:
+        """points (N, S, 3) -> (N, R + 1) float64: the projection, then |y|^2."""
+        proj, norm = project.run(outs, {PROJECT_POINTS: np.ascontiguousarray(points)})
+        return np.concatenate([proj, norm[:, None]], axis=1, dtype=np.float64)
 
     def gradient_projected(controls: np.ndarray, state: np.ndarray
                            ) -> tuple[np.ndarray, np.ndarray]:
-        proj = state[:, :r].astype(np.float32)
+        proj = state[:, :-1].astype(np.float32)
         g, quad = session.run(names, {REFINE_CONTROLS: controls, REFINE_PROJECTION: proj})
-        return g, state[:, r] + quad
-
-    basis = projected.basis.astype(np.float64)  # see ``project``
-    offset = projected.offset.astype(np.float64)
-
-    def prepare(points: np.ndarray) -> np.ndarray:
-        return project(points, basis, offset)
+        return g, state[:, -1] + quad
 
     return Refiner(gradient_projected, bundle.refine_hessian, schema.lower, schema.upper,
                    schema.defaults, 3 * int(projected.indices.shape[0]), chosen, prepare)

@@ -9,7 +9,8 @@ u = (c - lo) / (hi - lo), and the residual's squared norm, on the vertices the r
   motion (all of them on most rigs). Each frame is projected once onto the forward model's bases,
   p = A y with y = x_S - offset, A = [W; B] (R, 3S); then every step works in R = C + P numbers:
   for z = [u; MLP(u)], A r = p - G z with G = A A^T, and |r|^2 = |y|^2 + z^T G z - 2 z^T p,
-  exact on all S vertices at the cost of one projection per frame (``project``);
+  exact on all S vertices at the cost of one projection per frame (the bundle's projection
+  graph; ``project_naive`` is its twin);
 - **input-vertex** (older bundles): the K input vertices of the network, through a graph that
   evaluates the forward model on them at every step. Fitting K of V vertices leaves the fit's
   noise about sqrt(V / K) times that of a fit on all of them.
@@ -134,21 +135,10 @@ class RefineSettings:
             raise RefineError(f"refine settings are invalid: {exc}") from None
 
 
-def project(points: np.ndarray, basis: np.ndarray, offset: np.ndarray) -> np.ndarray:
-    """points (N, S, 3) float32; basis (R, 3S) (float64 keeps a batch of many and a batch of one
-    equal to ~1e-12: float32 products of different lengths round differently); offset (3S,)
-    -> state (N, R + 1) float64: the projection p = basis @ y (columns :R) and |y|^2 (column R),
-    y = points - offset."""
-    n = points.shape[0]
-    y = points.reshape(n, -1).astype(np.float64) - offset  # (N, 3S)
-    out = np.empty((n, basis.shape[0] + 1), np.float64)
-    out[:, :-1] = y @ basis.T
-    out[:, -1] = np.einsum("ij,ij->i", y, y)
-    return out
-
-
 def project_naive(points: np.ndarray, basis: np.ndarray, offset: np.ndarray) -> np.ndarray:
-    """Float64, frame-by-frame twin of ``project``, from the definition."""
+    """What the bundle's projection graph computes, in float64 frame by frame (its naive twin):
+    points (N, S, 3); basis (R, 3S); offset (3S,) -> (N, R + 1): p = basis @ y and |y|^2,
+    y = points - offset."""
     out = []
     for frame in np.asarray(points, np.float64):
         y = frame.reshape(-1) - np.asarray(offset, np.float64)
@@ -231,8 +221,8 @@ class Refiner:
 
     gradient: the refinement graph as a function; hessian (C, C) its fixed Gauss-Newton matrix
     in normalised controls; lower, upper, defaults (C,); coords: 3 x the vertices it fits;
-    prepare: what each frame becomes before the steps (``project`` for a projected bundle;
-    None: the frames themselves).
+    prepare: what each frame becomes before the steps (its projection and |y|^2, (N, R + 1)
+    float64, for a projected bundle; None: the frames themselves).
     """
 
     def __init__(self, gradient: GradientFn, hessian: np.ndarray, lower: np.ndarray,

@@ -212,12 +212,18 @@ def test_projected_refine_core_matches_the_direct_fit_on_its_vertices() -> None:
     from rigcast.export.onnx_export import session
     from rigcast.export.refine import (
         projected_refine_parts,
+        projection_arrays,
         refine_gradient_naive,
         refine_vertices,
         vertex_information,
     )
-    from rigcast.runtime.bundle import REFINE_CONTROLS, REFINE_PROJECTION
-    from rigcast.runtime.refine import project, project_naive
+    from rigcast.runtime.bundle import (
+        PROJECT_NORM,
+        PROJECT_POINTS,
+        REFINE_CONTROLS,
+        REFINE_PROJECTION,
+    )
+    from rigcast.runtime.refine import project_naive
 
     rng = np.random.default_rng(1)
     v, c, p = 60, 5, 6
@@ -230,8 +236,10 @@ def test_projected_refine_core_matches_the_direct_fit_on_its_vertices() -> None:
         for prm in fwd.correction.parameters():
             prm.copy_(torch.randn_like(prm) * 0.5)
     poses = rng.uniform(-1, 2, (40, c)).astype(np.float32)
-    data, hessian, idx, a, offset, parity = projected_refine_parts(fwd, poses, cap=10_000,
-                                                                   share=1.0)
+    data, hessian, projection, parity = projected_refine_parts(fwd, poses, cap=10_000,
+                                                               share=1.0)
+    idx = projection.indices
+    a, offset, _ = projection_arrays(fwd, idx)
     assert parity <= 1e-4 and hessian.shape == (c, c) and a.shape == (c + p, 3 * idx.size)
     info = vertex_information(fwd, poses)
     assert info.shape == (v, c)
@@ -241,7 +249,9 @@ def test_projected_refine_core_matches_the_direct_fit_on_its_vertices() -> None:
     ctrl = rng.uniform(-1, 2, (7, c)).astype(np.float32)
     mesh = rng.standard_normal((7, v, 3)).astype(np.float32)
     pts = np.ascontiguousarray(mesh[:, idx])
-    state = project(pts, a, offset)
+    proj, norm = session(projection.project_onnx).run([REFINE_PROJECTION, PROJECT_NORM],
+                                                      {PROJECT_POINTS: pts})
+    state = np.concatenate([proj, norm[:, None]], axis=1, dtype=np.float64)
     np.testing.assert_allclose(state, project_naive(pts, a, offset), rtol=1e-4, atol=1e-3)
     g, quad = session(data).run(None, {REFINE_CONTROLS: ctrl,
                                        REFINE_PROJECTION: state[:, :-1].astype(np.float32)})
