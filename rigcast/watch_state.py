@@ -70,6 +70,7 @@ class StreamView:
     input_changed_at: float = -math.inf
     threshold: float | None = None  # the off-manifold threshold in force, when known
     threshold_on: str = "rms"  # the fit figure it limits: "rms" (fixed) or "max" (adaptive)
+    off_event: tuple[int, float] | None = None  # (frame, fit / threshold) of the last off event
 
     def off_manifold_recent(self, now: float) -> bool:
         return now - self.off_manifold_at < OFF_MANIFOLD_HOLD_S
@@ -133,8 +134,13 @@ class WatchState:
             if what == "off_manifold" and isinstance(stream, str):
                 threshold = _number(message.get("threshold"))
                 if threshold is not None:
-                    self.view(stream).threshold = threshold
-                    self.view(stream).threshold_on = str(message.get("threshold_on") or "rms")
+                    v = self.view(stream)
+                    v.threshold = threshold
+                    v.threshold_on = str(message.get("threshold_on") or "rms")
+                    value = _number(message.get("max" if v.threshold_on == "max" else "rms"))
+                    frame = message.get("frame")
+                    if value is not None and threshold > 0 and isinstance(frame, int):
+                        v.off_event = (frame, value / threshold)
             detail = message.get("reason") or message.get("message") or ""
             frame = message.get("frame")
             at = f" frame {frame}" if frame is not None else ""
@@ -181,6 +187,8 @@ class WatchState:
         if view.off_manifold_recent(now):
             ratio = view.fit_ratio()
             frame = fit.get("last_off_manifold_frame")
+            if view.off_event is not None and view.off_event[0] == frame:
+                ratio = view.off_event[1]  # the flagged frame's own fit, from its event
             size = f"fit {ratio:.1f}x the threshold" if ratio is not None else "fit error high"
             return Health(OFF_MANIFOLD, f"frame {frame}: {size}")
         fps = _number(t.get("input_fps"))

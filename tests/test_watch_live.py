@@ -179,3 +179,8 @@ def test_states_follow_the_messages() -> None:
                                                       "last_off_manifold_frame": 12}}, now=11.4)
     health = state.health(view, 11.5)
     assert health.state == "off-manifold" and "2.5x the threshold" in health.reason
+    # The flagged frame's own fit from its event, not the latest frame's (adaptive: on the max)
+    state.add({"type": "event", "kind": "off_manifold", "stream": "a", "frame": 12, "rms": 0.01,
+               "max": 0.03, "threshold": 0.006, "threshold_on": "max"}, now=11.45)
+    health = state.health(view, 11.5)
+    assert health.reason == "frame 12: fit 5.0x the threshold"
