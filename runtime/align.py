@@ -244,6 +244,13 @@ def fit_rigid_batch(source: np.ndarray, target: np.ndarray | StableTarget, *,
     second = np.einsum("bnj,bnj->b", src, src) / n
     var_s = second - np.einsum("bj,bj->b", mu_s, mu_s)
     var_s[var_s <= 1e-12 * second] = 0.0  # cancellation residue: the points coincide
+    return _umeyama_batch(cov, mu_s, var_s, tgt.mean, tgt.var, scale)
+
+
+def _umeyama_batch(cov: np.ndarray, mu_s: np.ndarray, var_s: np.ndarray, mu_t: np.ndarray,
+                   var_t: np.ndarray | float, scale: bool) -> RigidBatch:
+    """Umeyama's closed form per frame from cov (B, 3, 3) = (1/N) Σ (t - μt)(s - μs)^T, the
+    source means (B, 3) and variances (B,), the target means ((B, 3) or (3,)) and variances."""
     u, d, vt = np.linalg.svd(cov)
     rotation = np.matmul(u, vt)
     # Reflection correction (Umeyama eq. 39-40): flip the weakest axis where U V^T reflects.
@@ -260,13 +267,34 @@ def fit_rigid_batch(source: np.ndarray, target: np.ndarray | StableTarget, *,
             raise AlignError(f"stable vertices coincide in frame {int(np.argmin(var_s))}; "
                              "scale is undefined")
         s = trace_ds / var_s
-        mse = tgt.var - trace_ds**2 / var_s
+        mse = var_t - trace_ds**2 / var_s
         rotated *= s[:, None]
     else:
-        s = np.ones(src.shape[0])
-        mse = tgt.var + var_s - 2.0 * trace_ds
-    translation = tgt.mean - rotated  # μt - s R μs
+        s = np.ones(cov.shape[0])
+        mse = var_t + var_s - 2.0 * trace_ds
+    translation = mu_t - rotated  # μt - s R μs
     return RigidBatch(rotation, translation, s, np.maximum(mse, 0.0))
+
+
+def fit_rigid_pairs(source: np.ndarray, target: np.ndarray, *, scale: bool = False
+                    ) -> RigidBatch:
+    """Least-squares ``target[b] ≈ s R source[b] + t`` per frame, each frame with its own target
+    (Umeyama 1991): source, target (B, N, 3), N >= 3. The realignment's fit, where the target is
+    each frame's solved mesh rather than the neutral."""
+    src = np.asarray(source, dtype=np.float64)
+    tgt = np.asarray(target, dtype=np.float64)
+    if src.ndim != 3 or src.shape != tgt.shape or src.shape[1] < 3 or src.shape[2] != 3:
+        raise AlignError(f"source and target must both be (B, N >= 3, 3), got {src.shape} and "
+                         f"{tgt.shape}")
+    n = src.shape[1]
+    mu_s, mu_t = src.mean(axis=1), tgt.mean(axis=1)
+    ct = tgt - mu_t[:, None]
+    cov = np.matmul(ct.transpose(0, 2, 1), src) / n  # Σ (t - μt) s^T, as in fit_rigid_batch
+    second = np.einsum("bnj,bnj->b", src, src) / n
+    var_s = second - np.einsum("bj,bj->b", mu_s, mu_s)
+    var_s[var_s <= 1e-12 * second] = 0.0
+    var_t = np.einsum("bnj,bnj->b", ct, ct) / n
+    return _umeyama_batch(cov, mu_s, var_s, mu_t, var_t, scale)
 
 
 def fit_rigid(source: np.ndarray, target: np.ndarray, *, scale: bool = False) -> RigidTransform:

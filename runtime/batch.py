@@ -46,6 +46,7 @@ from rigcast.runtime.solve_core import (
     frame_fit_error,
     infer,
     open_model,
+    realign,
     stabilise_for,
     stabilise_frames,
 )
@@ -228,22 +229,27 @@ class BatchSolver:
         fit_rms = np.full(t, np.nan, np.float32)
         fit_max = np.full(t, np.nan, np.float32)
         model = self.model
+        passes = settings.realign
 
         def solve_chunk(i0: int) -> RigidBatch | None:
             chunk = verts[i0 : i0 + bs]
             _check_finite(chunk, i0)
             inputs, rigid = stabilise_frames(model, chunk, stabilise=stabilise,
                                              scale=settings.stabilise_scale)
+            try:
+                solved = infer(model, inputs, i0)
+                if rigid is not None and passes:
+                    solved, rigid = realign(model, chunk, solved, rigid, passes=passes,
+                                            scale=settings.stabilise_scale, first_frame=i0)
+            except FloatingPointError as exc:
+                raise BatchError(str(exc)) from None
+            raw[i0 : i0 + bs] = solved
             if rigid is not None and fits is not None:
                 align_rms[i0 : i0 + bs] = rigid.rms
                 for mine, part in zip((fits.rotation, fits.translation, fits.scale, fits.mse),
                                       (rigid.rotation, rigid.translation, rigid.scale, rigid.mse),
                                       strict=True):
                     mine[i0 : i0 + bs] = part
-            try:
-                raw[i0 : i0 + bs] = infer(model, inputs, i0)
-            except FloatingPointError as exc:
-                raise BatchError(str(exc)) from None
             return rigid
 
         def predict(controls: np.ndarray) -> np.ndarray:

@@ -92,6 +92,10 @@ class StreamConfig:
         "remove rigid head motion using the bundle's stable vertices; default: only when the "
         "build found a rigid region on the rig (rigcast inspect shows it)", None)
     stabilise_scale: bool = _flag("also remove uniform scale when stabilising (Umeyama)", False)
+    realign: int = _flag(
+        "stabilised solves: fit each frame's rigid motion again on every vertex against its "
+        "solved mesh and solve again, this many times (sensor noise on the stable vertices "
+        "turns the first fit; each pass costs a forward pass and a second solve per frame)", 1)
     off_manifold_threshold: float | None = _flag(
         "a fixed fit RMS (mesh units) above which a frame is off-manifold; default: the "
         "adaptive rule (running median + 6 MAD of the worst-vertex error)", None
@@ -119,6 +123,10 @@ class StreamConfig:
         non_negative(self.beta, f"{where}.beta")
         if self.off_manifold_threshold is not None:
             positive(self.off_manifold_threshold, f"{where}.off_manifold_threshold")
+        if (isinstance(self.realign, bool) or not isinstance(self.realign, int)
+                or not 0 <= self.realign <= 5):
+            raise ConfigError(f"{where}.realign must be an integer in 0..5, got "
+                              f"{self.realign!r}")
         for g in self.groups:
             positive(g.min_cutoff, f"{where}.groups.{g.group}.min_cutoff")
             positive(g.d_cutoff, f"{where}.groups.{g.group}.d_cutoff")

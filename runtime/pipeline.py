@@ -37,6 +37,7 @@ from rigcast.runtime.solve_core import (
     frame_fit_error,
     infer,
     load_stream_model,
+    realign,
     rms_or_nan,
     stabilise_for,
     stabilise_frames,
@@ -158,6 +159,11 @@ class StreamState:
                                          scale=cfg.stabilise_scale, inputs=self._inputs)
         t1 = time.perf_counter_ns()
         solved = infer(model, inputs, mesh.frame)
+        passes = cfg.realign
+        if rigid is not None and passes:
+            solved, rigid = realign(model, mesh.vertices[None], solved, rigid, passes=passes,
+                                    scale=cfg.stabilise_scale, first_frame=mesh.frame,
+                                    inputs=self._inputs)
         t2 = time.perf_counter_ns()
         self._t[0] = mesh.t_send_ns
         self._frame[0] = mesh.frame

@@ -26,7 +26,13 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-from rigcast.runtime.align import RigidBatch, StableTarget, fit_rigid_batch, stable_target
+from rigcast.runtime.align import (
+    RigidBatch,
+    StableTarget,
+    fit_rigid_batch,
+    fit_rigid_pairs,
+    stable_target,
+)
 from rigcast.runtime.bundle import Bundle, BundleError, load_bundle
 from rigcast.runtime.config import StreamConfig
 from rigcast.runtime.inference import ForwardModel, InverseModel
@@ -139,6 +145,28 @@ def stabilise_frames(model: SolveModel, frames: np.ndarray, *, stabilise: bool, 
     rigid = (fit_rigid_batch(np.take(frames, bundle.stable_indices, axis=1), model.stable_target,
                              scale=scale) if stabilise else None)
     return gather_inputs(frames, model.inverse.point_indices, rigid, inputs), rigid
+
+
+def realign(model: SolveModel, frames: np.ndarray, solved: np.ndarray, rigid: RigidBatch, *,
+            passes: int, scale: bool, first_frame: int = 0, inputs: np.ndarray | None = None
+            ) -> tuple[np.ndarray, RigidBatch]:
+    """frames (B, V, 3) float32 as received; solved (B, C) their controls after a stabilised
+    solve; rigid their stabilisation -> (controls (B, C), the frames' rigid fits).
+
+    Each pass fits, on every vertex, the rigid motion that maps each frame onto the forward
+    model's mesh for its solved controls (Umeyama 1991 with a per-frame target), and solves
+    again from the frame moved by it: the deformation is now explained, so every vertex can
+    steady the fit, not only the stable ones. On the demo face with 0.1-0.2 % of D sensor
+    noise one pass took the solve's error against the clean mesh from 0.98x to 0.76x that of
+    per-frame non-linear least squares (0.71x for the same take solved unstabilised). The
+    returned fits keep the stable vertices' residual (``mse``) of the first: it measures the
+    stabilisation, as before. ``inputs`` (B, P, 3) float32 receives the last solve points."""
+    moved = rigid
+    for _ in range(passes):
+        moved = fit_rigid_pairs(frames, model.forward.evaluate(solved), scale=scale)
+        points = gather_inputs(frames, model.inverse.point_indices, moved, inputs)
+        solved = infer(model, points, first_frame)
+    return solved, RigidBatch(moved.rotation, moved.translation, moved.scale, rigid.mse)
 
 
 def infer(model: SolveModel, inputs: np.ndarray, first_frame: int = 0) -> np.ndarray:
