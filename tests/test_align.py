@@ -172,7 +172,8 @@ def test_batched_fit_agrees_with_the_naive_fit_frame_by_frame(seed: int, with_sc
 def test_per_frame_target_fit_agrees_with_the_naive_fit(seed: int, with_scale: bool,
                                                         noise: float) -> None:
     """fit_rigid_pairs (each frame its own target: the realignment's fit) against the
-    loop-based twin frame by frame, residual included."""
+    loop-based twin frame by frame, residual included; float32 frames are fitted in float32
+    products, so to float32's precision."""
     rng = np.random.default_rng(seed)
     targets = rng.normal(size=(3, 50, 3))
     src = np.stack([_random_transform(rng, with_scale).inverse().apply(t)
@@ -180,12 +181,13 @@ def test_per_frame_target_fit_agrees_with_the_naive_fit(seed: int, with_scale: b
     fast = fit_rigid_pairs(src, targets, scale=with_scale)
     for b in range(3):
         naive = fit_rigid_naive(src[b], targets[b], scale=with_scale)
-        np.testing.assert_allclose(fast.rotation[b], naive.rotation, atol=1e-8)
-        np.testing.assert_allclose(fast.translation[b], naive.translation, atol=1e-6)
-        assert fast.scale[b] == pytest.approx(naive.scale, rel=1e-8)
+        np.testing.assert_allclose(fast.rotation[b], naive.rotation, atol=1e-5)
+        np.testing.assert_allclose(fast.translation[b], naive.translation, atol=1e-4)
+        assert fast.scale[b] == pytest.approx(naive.scale, rel=1e-5)
         moved = naive.apply(src[b].astype(np.float64))
         direct = float(np.sqrt(((moved - targets[b]) ** 2).sum(axis=1).mean()))
-        assert fast.rms[b] == pytest.approx(direct, rel=1e-5, abs=1e-6)
+        # the closed-form residual of float32 moments (the realignment keeps the stable fit's)
+        assert fast.rms[b] == pytest.approx(direct, rel=1e-4, abs=1e-3)
     with pytest.raises(AlignError, match="both be"):
         fit_rigid_pairs(src, targets[:2])
 
