@@ -46,7 +46,7 @@ from rigcast.export.build_config import (
 from rigcast.export.dataset import sample_dataset
 from rigcast.export.executor import make_executor
 from rigcast.export.rig import Rig
-from rigcast.export.sampling import SamplingConfig, sample_controls
+from rigcast.export.sampling import SamplingConfig, anchor_poses, sample_controls
 from rigcast.runtime.bundle import Bundle, BundleError, load_bundle
 
 log = logging.getLogger(__name__)
@@ -173,6 +173,8 @@ def _build(
         seed=config.seed + _CHECK_SEED_OFFSET,
     )
     check_x = rig.evaluate(check_c)
+    anchor_c = anchor_poses(rig.schema)
+    anchors = (anchor_c, rig.evaluate(anchor_c))
     timings["sample"] = time.perf_counter() - t
     log.info("sampled %d poses in %.1fs", len(dataset), timings["sample"])
 
@@ -187,6 +189,7 @@ def _build(
         schema.upper,
         config.forward,
         progress,
+        anchors,
     )
     timings["forward"] = time.perf_counter() - t
 

@@ -231,6 +231,18 @@ def sample_controls(schema: ControlSchema, n: int, *, sparsity: SparsityConfig, 
     return out.astype(np.float32)
 
 
+def anchor_poses(schema: ControlSchema) -> np.ndarray:
+    """The rest pose, then each control alone at the bound farthest from its default:
+    (C + 1, C) float32. The forward model's linear layer passes through these exactly
+    (``train_forward.fit_anchored``), so every control alone is what the rig makes of it."""
+    d = np.asarray(schema.defaults, np.float32)
+    lo, hi = np.asarray(schema.lower, np.float32), np.asarray(schema.upper, np.float32)
+    out = np.tile(d, (len(schema) + 1, 1))
+    far = np.where(hi - d >= d - lo, hi, lo)
+    out[np.arange(1, len(schema) + 1), np.arange(len(schema))] = far
+    return out
+
+
 def sample_chunk(schema: ControlSchema, config: SamplingConfig, index: int) -> np.ndarray:
     """(rows, C) float32 controls of chunk ``index``: a function of (config, index) only."""
     return sample_controls(

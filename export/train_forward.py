@@ -47,6 +47,12 @@ class ForwardConfig:
     # A time budget (None: the fixed schedule, so a build gives the same bundle on a busy
     # machine as on a quiet one). When set, the schedule is cut to fit and the log says so.
     max_seconds: float | None = None
+    # "anchored": the linear layer is each control's own effect alone (through the rest pose
+    # and each control at its far bound, from ``anchors``); "lsq": least squares on the samples.
+    # Least squares folds the average of every corrective a control takes part in into its
+    # own shape, so alone the forward model overstated it: on the demo face five expressions
+    # came back 6-8 % short of a full activation, and the fit preferred that to the truth.
+    linear: str = "anchored"
 
 
 
@@ -110,6 +116,20 @@ def fit_linear(
 
 
 
+def fit_anchored(u: np.ndarray, offsets: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The affine map through anchor poses: u (C + 1, C) normalised controls, the rest pose
+    then each control alone moved from it (``sampling.anchor_poses``); offsets (C + 1, D).
+    -> weight (C, D), bias (D,) with [u_i 1] [W; b] = offsets_i exactly: W_c is control c's own
+    effect per unit of u, b makes the rest pose exact. A control that does not move gets 0."""
+    d = u[0].astype(np.float64)
+    step = np.diagonal(u[1:]).astype(np.float64) - d  # (C,) how far each anchor moved
+    delta = offsets[1:].astype(np.float64) - offsets[0].astype(np.float64)  # (C, D)
+    safe = np.abs(step) > 1e-12
+    weight = np.where(safe[:, None], delta / np.where(safe, step, 1.0)[:, None], 0.0)
+    bias = offsets[0].astype(np.float64) - d @ weight
+    return weight.astype(np.float32), bias.astype(np.float32)
+
+
 def train_forward(
     controls: np.ndarray,
     vertices: np.ndarray,
@@ -118,10 +138,14 @@ def train_forward(
     upper: np.ndarray,
     config: ForwardConfig = ForwardConfig(),
     progress: Progress | None = None,
+    anchors: tuple[np.ndarray, np.ndarray] | None = None,
 ) -> tuple[ForwardApproximator, ForwardReport]:
     """Fit a ForwardApproximator on samples.
 
-    controls: (N, C); vertices: (N, V, 3); neutral: (V, 3); lower, upper: (C,).
+    controls: (N, C); vertices: (N, V, 3); neutral: (V, 3); lower, upper: (C,); anchors:
+    (controls (C + 1, C) from ``sampling.anchor_poses``, their vertices (C + 1, V, 3)) for the
+    anchored linear layer (least squares without them). The anchors also join the samples the
+    correction trains on.
     """
     t0 = time.perf_counter()
     torch.set_num_threads(TORCH_THREADS)
@@ -138,7 +162,14 @@ def train_forward(
     flat_neutral = np.asarray(neutral, np.float32).reshape(1, v * 3)
     offs = (vertices[train_idx].reshape(-1, v * 3) - flat_neutral).astype(np.float32)
     u = u_all[train_idx]
-    weight, bias = fit_linear(u, offs)
+    if anchors is not None and config.linear == "anchored":
+        ua = ((np.asarray(anchors[0], np.float32) - lo) / (hi - lo)).astype(np.float32)
+        oa = (np.asarray(anchors[1], np.float32).reshape(-1, v * 3) - flat_neutral)
+        weight, bias = fit_anchored(ua, oa)
+        u = np.concatenate([u, ua])
+        offs = np.concatenate([offs, oa.astype(np.float32)])
+    else:
+        weight, bias = fit_linear(u, offs)
     offs -= u @ weight + bias  # residual, in place
     rng = np.random.default_rng(config.seed)
     sub = rng.choice(offs.shape[0], size=min(offs.shape[0], 6000), replace=False)
