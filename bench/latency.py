@@ -168,7 +168,7 @@ def measure(vertices: int, args: argparse.Namespace, work: Path) -> dict[str, An
     ready = work / f"server-{vertices}.ready"
     cmd = [sys.executable, "-m", "rigcast.runtime.serve_main", "--bundle", f"{STREAM}={bundle}",
            "--input", "tcp://127.0.0.1:*", "--output", "tcp://127.0.0.1:*", "--ready-file",
-           str(ready), "--fit-error", "after_publish", "--telemetry-hz", "10",
+           str(ready), "--fit-error-schedule", "after_publish", "--telemetry-hz", "10",
            "--window", "1000", "--log-level", "WARNING",
            "--busy-poll-us", str(args.busy_poll_us)]
     if args.curve_keys is not None:

@@ -66,7 +66,7 @@ def soak(args: argparse.Namespace, work: Path) -> dict[str, Any]:
     ready_file = work / "ready.json"
     cmd = [sys.executable, "-m", "rigcast.runtime.serve_main", "--input", "tcp://127.0.0.1:*",
            "--output", "tcp://127.0.0.1:*", "--ready-file", str(ready_file), "--log-level",
-           "WARNING", "--telemetry-hz", "10", "--fit-error", "after_publish"]
+           "WARNING", "--telemetry-hz", "10", "--fit-error-schedule", "after_publish"]
     for s in streams:
         cmd += ["--bundle", f"{s}={bundle}"]
     proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL)

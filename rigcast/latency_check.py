@@ -212,7 +212,7 @@ def _run(config: CheckConfig, meshes: list[np.ndarray], controls: int, notes: li
             cmd = [sys.executable, "-m", "rigcast.runtime.serve_main", "--bundle",
                    f"{stream}={config.bundle.resolve()}", "--input", "tcp://127.0.0.1:*",
                    "--output", "tcp://127.0.0.1:*", "--ready-file", str(work / "server.json"),
-                   "--fit-error", config.fit_error, "--telemetry-hz", "10", "--window", "1000",
+                   "--fit-error-schedule", config.fit_error, "--telemetry-hz", "10", "--window", "1000",
                    "--log-level", "WARNING"]
             with _process(cmd, work / "server.json", "server", 0, config, notes) as (proc, ends):
                 lat, sent, lost, best, telemetry = _measure_server(ends, meshes, stream, config)
