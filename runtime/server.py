@@ -12,16 +12,14 @@ and a count by reason. Nothing is dropped silently; the next frame after drops c
 
 Off the frame's path: fit errors run between drains while no input waits, the streams in turn,
 each within ``fit_error_max_share`` (runtime/fairness.py). Telemetry ticks and the garbage
-collector's passes run right after a drain, or on a timer when no frames come.
-``busy_poll_us`` > 0 polls the input without sleeping (yielding the CPU) that long after each
-drain, then blocks as usual.
+collector's passes run right after a drain, or on a timer when no frames come. ``busy_poll_us``
+> 0 polls the input without sleeping (yielding the CPU) that long after each drain.
 
 Reload: a ``reload`` request is loaded and checked on a background thread (runtime/reload.py,
 which also decides what may be opened) while frames flow; the model is swapped between frames,
-keeping the filter state. Another vertex count or control schema is refused (ok=false).
-
-Trust: runtime/security.py, runtime/limits.py, runtime/ownership.py. Optional outputs: meshes
-on msh.<stream> (``publish_meshes``), Prometheus metrics (runtime/service_metrics.py).
+keeping the filter state. Another vertex count or control schema is refused (ok=false). Trust:
+security.py, limits.py, ownership.py. Optional: meshes on msh.<stream> (``publish_meshes``),
+Prometheus metrics (service_metrics.py).
 """
 
 from __future__ import annotations
