@@ -5,14 +5,14 @@
 
 Builds (or reuses, cached under DIR/cache) the demo face bundle, makes a synthetic take of the
 real rig with head motion, noise and planted off-manifold frames (2,000 distinct frames tiled to
-``--frames``), and solves it with ``rigcast.runtime.batch`` with the default options (stabilise,
+``--frames``), and solves it with ``rigcast.runtime.solve.batch`` with the default options (stabilise,
 causal One Euro, clamp, fit error in the ``--fit-error`` mode, adaptive off-manifold flags). In
 the same run it measures every fit-error mode, and two baselines on the same frames: the raw
 onnxruntime inverse alone (pre-gathered inputs, same batch size and threads) and the live
 per-frame pipeline one frame at a time. It scores the off-manifold flags against the planted
 frames (of the first 2,000). Prints the figures and writes DIR/batch.json.
 
-``--synthetic`` uses a small hand-built bundle (export/synthetic_bundle.py) instead of the demo
+``--synthetic`` uses a small hand-built bundle (export/bundling/synthetic_bundle.py) instead of the demo
 face, so the script runs in seconds (the bench's smoke test); its figures say nothing about the
 demo rig.
 """
@@ -27,22 +27,22 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from rigcast.runtime import protocol
-from rigcast.runtime.batch import FIT_ERROR_SCOPES, BatchSolver, SolveOptions, all_cores
 from rigcast.runtime.bundle import Bundle, load_bundle
-from rigcast.runtime.config import StreamConfig
-from rigcast.runtime.pipeline import StreamState
-from rigcast.runtime.solve_core import open_model
+from rigcast.runtime.messaging import protocol
+from rigcast.runtime.serve.config import StreamConfig
+from rigcast.runtime.solve.batch import FIT_ERROR_SCOPES, BatchSolver, SolveOptions, all_cores
+from rigcast.runtime.solve.pipeline import StreamState
+from rigcast.runtime.solve.solve_core import open_model
 
-from rigcast.forward_subset import slice_forward_graph
+from rigcast.solving.forward_subset import slice_forward_graph
 
 DISTINCT_FRAMES = 2000
 
 
 def demo_bundle(out: Path) -> tuple[Bundle, Any, float]:
     """The demo face bundle from the build's cache under ``out/cache``; (bundle, rig, seconds)."""
-    from rigcast.export.build import BuildConfig, build_bundle
-    from rigcast.export.demo_rigs import tamsin_face
+    from rigcast.export.bundling.build import BuildConfig, build_bundle
+    from rigcast.export.rigs.demo_rigs import tamsin_face
 
     cache = out / "cache"
     start = time.perf_counter()
@@ -53,7 +53,7 @@ def demo_bundle(out: Path) -> tuple[Bundle, Any, float]:
 
 def synthetic_bundle(out: Path) -> tuple[Bundle, Any, float]:
     """A small synthetic bundle (no training): 900 vertices, 8 controls, exact inverse."""
-    from rigcast.export.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
+    from rigcast.export.bundling.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
 
     start = time.perf_counter()
     path = build_synthetic_bundle(out / "synthetic.rcb", vertices=900, controls=8, inputs=120,
@@ -65,7 +65,7 @@ def synthetic_bundle(out: Path) -> tuple[Bundle, Any, float]:
 def make_take(rig: Any, distinct: int, frames: int, fps: float = 60.0
               ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """(vertices (frames, V, 3), times (frames,), planted off-manifold (distinct,) bool)."""
-    from rigcast.export.take_synth import synth_take
+    from rigcast.export.quality.take_synth import synth_take
 
     take = synth_take(rig, frames=distinct, fps=fps, seed=3, head_motion=True,
                       off_manifold_frames=max(1, distinct // 150))
@@ -75,7 +75,7 @@ def make_take(rig: Any, distinct: int, frames: int, fps: float = 60.0
 
 
 def per_frame_fps(bundle: Bundle, verts: np.ndarray, times: np.ndarray) -> float:
-    """The live server's per-frame code (runtime/pipeline.py StreamState: the solve core on a
+    """The live server's per-frame code (runtime/solve/pipeline.py StreamState: the solve core on a
     batch of one, encoding the controls message, then the fit error on every vertex as the
     server computes it after the publish), 1 thread, no sockets."""
     state = StreamState(StreamConfig(stream="bench"), open_model(bundle, label="bench",
@@ -113,7 +113,7 @@ def main() -> None:
     if args.synthetic:
         bundle, rig, build_s = synthetic_bundle(args.out)
     elif args.bundle:
-        from rigcast.export.demo_rigs import tamsin_face
+        from rigcast.export.rigs.demo_rigs import tamsin_face
 
         bundle, rig, build_s = load_bundle(args.bundle), tamsin_face(), 0.0
     else:

@@ -5,10 +5,10 @@
 DIR is a ``bench/quality.py --out DIR`` run: its bundles are reused, and each rig's take is the
 quality report's (same generator, seed and noise). For every (min_cutoff, beta) pair the bundle's
 inverse solves the noisy take, the One Euro filter runs as on the live server (beta per unit of
-each control's range, runtime/pipeline.py make_filter), and the filtered controls are scored
+each control's range, runtime/solve/pipeline.py make_filter), and the filtered controls are scored
 through the REAL rig against the clean performance: mean vertex error (the cost of lag) and
 jitter (RMS second difference per unit of range), both also as ratios to the unfiltered solve.
-The server's defaults (runtime/config.py) were chosen from this table. Writes
+The server's defaults (runtime/serve/config.py) were chosen from this table. Writes
 OUT/filter_grid.json and OUT/filter_grid.png (error ratio against jitter ratio, one curve per
 min_cutoff) when --out is given.
 """
@@ -28,11 +28,11 @@ from quality import (  # bench/quality.py, beside this file
     take_weights,
     talk_control,
 )
-from rigcast.export import metrics
-from rigcast.export.demo_rigs import DEMO_RIGS
-from rigcast.export.take_synth import synth_take
+from rigcast.export.quality import metrics
+from rigcast.export.quality.take_synth import synth_take
+from rigcast.export.rigs.demo_rigs import DEMO_RIGS
 from rigcast.runtime.bundle import load_bundle
-from rigcast.runtime.config import filter_defaults
+from rigcast.runtime.serve.config import filter_defaults
 
 
 def run_rig(name: str, bundles: Path, cutoffs: list[float], betas: list[float]) -> dict[str, Any]:

@@ -41,9 +41,9 @@ from typing import Any
 import msgpack
 import numpy as np
 import zmq
-from rigcast.export.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
-from rigcast.runtime import protocol
-from rigcast.runtime.keys import ClientCurve, create_key_pair
+from rigcast.export.bundling.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
+from rigcast.runtime.messaging import protocol
+from rigcast.runtime.trust.keys import ClientCurve, create_key_pair
 
 V, C = 300, 8
 BATCH = 200
@@ -240,7 +240,7 @@ def telemetry(ctx: zmq.Context, ready: dict[str, str], curve: ClientCurve | None
 def run_mode(curve_on: bool, count: int, work: Path, bundle: Path, keys: Path,
              seed: int) -> dict[str, Any]:
     ready_file = work / f"ready-{curve_on}.json"
-    cmd = [sys.executable, "-m", "rigcast.runtime.serve_main", "--input", "tcp://127.0.0.1:*",
+    cmd = [sys.executable, "-m", "rigcast.runtime.serve.serve_main", "--input", "tcp://127.0.0.1:*",
            "--output", "tcp://127.0.0.1:*", "--ready-file", str(ready_file), "--bundle",
            f"fz={bundle}", "--bundle", f"real={bundle}", "--passthrough", "--log-level",
            "WARNING", "--reload-min-interval-s", "0.5"]

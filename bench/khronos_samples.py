@@ -25,7 +25,7 @@ from pathlib import Path
 
 import numpy as np
 
-from rigcast.takes import read_take
+from rigcast.readers.takes import read_take
 
 DATA = Path(__file__).resolve().parent.parent / "tests" / "data" / "khronos"
 # The bounds the tests use (tests/test_gltf_samples.py): the joints each animation moves.

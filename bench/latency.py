@@ -1,7 +1,7 @@
 """End-to-end latency of the live server: a real server process, a real client process.
 
 For each vertex count (default 5,000 and 20,000) this builds a synthetic bundle of that size
-(export/synthetic_bundle.py: a two-layer MLP inverse on K=256 input vertices, 50 linear
+(export/bundling/synthetic_bundle.py: a two-layer MLP inverse on K=256 input vertices, 50 linear
 blendshapes forward), then measures, in one run:
 
 1. the transport floor: the same sockets and message sizes against an echo process that does no
@@ -17,13 +17,13 @@ blendshapes forward), then measures, in one run:
    server's own counters (telemetry before and after) say how many frames it received, processed,
    dropped as superseded and ignored as stale, so sent, received and published can be compared.
 
-``--busy-poll-us N`` gives the same spin-then-block wait (runtime.sockets.wait_for_input) to the
+``--busy-poll-us N`` gives the same spin-then-block wait (runtime.messaging.sockets.wait_for_input) to the
 server, the echo process and the client's wait for controls, so floor and server stay comparable.
 
 By default the server (or echo) process is pinned to CPU 0 and the client to CPU 1 with
 os.sched_setaffinity, so they do not steal each other's core. ``--curve`` turns CurveZMQ
 (RFC 26) on for the server, the echo process and the client alike (fresh keys made with
-runtime/keys.py), so the floor and the server are measured with the same encryption.
+runtime/trust/keys.py), so the floor and the server are measured with the same encryption.
 ``--out DIR`` writes DIR/latency.json as {"runs": [{...}, ...]}.
 
     python bench/latency.py --duration 60 --out bench/out
@@ -42,11 +42,11 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from rigcast.export.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
-from rigcast.runtime.keys import ClientCurve, create_key_pair
+from rigcast.export.bundling.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
+from rigcast.runtime.trust.keys import ClientCurve, create_key_pair
 
 # The measuring code is the package's, shared with `rigcast latency-check`.
-from rigcast.latency_probe import Client, echo_main, ms_percentiles
+from rigcast.live.latency_probe import Client, echo_main, ms_percentiles
 
 CONTROLS, INPUTS, STABLE, HIDDEN, SEED = 50, 256, 128, 256, 7
 STREAM = "bench"
@@ -166,7 +166,7 @@ def measure(vertices: int, args: argparse.Namespace, work: Path) -> dict[str, An
         echo.wait()
     # The real server.
     ready = work / f"server-{vertices}.ready"
-    cmd = [sys.executable, "-m", "rigcast.runtime.serve_main", "--bundle", f"{STREAM}={bundle}",
+    cmd = [sys.executable, "-m", "rigcast.runtime.serve.serve_main", "--bundle", f"{STREAM}={bundle}",
            "--input", "tcp://127.0.0.1:*", "--output", "tcp://127.0.0.1:*", "--ready-file",
            str(ready), "--fit-error-schedule", "after_publish", "--telemetry-hz", "10",
            "--window", "1000", "--log-level", "WARNING",

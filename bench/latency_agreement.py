@@ -1,6 +1,6 @@
 """`rigcast latency-check` against bench/latency.py, back to back on the same bundle and rate.
 
-Both measure with rigcast.latency_probe's client and echo; they differ in set-up (the bench's
+Both measure with rigcast.live.latency_probe's client and echo; they differ in set-up (the bench's
 client is a third process, the command sends from its own) and in the frames (the bench's
 synthetic rig poses, the command's forward-model poses). This script builds the bench's synthetic
 bundle, runs ``bench/latency.py --vertices V`` and then ``rigcast latency-check`` on that bundle
@@ -21,7 +21,7 @@ import sys
 import tempfile
 from pathlib import Path
 
-from rigcast.export.synthetic_bundle import build_synthetic_bundle
+from rigcast.export.bundling.synthetic_bundle import build_synthetic_bundle
 
 BENCH = Path(__file__).with_name("latency.py")
 # bench/latency.py's bundle and rate (its module constants).

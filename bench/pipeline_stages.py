@@ -4,7 +4,7 @@
                                     [--out DIR]
 
 For each vertex count it builds the same synthetic bundle as bench/latency.py and runs the
-server's per-frame code (protocol decode, then runtime/pipeline.py StreamState.process, the solve
+server's per-frame code (protocol decode, then runtime/solve/pipeline.py StreamState.process, the solve
 core on a batch of one: stabilise, infer (with the bundle's refinement steps unless
 ``--no-refine``), filter, clamp, publish with the head pose on a PUB socket with no subscriber)
 back to back, the first 500 frames being warm-up. It prints per-stage medians and p99 in
@@ -28,11 +28,11 @@ from typing import Any
 import numpy as np
 import zmq
 from latency import CONTROLS, HIDDEN, INPUTS, SEED, STABLE  # bench/latency.py, beside this file
-from rigcast.export.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
-from rigcast.runtime import protocol
-from rigcast.runtime.config import StreamConfig
-from rigcast.runtime.pipeline import StreamState, load_stream_model
-from rigcast.runtime.telemetry import STAGES
+from rigcast.export.bundling.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
+from rigcast.runtime.messaging import protocol
+from rigcast.runtime.serve.config import StreamConfig
+from rigcast.runtime.serve.telemetry import STAGES
+from rigcast.runtime.solve.pipeline import StreamState, load_stream_model
 
 WARMUP = 500
 

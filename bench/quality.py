@@ -7,14 +7,14 @@ For each rig (the built-in ones, then N zoo rigs whose seeds are drawn afresh ea
 os.urandom and printed, so that no one can tune to a fixed set) it builds a bundle with the
 default build (timed), then solves, with every method, and scores THROUGH THE REAL RIG:
 
-- the take: a synthetic performance (export/take_synth.py), 600 frames at 60 fps, sensor noise
+- the take: a synthetic performance (export/quality/take_synth.py), 600 frames at 60 fps, sensor noise
   0.15 % of D per coordinate, a correlated wobble, planted off-manifold bumps of 1.5 % of D at
   their peak; ``M_mean_err`` is against the clean mesh. A second take with rigid head motion
   scores off-manifold detection on rigs with a rigid region;
 - clean poses: 1,000 noise-free held-out sparse poses (``M_clean_*``, ``M_false_active``);
-- recoverability: each control alone at 25-100 % of its range (export/fidelity.py).
+- recoverability: each control alone at 25-100 % of its range (export/quality/fidelity.py).
 
-Methods: ``inverse`` (runtime.batch.BatchSolver with SolveOptions(filter="none"): the solve
+Methods: ``inverse`` (runtime.solve.batch.BatchSolver with SolveOptions(filter="none"): the solve
 exactly as users get it, stabilisation at the options' default), ``inverse_filtered`` (the same
 with the default causal filter; take only), ``lsq`` (lsq_linear on the rig linearised at rest),
 ``nlls`` (bounded per-frame non-linear least squares through the real rig, warm-started), and
@@ -43,20 +43,20 @@ from typing import Any
 
 import numpy as np
 import quality_report as qr  # bench/quality_report.py, beside this file
-from rigcast.export import fidelity, metrics
-from rigcast.export.baselines import linearise_rig, optimise_frames, solve_lsq, solve_nlls
-from rigcast.export.demo_rigs import DEMO_RIGS
-from rigcast.export.rig import Rig
-from rigcast.export.sampling import SparsityConfig, sample_controls
-from rigcast.export.take_synth import SynthTake, synth_take
-from rigcast.export.zoo import make_zoo_rig
-from rigcast.runtime.batch import BatchSolver, SolveOptions
+from rigcast.export.data.sampling import SparsityConfig, sample_controls
+from rigcast.export.quality import fidelity, metrics
+from rigcast.export.quality.baselines import linearise_rig, optimise_frames, solve_lsq, solve_nlls
+from rigcast.export.quality.take_synth import SynthTake, synth_take
+from rigcast.export.rigs.demo_rigs import DEMO_RIGS
+from rigcast.export.rigs.rig import Rig
+from rigcast.export.rigs.zoo import make_zoo_rig
 from rigcast.runtime.bundle import Bundle, load_bundle
-from rigcast.runtime.config import filter_defaults
-from rigcast.runtime.inference import ForwardModel
-from rigcast.runtime.one_euro import OneEuroFilter, OneEuroParams
-from rigcast.runtime.refine import RefineSettings
 from rigcast.runtime.schema import ControlSchema
+from rigcast.runtime.serve.config import filter_defaults
+from rigcast.runtime.solve.batch import BatchSolver, SolveOptions
+from rigcast.runtime.solve.inference import ForwardModel
+from rigcast.runtime.solve.one_euro import OneEuroFilter, OneEuroParams
+from rigcast.runtime.solve.refine import RefineSettings
 
 log = logging.getLogger("bench.quality")
 
@@ -95,8 +95,8 @@ class Solved:
 
 def _quick_config() -> Any:
     """Tiny training for a smoke run; fields the training configs no longer have are skipped."""
-    from rigcast.export.build import BuildConfig
-    from rigcast.export.train import ForwardConfig, InverseConfig
+    from rigcast.export.bundling.build import BuildConfig
+    from rigcast.export.training.train import ForwardConfig, InverseConfig
 
     def make(cls: Any, **kw: Any) -> Any:
         names = {f.name for f in dataclasses.fields(cls)}
@@ -112,7 +112,7 @@ def build(rig: Rig, path: Path, quick: bool, cache: Path | None = None
     """A bundle from the default build (tiny training with ``quick``): (bundle path, torch
     forward model or None, the build's forward % of D, build seconds). With ``cache``, a build
     of the same rig and settings is reused (its seconds are then the original build's)."""
-    from rigcast.export.build import build_bundle
+    from rigcast.export.bundling.build import build_bundle
 
     t0 = time.perf_counter()
     config = _quick_config() if quick else None
@@ -163,8 +163,8 @@ def solve_inverse(bundle: Bundle, observed: np.ndarray) -> Solved:
 def filter_controls(controls: np.ndarray, times_s: np.ndarray, schema: ControlSchema,
                     settings: tuple[float, float, float] | None = None) -> np.ndarray:
     """(T, C) -> (T, C) through a fresh One Euro filter built the way the server builds it
-    (runtime/pipeline.py make_filter: beta per unit of each control's range). ``settings`` is
-    (min_cutoff, beta, d_cutoff), by default the server's (runtime/config.py filter_defaults)."""
+    (runtime/solve/pipeline.py make_filter: beta per unit of each control's range). ``settings`` is
+    (min_cutoff, beta, d_cutoff), by default the server's (runtime/serve/config.py filter_defaults)."""
     params = OneEuroParams.uniform(len(schema), *(settings or filter_defaults()))
     filt = OneEuroFilter(params.per_unit_range(schema.upper - schema.lower))
     out = [filt(c, round(t * 1e9), frame=i)

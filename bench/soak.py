@@ -29,8 +29,8 @@ from typing import Any
 
 import numpy as np
 import zmq
-from rigcast.export.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
-from rigcast.runtime import protocol
+from rigcast.export.bundling.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
+from rigcast.runtime.messaging import protocol
 
 CONTROLS, INPUTS, STABLE, SEED = 50, 256, 128, 7
 
@@ -64,7 +64,7 @@ def soak(args: argparse.Namespace, work: Path) -> dict[str, Any]:
                                     fit_rms=10.0, name="soak")
     streams = [f"actor{i + 1}" for i in range(args.streams)]
     ready_file = work / "ready.json"
-    cmd = [sys.executable, "-m", "rigcast.runtime.serve_main", "--input", "tcp://127.0.0.1:*",
+    cmd = [sys.executable, "-m", "rigcast.runtime.serve.serve_main", "--input", "tcp://127.0.0.1:*",
            "--output", "tcp://127.0.0.1:*", "--ready-file", str(ready_file), "--log-level",
            "WARNING", "--telemetry-hz", "10", "--fit-error-schedule", "after_publish"]
     for s in streams:

@@ -2,7 +2,7 @@
 
 import sys
 
-from rigcast.cli import main
+from rigcast.commands.cli import main
 
 # The guard matters: worker processes started with "spawn" (the build's sampling pool) import
 # this module again as __mp_main__, and must not run the command a second time.

@@ -10,7 +10,7 @@ A bundle is a ZIP archive (stored, not compressed) with these members:
                       in the neutral's frame (after head stabilisation);
                       output ``controls`` float32 (N, C), always within the schema's bounds;
 - ``forward.onnx``    input ``controls`` float32 (N, C); output ``vertices`` float32 (N, V, 3);
-- ``refine.onnx``     optional, for the Gauss-Newton steps after the network (runtime/refine.py);
+- ``refine.onnx``     optional, for the Gauss-Newton steps after the network (runtime/solve/refine.py);
                       with it, ``arrays.npz`` holds ``refine_hessian`` (C, C) float64 and the
                       manifest a ``refine`` section. Two forms:
                       * projected (bundles since the all-vertex refinement): ``arrays.npz`` also
@@ -76,7 +76,7 @@ class RefineProjection:
     """What the all-vertex refinement reads: the S vertices it fits (indices (S,) int64) and the
     graph that projects them onto the forward model's linear and residual bases (project_onnx:
     points (N, S, 3) -> projection (N, R), R = C + P, and norm_sq (N,), float64; see
-    runtime/refine.py).
+    runtime/solve/refine.py).
     The projection runs in onnxruntime, whose thread count the caller sets: a small product on
     a BLAS thread pool stalled for milliseconds on a busy 2-core machine."""
 

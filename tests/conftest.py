@@ -17,9 +17,9 @@ from typing import Any
 import numpy as np
 import pytest
 import zmq
-from rigcast.export.synthetic_bundle import SyntheticRig, build_synthetic_bundle, make_synthetic_rig
-from rigcast.runtime.config import ServerConfig, load_config
-from rigcast.runtime.server import Server
+from rigcast.export.bundling.synthetic_bundle import SyntheticRig, build_synthetic_bundle, make_synthetic_rig
+from rigcast.runtime.serve.config import ServerConfig, load_config
+from rigcast.runtime.serve.server import Server
 
 RANDOM_PORT = "tcp://127.0.0.1:*"
 # Tiny rigs: exact least-squares inverse, so meshes of the rig solve to their own controls.
@@ -122,10 +122,10 @@ def peer_for(server: Server) -> Iterator[Peer]:
 @contextlib.contextmanager
 def server_process(args: list[str], tmp_path: Path, timeout_s: float = 30.0
                    ) -> Iterator[tuple[subprocess.Popen[str], dict[str, Any]]]:
-    """``python -m rigcast.runtime.serve_main ARGS`` on random ports; yields (process, ready
+    """``python -m rigcast.runtime.serve.serve_main ARGS`` on random ports; yields (process, ready
     info with the bound endpoints); always terminated and reaped."""
     ready = tmp_path / f"ready-{time.monotonic_ns()}.json"
-    cmd = [sys.executable, "-m", "rigcast.runtime.serve_main", "--input", RANDOM_PORT,
+    cmd = [sys.executable, "-m", "rigcast.runtime.serve.serve_main", "--input", RANDOM_PORT,
            "--output", RANDOM_PORT, "--ready-file", str(ready), *args]
     proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
                             env={**os.environ, "PYTHONUNBUFFERED": "1"})

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from rigcast.runtime.align import (
+from rigcast.runtime.solve.align import (
     AlignError,
     RigidTransform,
     fit_rigid,

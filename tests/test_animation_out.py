@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 from rigcast.runtime.schema import Control, ControlSchema
 
-from rigcast.animation_out import (
+from rigcast.writers.animation_out import (
     JSON_FORMAT,
     AnimationError,
     MorphBasis,
@@ -21,8 +21,8 @@ from rigcast.animation_out import (
     write_csv,
     write_json,
 )
-from rigcast.controls_out import write_controls
-from rigcast.gltf_out import write_gltf
+from rigcast.writers.controls_out import write_controls
+from rigcast.writers.gltf_out import write_gltf
 from tests.gltf_validator import assert_valid, errors, validate
 
 
@@ -233,20 +233,20 @@ def _blendshape_gltf(path: Path) -> Path:
     return path
 
 
-# export/models.py hands a read-only array to torch.as_tensor; torch's warning about it is
-# attributed to export/models.py, so the pyproject filter for torch warnings does not catch it.
-# The same for export/train.py's float(loss) on a tensor that requires grad.
+# export/training/models.py hands a read-only array to torch.as_tensor; torch's warning about it is
+# attributed to export/training/models.py, so the pyproject filter for torch warnings does not catch it.
+# The same for export/training/train.py's float(loss) on a tensor that requires grad.
 @pytest.mark.filterwarnings("ignore:The given NumPy array is not writable")
 @pytest.mark.filterwarnings("ignore:Converting a tensor with requires_grad")
 def test_round_trip_gltf_rig_to_bundle_to_solve(tmp_path: Path) -> None:
-    from rigcast.export.build import BuildConfig, build_bundle
-    from rigcast.export.gltf_rig import GltfRig
-    from rigcast.export.sampling import SparsityConfig
-    from rigcast.export.train import ForwardConfig, InverseConfig
-    from rigcast.runtime.batch import SolveOptions, solve_take
+    from rigcast.export.bundling.build import BuildConfig, build_bundle
+    from rigcast.export.data.sampling import SparsityConfig
+    from rigcast.export.rigs.gltf_rig import GltfRig
+    from rigcast.export.training.train import ForwardConfig, InverseConfig
     from rigcast.runtime.bundle import load_bundle
+    from rigcast.runtime.solve.batch import SolveOptions, solve_take
 
-    from rigcast.animation_out import morph_basis_from_bundle
+    from rigcast.writers.animation_out import morph_basis_from_bundle
 
     rig = GltfRig(_blendshape_gltf(tmp_path / "sheet.glb"))
     assert rig.control_count == ROUND_TRIP_WEIGHTS

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import torch
-from rigcast.export.baselines import (
+from rigcast.export.quality.baselines import (
     BaselineError,
     fd_jacobian,
     linearise_rig,
@@ -14,7 +14,7 @@ from rigcast.export.baselines import (
     solve_lsq_naive,
     solve_nlls,
 )
-from rigcast.export.rig import Rig
+from rigcast.export.rigs.rig import Rig
 from rigcast.runtime.schema import Control, ControlSchema
 from scipy.optimize import lsq_linear
 

@@ -7,9 +7,11 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from rigcast.export.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
-from rigcast.runtime.align import fit_rigid_naive
-from rigcast.runtime.batch import (
+from rigcast.export.bundling.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
+from rigcast.runtime.bundle import Bundle, load_bundle
+from rigcast.runtime.serve.config import GroupFilter, StreamConfig
+from rigcast.runtime.solve.align import fit_rigid_naive
+from rigcast.runtime.solve.batch import (
     BatchError,
     BatchSolver,
     SolveOptions,
@@ -19,13 +21,11 @@ from rigcast.runtime.batch import (
     fit_subset,
     solve_take,
 )
-from rigcast.runtime.bundle import Bundle, load_bundle
-from rigcast.runtime.config import GroupFilter, StreamConfig
-from rigcast.runtime.inference import ForwardModel, InverseModel, open_session
-from rigcast.runtime.one_euro import one_euro_step_naive
-from rigcast.runtime.solve_core import filter_params
+from rigcast.runtime.solve.inference import ForwardModel, InverseModel, open_session
+from rigcast.runtime.solve.one_euro import one_euro_step_naive
+from rigcast.runtime.solve.solve_core import filter_params
 
-from rigcast.forward_subset import slice_forward_graph
+from rigcast.solving.forward_subset import slice_forward_graph
 
 RIG = dict(vertices=300, controls=8, inputs=40, stable=16, seed=0)
 
@@ -215,7 +215,7 @@ def test_fit_subset_reads_inputs_and_stable_plus_a_fixed_sample() -> None:
 def test_subset_fit_error_tracks_the_full_one(bundle: Bundle, cut: bool) -> None:
     """On the same frames, the subset's RMS estimate is close to the full RMS and its max never
     exceeds the full max; a local bulge shows in both. With the cut forward graph
-    (rigcast/forward_subset.py) the numbers are those of the full graph at the subset."""
+    (rigcast/solving/forward_subset.py) the numbers are those of the full graph at the subset."""
     meshes, times, _ = _take(200, seed=3)
     rng = np.random.default_rng(8)
     meshes += rng.normal(scale=2e-3, size=meshes.shape).astype(np.float32)  # sensor-like noise

@@ -1,6 +1,6 @@
 """The `.blend` rig source, write-back and live script through the real `bpy` (Blender 5.0 as a
 Python module), run in worker processes as rigcast runs it. The demo rig is made by our own
-script (rigcast/blender_demo.py) at test time."""
+script (rigcast/blender/blender_demo.py) at test time."""
 
 from __future__ import annotations
 
@@ -14,8 +14,8 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from rigcast.export.rig import RigError
-from rigcast.export.rig_loader import load_rig
+from rigcast.export.rigs.rig import RigError
+from rigcast.export.rigs.rig_loader import load_rig
 
 if importlib.util.find_spec("bpy") is None:
     if os.environ.get("CI"):
@@ -28,7 +28,7 @@ NAMES = ("cheek_puff", "brow_lift", "lip_corner_lift", "squint", "jaw_rot_x")
 
 
 def _scene(*args: str, timeout: float = 300.0) -> subprocess.CompletedProcess[str]:
-    return subprocess.run([sys.executable, "-m", "rigcast.blender_scene", *args],
+    return subprocess.run([sys.executable, "-m", "rigcast.blender.blender_scene", *args],
                           capture_output=True, text=True, timeout=timeout, check=False,
                           stdin=subprocess.DEVNULL)
 
@@ -89,8 +89,8 @@ def test_topology_changing_modifiers_are_refused(demo: Path, tmp_path: Path) -> 
 def test_keyed_copy_plays_back_the_same_meshes(rig, demo: Path, tmp_path: Path) -> None:
     from scipy.spatial.transform import Rotation
 
-    from rigcast.blender_out import write_blend
-    from rigcast.frame_info import HeadPose
+    from rigcast.blender.blender_out import write_blend
+    from rigcast.writers.frame_info import HeadPose
 
     before = demo.read_bytes()
     controls = _poses(rig, 12)
@@ -113,9 +113,9 @@ def test_keyed_copy_plays_back_the_same_meshes(rig, demo: Path, tmp_path: Path) 
 
 def test_dask_cluster_samples_the_same_dataset_as_local_processes(rig, tmp_path: Path) -> None:
     from dask.distributed import LocalCluster
-    from rigcast.export.dataset import sample_dataset
-    from rigcast.export.executor import make_executor
-    from rigcast.export.sampling import SamplingConfig
+    from rigcast.export.data.dataset import sample_dataset
+    from rigcast.export.data.executor import make_executor
+    from rigcast.export.data.sampling import SamplingConfig
 
     config = SamplingConfig(count=48, chunk_size=12, seed=3)
     with make_executor(workers=2) as ex:
@@ -131,8 +131,8 @@ def test_dask_cluster_samples_the_same_dataset_as_local_processes(rig, tmp_path:
 @pytest.fixture(scope="module")
 def bundle(rig, tmp_path_factory: pytest.TempPathFactory) -> Path:
     """A small build from the .blend through Blender, in 2 worker processes."""
-    from rigcast.export.build import BuildConfig, build_bundle
-    from rigcast.export.train import ForwardConfig, InverseConfig
+    from rigcast.export.bundling.build import BuildConfig, build_bundle
+    from rigcast.export.training.train import ForwardConfig, InverseConfig
 
     config = BuildConfig(
         samples=1500, check_samples=32, workers=2,
@@ -143,13 +143,13 @@ def bundle(rig, tmp_path_factory: pytest.TempPathFactory) -> Path:
     return build_bundle(rig, path, config).bundle_path
 
 
-# export/models.py hands a read-only array to torch.as_tensor, and export/train.py calls float()
-# on a tensor that requires grad; torch's warnings about both are attributed to our modules.
+# export/training/models.py hands a read-only array to torch.as_tensor, and export/training/train.py calls
+# float() on a tensor that requires grad; torch's warnings about both are attributed to our modules.
 @pytest.mark.filterwarnings("ignore:The given NumPy array is not writable")
 @pytest.mark.filterwarnings("ignore:Converting a tensor with requires_grad")
 def test_build_solve_and_write_back_through_blender(rig, demo: Path, bundle: Path,
                                                      tmp_path: Path) -> None:
-    from rigcast.animation_out import read_csv
+    from rigcast.writers.animation_out import read_csv
 
     truth = _poses(rig, 60, seed=5)
     times = np.arange(60) / 30.0
@@ -180,8 +180,8 @@ def test_live_script_applies_the_published_controls(rig, demo: Path, bundle: Pat
                                                     tmp_path: Path) -> None:
     """A real server publishes; the live script, headless, sets the rig's values to them."""
     from conftest import running_server, server_config
-    from rigcast.runtime.client import ControlsSubscriber, MeshSender
-    from rigcast.runtime.protocol import ControlsMessage
+    from rigcast.runtime.messaging.client import ControlsSubscriber, MeshSender
+    from rigcast.runtime.messaging.protocol import ControlsMessage
 
     frames = 120
     log = tmp_path / "applied.jsonl"
@@ -191,7 +191,7 @@ def test_live_script_applies_the_published_controls(rig, demo: Path, bundle: Pat
                                       stream_overrides={"stabilise": False})) as server, \
             ControlsSubscriber("tamsin", server.output_endpoint) as truth:
         live = subprocess.Popen(
-            [sys.executable, "-m", "rigcast.blender_live", str(demo), "--bones", "jaw:x",
+            [sys.executable, "-m", "rigcast.blender.blender_live", str(demo), "--bones", "jaw:x",
              "--from", server.output_endpoint, "--to", server.input_endpoint,
              "--stream", "tamsin", "--frames", str(frames),
              "--idle", "20", "--log", str(log), "--ready", str(ready)],

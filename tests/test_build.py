@@ -7,10 +7,10 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from rigcast.export.build import BuildConfig, BuildError, build_bundle, fit_take
-from rigcast.export.onnx_export import OPSET, session
-from rigcast.export.sampling import SparsityConfig
-from rigcast.export.train import ForwardConfig, InverseConfig
+from rigcast.export.bundling.build import BuildConfig, BuildError, build_bundle, fit_take
+from rigcast.export.bundling.onnx_export import OPSET, session
+from rigcast.export.data.sampling import SparsityConfig
+from rigcast.export.training.train import ForwardConfig, InverseConfig
 from rigcast.runtime.bundle import load_bundle
 from test_models import PatchRig
 

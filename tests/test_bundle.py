@@ -19,9 +19,9 @@ from typing import Any
 import numpy as np
 import pytest
 from conftest import TINY, tiny_rig
-from rigcast.export.synthetic_bundle import forward_graph, inverse_graph
+from rigcast.export.bundling.synthetic_bundle import forward_graph, inverse_graph
 from rigcast.runtime.bundle import BundleError, load_bundle, write_bundle
-from rigcast.runtime.pipeline import load_stream_model
+from rigcast.runtime.solve.pipeline import load_stream_model
 
 Blobs = dict[str, Any]
 

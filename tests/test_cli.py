@@ -17,7 +17,7 @@ import numpy as np
 import pytest
 from conftest import tiny_rig
 
-from rigcast.animation_out import read_csv, read_json
+from rigcast.writers.animation_out import read_csv, read_json
 
 SUBCOMMANDS = ("demo", "build", "inspect", "serve", "send", "watch", "record", "solve")
 
@@ -89,7 +89,7 @@ def test_top_level_help_lists_every_subcommand_and_exit_codes() -> None:
 
 
 def test_serve_help_loads_no_torch() -> None:
-    code = ("import sys, rigcast.cli as c\n"
+    code = ("import sys, rigcast.commands.cli as c\n"
             "try:\n    c.main(['serve', '--help'])\nexcept SystemExit:\n    pass\n"
             "print('TORCH' if 'torch' in sys.modules else 'NO-TORCH')")
     proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
@@ -175,8 +175,8 @@ def test_watch_plain_duration_prints_lines(tiny_bundle: Path, tmp_path: Path) ->
     assert "[quiet] latency p50/p99 ms" in proc.stdout
 
 
-@pytest.mark.skipif(not Path(__file__).parent.parent.joinpath("export", "rig_loader.py").exists(),
-                    reason="export/rig_loader.py has not landed")
+@pytest.mark.skipif(not Path(__file__).parent.parent.joinpath("export", "rigs", "rig_loader.py").exists(),
+                    reason="export/rigs/rig_loader.py has not landed")
 def test_build_a_tiny_bundle_then_inspect_it(tmp_path: Path) -> None:
     out = tmp_path / "arm.rcb"
     env_cache = tmp_path / "cache"

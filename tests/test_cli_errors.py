@@ -157,8 +157,8 @@ def test_bad_toml_config(tiny_bundle: Path, tmp_path: Path) -> None:
     assert "beta" in line
 
 
-@pytest.mark.skipif(not Path(__file__).parent.parent.joinpath("export", "rig_loader.py").exists(),
-                    reason="export/rig_loader.py has not landed")
+@pytest.mark.skipif(not Path(__file__).parent.parent.joinpath("export", "rigs", "rig_loader.py").exists(),
+                    reason="export/rigs/rig_loader.py has not landed")
 def test_bad_rig_spec(tmp_path: Path) -> None:
     line = error_line(rigcast("build", "nosuch:thing", "-o", str(tmp_path / "x.rcb")),
                       EXIT_USAGE)

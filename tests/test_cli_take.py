@@ -8,7 +8,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from rigcast.export.demo_rigs import tamsin_lantern_arm
+from rigcast.export.rigs.demo_rigs import tamsin_lantern_arm
 from rigcast.runtime.bundle import load_bundle
 
 

@@ -10,8 +10,8 @@ from dataclasses import dataclass
 import numpy as np
 import pytest
 import zmq
-from rigcast.runtime import protocol as P
-from rigcast.runtime.client import ControlsSubscriber, MeshSender, ServerError
+from rigcast.runtime.messaging import protocol as P
+from rigcast.runtime.messaging.client import ControlsSubscriber, MeshSender, ServerError
 from rigcast.runtime.schema import Control, ControlSchema
 
 pytestmark = pytest.mark.timeout(20)

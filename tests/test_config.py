@@ -8,7 +8,7 @@ from pathlib import Path
 
 import pytest
 import zmq
-from rigcast.runtime.config import (
+from rigcast.runtime.serve.config import (
     ConfigError,
     ServerConfig,
     StreamConfig,
@@ -16,8 +16,8 @@ from rigcast.runtime.config import (
     is_loopback,
     load_config,
 )
-from rigcast.runtime.serve_main import add_serve_arguments, config_from_args
-from rigcast.runtime.server import Server
+from rigcast.runtime.serve.serve_main import add_serve_arguments, config_from_args
+from rigcast.runtime.serve.server import Server
 
 TOML = """
 input = "tcp://127.0.0.1:6001"
@@ -113,7 +113,7 @@ def test_non_loopback_needs_allow_remote_and_then_logs_a_caution(
                              "allow_remote": True, "insecure_no_auth": True, "linger_ms": 0})
     ctx = zmq.Context()
     server = Server(cfg, ctx=ctx)
-    with caplog.at_level(logging.WARNING, logger="rigcast.runtime.server"):
+    with caplog.at_level(logging.WARNING, logger="rigcast.runtime.serve.server"):
         server.startup()
     server.shutdown()
     ctx.term()
@@ -166,7 +166,7 @@ def test_the_old_fit_error_spellings_still_work_with_a_line_saying_so(
     assert "--fit-error is now --fit-error-schedule" in caplog.text
     with pytest.raises(SystemExit):
         serve.parse_args(["--fit-error", "sometimes"])
-    from rigcast.cli import build_parser
+    from rigcast.commands.cli import build_parser
 
     parser = build_parser()
     caplog.clear()

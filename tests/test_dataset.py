@@ -9,16 +9,16 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from rigcast.export.dataset import (
+from rigcast.export.data.dataset import (
     Dataset,
     DatasetError,
     dataset_from_arrays,
     load_dataset,
     sample_dataset,
 )
-from rigcast.export.executor import ExecutorError, SerialExecutor, make_executor
-from rigcast.export.rig import Rig, RigError
-from rigcast.export.sampling import SamplingConfig, sample_chunk
+from rigcast.export.data.executor import ExecutorError, SerialExecutor, make_executor
+from rigcast.export.data.sampling import SamplingConfig, sample_chunk
+from rigcast.export.rigs.rig import Rig, RigError
 from rigcast.runtime.schema import Control, ControlSchema
 
 PROBE_ROWS = 4  # Rig.fingerprint() evaluates 4 probe poses; chunk sizes below avoid 4 rows

@@ -10,9 +10,9 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from rigcast.demo import corrupt_schedule
-from rigcast.report import RunRecord, most_active
-from rigcast.send import CORRUPTIONS, Rehearsal, plan_actions
+from rigcast.commands.demo import corrupt_schedule
+from rigcast.commands.report import RunRecord, most_active
+from rigcast.live.send import CORRUPTIONS, Rehearsal, plan_actions
 
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"
 

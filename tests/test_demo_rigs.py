@@ -7,7 +7,7 @@ import re
 
 import numpy as np
 import pytest
-from rigcast.export.demo_rigs import (
+from rigcast.export.rigs.demo_rigs import (
     DEMO_RIGS,
     JAW,
     JAW_RANGE_DEG,
@@ -15,8 +15,8 @@ from rigcast.export.demo_rigs import (
     tamsin_face_linear,
     tamsin_lantern_arm,
 )
-from rigcast.export.gltf_eval import euler_xyz_matrices, skin_points, skin_points_naive
-from rigcast.export.rig import Rig, RigError
+from rigcast.export.rigs.gltf_eval import euler_xyz_matrices, skin_points, skin_points_naive
+from rigcast.export.rigs.rig import Rig, RigError
 from scipy.spatial.transform import Rotation
 
 
@@ -150,7 +150,7 @@ def test_shapes_are_localised_and_mirrored(face_linear: Rig) -> None:
 
 def test_jaw_rotation_matches_scipy(head: Rig) -> None:
     """The jaw is two-bone LBS: p + w (R (p - c) + c - p), R about +x (SciPy as the reference)."""
-    from rigcast.export.demo_face import JAW_PIVOT, jaw_weights
+    from rigcast.export.rigs.demo_face import JAW_PIVOT, jaw_weights
 
     s = head.schema
     pose = s.defaults.astype(np.float64)

@@ -12,14 +12,14 @@ import pkgutil
 import pytest
 import rigcast.export
 import rigcast.runtime
-from rigcast.export.rig import RigError
+from rigcast.export.rigs.rig import RigError
 from rigcast.runtime.bundle import BundleError
 from rigcast.runtime.errors import EXIT_FAILURE, EXIT_USAGE, RigcastError
-from rigcast.runtime.sockets import BindError
+from rigcast.runtime.messaging.sockets import BindError
 
 import rigcast
 from rigcast import errors
-from rigcast.takes import TakeError
+from rigcast.readers.takes import TakeError
 
 # Classes whose files belong to others this session: each needs a one-line change of its bases
 # in its own file (e.g. `class ConfigError(RigcastError, ValueError):`). The test fails when one
@@ -74,7 +74,7 @@ def test_no_result_record_is_named_like_an_error() -> None:
                     and not issubclass(obj, BaseException):
                 misnamed.add(f"{name}.{attr}")
     assert misnamed == RECORDS_NAMED_AS_ERRORS
-    from rigcast.export import metrics
+    from rigcast.export.quality import metrics
 
     assert not hasattr(metrics, "VertexError") and not hasattr(metrics, "ControlError")
     assert {"VertexErrorStats", "ControlErrorStats"} <= set(metrics.__all__)
@@ -84,8 +84,8 @@ def test_one_take_error() -> None:
     """The take readers' TakeError is the only one; synthetic takes raise SynthError."""
     classes = exception_classes()
     takes = [name for name in classes if name.endswith(".TakeError")]
-    assert takes == ["rigcast.take_common.TakeError"]
-    from rigcast.export.take_synth import SynthError
+    assert takes == ["rigcast.readers.take_common.TakeError"]
+    from rigcast.export.quality.take_synth import SynthError
 
     assert SynthError.exit_code == EXIT_USAGE
 
@@ -104,7 +104,7 @@ def test_the_cli_line_comes_from_the_class(exc: RigcastError, code: int, advice:
 
 
 def test_a_raise_can_override_advice_and_code_and_both_survive_pickling() -> None:
-    """Worker processes send errors back pickled (export/executor.py, Dask)."""
+    """Worker processes send errors back pickled (export/data/executor.py, Dask)."""
     exc = RigError("proc:foo: exited with 3", advice="run the command by hand", exit_code=1)
     back = pickle.loads(pickle.dumps(exc))
     assert (str(back), back.advice, back.exit_code) == (str(exc), "run the command by hand", 1)

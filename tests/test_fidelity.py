@@ -7,9 +7,9 @@ from collections.abc import Callable
 
 import numpy as np
 import pytest
-from rigcast.export import metrics
-from rigcast.export.baselines import linearise_rig, solve_lsq
-from rigcast.export.fidelity import (
+from rigcast.export.quality import metrics
+from rigcast.export.quality.baselines import linearise_rig, solve_lsq
+from rigcast.export.quality.fidelity import (
     FidelityError,
     false_active,
     false_active_naive,
@@ -20,8 +20,8 @@ from rigcast.export.fidelity import (
     recoverability_probes,
     same_mesh_twins,
 )
-from rigcast.export.rig import Rig
-from rigcast.export.zoo import ZooRig, make_zoo_rig
+from rigcast.export.rigs.rig import Rig
+from rigcast.export.rigs.zoo import ZooRig, make_zoo_rig
 from rigcast.runtime.schema import Control, ControlSchema
 
 

@@ -17,9 +17,9 @@ from pathlib import Path
 import numpy as np
 import pygltflib
 import pytest
-from rigcast.export.gltf_eval import morph_positions, morph_positions_naive
-from rigcast.export.gltf_rig import GltfRig
-from rigcast.export.rig import RigError
+from rigcast.export.rigs.gltf_eval import morph_positions, morph_positions_naive
+from rigcast.export.rigs.gltf_rig import GltfRig
+from rigcast.export.rigs.rig import RigError
 
 from tests.fixtures_rigs import TRIANGLE, NodeSpec, morph_triangle, two_joint_strip, write_gltf
 

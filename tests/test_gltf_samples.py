@@ -12,13 +12,13 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from rigcast.export.gltf_io import GltfReader, decode_data_uri
-from rigcast.export.gltf_rig import GltfRig
-from rigcast.export.rig import RigError
+from rigcast.export.rigs.gltf_io import GltfReader, decode_data_uri
+from rigcast.export.rigs.gltf_rig import GltfRig
+from rigcast.export.rigs.rig import RigError
 from scipy.spatial.transform import Rotation
 
-from rigcast.gltf_take import frame_times
-from rigcast.takes import DEFAULT_FPS, TakeError, read_take
+from rigcast.readers.gltf_take import frame_times
+from rigcast.readers.takes import DEFAULT_FPS, TakeError, read_take
 from tests.gltf_validator import assert_valid
 
 DATA = Path(__file__).parent / "data" / "khronos"

@@ -11,10 +11,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 from conftest import TINY, Peer, peer_for, rig_mesh, running_server, server_config, tiny_rig
-from rigcast.runtime import protocol
-from rigcast.runtime.config import ConfigError
-from rigcast.runtime.serve_main import add_serve_arguments, add_stream_arguments
-from rigcast.runtime.stages import ease_towards
+from rigcast.runtime.messaging import protocol
+from rigcast.runtime.serve.config import ConfigError
+from rigcast.runtime.serve.serve_main import add_serve_arguments, add_stream_arguments
+from rigcast.runtime.solve.stages import ease_towards
 
 pytestmark = pytest.mark.timeout(60)
 

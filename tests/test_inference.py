@@ -12,11 +12,11 @@ import pytest
 from conftest import OTHER, TINY, tiny_rig
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from rigcast.export.synthetic_bundle import forward_graph, inverse_graph
+from rigcast.export.bundling.synthetic_bundle import forward_graph, inverse_graph
 from rigcast.runtime.bundle import BundleError, load_bundle, write_bundle
-from rigcast.runtime.inference import ForwardModel, InverseModel, open_session
-from rigcast.runtime.manifold import floor_for_bundle, training_fit_error
-from rigcast.runtime.pipeline import load_stream_model, rotation_to_quaternion
+from rigcast.runtime.solve.inference import ForwardModel, InverseModel, open_session
+from rigcast.runtime.solve.manifold import floor_for_bundle, training_fit_error
+from rigcast.runtime.solve.pipeline import load_stream_model, rotation_to_quaternion
 from scipy.spatial.transform import Rotation
 
 

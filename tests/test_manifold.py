@@ -8,11 +8,11 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from rigcast.export.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
-from rigcast.export.take_synth import synth_take
-from rigcast.runtime.batch import SolveOptions, solve_take
+from rigcast.export.bundling.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
+from rigcast.export.quality.take_synth import synth_take
 from rigcast.runtime.bundle import load_bundle
-from rigcast.runtime.manifold import (
+from rigcast.runtime.solve.batch import SolveOptions, solve_take
+from rigcast.runtime.solve.manifold import (
     ManifoldConfig,
     ManifoldError,
     ManifoldTracker,
@@ -109,7 +109,7 @@ def test_bad_settings_are_refused_by_name(kwargs: dict[str, float], match: str) 
 
 
 def test_planted_off_manifold_frames_are_found_in_a_batch_solve(tmp_path: Path) -> None:
-    """Synthetic takes (export/take_synth.py) with sensor noise, head motion and bulges on a few
+    """Synthetic takes (export/quality/take_synth.py) with sensor noise, head motion and bulges on a few
     isolated frames, solved in batch with the detector's defaults: most bulges are flagged, few
     clean frames are. (The take's correlated wobble is off here: on this small sheet its peaks
     reach the bulges' level of max error; the demo face is where the defaults were tuned.)"""

@@ -1,4 +1,4 @@
-"""Typed server messages (runtime/messages.py): the head pose in every live controls message
+"""Typed server messages (runtime/messaging/messages.py): the head pose in every live controls message
 (issue 14), the heartbeat on the telemetry topic (issue 15), and the typed records' encodings."""
 
 from __future__ import annotations
@@ -9,9 +9,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 from conftest import TINY, peer_for, rig_mesh, running_server, server_config, tiny_rig
-from rigcast.runtime import protocol
-from rigcast.runtime.head_pose import HeadPose
-from rigcast.runtime.messages import (
+from rigcast.runtime.messaging import protocol
+from rigcast.runtime.messaging.messages import (
     ErrorReply,
     FitErrorStats,
     Heartbeat,
@@ -21,6 +20,7 @@ from rigcast.runtime.messages import (
     ServerStats,
     Telemetry,
 )
+from rigcast.runtime.solve.head_pose import HeadPose
 from scipy.spatial.transform import Rotation
 
 

@@ -7,7 +7,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
-from rigcast.export.metrics import (
+from rigcast.export.quality.metrics import (
     MetricError,
     active_controls,
     active_controls_naive,

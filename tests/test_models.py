@@ -7,8 +7,9 @@ import pytest
 import torch
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from rigcast.export import reduction, train
-from rigcast.export.models import (
+from rigcast.export.rigs.rig import Rig
+from rigcast.export.training import reduction, train
+from rigcast.export.training.models import (
     EDGE_MARGIN,
     InverseNetwork,
     band_coefficients,
@@ -18,7 +19,6 @@ from rigcast.export.models import (
     unit_output,
     unit_output_naive,
 )
-from rigcast.export.rig import Rig
 from rigcast.runtime.schema import Control, ControlSchema
 
 

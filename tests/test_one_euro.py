@@ -8,7 +8,8 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from rigcast.runtime.one_euro import (
+from rigcast.runtime.schema import Control, ControlSchema
+from rigcast.runtime.solve.one_euro import (
     FilterError,
     OneEuroConstants,
     OneEuroFilter,
@@ -17,7 +18,6 @@ from rigcast.runtime.one_euro import (
     one_euro_step_naive,
     zero_phase_smooth,
 )
-from rigcast.runtime.schema import Control, ControlSchema
 from scipy.signal import filtfilt
 
 MS = 1_000_000  # ns per millisecond

@@ -6,8 +6,8 @@ import numpy as np
 import onnx
 import pytest
 import torch
-from rigcast.export import onnx_export
-from rigcast.export.models import ForwardApproximator, InverseNetwork
+from rigcast.export.bundling import onnx_export
+from rigcast.export.training.models import ForwardApproximator, InverseNetwork
 from rigcast.runtime.bundle import FORWARD_INPUT, FORWARD_OUTPUT, INVERSE_INPUT, INVERSE_OUTPUT
 
 

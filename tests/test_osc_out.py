@@ -11,10 +11,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 from conftest import rig_mesh, running_server, server_config, tiny_rig
-from rigcast.runtime.client import ControlsSubscriber, MeshSender
-from rigcast.runtime.protocol import ControlsMessage
+from rigcast.runtime.messaging.client import ControlsSubscriber, MeshSender
+from rigcast.runtime.messaging.protocol import ControlsMessage
 
-from rigcast.osc_out import OscError, osc_addresses, parse_target, relay, safe_part
+from rigcast.live.osc_out import OscError, osc_addresses, parse_target, relay, safe_part
 
 if os.environ.get("CI"):
     import pythonosc  # noqa: F401  CI installs the osc extra (.ci/run): a missing one must fail

@@ -1,4 +1,4 @@
-"""One live stream (runtime/pipeline.py) is the solve core on a batch of one frame: frame by
+"""One live stream (runtime/solve/pipeline.py) is the solve core on a batch of one frame: frame by
 frame it publishes what the batch solve computes for the whole take, with the same settings."""
 
 from __future__ import annotations
@@ -7,12 +7,12 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from rigcast.export.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
-from rigcast.runtime import protocol
-from rigcast.runtime.batch import SolveOptions, solve_take
+from rigcast.export.bundling.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
 from rigcast.runtime.bundle import load_bundle
-from rigcast.runtime.config import GroupFilter, StreamConfig
-from rigcast.runtime.pipeline import StreamState, load_stream_model
+from rigcast.runtime.messaging import protocol
+from rigcast.runtime.serve.config import GroupFilter, StreamConfig
+from rigcast.runtime.solve.batch import SolveOptions, solve_take
+from rigcast.runtime.solve.pipeline import StreamState, load_stream_model
 
 RIG = dict(vertices=300, controls=8, inputs=40, stable=16, seed=0)
 

@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from rigcast.runtime import protocol as P
+from rigcast.runtime.messaging import protocol as P
 from rigcast.runtime.schema import Control, ControlSchema
 
 DOC = Path(__file__).resolve().parents[1] / "docs" / "protocol.md"

@@ -14,9 +14,9 @@ from pathlib import Path
 import numpy as np
 import pytest
 from conftest import OTHER, server_process, tiny_rig
-from rigcast.runtime.client import MeshSender
+from rigcast.runtime.messaging.client import MeshSender
 
-from rigcast.animation_out import read_csv_columns
+from rigcast.writers.animation_out import read_csv_columns
 
 FIRST_FRAME, STEP = 1000, 3  # the sender's numbering, unlike row numbers
 

@@ -15,10 +15,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 from conftest import TINY, peer_for, rig_mesh, running_server, server_config, server_process, tiny_rig
-from rigcast.runtime import protocol
-from rigcast.runtime.client import MeshSender
-from rigcast.runtime.messages import PublishedMesh
-from rigcast.runtime.timecode import parse_timecode
+from rigcast.runtime.messaging import protocol
+from rigcast.runtime.messaging.client import MeshSender
+from rigcast.runtime.messaging.messages import PublishedMesh
+from rigcast.runtime.messaging.timecode import parse_timecode
 
 pytestmark = pytest.mark.timeout(120)
 

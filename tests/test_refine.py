@@ -1,4 +1,4 @@
-"""The refinement after the inverse network (runtime/refine.py, export/refine.py).
+"""The refinement after the inverse network (runtime/solve/refine.py, export/training/refine.py).
 
 References: the bounded least-squares optimum from SciPy's ``lsq_linear`` (BVLS, Stark & Parker
 1995) on a linear rig, where the Gauss-Newton steps must land on it; torch.autograd for the
@@ -11,7 +11,7 @@ from dataclasses import asdict
 
 import numpy as np
 import pytest
-from rigcast.runtime.refine import (
+from rigcast.runtime.solve.refine import (
     Refiner,
     RefineSettings,
     active_set,
@@ -175,9 +175,9 @@ def test_settings_are_validated() -> None:
 
 def test_refine_graph_gradient_matches_autograd() -> None:
     torch = pytest.importorskip("torch")
-    from rigcast.export.models import ForwardApproximator
-    from rigcast.export.onnx_export import export_refine, session
-    from rigcast.export.refine import RefineGraph, refine_gradient_naive
+    from rigcast.export.bundling.onnx_export import export_refine, session
+    from rigcast.export.training.models import ForwardApproximator
+    from rigcast.export.training.refine import RefineGraph, refine_gradient_naive
     from rigcast.runtime.bundle import REFINE_CONTROLS, REFINE_MESH
 
     rng = np.random.default_rng(0)
@@ -208,9 +208,9 @@ def test_projected_refine_core_matches_the_direct_fit_on_its_vertices() -> None:
     and the residual computed vertex by vertex on the same S vertices; the vertex choice keeps
     every control's information; ``project`` matches its float64 twin."""
     torch = pytest.importorskip("torch")
-    from rigcast.export.models import ForwardApproximator
-    from rigcast.export.onnx_export import session
-    from rigcast.export.refine import (
+    from rigcast.export.bundling.onnx_export import session
+    from rigcast.export.training.models import ForwardApproximator
+    from rigcast.export.training.refine import (
         projected_refine_parts,
         projection_arrays,
         refine_gradient_naive,
@@ -223,7 +223,7 @@ def test_projected_refine_core_matches_the_direct_fit_on_its_vertices() -> None:
         REFINE_CONTROLS,
         REFINE_PROJECTION,
     )
-    from rigcast.runtime.refine import project_naive
+    from rigcast.runtime.solve.refine import project_naive
 
     rng = np.random.default_rng(1)
     v, c, p = 60, 5, 6
@@ -266,9 +266,9 @@ def test_projected_refine_core_matches_the_direct_fit_on_its_vertices() -> None:
 def test_a_bundle_with_refinement_solves_through_it(tmp_path, form) -> None:
     """The synthetic bundle's refinement graph (ONNX built by hand, in both forms) through
     InverseModel: a sparse pose whose network answer is off comes back to the pose."""
-    from rigcast.export.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
+    from rigcast.export.bundling.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
     from rigcast.runtime.bundle import load_bundle
-    from rigcast.runtime.inference import InverseModel
+    from rigcast.runtime.solve.inference import InverseModel
 
     spec = {"vertices": 400, "controls": 8, "inputs": 60, "stable": 16, "seed": 3}
     path = build_synthetic_bundle(tmp_path / "r.rcb", **spec, inverse="mlp", refine=form)
@@ -291,8 +291,8 @@ def test_a_bundle_with_refinement_solves_through_it(tmp_path, form) -> None:
 
 def test_gauss_newton_matrix_matches_autograd() -> None:
     torch = pytest.importorskip("torch")
-    from rigcast.export.models import ForwardApproximator
-    from rigcast.export.refine import gauss_newton_matrix, gauss_newton_matrix_naive
+    from rigcast.export.training.models import ForwardApproximator
+    from rigcast.export.training.refine import gauss_newton_matrix, gauss_newton_matrix_naive
 
     rng = np.random.default_rng(1)
     v, c, p = 30, 4, 5

@@ -12,12 +12,12 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from rigcast.export.callable_rig import CallableRig
-from rigcast.export.dataset_rig import DatasetRig, write_dataset_npz
-from rigcast.export.demo_rigs import tamsin_lantern_arm
-from rigcast.export.process_rig import ProcessRig
-from rigcast.export.rig import RigError
-from rigcast.export.rig_loader import load_rig
+from rigcast.export.rigs.callable_rig import CallableRig
+from rigcast.export.rigs.dataset_rig import DatasetRig, write_dataset_npz
+from rigcast.export.rigs.demo_rigs import tamsin_lantern_arm
+from rigcast.export.rigs.process_rig import ProcessRig
+from rigcast.export.rigs.rig import RigError
+from rigcast.export.rigs.rig_loader import load_rig
 
 from tests.fixtures_rigs import morph_triangle
 

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from rigcast.export.sampling import (
+from rigcast.export.data.sampling import (
     SamplingConfig,
     SamplingError,
     SparsityConfig,

@@ -27,10 +27,10 @@ from conftest import (
     server_process,
     tiny_rig,
 )
-from rigcast.export.synthetic_bundle import build_synthetic_bundle
-from rigcast.runtime import protocol
+from rigcast.export.bundling.synthetic_bundle import build_synthetic_bundle
 from rigcast.runtime.bundle import load_bundle
-from rigcast.runtime.one_euro import OneEuroParams, one_euro_step_naive
+from rigcast.runtime.messaging import protocol
+from rigcast.runtime.solve.one_euro import OneEuroParams, one_euro_step_naive
 
 pytestmark = pytest.mark.timeout(60)
 
@@ -282,7 +282,7 @@ def test_busy_poll_serves_frames_and_restores_the_collector(tiny_bundle: Path) -
 
 @pytest.mark.parametrize("value", [-1, 2_000_000])
 def test_busy_poll_budget_is_validated(tiny_bundle: Path, value: int) -> None:
-    from rigcast.runtime.config import ConfigError
+    from rigcast.runtime.serve.config import ConfigError
 
     with pytest.raises(ConfigError, match=r"busy_poll_us must be 0\.\.1000000"):
         server_config({"a": tiny_bundle}, busy_poll_us=value)
@@ -306,13 +306,13 @@ def test_fit_error_keeps_to_its_time_share(tiny_bundle: Path) -> None:
                 tel = telemetry_of(peer, "a")
     assert tel["fit_error"]["frame"] == 0, tel["fit_error"]
     # Frames 1-3 were replaced unfitted by a newer frame of the stream; frame 4 still waits for
-    # its turn (runtime/fairness.py), so it is not counted yet.
+    # its turn (runtime/trust/fairness.py), so it is not counted yet.
     assert tel["fit_error"]["skipped"] == 3
 
 
 @pytest.mark.parametrize("value", [0.0, 1.5])
 def test_fit_error_share_is_validated(tiny_bundle: Path, value: float) -> None:
-    from rigcast.runtime.config import ConfigError
+    from rigcast.runtime.serve.config import ConfigError
 
     with pytest.raises(ConfigError, match="fit_error_max_share"):
         server_config({"a": tiny_bundle}, fit_error_max_share=value)
@@ -451,7 +451,7 @@ def test_off_manifold_flag_follows_a_mesh_far_from_the_rig(tiny_bundle: Path) ->
 
 
 def test_adaptive_off_manifold_rule_follows_the_streams_noise(tiny_bundle: Path) -> None:
-    # No explicit threshold: running median + k MAD of the worst-vertex error (runtime/manifold.py).
+    # No explicit threshold: running median + k MAD of the worst-vertex error (runtime/solve/manifold.py).
     # Sensor noise puts every frame's worst error above the floor (3 x the training fit error,
     # which a fixed rule would flag on every frame); only the bulge stands out from the stream.
     rig = tiny_rig(TINY)
@@ -489,7 +489,7 @@ def test_sigterm_stops_a_server_process_cleanly(tiny_bundle: Path, tmp_path: Pat
 
 def test_non_loopback_bind_without_the_flag_is_refused(tiny_bundle: Path) -> None:
     proc = subprocess.run(
-        [sys.executable, "-m", "rigcast.runtime.serve_main",
+        [sys.executable, "-m", "rigcast.runtime.serve.serve_main",
          "--bundle", str(tiny_bundle), "--input", "tcp://0.0.0.0:0"],
         capture_output=True, text=True, timeout=60, check=False)
     assert proc.returncode == 2

@@ -17,8 +17,8 @@ import pytest
 from conftest import TINY, peer_for, rig_mesh, running_server, server_config, tiny_rig
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-from rigcast.runtime import protocol
 from rigcast.runtime.bundle import load_bundle
+from rigcast.runtime.messaging import protocol
 
 V = TINY["vertices"]
 WRONG_TYPE = st.one_of(st.text(max_size=5), st.floats(allow_nan=False), st.none(),

@@ -22,12 +22,12 @@ import pytest
 import zmq
 from conftest import TINY, Peer, peer_for, rig_mesh, running_server, server_config, tiny_rig
 from rich.console import Console
-from rigcast.runtime import protocol
-from rigcast.runtime.client import ControlsSubscriber, MeshSender
-from rigcast.runtime.config import ConfigError, load_config
-from rigcast.runtime.keys import ClientCurve, create_key_pair
+from rigcast.runtime.messaging import protocol
+from rigcast.runtime.messaging.client import ControlsSubscriber, MeshSender
+from rigcast.runtime.serve.config import ConfigError, load_config
+from rigcast.runtime.trust.keys import ClientCurve, create_key_pair
 
-from rigcast.watch import WatchState, render_view
+from rigcast.live.watch import WatchState, render_view
 
 pytestmark = pytest.mark.timeout(90)
 
@@ -206,7 +206,7 @@ def test_a_served_bundle_with_external_data_is_refused_at_startup(
         tiny_bundle: Path, tmp_path: Path) -> None:
     """The same check guards the bundles a server starts with. Old server: it loaded them."""
     from rigcast.runtime.bundle import BundleError
-    from rigcast.runtime.server import Server
+    from rigcast.runtime.serve.server import Server
 
     with zipfile.ZipFile(tiny_bundle) as zf:
         model = onnx.load_from_string(zf.read("forward.onnx"))
@@ -234,7 +234,7 @@ def serve_process(args: list[str], tmp_path: Path, nofile: int | None = None
                   ) -> Iterator[tuple[subprocess.Popen[str], dict]]:
     """The bare server entry in a subprocess (optionally with a low file limit)."""
     ready = tmp_path / f"ready-{time.monotonic_ns()}.json"
-    cmd = [sys.executable, "-m", "rigcast.runtime.serve_main", "--input", "tcp://127.0.0.1:*",
+    cmd = [sys.executable, "-m", "rigcast.runtime.serve.serve_main", "--input", "tcp://127.0.0.1:*",
            "--output", "tcp://127.0.0.1:*", "--ready-file", str(ready), *args]
 
     def limit() -> None:

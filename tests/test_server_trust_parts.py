@@ -15,10 +15,10 @@ import numpy as np
 import onnx
 import pytest
 from onnx import TensorProto, helper, numpy_helper
-from rigcast.runtime import protocol
-from rigcast.runtime.keys import KeyFileError, create_key_pair, load_public_key, load_secret_key
-from rigcast.runtime.nesting import nesting_within
-from rigcast.runtime.reload import (
+from rigcast.runtime.messaging import protocol
+from rigcast.runtime.messaging.nesting import nesting_within
+from rigcast.runtime.trust.keys import KeyFileError, create_key_pair, load_public_key, load_secret_key
+from rigcast.runtime.trust.reload import (
     ReloadRefused,
     external_data_tensor,
     redact,

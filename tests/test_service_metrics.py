@@ -14,9 +14,9 @@ import numpy as np
 import prometheus_client.parser as prometheus_parser
 import pytest
 from conftest import TINY, Peer, rig_mesh, server_config, server_process, tiny_rig
-from rigcast.runtime import protocol
-from rigcast.runtime.config import ConfigError
-from rigcast.runtime.telemetry import LATENCY_BUCKETS_S, LatencyHistogram, histogram_naive
+from rigcast.runtime.messaging import protocol
+from rigcast.runtime.serve.config import ConfigError
+from rigcast.runtime.serve.telemetry import LATENCY_BUCKETS_S, LatencyHistogram, histogram_naive
 
 pytestmark = pytest.mark.timeout(90)
 

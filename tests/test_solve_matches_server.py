@@ -1,7 +1,7 @@
 """Acceptance (issue 16): ``rigcast solve --config serve.toml`` gives, frame for frame, the controls
 a real server publishes for the same take and settings (max difference <= 1e-6).
 
-The server runs as ``python -m rigcast.runtime.serve_main`` on random loopback ports; the take
+The server runs as ``python -m rigcast.runtime.serve.serve_main`` on random loopback ports; the take
 goes to it frame by frame in lockstep (each frame after the previous controls arrived, so none
 is dropped), stamped with the take's own times; then ``python -m rigcast solve`` solves the same
 take from a file with the same TOML file. The settings exercise what used to reach only the
@@ -20,9 +20,9 @@ from pathlib import Path
 import numpy as np
 import pytest
 import zmq
-from rigcast.export.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
-from rigcast.runtime import protocol
+from rigcast.export.bundling.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
 from rigcast.runtime.bundle import load_bundle
+from rigcast.runtime.messaging import protocol
 from scipy.spatial.transform import Rotation
 
 RIG = dict(vertices=400, controls=10, inputs=60, stable=24, seed=3)
@@ -70,7 +70,7 @@ beta = 0.5
 
 def _serve(config: Path, ready: Path, log: Path) -> subprocess.Popen[bytes]:
     with log.open("wb") as err:
-        proc = subprocess.Popen([sys.executable, "-m", "rigcast.runtime.serve_main", "--config",
+        proc = subprocess.Popen([sys.executable, "-m", "rigcast.runtime.serve.serve_main", "--config",
                                  str(config), "--ready-file", str(ready), "--log-level",
                                  "WARNING"], stdout=subprocess.DEVNULL, stderr=err)
     deadline = time.monotonic() + 60

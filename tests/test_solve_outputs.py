@@ -12,15 +12,16 @@ from pathlib import Path
 import numpy as np
 import pytest
 from conftest import tiny_rig
-from rigcast.export.demo_rigs import tamsin_lantern_arm
-from rigcast.export.gltf_rig import GltfRig
-from rigcast.runtime.batch import fit_rigid_batch
+from rigcast.export.rigs.demo_rigs import tamsin_lantern_arm
+from rigcast.export.rigs.gltf_rig import GltfRig
 from rigcast.runtime.schema import Control, ControlSchema
+from rigcast.runtime.solve.batch import fit_rigid_batch
 from scipy.spatial.transform import Rotation
 
-from rigcast.animation_out import read_csv_columns
-from rigcast.controls_out import write_controls
-from rigcast.frame_info import (
+from rigcast.readers.takes import DEFAULT_FPS, read_take
+from rigcast.writers.animation_out import read_csv_columns
+from rigcast.writers.controls_out import write_controls
+from rigcast.writers.frame_info import (
     FrameQuality,
     HeadPose,
     clamped_frames,
@@ -29,9 +30,8 @@ from rigcast.frame_info import (
     head_pose_from_fit,
     stale_frames,
 )
-from rigcast.gltf_out import write_gltf
-from rigcast.skeleton import skeleton_from_rig
-from rigcast.takes import DEFAULT_FPS, read_take
+from rigcast.writers.gltf_out import write_gltf
+from rigcast.writers.skeleton import skeleton_from_rig
 from tests.gltf_validator import assert_valid
 
 DATA = Path(__file__).parent / "data" / "khronos"
@@ -143,11 +143,11 @@ def test_head_pose_is_the_solves_own_stabilisation(tiny_bundle: Path) -> None:
     """The head pose is the inverse of the fits the solve stabilised with (BatchSolve.rigid), so
     a solve that removes scale (--stabilise-scale) writes that scale too; a second rigid-only fit
     of the take would give scale 1. Umeyama 1991 recovers an exact similarity."""
-    from rigcast.runtime.batch import BatchSolver, SolveOptions
     from rigcast.runtime.bundle import load_bundle
-    from rigcast.runtime.config import StreamConfig
+    from rigcast.runtime.serve.config import StreamConfig
+    from rigcast.runtime.solve.batch import BatchSolver, SolveOptions
 
-    from rigcast.solve_out import head_pose
+    from rigcast.solving.solve_out import head_pose
 
     bundle = load_bundle(tiny_bundle)
     t = 12
@@ -225,7 +225,7 @@ def test_solve_writes_quality_head_pose_and_prints_flagged_ranges(tmp_path: Path
 
 
 def test_skinned_bundle_needs_its_rig_and_the_right_one(tmp_path: Path, tiny_bundle: Path) -> None:
-    from rigcast.animation_out import AnimationError, morph_basis
+    from rigcast.writers.animation_out import AnimationError, morph_basis
 
     rig = tamsin_lantern_arm()
     # Degrees are not weights: without the rig, joint controls never become morph targets,
@@ -243,7 +243,7 @@ def test_skinned_bundle_needs_its_rig_and_the_right_one(tmp_path: Path, tiny_bun
 
 
 def test_cli_states_the_one_default_rate() -> None:
-    from rigcast import cli
+    from rigcast.commands import cli
 
     assert cli._DEFAULT_FPS == DEFAULT_FPS
     for command in ("send", "solve"):

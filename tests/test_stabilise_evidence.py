@@ -9,15 +9,15 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
-from rigcast.export import reduction
-from rigcast.export.build import stabilise_section
-from rigcast.export.sampling import SparsityConfig, sample_controls
-from rigcast.export.synthetic_bundle import build_synthetic_bundle
-from rigcast.export.zoo import make_zoo_rig
-from rigcast.runtime.batch import BatchSolver, SolveOptions
+from rigcast.export.bundling.build import stabilise_section
+from rigcast.export.bundling.synthetic_bundle import build_synthetic_bundle
+from rigcast.export.data.sampling import SparsityConfig, sample_controls
+from rigcast.export.rigs.zoo import make_zoo_rig
+from rigcast.export.training import reduction
 from rigcast.runtime.bundle import load_bundle
-from rigcast.runtime.config import StreamConfig
-from rigcast.runtime.pipeline import StreamState, load_stream_model
+from rigcast.runtime.serve.config import StreamConfig
+from rigcast.runtime.solve.batch import BatchSolver, SolveOptions
+from rigcast.runtime.solve.pipeline import StreamState, load_stream_model
 
 from tests.conftest import TINY, rig_mesh, tiny_rig
 
@@ -45,7 +45,7 @@ def test_stable_vertices_take_the_whole_static_region_and_it_steadies_the_fit() 
     assert reduction.stable_vertices_for(neutral, motion, cap=500).size == 500
     moving = reduction.stable_vertices_for(neutral, np.linspace(0.1, 1.0, v))  # no static region
     assert moving.size == reduction.stable_count_for(v)
-    from rigcast.runtime.align import fit_rigid_batch
+    from rigcast.runtime.solve.align import fit_rigid_batch
 
     def rotation_error(idx: np.ndarray) -> float:
         noisy = neutral[None] + rng.normal(0.0, 0.01, (200, v, 3))

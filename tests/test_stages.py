@@ -1,4 +1,4 @@
-"""The solve's array stages (runtime/stages.py) against their naive twins."""
+"""The solve's array stages (runtime/solve/stages.py) against their naive twins."""
 
 from __future__ import annotations
 
@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from rigcast.runtime.align import RigidBatch, fit_rigid_batch
-from rigcast.runtime.stages import (
+from rigcast.runtime.solve.align import RigidBatch, fit_rigid_batch
+from rigcast.runtime.solve.stages import (
     clamp,
     clamp_naive,
     fit_error,

@@ -16,15 +16,15 @@ import numpy as np
 import pytest
 from conftest import tiny_rig
 
-from rigcast.animation_out import read_csv_columns
-from rigcast.solve_take import SolveSettings
-from rigcast.take_batch import (
+from rigcast.solving.solve_take import SolveSettings
+from rigcast.solving.take_batch import (
     RECORDS,
     TakeBatchError,
     find_takes,
     is_batch,
     solve_takes,
 )
+from rigcast.writers.animation_out import read_csv_columns
 
 TAKES = 20
 

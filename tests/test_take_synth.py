@@ -4,9 +4,8 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from rigcast.export.metrics import active_controls, jitter
-from rigcast.export.rig import Rig
-from rigcast.export.take_synth import (
+from rigcast.export.quality.metrics import active_controls, jitter
+from rigcast.export.quality.take_synth import (
     SynthError,
     bbox_diagonal,
     envelope,
@@ -15,6 +14,7 @@ from rigcast.export.take_synth import (
     speech_track,
     synth_take,
 )
+from rigcast.export.rigs.rig import Rig
 from rigcast.runtime.schema import Control, ControlSchema
 
 

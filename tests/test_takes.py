@@ -8,7 +8,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from rigcast.takes import TakeError, natural_key, read_take
+from rigcast.readers.takes import TakeError, natural_key, read_take
 
 
 def _frames(t: int = 5, v: int = 7, seed: int = 0) -> np.ndarray:
@@ -246,7 +246,7 @@ def test_gltf_without_animation_is_refused(tmp_path: Path) -> None:
 
 
 def test_slerp_and_cubic_against_spec_formulas() -> None:
-    from rigcast.gltf_take import sample_channel, slerp
+    from rigcast.readers.gltf_take import sample_channel, slerp
 
     q0 = np.array([[0.0, 0, 0, 1]])
     q1 = np.array([[0.0, 0, -np.sqrt(0.5), -np.sqrt(0.5)]])  # same as +90 deg, other hemisphere

@@ -11,8 +11,8 @@ import pytest
 from conftest import TINY, peer_for, rig_mesh, running_server, server_config, tiny_rig
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from rigcast.runtime import protocol
-from rigcast.runtime.telemetry import STAGES, RingWindow, percentiles_fast, percentiles_naive
+from rigcast.runtime.messaging import protocol
+from rigcast.runtime.serve.telemetry import STAGES, RingWindow, percentiles_fast, percentiles_naive
 
 
 @settings(max_examples=80, deadline=None)

@@ -12,8 +12,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 from conftest import TINY, peer_for, rig_mesh, running_server, server_config, server_process, tiny_rig
-from rigcast.runtime import protocol
-from rigcast.runtime.timecode import (
+from rigcast.runtime.messaging import protocol
+from rigcast.runtime.messaging.timecode import (
     RATES,
     Timecode,
     TimecodeError,

@@ -11,20 +11,20 @@ from pathlib import Path
 import numpy as np
 import pytest
 from conftest import tiny_rig
-from rigcast.export.demo_rigs import tamsin_lantern_arm
+from rigcast.export.rigs.demo_rigs import tamsin_lantern_arm
 from rigcast.runtime.schema import Control, ControlSchema
 from scipy.spatial.transform import Rotation
 
-from rigcast.animation_out import morph_basis
-from rigcast.frame_info import FrameQuality, HeadPose
-from rigcast.skeleton import skeleton_from_rig
+from rigcast.writers.animation_out import morph_basis
+from rigcast.writers.frame_info import FrameQuality, HeadPose
+from rigcast.writers.skeleton import skeleton_from_rig
 
 if os.environ.get("CI"):
     import pxr
 pxr = pytest.importorskip("pxr", reason="usd-core not installed: pip install 'rigcast[usd]'")
 from pxr import Usd, UsdGeom, UsdSkel, Vt  # noqa: E402
 
-from rigcast.usd_out import validation_issues, write_usd  # noqa: E402
+from rigcast.writers.usd_out import validation_issues, write_usd  # noqa: E402
 
 TOL = 1e-5  # issue 14's acceptance: UsdSkel reads back the solved values within 1e-5
 
@@ -151,7 +151,7 @@ def test_solve_writes_usd(tmp_path: Path, tiny_bundle: Path) -> None:
 
 
 def test_usd_needs_a_rig_form(tmp_path: Path) -> None:
-    from rigcast.animation_out import AnimationError
+    from rigcast.writers.animation_out import AnimationError
 
     schema = ControlSchema((Control("a", 0.0, 1.0, 0.0),))
     with pytest.raises(AnimationError, match="morph targets or its skeleton"):

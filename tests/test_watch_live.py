@@ -20,9 +20,9 @@ from pathlib import Path
 import numpy as np
 import pytest
 from conftest import server_process, tiny_rig
-from rigcast.runtime.client import MeshSender
+from rigcast.runtime.messaging.client import MeshSender
 
-from rigcast.watch_state import NO_INPUT, SILENT, WatchState
+from rigcast.live.watch_state import NO_INPUT, SILENT, WatchState
 
 ACTORS = [f"actor{i}" for i in range(1, 9)]
 

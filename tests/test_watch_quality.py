@@ -13,8 +13,8 @@ from pathlib import Path
 import pytest
 import zmq
 from conftest import TINY_FIT_RMS, server_process
-from rigcast.runtime import protocol
-from rigcast.runtime.bundle_quality import bundle_quality
+from rigcast.runtime.messaging import protocol
+from rigcast.runtime.serve.bundle_quality import bundle_quality
 from test_watch_live import _send_for, watching
 
 pytestmark = pytest.mark.timeout(90)
@@ -25,7 +25,7 @@ REFERENCE = {"rig_mean_err": 0.004, "lsq_mean_err": 0.001, "worse_than_reference
 
 def with_self_check(bundle: Path, out: Path, reference: dict) -> Path:
     """A copy of ``bundle`` whose manifest carries ``training.reference`` as a build writes it
-    (export/build_finish.py), the other members byte for byte."""
+    (export/bundling/build_finish.py), the other members byte for byte."""
     with zipfile.ZipFile(bundle) as src, zipfile.ZipFile(out, "w") as dst:
         for item in src.infolist():
             data = src.read(item.filename)

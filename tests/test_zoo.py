@@ -7,11 +7,11 @@ import pickle
 
 import numpy as np
 import pytest
-from rigcast.export import zoo_mesh as zm
-from rigcast.export.gltf_eval import skin_points
-from rigcast.export.rig import Rig, RigError
-from rigcast.export.rig_loader import load_rig
-from rigcast.export.zoo import KINDS, ZooRig, make_zoo_rig
+from rigcast.export.rigs import zoo_mesh as zm
+from rigcast.export.rigs.gltf_eval import skin_points
+from rigcast.export.rigs.rig import Rig, RigError
+from rigcast.export.rigs.rig_loader import load_rig
+from rigcast.export.rigs.zoo import KINDS, ZooRig, make_zoo_rig
 from scipy.spatial.transform import Rotation
 
 SMALL = {"max_vertices": 1500, "max_controls": 24}

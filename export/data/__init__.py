@@ -1,0 +1,4 @@
+"""rigcast.export.data: sampling the rig and the datasets it fills.
+
+Modules: sampling, dataset, executor.
+"""

@@ -1,0 +1,95 @@
+"""The head pose: the rigid motion that stabilisation removes, as it goes on the wire.
+
+Stabilisation fits ``x_neutral = s R x_frame + t`` (runtime/solve/align.py); the head's pose relative to
+the neutral is its inverse, ``x_frame = (1/s) R^T (x_neutral - t)``. It goes out with every live
+controls message (docs/protocol.md §5.1, ``head_pose``) and in telemetry (``pose``).
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+from collections.abc import Mapping
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from rigcast.runtime.solve.align import RigidTransform
+
+log = logging.getLogger(__name__)
+
+HEAD_POSE_VERSION = 1  # the version of the controls header's head_pose map
+
+
+def rotation_to_quaternion(rotation: np.ndarray) -> np.ndarray:
+    """rotation (3, 3) proper rotation -> unit quaternion (4,) as (w, x, y, z), w >= 0.
+
+    Shepperd's method (J. Guidance and Control 1(3), 1978): take the largest of the four squared
+    components from the trace and the diagonal, then the others from off-diagonal sums.
+    """
+    m = np.asarray(rotation, dtype=np.float64)
+    tr = m[0, 0] + m[1, 1] + m[2, 2]
+    candidates = np.array([tr, m[0, 0], m[1, 1], m[2, 2]])
+    i = int(np.argmax(candidates))
+    if i == 0:
+        s = 2.0 * math.sqrt(1.0 + tr)
+        q = [0.25 * s, (m[2, 1] - m[1, 2]) / s, (m[0, 2] - m[2, 0]) / s, (m[1, 0] - m[0, 1]) / s]
+    elif i == 1:
+        s = 2.0 * math.sqrt(1.0 + m[0, 0] - m[1, 1] - m[2, 2])
+        q = [(m[2, 1] - m[1, 2]) / s, 0.25 * s, (m[0, 1] + m[1, 0]) / s, (m[0, 2] + m[2, 0]) / s]
+    elif i == 2:
+        s = 2.0 * math.sqrt(1.0 + m[1, 1] - m[0, 0] - m[2, 2])
+        q = [(m[0, 2] - m[2, 0]) / s, (m[0, 1] + m[1, 0]) / s, 0.25 * s, (m[1, 2] + m[2, 1]) / s]
+    else:
+        s = 2.0 * math.sqrt(1.0 + m[2, 2] - m[0, 0] - m[1, 1])
+        q = [(m[1, 0] - m[0, 1]) / s, (m[0, 2] + m[2, 0]) / s, (m[1, 2] + m[2, 1]) / s, 0.25 * s]
+    out = np.array(q)
+    out /= np.linalg.norm(out)
+    return out if out[0] >= 0 else -out
+
+
+@dataclass(frozen=True)
+class HeadPose:
+    """The head's pose relative to the neutral: ``x_frame = scale * R(q) x_neutral + translation``
+    with q = quaternion_wxyz (unit, w >= 0); angle_deg is the rotation's angle."""
+
+    quaternion_wxyz: tuple[float, float, float, float]
+    translation: tuple[float, float, float]
+    scale: float
+    angle_deg: float
+
+    @classmethod
+    def from_stabiliser(cls, stabiliser: RigidTransform) -> HeadPose:
+        """The pose undone by ``stabiliser`` (the fit taking the frame onto the neutral)."""
+        pose = stabiliser.inverse()
+        w, x, y, z = (float(v) for v in rotation_to_quaternion(pose.rotation))
+        tx, ty, tz = (float(v) for v in pose.translation)
+        return cls((w, x, y, z), (tx, ty, tz), float(pose.scale), pose.angle_deg)
+
+    def to_wire(self) -> dict[str, Any]:
+        """The telemetry ``pose`` map."""
+        return {"quaternion_wxyz": list(self.quaternion_wxyz),
+                "translation": list(self.translation), "scale": self.scale,
+                "angle_deg": self.angle_deg}
+
+    def to_controls_wire(self) -> dict[str, Any]:
+        """The controls header's ``head_pose`` map (versioned: ``v``)."""
+        return {"v": HEAD_POSE_VERSION, "quaternion_wxyz": list(self.quaternion_wxyz),
+                "translation": list(self.translation), "scale": self.scale}
+
+    @classmethod
+    def from_wire(cls, data: Mapping[str, Any]) -> HeadPose | None:
+        """A ``head_pose`` or ``pose`` map back, or None when it is not one this version reads
+        (another ``v``, missing or malformed values): readers ignore what they do not know."""
+        try:
+            if data.get("v", HEAD_POSE_VERSION) != HEAD_POSE_VERSION:
+                return None
+            q = tuple(float(v) for v in data["quaternion_wxyz"])
+            t = tuple(float(v) for v in data["translation"])
+            scale = float(data["scale"])
+        except (KeyError, TypeError, ValueError):
+            return None
+        if len(q) != 4 or len(t) != 3 or not all(math.isfinite(v) for v in (*q, *t, scale)):
+            return None
+        angle = 2.0 * math.degrees(math.acos(min(1.0, abs(q[0]))))
+        return cls((q[0], q[1], q[2], q[3]), (t[0], t[1], t[2]), scale, angle)

@@ -1,0 +1,244 @@
+"""onnxruntime sessions for a bundle's two graphs, with explicit thread settings.
+
+A live server runs one frame at a time, so each session gets one intra-op thread by default and
+sequential execution: extra threads cost more in wake-ups than they save on graphs this small
+(common practice for latency-bound single-sample inference). Shapes are checked against the
+bundle when the session opens, so a mismatched graph fails at startup, not on the first frame.
+"""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import Callable, Sequence
+
+import numpy as np
+import onnxruntime as ort
+from rigcast.runtime.bundle import (
+    FORWARD_INPUT,
+    FORWARD_OUTPUT,
+    INVERSE_INPUT,
+    INVERSE_OUTPUT,
+    PROJECT_NORM,
+    PROJECT_POINTS,
+    REFINE_CONTROLS,
+    REFINE_GRADIENT,
+    REFINE_MESH,
+    REFINE_PROJECTION,
+    REFINE_QUAD,
+    REFINE_RESIDUAL,
+    Bundle,
+    BundleError,
+)
+from rigcast.runtime.solve.refine import RefineError, Refiner, RefineSettings
+
+log = logging.getLogger(__name__)
+
+# What onnxruntime raises from loading and running a session. Its exception types live in a
+# private module, so they are gathered here once, by name.
+def _ort_errors() -> tuple[type[BaseException], ...]:
+    try:
+        from onnxruntime.capi import onnxruntime_pybind11_state as state
+    except ImportError:  # pragma: no cover - other onnxruntime builds
+        return (RuntimeError,)
+    names = ("Fail", "InvalidArgument", "NoSuchFile", "NoModel", "EngineError",
+             "RuntimeException", "InvalidProtobuf", "ModelLoaded", "NotImplemented",
+             "InvalidGraph", "EPFail")
+    found = tuple(getattr(state, n) for n in names if isinstance(getattr(state, n, None), type))
+    return found or (RuntimeError,)
+
+
+ORT_ERRORS: tuple[type[BaseException], ...] = _ort_errors()
+
+
+def open_session(onnx_bytes: bytes, *, threads: int) -> ort.InferenceSession:
+    """An InferenceSession on the CPU provider with explicit threading; BundleError if invalid."""
+    opts = ort.SessionOptions()
+    opts.intra_op_num_threads = threads
+    opts.inter_op_num_threads = 1
+    opts.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
+    opts.graph_optimization_level = ort.GraphOptimizationLevel.ORT_ENABLE_ALL
+    # Spinning threads burn the core the other process needs on a 2-core machine.
+    opts.add_session_config_entry("session.intra_op.allow_spinning", "0")
+    opts.log_severity_level = 3
+    try:
+        return ort.InferenceSession(onnx_bytes, sess_options=opts,
+                                    providers=["CPUExecutionProvider"])
+    except ORT_ERRORS as exc:
+        raise BundleError(f"onnxruntime cannot load the graph: {exc}") from None
+
+
+def _check_io(
+    sess: ort.InferenceSession, graph: str, in_name: str, in_tail: Sequence[int],
+    out_name: str, out_tail: Sequence[int],
+) -> None:
+    inputs, outputs = sess.get_inputs(), sess.get_outputs()
+    if [i.name for i in inputs] != [in_name]:
+        raise BundleError(f"{graph} graph must have one input {in_name!r}, "
+                          f"has {[i.name for i in inputs]}")
+    if out_name not in [o.name for o in outputs]:
+        raise BundleError(f"{graph} graph has no output {out_name!r} "
+                          f"(outputs: {[o.name for o in outputs]})")
+    for label, arg, tail in (("input", inputs[0], in_tail),
+                             ("output", next(o for o in outputs if o.name == out_name), out_tail)):
+        if arg.type != "tensor(float)":
+            raise BundleError(f"{graph} graph {label} {arg.name!r} must be float32, is {arg.type}")
+        shape = list(arg.shape)
+        if len(shape) != 1 + len(tail):
+            raise BundleError(f"{graph} graph {label} {arg.name!r} has shape {shape}, "
+                              f"expected (N, {', '.join(map(str, tail))})")
+        for got, want in zip(shape[1:], tail, strict=True):
+            if isinstance(got, int) and got != want:
+                raise BundleError(f"{graph} graph {label} {arg.name!r} has shape {shape}, "
+                                  f"expected (N, {', '.join(map(str, tail))})")
+
+
+def _warm_up(graph: str, run: Callable[[np.ndarray], np.ndarray], x: np.ndarray) -> np.ndarray:
+    """One run at open: a graph that cannot run (a fixed batch size, a bad kernel) fails here as
+    BundleError, at startup or reload, never on the first frame."""
+    try:
+        return run(x)
+    except ORT_ERRORS as exc:
+        raise BundleError(f"the {graph} graph does not run on a batch of 1: {exc}") from None
+
+
+# Forward graphs are trained to reproduce the neutral at the defaults to well under 1% of the
+# bounding-box diagonal; 5% tells a graph of another rig with the same sizes from a merely
+# imprecise one (a margin of our choosing, no published source).
+REST_TOLERANCE_FRACTION = 0.05
+
+
+def check_forward_rest(rest: np.ndarray, neutral: np.ndarray) -> None:
+    """rest (V, 3): the forward graph at the defaults; neutral (V, 3). BundleError when their mean
+    vertex distance exceeds REST_TOLERANCE_FRACTION of the neutral's bounding-box diagonal."""
+    if not np.isfinite(rest).all():
+        raise BundleError("forward graph returns NaN or Inf at the default controls")
+    diag = float(np.linalg.norm(neutral.max(axis=0) - neutral.min(axis=0)))
+    mean = float(np.linalg.norm(rest.astype(np.float64) - neutral, axis=1).mean())
+    if mean > REST_TOLERANCE_FRACTION * diag:
+        raise BundleError(f"forward graph at the default controls is {mean:.4g} mesh units from "
+                          f"the bundle's neutral on average ({100 * mean / diag:.1f}% of the "
+                          f"diagonal, limit {100 * REST_TOLERANCE_FRACTION:.0f}%): the graph "
+                          "belongs to another rig, or the rig's neutral is not its pose at the "
+                          "defaults")
+
+
+class InverseModel:
+    """The bundle's solve: the frame's solve points (N, len(point_indices), 3) -> controls (N, C).
+
+    The inverse graph on the first K points (the network's input vertices), then, when the
+    bundle has a refinement graph and ``refine`` is not ``RefineSettings(steps=0)``, the bounded
+    Gauss-Newton steps of ``runtime.solve.refine`` on the vertices the refinement fits: the points
+    after the first K for a projected refinement, the K input vertices for an older one.
+    ``point_indices``: the vertices a caller gathers (in the neutral's frame) for ``solve``.
+    """
+
+    def __init__(self, bundle: Bundle, *, threads: int = 1,
+                 refine: RefineSettings | None = None) -> None:
+        self.k = int(bundle.input_indices.shape[0])
+        self.c = bundle.control_count
+        self.session = open_session(bundle.inverse_onnx, threads=threads)
+        _check_io(self.session, "inverse", INVERSE_INPUT, (self.k, 3), INVERSE_OUTPUT, (self.c,))
+        self._outputs = [INVERSE_OUTPUT]
+        self.refiner: Refiner | None = None
+        self.point_indices = np.asarray(bundle.input_indices, np.int64)
+        if bundle.refine_onnx is not None and bundle.refine_hessian is not None:
+            self.refiner = _refiner(bundle, threads, refine)
+            if bundle.refine_projection is not None:
+                self.point_indices = np.concatenate([self.point_indices,
+                                                     bundle.refine_projection.indices])
+        self.point_indices.setflags(write=False)
+        out = _warm_up("inverse", self.solve,
+                       np.asarray(bundle.neutral[self.point_indices], np.float32)[None])
+        if out.shape != (1, self.c):
+            raise BundleError(f"inverse graph returned shape {out.shape}, expected (1, {self.c})")
+        if not np.isfinite(out).all():
+            raise BundleError("inverse graph returns NaN or Inf on the neutral mesh")
+
+    def solve(self, points: np.ndarray) -> np.ndarray:
+        """points (N, len(point_indices), 3) float32 -> controls (N, C) float32."""
+        k = self.k
+        if points.ndim != 3 or points.shape[1:] != (self.point_indices.shape[0], 3):
+            raise BundleError(f"solve needs the frames' {self.point_indices.shape[0]} solve "
+                              f"points (N, {self.point_indices.shape[0]}, 3), got {points.shape}")
+        net_in = points if points.shape[1] == k else np.ascontiguousarray(points[:, :k])
+        result: np.ndarray = self.session.run(self._outputs, {INVERSE_INPUT: net_in})[0]
+        if self.refiner is not None and np.isfinite(result).all():
+            result = self.refiner.refine(result, points[:, k:] if points.shape[1] > k
+                                         else net_in)
+        return result
+
+
+def refine_settings(bundle: Bundle) -> RefineSettings:
+    """The refinement settings the bundle was built and checked with (defaults if none)."""
+    section = bundle.manifest.get("refine")
+    if not isinstance(section, dict):
+        return RefineSettings()
+    try:
+        return RefineSettings.from_manifest(section)
+    except RefineError as exc:
+        raise BundleError(f"bundle manifest 'refine' section is invalid: {exc}") from None
+
+
+def _refiner(bundle: Bundle, threads: int, settings: RefineSettings | None) -> Refiner:
+    assert bundle.refine_onnx is not None and bundle.refine_hessian is not None
+    session = open_session(bundle.refine_onnx, threads=threads)
+    projected = bundle.refine_projection
+    want_in = [REFINE_CONTROLS, REFINE_MESH if projected is None else REFINE_PROJECTION]
+    names = [REFINE_GRADIENT, REFINE_RESIDUAL if projected is None else REFINE_QUAD]
+    got_in = sorted(i.name for i in session.get_inputs())
+    got_out = {o.name for o in session.get_outputs()}
+    if got_in != sorted(want_in) or not set(names) <= got_out:
+        raise BundleError(f"refine graph must map {tuple(want_in)} to {tuple(names)}; has "
+                          f"{got_in} -> {sorted(got_out)}")
+    schema = bundle.schema
+    chosen = settings or refine_settings(bundle)
+    if projected is None:
+        def gradient(controls: np.ndarray, mesh: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+            g, rss = session.run(names, {REFINE_CONTROLS: controls, REFINE_MESH: mesh})
+            return g, rss
+
+        return Refiner(gradient, bundle.refine_hessian, schema.lower, schema.upper,
+                       schema.defaults, 3 * int(bundle.input_indices.shape[0]), chosen)
+    project = open_session(projected.project_onnx, threads=threads)
+    got_in = [i.name for i in project.get_inputs()]
+    got_out = {o.name for o in project.get_outputs()}
+    if got_in != [PROJECT_POINTS] or not {REFINE_PROJECTION, PROJECT_NORM} <= got_out:
+        raise BundleError(f"refine projection graph must map {PROJECT_POINTS!r} to "
+                          f"({REFINE_PROJECTION!r}, {PROJECT_NORM!r}); has {got_in} -> "
+                          f"{sorted(got_out)}")
+    outs = [REFINE_PROJECTION, PROJECT_NORM]
+
+    def prepare(points: np.ndarray) -> np.ndarray:
+        """points (N, S, 3) -> (N, R + 1) float64: the projection, then |y|^2."""
+        proj, norm = project.run(outs, {PROJECT_POINTS: np.ascontiguousarray(points)})
+        return np.concatenate([proj, norm[:, None]], axis=1, dtype=np.float64)
+
+    def gradient_projected(controls: np.ndarray, state: np.ndarray
+                           ) -> tuple[np.ndarray, np.ndarray]:
+        proj = state[:, :-1].astype(np.float32)
+        g, quad = session.run(names, {REFINE_CONTROLS: controls, REFINE_PROJECTION: proj})
+        return g, state[:, -1] + quad
+
+    return Refiner(gradient_projected, bundle.refine_hessian, schema.lower, schema.upper,
+                   schema.defaults, 3 * int(projected.indices.shape[0]), chosen, prepare)
+
+
+class ForwardModel:
+    """The bundle's forward graph: controls (N, C) -> vertices (N, V, 3)."""
+
+    def __init__(self, bundle: Bundle, *, threads: int = 1) -> None:
+        self.c = bundle.control_count
+        self.v = bundle.vertex_count
+        self.session = open_session(bundle.forward_onnx, threads=threads)
+        _check_io(self.session, "forward", FORWARD_INPUT, (self.c,), FORWARD_OUTPUT, (self.v, 3))
+        self._outputs = [FORWARD_OUTPUT]
+        out = _warm_up("forward", self.evaluate, bundle.schema.defaults[None])
+        if out.shape != (1, self.v, 3):
+            raise BundleError(f"forward graph returned shape {out.shape}, "
+                              f"expected (1, {self.v}, 3)")
+        check_forward_rest(out[0], bundle.neutral)
+
+    def evaluate(self, controls: np.ndarray) -> np.ndarray:
+        """controls (N, C) float32 -> vertices (N, V, 3) float32."""
+        result: np.ndarray = self.session.run(self._outputs, {FORWARD_INPUT: controls})[0]
+        return result
