@@ -157,14 +157,10 @@ def export_forward(model: ForwardApproximator, seed: int = 0) -> tuple[bytes, fl
 
 def export_refine(graph: nn.Module, lower: np.ndarray, upper: np.ndarray,
                   example_meshes: np.ndarray, seed: int = 0) -> tuple[bytes, float]:
-    """Export the refinement graph (``export.training.refine.RefineGraph``, built by its module): inputs
+    """Export the input-vertex refinement graph (``export.training.refine.RefineGraph``): inputs
     ``controls`` (N, C) and ``mesh`` (N, K, 3) -> outputs ``gradient`` (N, C) and
-    ``residual_sq`` (N,).
-
-    lower, upper: (C,) control bounds; example_meshes: (M, K, 3) realistic inputs for the parity
-    check, paired with random controls within the bounds. Parity is relative to the largest
-    magnitude of each output. returns: (model bytes, worst relative parity error).
-    """
+    ``residual_sq`` (N,). lower, upper: (C,) control bounds; example_meshes: (M, K, 3) realistic
+    inputs for the parity check. returns: (model bytes, worst relative parity error)."""
     from rigcast.runtime.bundle import (
         REFINE_CONTROLS,
         REFINE_GRADIENT,
@@ -172,36 +168,16 @@ def export_refine(graph: nn.Module, lower: np.ndarray, upper: np.ndarray,
         REFINE_RESIDUAL,
     )
 
-    graph = graph.eval()
-    rng = np.random.default_rng(seed)
-    lo, hi = np.asarray(lower, np.float32), np.asarray(upper, np.float32)
-    mesh = np.asarray(example_meshes, np.float32)
-    ctrl = (lo + (hi - lo) * rng.random((mesh.shape[0], lo.shape[0]))).astype(np.float32)
-    example = (torch.from_numpy(ctrl), torch.from_numpy(mesh))
-    data = _export(graph, example, [REFINE_CONTROLS, REFINE_MESH],
-                   [REFINE_GRADIENT, REFINE_RESIDUAL])
-    check_graph(data, "refine")
-    sess = session(data)
-    worst = 0.0
-    with torch.no_grad():
-        refs = graph(*example)
-    got = sess.run(None, {REFINE_CONTROLS: ctrl, REFINE_MESH: mesh})
-    for g, r in zip(got, refs, strict=True):
-        ref = r.numpy()
-        worst = max(worst, float(np.max(np.abs(g - ref)) / max(float(np.max(np.abs(ref))), 1e-12)))
-    if not worst <= 1e-4:
-        raise ExportError(f"refine graph differs from torch by {worst:.3g} (relative, > 1e-4)")
-    log.info("exported refine: %d bytes, parity %.2g", len(data), worst)
-    return data, worst
+    return _export_refine_pair(graph, lower, upper, example_meshes, seed,
+                               (REFINE_CONTROLS, REFINE_MESH), (REFINE_GRADIENT, REFINE_RESIDUAL))
 
 
 def export_refine_core(graph: nn.Module, lower: np.ndarray, upper: np.ndarray,
                        example_projections: np.ndarray, seed: int = 0) -> tuple[bytes, float]:
-    """Export the projected refinement graph (``export.training.refine.RefineCore``): inputs ``controls``
-    (N, C) and ``projection`` (N, R) -> outputs ``gradient`` (N, C) float32 and ``quad`` (N,)
-    float64. example_projections (M, R): realistic projections, paired with random controls
-    within the bounds for the parity check (relative to each output's largest magnitude).
-    returns: (model bytes, worst relative parity error)."""
+    """Export the projected refinement graph (``export.training.refine.RefineCore``): inputs
+    ``controls`` (N, C) and ``projection`` (N, R) -> outputs ``gradient`` (N, C) float32 and
+    ``quad`` (N,) float64. example_projections (M, R): realistic projections for the parity
+    check. returns: (model bytes, worst relative parity error)."""
     from rigcast.runtime.bundle import (
         REFINE_CONTROLS,
         REFINE_GRADIENT,
@@ -209,20 +185,28 @@ def export_refine_core(graph: nn.Module, lower: np.ndarray, upper: np.ndarray,
         REFINE_QUAD,
     )
 
+    return _export_refine_pair(graph, lower, upper, example_projections, seed,
+                               (REFINE_CONTROLS, REFINE_PROJECTION), (REFINE_GRADIENT, REFINE_QUAD))
+
+
+def _export_refine_pair(graph: nn.Module, lower: np.ndarray, upper: np.ndarray,
+                        example: np.ndarray, seed: int, inputs: tuple[str, str],
+                        outputs: tuple[str, str]) -> tuple[bytes, float]:
+    """Export a refinement graph of (controls, ``example``-shaped input) -> two outputs, and
+    check it: the example inputs, paired with random controls within the bounds, through
+    onnxruntime against torch, relative to the largest magnitude of each output (<= 1e-4)."""
     graph = graph.eval()
     rng = np.random.default_rng(seed)
     lo, hi = np.asarray(lower, np.float32), np.asarray(upper, np.float32)
-    proj = np.asarray(example_projections, np.float32)
-    ctrl = (lo + (hi - lo) * rng.random((proj.shape[0], lo.shape[0]))).astype(np.float32)
-    example = (torch.from_numpy(ctrl), torch.from_numpy(proj))
-    data = _export(graph, example, [REFINE_CONTROLS, REFINE_PROJECTION],
-                   [REFINE_GRADIENT, REFINE_QUAD])
+    second = np.asarray(example, np.float32)
+    ctrl = (lo + (hi - lo) * rng.random((second.shape[0], lo.shape[0]))).astype(np.float32)
+    torch_in = (torch.from_numpy(ctrl), torch.from_numpy(second))
+    data = _export(graph, torch_in, list(inputs), list(outputs))
     check_graph(data, "refine")
-    sess = session(data)
     worst = 0.0
     with torch.no_grad():
-        refs = graph(*example)
-    got = sess.run(None, {REFINE_CONTROLS: ctrl, REFINE_PROJECTION: proj})
+        refs = graph(*torch_in)
+    got = session(data).run(None, {inputs[0]: ctrl, inputs[1]: second})
     for g, r in zip(got, refs, strict=True):
         ref = r.numpy()
         worst = max(worst, float(np.max(np.abs(g - ref)) / max(float(np.max(np.abs(ref))), 1e-12)))
