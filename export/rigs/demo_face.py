@@ -1,4 +1,4 @@
-"""Tamsin's face rig: blendshapes, corrective combination shapes and a jaw skinned with linear
+"""The demo face (Tamsin): blendshapes, corrective combination shapes and a jaw skinned with linear
 blend skinning (``tamsin_face()``), or its affine variant (``tamsin_face_linear()``).
 
 The head is a deformed UV sphere (``demo_mesh``); the shapes come from ``demo_face_shapes``.
