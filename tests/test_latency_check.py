@@ -14,6 +14,7 @@ import subprocess
 import sys
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 
@@ -75,3 +76,45 @@ def test_latency_check_against_a_running_server(tmp_path: Path, tiny_bundle: Pat
                     f"{ready['input']},{ready['output']}", "--stream", "tiny")
     _check_report(tmp_path / "report", done, 300)
     assert "running server at" in done.stdout
+
+
+def test_a_running_server_without_the_stream_is_one_line(tmp_path: Path,
+                                                          tiny_bundle: Path) -> None:
+    # the measuring client runs in its own process; its handshake failure still comes back to
+    # the command as one line naming the stream, with no traceback
+    from conftest import server_process
+
+    with server_process(["--bundle", f"tiny={tiny_bundle}"], tmp_path) as (_, ready):
+        done = _run(tiny_bundle, tmp_path / "report", "--server",
+                    f"{ready['input']},{ready['output']}", "--stream", "nobody")
+    assert done.returncode != 0
+    assert done.stderr.startswith("rigcast: error: no controls for stream 'nobody'")
+    assert "Traceback" not in done.stderr
+
+
+def test_the_frames_are_the_latency_bench_frames(tmp_path: Path) -> None:
+    # bench/latency.py and the command are compared back to back (bench/latency_agreement.py);
+    # on the bench's synthetic bundle the command's frames (its forward model at
+    # latency_probe.pose_meshes's controls) must be the bench's own rig poses
+    import importlib.util
+
+    from rigcast.export.bundling.synthetic_bundle import build_synthetic_bundle
+
+    from rigcast.live.latency_check import bundle_meshes
+
+    path = Path(__file__).parents[1] / "bench" / "latency.py"
+    spec = importlib.util.spec_from_file_location("latency_bench", path)
+    assert spec is not None and spec.loader is not None
+    bench = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(bench)
+    vertices = 600
+    bundle = build_synthetic_bundle(tmp_path / "b.rcb", vertices=vertices,
+                                    controls=bench.CONTROLS, inputs=bench.INPUTS,
+                                    stable=bench.STABLE, inverse="mlp", hidden=16,
+                                    seed=bench.SEED, fit_rms=10.0, name="b")
+    ours, controls = bundle_meshes(bundle)
+    theirs = bench.make_meshes(vertices)
+    assert controls == bench.CONTROLS and len(ours) == len(theirs)
+    # float32 ONNX MatMul against the rig's float64 einsum: equal to float32 rounding
+    for a, b in zip(ours, theirs, strict=True):
+        np.testing.assert_allclose(a, b, atol=1e-5)

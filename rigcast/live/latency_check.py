@@ -1,6 +1,8 @@
 """`rigcast latency-check`: end-to-end latency of the user's own bundle on this machine.
 
-One run measures, with the sender in this process and the server (or echo) in another:
+One run measures, with the sender in a process of its own (``latency_probe --role client``,
+pinned to CPU 1 where the platform allows, as bench/latency.py's) and the server (or echo) in
+another (pinned to CPU 0); this process only starts them and writes the report:
 
 1. the transport floor: the same sockets and message sizes against an echo process that does no
    work (``rigcast.live.latency_probe``), paced at the chosen rate, and its lockstep ceiling;
@@ -10,8 +12,9 @@ One run measures, with the sender in this process and the server (or echo) in an
 3. the largest rate it sustains: lockstep, the next frame sent as the previous controls arrive
    (never more than one frame in flight).
 
-Meshes are the bundle's own rig poses (its forward model at sparse random controls) with a
-little rigid head motion, so stabilisation does real work. Platform-specific steps (CPU
+Meshes are the bundle's own rig poses (its forward model at every control a little active,
+``latency_probe.pose_meshes``, bench/latency.py's recipe) with a little rigid head motion, so
+stabilisation does real work. Platform-specific steps (CPU
 pinning, the server's memory from /proc) run where available and are skipped with one line
 elsewhere. ``write_report`` writes report.md, latency.json and, with matplotlib, a histogram
 and latency over time.
@@ -35,7 +38,7 @@ from typing import Any
 import numpy as np
 
 from rigcast.errors import UserError
-from rigcast.live.latency_probe import Client, ms_percentiles
+from rigcast.live.latency_probe import ms_percentiles, pose_meshes
 
 log = logging.getLogger(__name__)
 
@@ -105,25 +108,17 @@ class LatencyResult:
 
 
 def bundle_meshes(bundle_path: Path, count: int = 32, seed: int = 1) -> tuple[list[np.ndarray], int]:
-    """``count`` meshes (V, 3) float32 of the bundle's rig: its forward model at sparse random
-    controls, turned a few degrees about y; and the control count."""
+    """``count`` meshes (V, 3) float32 of the bundle's rig (its forward model, at
+    ``latency_probe.pose_meshes``'s controls with its head motion); and the control count."""
     from rigcast.runtime.bundle import load_bundle
     from rigcast.runtime.solve.inference import ForwardModel
 
     bundle = load_bundle(bundle_path)
     schema = bundle.schema
-    rng = np.random.default_rng(seed)
-    lo, hi = schema.lower.astype(np.float64), schema.upper.astype(np.float64)
-    controls = np.tile(schema.defaults.astype(np.float64), (count, 1))
-    active = rng.random(controls.shape) < 0.3  # mostly at rest, a few active (as sampled)
-    controls[active] = (lo + rng.random(controls.shape) * (hi - lo))[active]
-    meshes = ForwardModel(bundle).evaluate(controls.astype(np.float32))
-    out = []
-    for i, mesh in enumerate(meshes):
-        a = np.radians(3.0 * np.sin(i / 5))
-        rot = np.array([[np.cos(a), 0, np.sin(a)], [0, 1, 0], [-np.sin(a), 0, np.cos(a)]])
-        out.append(np.ascontiguousarray(mesh.astype(np.float64) @ rot.T, dtype=np.float32))
-    return out, len(schema)
+    forward = ForwardModel(bundle)
+    meshes = pose_meshes(lambda c: forward.evaluate(c.astype(np.float32)), schema.lower,
+                         schema.upper, count, seed)
+    return meshes, len(schema)
 
 
 def _pin(pid: int, cpu: int, enabled: bool, notes: list[str]) -> None:
@@ -180,14 +175,7 @@ def run_check(config: CheckConfig, say: Callable[[str], None] = lambda _: None
               ) -> LatencyResult:
     """Measure the floor, then the server, back to back (see the module docstring)."""
     meshes, controls = bundle_meshes(config.bundle)
-    notes: list[str] = []
-    affinity = os.sched_getaffinity(0) if hasattr(os, "sched_getaffinity") else None
-    _pin(os.getpid(), 1, config.pin, notes)
-    try:
-        return _run(config, meshes, controls, notes, say)
-    finally:
-        if affinity is not None and config.pin:
-            os.sched_setaffinity(0, affinity)
+    return _run(config, meshes, controls, [], say)
 
 
 def _run(config: CheckConfig, meshes: list[np.ndarray], controls: int, notes: list[str],
@@ -195,18 +183,20 @@ def _run(config: CheckConfig, meshes: list[np.ndarray], controls: int, notes: li
     stream = config.stream or STREAM
     with tempfile.TemporaryDirectory(prefix="rigcast-latency-") as tmp:
         work = Path(tmp)
+        np.save(work / "meshes.npy", np.stack(meshes))
         say(f"floor: echo process, {config.floor_duration_s:.1f} s at {config.fps:g} fps ...")
         echo_cmd = [sys.executable, "-m", "rigcast.live.latency_probe", "--ready",
                     str(work / "echo.json"), "--stream", stream, "--controls", str(controls)]
-        with _process(echo_cmd, work / "echo.json", "echo", 0, config, notes) as (_, ends):
-            floor_lat, _, floor_max = _measure(ends, meshes, stream, config,
-                                               config.floor_duration_s)
+        with _process(echo_cmd, work / "echo.json", "echo", 0, config, notes):
+            floor = _client(work, "echo", work / "echo.json", stream, config,
+                            config.floor_duration_s, notes)
         if config.server is not None:
-            ends = {"input": config.server[0], "output": config.server[1]}
-            say(f"server at {ends['input']}: {config.duration_s:g} s at {config.fps:g} fps ...")
-            lat, sent, lost, best, telemetry = _measure_server(ends, meshes, stream, config)
+            ends = work / "server.json"
+            ends.write_text(json.dumps({"input": config.server[0], "output": config.server[1]}))
+            say(f"server at {config.server[0]}: {config.duration_s:g} s at {config.fps:g} fps ...")
+            res = _client(work, "server", ends, stream, config, config.duration_s, notes)
             rss = None
-            server = f"running server at {ends['input']} (stream {stream})"
+            server = f"running server at {config.server[0]} (stream {stream})"
         else:
             say(f"server on {config.bundle}: {config.duration_s:g} s at {config.fps:g} fps ...")
             cmd = [sys.executable, "-m", "rigcast.runtime.serve.serve_main", "--bundle",
@@ -214,45 +204,51 @@ def _run(config: CheckConfig, meshes: list[np.ndarray], controls: int, notes: li
                    "--output", "tcp://127.0.0.1:*", "--ready-file", str(work / "server.json"),
                    "--fit-error-schedule", config.fit_error, "--telemetry-hz", "10", "--window", "1000",
                    "--log-level", "WARNING"]
-            with _process(cmd, work / "server.json", "server", 0, config, notes) as (proc, ends):
-                lat, sent, lost, best, telemetry = _measure_server(ends, meshes, stream, config)
+            with _process(cmd, work / "server.json", "server", 0, config, notes) as (proc, _):
+                res = _client(work, "server", work / "server.json", stream, config,
+                              config.duration_s, notes)
                 rss = _rss_mb(proc.pid)
                 if rss is None:
                     notes.append("server memory skipped: no /proc on this platform")
             server = f"local server process (serve_main, fit error {config.fit_error})"
-    return _result(config, meshes[0].shape[0], controls, floor_lat, floor_max, lat, sent, lost,
-                   best, telemetry, server, rss, notes)
+    return _result(config, meshes[0].shape[0], controls, floor["latency_ns"],
+                   floor["max_sustained_fps"], res["latency_ns"], res["sent_ns"], res["lost"],
+                   res["max_sustained_fps"], res["telemetry"] or {}, server, rss, notes)
 
 
-def _measure(ends: dict[str, str], meshes: list[np.ndarray], stream: str, config: CheckConfig,
-             seconds: float) -> tuple[list[int], list[int], float]:
-    client = Client(ends, meshes, stream=stream)
+def _client(work: Path, mode: str, endpoints: Path, stream: str, config: CheckConfig,
+            seconds: float, notes: list[str]) -> dict[str, Any]:
+    """Run the measuring client (latency_probe --role client) in its own process on CPU 1 and
+    return its result (``latency_probe.measure``'s figures)."""
+    result = work / f"client-{mode}.json"
+    cmd = [sys.executable, "-m", "rigcast.live.latency_probe", "--role", "client", "--mode", mode,
+           "--endpoints", str(endpoints), "--meshes", str(work / "meshes.npy"), "--stream",
+           stream, "--fps", str(config.fps), "--duration", str(seconds), "--warmup",
+           str(config.warmup_s), "--flat-seconds", str(config.flat_seconds), "--result",
+           str(result)]
+    errors = result.with_suffix(".stderr")
+    with errors.open("wb") as err:
+        proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=err)
     try:
-        client.handshake()
-        sent: list[int] = []
-        lat, _ = client.paced(seconds, config.fps, warmup_s=config.warmup_s, sent_at=sent)
-        return lat, sent, client.lockstep(config.flat_seconds)
+        _pin(proc.pid, 1, config.pin, notes)
+        code = proc.wait(config.warmup_s + seconds + config.flat_seconds + 120)
+    except subprocess.TimeoutExpired:
+        raise LatencyCheckError(f"the {mode} client did not finish in time") from None
     finally:
-        client.close()
-
-
-def _measure_server(ends: dict[str, str], meshes: list[np.ndarray], stream: str,
-                    config: CheckConfig) -> tuple[list[int], list[int], int, float, dict[str, Any]]:
-    client = Client(ends, meshes, stream=stream)
-    try:
-        try:
-            client.handshake()
-        except TimeoutError:
-            raise LatencyCheckError(f"no controls for stream {stream!r} from {ends['output']} "
-                                    f"(is it serving this bundle's rig?)") from None
-        sent: list[int] = []
-        lat, lost = client.paced(config.duration_s, config.fps, warmup_s=config.warmup_s,
-                                 sent_at=sent)
-        telemetry = client.fresh_telemetry(2.0)  # a message of the paced window
-        best = client.lockstep(config.flat_seconds)
-        return lat, sent, lost, best, telemetry
-    finally:
-        client.close()
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait(5)
+    if not result.exists():
+        tail = errors.read_text(errors="replace").strip().splitlines()[-1:] or ["-"]
+        raise LatencyCheckError(f"the {mode} client failed with exit code {code} ({tail[0]})")
+    out: dict[str, Any] = json.loads(result.read_text())
+    if "error" in out:
+        if mode == "echo":
+            raise LatencyCheckError(f"no answer from the echo process ({out['error']})")
+        raise LatencyCheckError(f"no controls for stream {stream!r} from "
+                                f"{json.loads(endpoints.read_text())['output']} "
+                                f"(is it serving this bundle's rig?)")
+    return out
 
 
 def _result(config: CheckConfig, vertices: int, controls: int, floor_lat: list[int],

@@ -10,6 +10,13 @@ bench/latency.py, so both measure the same way.
   cross-process clock is involved); ``lockstep`` sends the next frame when the previous
   controls arrive (the largest rate with one frame in flight); ``blast`` sends flat out.
 
+- ``client_main``: the measuring client as a process of its own (``--role client``), pinned by
+  whoever starts it: meshes from an .npy file, handshake, the paced run after the warm-up, then
+  lockstep (and, against a server, a telemetry message of the paced window); the samples go to a
+  JSON file. The command and the bench both measure from such a third process, so the sender
+  never shares a process (or a core) with the one orchestrating the run.
+- ``pose_meshes``: the frames, a rig's poses with a little rigid head motion, one recipe for both.
+
 Run as ``python -m rigcast.live.latency_probe --ready FILE`` it is the echo process.
 """
 
@@ -19,6 +26,7 @@ import argparse
 import json
 import logging
 import os
+import sys
 import time
 from collections.abc import Callable, Sequence
 from pathlib import Path
@@ -246,18 +254,104 @@ def ms_percentiles(lat_ns: Sequence[int], qs: Sequence[float] = (50, 95, 99)) ->
     return [float(x) for x in np.percentile(np.asarray(lat_ns) / 1e6, list(qs))]
 
 
-def main(argv: Sequence[str] | None = None) -> None:
+def pose_meshes(evaluate: Callable[[np.ndarray], np.ndarray], lower: np.ndarray,
+                upper: np.ndarray, count: int = 32, seed: int = 1) -> list[np.ndarray]:
+    """``count`` meshes (V, 3) float32 of a rig ``evaluate(controls (B, C)) -> (B, V, 3)`` with
+    bounds ``lower``, ``upper`` (C,): each control at ``lower + w (upper - lower)``,
+    ``w ~ clip(N(0.2, 0.15), 0, 1)`` (every control a little active: the refinement's active
+    set is full, the costlier case), turned up to 3 degrees about y and moved 0.01 i along x, so
+    stabilisation does real work. bench/latency.py's own recipe, drawn in the same order."""
+    lo, hi = np.asarray(lower, np.float64), np.asarray(upper, np.float64)
+    rng = np.random.default_rng(seed)
+    weights = np.stack([np.clip(rng.normal(0.2, 0.15, lo.shape[0]), 0, 1) for _ in range(count)])
+    poses = evaluate(lo + weights * (hi - lo))
+    out = []
+    for i, mesh in enumerate(poses):
+        a = np.radians(3.0 * np.sin(i / 5))
+        rot = np.array([[np.cos(a), 0, np.sin(a)], [0, 1, 0], [-np.sin(a), 0, np.cos(a)]])
+        moved = np.asarray(mesh, np.float64) @ rot.T + [0.01 * i, 0, 0]
+        out.append(np.ascontiguousarray(moved, dtype=np.float32))
+    return out
+
+
+def measure(client: Client, mode: str, seconds: float, fps: float, warmup_s: float,
+            flat_seconds: float, marker: Path | None = None) -> dict[str, Any]:
+    """One client's measurement: the paced run (after the warm-up), then against a server a
+    telemetry message of the paced window, then lockstep. ``marker``: ``.warm`` and ``.paced``
+    files beside it are written as the warm-up and the paced run end (for a parent reading the
+    server's memory then). Latencies and send times in ns (perf_counter_ns)."""
+    client.handshake()
+    sent: list[int] = []
+    warm = marker.with_suffix(".warm") if marker is not None else None
+    lat, lost = client.paced(seconds, fps, warm, warmup_s=warmup_s, sent_at=sent)
+    if marker is not None:
+        marker.with_suffix(".paced").write_text("done")
+    telemetry = None
+    if mode == "server":
+        try:
+            telemetry = client.fresh_telemetry(2.0)
+        except TimeoutError:
+            log.warning("no telemetry from the server after the paced run")
+    return {"latency_ns": lat, "sent_ns": sent, "lost": lost, "telemetry": telemetry,
+            "max_sustained_fps": client.lockstep(flat_seconds)}
+
+
+def client_main(args: argparse.Namespace) -> int:
+    """The measuring client as its own process: writes ``args.result`` (JSON: ``measure``'s
+    figures, or {"error": ...} with exit code 3 when nothing answers the handshake)."""
+    endpoints = json.loads(Path(args.endpoints).read_text())
+    meshes = list(np.load(args.meshes))
+    curve = (ClientCurve.from_files(args.curve_keys / "server.key",
+                                    args.curve_keys / "clients" / "bench.key_secret")
+             if args.curve_keys is not None else None)
+    client = Client(endpoints, meshes, args.busy_poll_us * 1000, curve, stream=args.stream)
+    result = Path(args.result)
+    try:
+        out = measure(client, args.mode, args.duration, args.fps, args.warmup,
+                      args.flat_seconds, result)
+    except TimeoutError as exc:
+        out, code = {"error": str(exc)}, 3
+    else:
+        code = 0
+    finally:
+        client.close()
+    tmp = result.with_suffix(".tmp")
+    tmp.write_text(json.dumps(out))
+    tmp.replace(result)
+    return code
+
+
+def main(argv: Sequence[str] | None = None) -> int:
     parser = argparse.ArgumentParser(prog="python -m rigcast.live.latency_probe",
-                                     description="The echo process of a latency run.")
-    parser.add_argument("--ready", type=Path, required=True)
+                                     description="The echo or the client process of a latency "
+                                                 "run.")
+    parser.add_argument("--role", choices=("echo", "client"), default="echo")
+    parser.add_argument("--ready", type=Path, help="echo: the file written once bound")
     parser.add_argument("--busy-poll-us", type=int, default=0)
     parser.add_argument("--curve-keys", type=Path, default=None)
     parser.add_argument("--stream", default=STREAM)
     parser.add_argument("--controls", type=int, default=CONTROLS)
+    client = parser.add_argument_group("client")
+    client.add_argument("--endpoints", type=Path, help="JSON with 'input' and 'output'")
+    client.add_argument("--meshes", type=Path, help=".npy of meshes (N, V, 3) float32")
+    client.add_argument("--mode", choices=("echo", "server"), default="server")
+    client.add_argument("--fps", type=float, default=120.0)
+    client.add_argument("--duration", type=float, default=10.0)
+    client.add_argument("--warmup", type=float, default=WARMUP_S)
+    client.add_argument("--flat-seconds", type=float, default=3.0)
+    client.add_argument("--result", type=Path, help="JSON written at the end")
     args = parser.parse_args(argv)
+    if args.role == "client":
+        missing = [k for k in ("endpoints", "meshes", "result") if getattr(args, k) is None]
+        if missing:
+            parser.error(f"--role client needs --{', --'.join(missing)}")
+        return client_main(args)
+    if args.ready is None:
+        parser.error("--role echo needs --ready")
     echo_main(args.ready, args.busy_poll_us * 1000, args.curve_keys, stream=args.stream,
               controls=args.controls)
+    return 0
 
 
 if __name__ == "__main__":
-    main()
+    sys.exit(main())
