@@ -15,9 +15,13 @@ A bundle is a ZIP archive (stored, not compressed) with these members:
                       manifest a ``refine`` section. Two forms:
                       * projected (bundles since the all-vertex refinement): ``arrays.npz`` also
                         holds ``refine_indices`` (S,) int64, and ``refine_project.onnx`` maps
-                        ``points`` (N, S, 3) to ``projection`` (N, R) and ``norm_sq`` (N,) float64;
-                        the refinement graph maps ``controls`` (N, C) and ``projection``
-                        (N, R) to ``gradient`` (N, C) and ``quad`` (N,) float64;
+                        ``points`` (N, S, 3) to ``moments`` (N, 3, 3R + 4) and ``norm_sq`` (N,)
+                        float32, with constant outputs ``moment_constants`` and ``moment_centre``
+                        (the moment form, runtime/solve/moments.py; earlier projected bundles:
+                        ``projection`` (N, R) and ``norm_sq`` float64); the refinement graph maps
+                        ``controls`` (N, C) and ``projection`` (N, R) to ``gradient`` (N, C),
+                        ``quad`` (N,) float64 and, in the moment form, ``basis_weights`` (N, R)
+                        float64, the z = [u; MLP(u)] whose mesh is offset + A^T z;
                       * input-vertex (older bundles): ``controls`` (N, C) and ``mesh`` (N, K, 3)
                         to ``gradient`` (N, C) and ``residual_sq`` (N,).
 
@@ -61,6 +65,10 @@ REFINE_PROJECTION = "projection"
 REFINE_QUAD = "quad"
 PROJECT_POINTS = "points"
 PROJECT_NORM = "norm_sq"
+PROJECT_MOMENTS = "moments"  # the moment form (runtime/solve/moments.py)
+PROJECT_CONSTANTS = "moment_constants"
+PROJECT_CENTRE = "moment_centre"
+REFINE_WEIGHTS = "basis_weights"  # z = [u; MLP(u)] of the projected refinement
 _MEMBERS = ("manifest.json", "arrays.npz", "inverse.onnx", "forward.onnx")
 _OPTIONAL = ("refine.onnx", "refine_project.onnx")
 
@@ -75,8 +83,8 @@ class BundleError(RigcastError):
 class RefineProjection:
     """What the all-vertex refinement reads: the S vertices it fits (indices (S,) int64) and the
     graph that projects them onto the forward model's linear and residual bases (project_onnx:
-    points (N, S, 3) -> projection (N, R), R = C + P, and norm_sq (N,), float64; see
-    runtime/solve/refine.py).
+    points (N, S, 3) -> their moments (runtime/solve/moments.py), or in earlier bundles the
+    projection (N, R), R = C + P, and norm_sq (N,), float64; see runtime/solve/refine.py).
     The projection runs in onnxruntime, whose thread count the caller sets: a small product on
     a BLAS thread pool stalled for milliseconds on a busy 2-core machine."""
 

@@ -218,11 +218,13 @@ def test_projected_refine_core_matches_the_direct_fit_on_its_vertices() -> None:
         vertex_information,
     )
     from rigcast.runtime.bundle import (
+        PROJECT_MOMENTS,
         PROJECT_NORM,
         PROJECT_POINTS,
         REFINE_CONTROLS,
         REFINE_PROJECTION,
     )
+    from rigcast.runtime.solve.moments import FrameMoments, projection_state
     from rigcast.runtime.solve.refine import project_naive
 
     rng = np.random.default_rng(1)
@@ -249,22 +251,26 @@ def test_projected_refine_core_matches_the_direct_fit_on_its_vertices() -> None:
     ctrl = rng.uniform(-1, 2, (7, c)).astype(np.float32)
     mesh = rng.standard_normal((7, v, 3)).astype(np.float32)
     pts = np.ascontiguousarray(mesh[:, idx])
-    proj, norm = session(projection.project_onnx).run([REFINE_PROJECTION, PROJECT_NORM],
-                                                      {PROJECT_POINTS: pts})
-    state = np.concatenate([proj, norm[:, None]], axis=1, dtype=np.float64)
+    mo, norm = session(projection.project_onnx).run([PROJECT_MOMENTS, PROJECT_NORM],
+                                                    {PROJECT_POINTS: pts})
+    state = projection_state(FrameMoments.from_outputs(mo, norm))
     np.testing.assert_allclose(state, project_naive(pts, a, offset), rtol=1e-4, atol=1e-3)
-    g, quad = session(data).run(None, {REFINE_CONTROLS: ctrl,
-                                       REFINE_PROJECTION: state[:, :-1].astype(np.float32)})
+    g, quad, z = session(data).run(None, {REFINE_CONTROLS: ctrl,
+                                          REFINE_PROJECTION: state[:, :-1].astype(np.float32)})
     np.testing.assert_allclose(g, refine_gradient_naive(fwd, idx, ctrl, pts), rtol=1e-3,
                                atol=1e-3)
     with torch.no_grad():
-        direct = ((pts - fwd(torch.from_numpy(ctrl)).numpy()[:, idx]) ** 2).sum(axis=(1, 2))
+        on_s = fwd(torch.from_numpy(ctrl)).numpy()[:, idx]
+    direct = ((pts - on_s) ** 2).sum(axis=(1, 2))
     np.testing.assert_allclose(state[:, -1] + quad, direct, rtol=1e-4)
+    # the basis weights z rebuild the forward model's mesh on S: offset + A^T z
+    np.testing.assert_allclose(offset + z @ a.astype(np.float64), on_s.reshape(7, -1),
+                               rtol=1e-4, atol=1e-4)
 
 
-@pytest.mark.parametrize("form", ["inputs", "projected"])
+@pytest.mark.parametrize("form", ["inputs", "projected", "projected-plain"])
 def test_a_bundle_with_refinement_solves_through_it(tmp_path, form) -> None:
-    """The synthetic bundle's refinement graph (ONNX built by hand, in both forms) through
+    """The synthetic bundle's refinement graph (ONNX built by hand, in each form) through
     InverseModel: a sparse pose whose network answer is off comes back to the pose."""
     from rigcast.export.bundling.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
     from rigcast.runtime.bundle import load_bundle
@@ -278,7 +284,7 @@ def test_a_bundle_with_refinement_solves_through_it(tmp_path, form) -> None:
                              stable=spec["stable"], seed=spec["seed"])
     truth = np.zeros((5, 8))
     truth[:, 2], truth[:, 5] = 0.7, 0.3
-    assert (bundle.refine_projection is not None) == (form == "projected")
+    assert (bundle.refine_projection is not None) == form.startswith("projected")
     model = InverseModel(bundle, refine=RefineSettings(steps=8, prior=0.0, damping=0.05))
     assert model.refiner is not None
     mesh = rig.evaluate(truth)[:, model.point_indices].astype(np.float32)

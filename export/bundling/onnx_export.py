@@ -175,24 +175,27 @@ def export_refine(graph: nn.Module, lower: np.ndarray, upper: np.ndarray,
 def export_refine_core(graph: nn.Module, lower: np.ndarray, upper: np.ndarray,
                        example_projections: np.ndarray, seed: int = 0) -> tuple[bytes, float]:
     """Export the projected refinement graph (``export.training.refine.RefineCore``): inputs
-    ``controls`` (N, C) and ``projection`` (N, R) -> outputs ``gradient`` (N, C) float32 and
-    ``quad`` (N,) float64. example_projections (M, R): realistic projections for the parity
-    check. returns: (model bytes, worst relative parity error)."""
+    ``controls`` (N, C) and ``projection`` (N, R) -> outputs ``gradient`` (N, C) float32,
+    ``quad`` (N,) float64 and ``basis_weights`` (N, R) float64. example_projections (M, R):
+    realistic projections for the parity check. returns: (model bytes, worst relative parity
+    error)."""
     from rigcast.runtime.bundle import (
         REFINE_CONTROLS,
         REFINE_GRADIENT,
         REFINE_PROJECTION,
         REFINE_QUAD,
+        REFINE_WEIGHTS,
     )
 
     return _export_refine_pair(graph, lower, upper, example_projections, seed,
-                               (REFINE_CONTROLS, REFINE_PROJECTION), (REFINE_GRADIENT, REFINE_QUAD))
+                               (REFINE_CONTROLS, REFINE_PROJECTION),
+                               (REFINE_GRADIENT, REFINE_QUAD, REFINE_WEIGHTS))
 
 
 def _export_refine_pair(graph: nn.Module, lower: np.ndarray, upper: np.ndarray,
                         example: np.ndarray, seed: int, inputs: tuple[str, str],
-                        outputs: tuple[str, str]) -> tuple[bytes, float]:
-    """Export a refinement graph of (controls, ``example``-shaped input) -> two outputs, and
+                        outputs: tuple[str, ...]) -> tuple[bytes, float]:
+    """Export a refinement graph of (controls, ``example``-shaped input) -> its outputs, and
     check it: the example inputs, paired with random controls within the bounds, through
     onnxruntime against torch, relative to the largest magnitude of each output (<= 1e-4)."""
     graph = graph.eval()
@@ -216,26 +219,35 @@ def _export_refine_pair(graph: nn.Module, lower: np.ndarray, upper: np.ndarray,
     return data, worst
 
 
-def export_refine_project(graph: nn.Module, example_points: np.ndarray, expected: np.ndarray
+def export_refine_project(data: bytes, example_points: np.ndarray, expected: np.ndarray
                           ) -> tuple[bytes, float]:
-    """Export the projected refinement's projection graph (``export.training.refine.ProjectGraph``):
-    input ``points`` (N, S, 3) -> outputs ``projection`` (N, R) and ``norm_sq`` (N,).
-    example_points (M, S, 3) and expected (M, R + 1), the float64 values of
-    ``runtime.solve.refine.project_naive``: the parity check, relative to the largest magnitude of
-    each output. returns: (model bytes, worst relative parity error)."""
-    from rigcast.runtime.bundle import PROJECT_NORM, PROJECT_POINTS, REFINE_PROJECTION
+    """Check the projected refinement's projection graph in moment form
+    (export/bundling/moments_graph.py): input ``points`` (N, S, 3) -> the moments, from which
+    runtime/solve/moments.py derives the projection and |y|^2. example_points (M, S, 3) and
+    expected (M, R + 1), the float64 values of ``runtime.solve.refine.project_naive``: the
+    parity check, relative to the largest magnitude of each. returns: (model bytes, worst
+    relative parity error)."""
+    from rigcast.runtime.bundle import (
+        PROJECT_CENTRE,
+        PROJECT_CONSTANTS,
+        PROJECT_MOMENTS,
+        PROJECT_NORM,
+        PROJECT_POINTS,
+    )
+    from rigcast.runtime.solve.moments import BasisConstants, FrameMoments, projection_state
 
     pts = np.ascontiguousarray(example_points, np.float32)
-    data = _export(graph.eval(), torch.from_numpy(pts), PROJECT_POINTS,
-                   [REFINE_PROJECTION, PROJECT_NORM])
     check_graph(data, "refine projection")
-    proj, norm = session(data).run(None, {PROJECT_POINTS: pts})
+    mo, norm, table, centre = session(data).run(
+        [PROJECT_MOMENTS, PROJECT_NORM, PROJECT_CONSTANTS, PROJECT_CENTRE], {PROJECT_POINTS: pts})
+    BasisConstants.from_outputs(table, centre)  # the constants read back as the runtime reads
+    state = projection_state(FrameMoments.from_outputs(mo, norm))
     worst = 0.0
-    for got, ref in ((proj, expected[:, :-1]), (norm, expected[:, -1])):
+    for got, ref in ((state[:, :-1], expected[:, :-1]), (state[:, -1], expected[:, -1])):
         worst = max(worst, float(np.max(np.abs(got - ref)) / max(float(np.max(np.abs(ref))),
                                                                   1e-12)))
     if not worst <= 1e-4:
         raise ExportError(f"refine projection graph differs from float64 by {worst:.3g} "
                           "(relative, > 1e-4)")
-    log.info("exported refine projection: %d bytes, parity %.2g", len(data), worst)
+    log.info("checked refine projection: %d bytes, parity %.2g", len(data), worst)
     return data, worst

@@ -23,6 +23,7 @@ from typing import Literal
 import numpy as np
 import onnx
 from onnx import TensorProto, helper, numpy_helper
+from rigcast.export.bundling.moments_graph import moments_graph
 from rigcast.runtime.bundle import (
     FORWARD_INPUT,
     FORWARD_OUTPUT,
@@ -36,6 +37,7 @@ from rigcast.runtime.bundle import (
     REFINE_PROJECTION,
     REFINE_QUAD,
     REFINE_RESIDUAL,
+    REFINE_WEIGHTS,
     RefineProjection,
     write_bundle,
 )
@@ -242,12 +244,14 @@ def refine_graph(rig: SyntheticRig) -> tuple[bytes, np.ndarray]:
     return _finish(graph), a.astype(np.float64) @ a.T.astype(np.float64)
 
 
-def projected_refine_graph(rig: SyntheticRig, cap: int = 4096
+def projected_refine_graph(rig: SyntheticRig, cap: int = 4096, moments: bool = True
                            ) -> tuple[bytes, np.ndarray, RefineProjection]:
     """The projected refinement of the linear rig (see export/training/refine.py ``RefineCore``, with no
     correction MLP): ``(controls (N, C), projection (N, C)) -> (gradient (N, C), quad (N,))``,
     z = (c - lo) / span, e = p - G z, gradient = e, quad = z^T G z - 2 z^T p (float64), on the
-    vertices ``export.training.refine.refine_vertices`` picks. Returns (bytes, hessian, projection)."""
+    vertices ``export.training.refine.refine_vertices`` picks. ``moments``: the moment form
+    (export/bundling/moments_graph.py, and z as ``basis_weights``), else the earlier float64
+    projection. Returns (bytes, hessian, projection)."""
     from rigcast.export.training.refine import refine_vertices
 
     n_controls = rig.deltas.shape[0]
@@ -277,23 +281,30 @@ def projected_refine_graph(rig: SyntheticRig, cap: int = 4096
         helper.make_node("Mul", ["z", "w"], ["zw"]),
         helper.make_node("ReduceSum", ["zw", "axis"], [REFINE_QUAD], keepdims=0),
     ]
+    outputs = [helper.make_tensor_value_info(REFINE_GRADIENT, TensorProto.FLOAT, ["N", n_controls]),
+               helper.make_tensor_value_info(REFINE_QUAD, TensorProto.DOUBLE, ["N"])]
+    if moments:
+        nodes.append(helper.make_node("Identity", ["z"], [REFINE_WEIGHTS]))
+        outputs.append(helper.make_tensor_value_info(REFINE_WEIGHTS, TensorProto.DOUBLE,
+                                                     ["N", n_controls]))
     graph = helper.make_graph(
         nodes,
         "synthetic_refine_projected",
         [helper.make_tensor_value_info(REFINE_CONTROLS, TensorProto.FLOAT, ["N", n_controls]),
          helper.make_tensor_value_info(REFINE_PROJECTION, TensorProto.FLOAT, ["N", n_controls])],
-        [helper.make_tensor_value_info(REFINE_GRADIENT, TensorProto.FLOAT, ["N", n_controls]),
-         helper.make_tensor_value_info(REFINE_QUAD, TensorProto.DOUBLE, ["N"])],
+        outputs,
         inits,
     )
     at_lo = rig.neutral[idx] + np.einsum("c,cvk->vk", lo.astype(np.float64), rig.deltas[:, idx])
     offset = at_lo.reshape(-1).astype(np.float32)  # the mesh at u = 0
-    return _finish(graph), gram, RefineProjection(idx, project_graph(a, offset))
+    project = moments_graph(a, offset) if moments else project_graph(a, offset)
+    return _finish(graph), gram, RefineProjection(idx, project)
 
 
 def project_graph(basis: np.ndarray, offset: np.ndarray) -> bytes:
     """ONNX ``points (N, S, 3) -> (projection (N, R), norm_sq (N,))`` float64: y = points - offset,
-    projection = y basis^T, norm_sq = |y|^2 (see ``export.training.refine.ProjectGraph``)."""
+    projection = y basis^T, norm_sq = |y|^2: the projection graph of bundles before the moment
+    form, kept so the runtime's support for them stays tested."""
     r, coords = basis.shape
     inits = [
         numpy_helper.from_array(np.array([-1, coords], dtype=np.int64), "flat_shape"),
@@ -339,15 +350,15 @@ def build_synthetic_bundle(
     fit_rms: float | None = None,
     name: str = "synthetic",
     rigid_region: bool = True,
-    refine: bool | Literal["inputs", "projected"] = False,
+    refine: bool | Literal["inputs", "projected", "projected-plain"] = False,
 ) -> Path:
     """Write a synthetic bundle to ``path`` and return the path.
 
     ``fit_rms`` goes into the manifest's ``training.inverse_fit_rms`` (mesh units), the figure the
     server derives its default off-manifold threshold from. ``refine`` adds a refinement graph,
     so the solve costs what a built bundle's does: True or "projected" the projected form
-    (``projected_refine_graph``, what builds write), "inputs" the older input-vertex form
-    (``refine_graph``).
+    (``projected_refine_graph`` in the moment form, what builds write), "projected-plain" the
+    earlier float64 projection, "inputs" the older input-vertex form (``refine_graph``).
     """
     rig = make_synthetic_rig(vertices, controls, inputs=inputs, stable=stable, seed=seed)
     extra: dict[str, object] = {"synthetic": {"inverse": inverse, "seed": seed},
@@ -358,7 +369,8 @@ def build_synthetic_bundle(
     if refine == "inputs":
         refine_bytes, hessian = refine_graph(rig)
     elif refine:
-        refine_bytes, hessian, projection = projected_refine_graph(rig)
+        refine_bytes, hessian, projection = projected_refine_graph(
+            rig, moments=refine != "projected-plain")
     return write_bundle(
         path,
         name=name,

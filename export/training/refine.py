@@ -174,7 +174,8 @@ def _mlp_vjp(linears: Sequence[nn.Linear], pre: list[torch.Tensor], back: torch.
 
 
 class RefineCore(nn.Module):
-    """(controls (N, C), projection (N, R)) -> (gradient (N, C), quad (N,) float64), R = C + P.
+    """(controls (N, C), projection (N, R)) -> (gradient (N, C), quad (N,) float64, z (N, R)
+    float64), R = C + P.
 
     The projected refinement's graph. A frame's S vertices x are projected once (runtime
     ``refine.project``): p = A y, y = x - offset, A = [W_S; B_S] (R, 3S) the forward model's
@@ -204,8 +205,8 @@ class RefineCore(nn.Module):
         self.register_buffer("lower", forward.lower.clone())
         self.register_buffer("upper", forward.upper.clone())
 
-    def forward(self, controls: torch.Tensor, projection: torch.Tensor) -> tuple[torch.Tensor,
-                                                                                 torch.Tensor]:
+    def forward(self, controls: torch.Tensor, projection: torch.Tensor
+                ) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
         u = normalise_controls(controls, self.lower, self.upper)  # (N, C)
         if len(self.linears):
             m, pre = _mlp_pre(self.layers, u)
@@ -220,7 +221,7 @@ class RefineCore(nn.Module):
         grad = e32[:, : self.c]
         if len(self.linears):
             grad = grad + _mlp_vjp(self.layers, pre, e32[:, self.c :])
-        return grad, quad
+        return grad, quad, z
 
 
 def vertex_information(forward: ForwardApproximator, poses: np.ndarray, chunk: int = 1024
@@ -273,27 +274,6 @@ def refine_vertices(info: np.ndarray, share: float = 0.995, cap: int = 4096) -> 
     return picked.astype(np.int64)
 
 
-class ProjectGraph(nn.Module):
-    """points (N, S, 3) -> (projection (N, R), norm_sq (N,)) float64: p = A y and |y|^2,
-    y = points - offset (the projected refinement's one per-frame product, see ``RefineCore``).
-    In float64: float32 products of a batch of one and of many round differently, and the
-    refinement's steps carried that into the controls at ~2e-6, above the 1e-6 at which a live
-    and an offline solve of the same take must agree."""
-
-    basis_t: torch.Tensor
-    offset: torch.Tensor
-
-    def __init__(self, basis: np.ndarray, offset: np.ndarray) -> None:
-        super().__init__()
-        self.register_buffer("basis_t", torch.from_numpy(np.ascontiguousarray(basis.T,
-                                                                              np.float64)))
-        self.register_buffer("offset", torch.from_numpy(np.asarray(offset, np.float64).copy()))
-
-    def forward(self, points: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
-        y = points.reshape(points.shape[0], -1).double() - self.offset
-        return y @ self.basis_t, (y * y).sum(dim=1)
-
-
 def projection_arrays(forward: ForwardApproximator, indices: np.ndarray
                       ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """The forward model's bases on vertices ``indices`` (S,): (basis A (R, 3S) float32,
@@ -316,6 +296,7 @@ def projected_refine_parts(forward: ForwardApproximator, poses: np.ndarray,
     controls the curvature and the vertices' information are averaged over; example_points
     (E, V, 3): meshes for the exports' parity checks (poses through the forward model when
     None)."""
+    from rigcast.export.bundling.moments_graph import moments_graph
     from rigcast.export.bundling.onnx_export import export_refine_core, export_refine_project
 
     info_poses = np.asarray(poses)[:: max(1, len(poses) // 32)][:32]
@@ -326,7 +307,7 @@ def projected_refine_parts(forward: ForwardApproximator, poses: np.ndarray,
         with torch.no_grad():
             example_points = forward(torch.as_tensor(np.asarray(poses[:16], np.float32))).numpy()
     pts = np.ascontiguousarray(np.asarray(example_points, np.float32)[:, indices])
-    project, parity_p = export_refine_project(ProjectGraph(basis, offset), pts,
+    project, parity_p = export_refine_project(moments_graph(basis, offset), pts,
                                               project_naive(pts, basis, offset))
     proj = project_naive(pts, basis, offset)[:, :-1].astype(np.float32)
     data, parity = export_refine_core(RefineCore(forward, gram), forward.lower.numpy(),

@@ -44,9 +44,8 @@ from rigcast.runtime.solve.solve_core import (
     build_filter,
     filter_and_clamp,
     frame_fit_error,
-    infer,
     open_model,
-    realign,
+    solve_points,
     stabilise_for,
     stabilise_frames,
 )
@@ -237,10 +236,8 @@ class BatchSolver:
             inputs, rigid = stabilise_frames(model, chunk, stabilise=stabilise,
                                              scale=settings.stabilise_scale)
             try:
-                solved = infer(model, inputs, i0)
-                if rigid is not None and passes:
-                    solved, rigid = realign(model, chunk, solved, rigid, passes=passes,
-                                            scale=settings.stabilise_scale, first_frame=i0)
+                solved, rigid = solve_points(model, chunk, inputs, rigid, passes=passes,
+                                             scale=settings.stabilise_scale, first_frame=i0)
             except FloatingPointError as exc:
                 raise BatchError(str(exc)) from None
             raw[i0 : i0 + bs] = solved

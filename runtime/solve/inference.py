@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import logging
 from collections.abc import Callable, Sequence
+from dataclasses import dataclass
 
 import numpy as np
 import onnxruntime as ort
@@ -18,6 +19,9 @@ from rigcast.runtime.bundle import (
     FORWARD_OUTPUT,
     INVERSE_INPUT,
     INVERSE_OUTPUT,
+    PROJECT_CENTRE,
+    PROJECT_CONSTANTS,
+    PROJECT_MOMENTS,
     PROJECT_NORM,
     PROJECT_POINTS,
     REFINE_CONTROLS,
@@ -26,8 +30,15 @@ from rigcast.runtime.bundle import (
     REFINE_PROJECTION,
     REFINE_QUAD,
     REFINE_RESIDUAL,
+    REFINE_WEIGHTS,
     Bundle,
     BundleError,
+)
+from rigcast.runtime.solve.moments import (
+    BasisConstants,
+    FrameMoments,
+    moved_state,
+    projection_state,
 )
 from rigcast.runtime.solve.refine import RefineError, Refiner, RefineSettings
 
@@ -122,6 +133,41 @@ def check_forward_rest(rest: np.ndarray, neutral: np.ndarray) -> None:
                           "defaults")
 
 
+@dataclass(frozen=True)
+class SolvePass:
+    """One solve of a batch: controls (N, C) float32, and in the moment form the frames'
+    moments (what a realignment reuses; None otherwise)."""
+
+    controls: np.ndarray
+    moments: FrameMoments | None = None
+
+
+class MomentForm:
+    """The moment form's sessions: the projection graph's moments and the refinement graph's
+    basis weights z (runtime/solve/moments.py)."""
+
+    def __init__(self, project: ort.InferenceSession, refine: ort.InferenceSession,
+                 count: int) -> None:
+        self.project, self.refine = project, refine
+        table, centre = project.run([PROJECT_CONSTANTS, PROJECT_CENTRE],
+                                    {PROJECT_POINTS: np.zeros((1, count, 3), np.float32)})
+        self.constants = BasisConstants.from_outputs(table, centre)
+        self._outs = [PROJECT_MOMENTS, PROJECT_NORM]
+
+    def moments(self, points: np.ndarray) -> FrameMoments:
+        """points (N, S, 3) float32 -> their FrameMoments."""
+        mo, norm = self.project.run(self._outs, {PROJECT_POINTS: np.ascontiguousarray(points)})
+        return FrameMoments.from_outputs(mo, norm)
+
+    def weights(self, controls: np.ndarray) -> np.ndarray:
+        """controls (N, C) float32 -> z (N, R) float64, the forward model on S = offset + A^T z."""
+        r = self.constants.colsum.shape[0]
+        z = self.refine.run([REFINE_WEIGHTS], {REFINE_CONTROLS: controls,
+                                               REFINE_PROJECTION: np.zeros((controls.shape[0], r),
+                                                                           np.float32)})[0]
+        return np.asarray(z, np.float64)
+
+
 class InverseModel:
     """The bundle's solve: the frame's solve points (N, len(point_indices), 3) -> controls (N, C).
 
@@ -129,7 +175,8 @@ class InverseModel:
     bundle has a refinement graph and ``refine`` is not ``RefineSettings(steps=0)``, the bounded
     Gauss-Newton steps of ``runtime.solve.refine`` on the vertices the refinement fits: the points
     after the first K for a projected refinement, the K input vertices for an older one.
-    ``point_indices``: the vertices a caller gathers (in the neutral's frame) for ``solve``.
+    ``point_indices``: the vertices a caller gathers (in the neutral's frame) for ``solve``;
+    ``moment_form``: set for bundles whose projection is in moment form.
     """
 
     def __init__(self, bundle: Bundle, *, threads: int = 1,
@@ -140,9 +187,10 @@ class InverseModel:
         _check_io(self.session, "inverse", INVERSE_INPUT, (self.k, 3), INVERSE_OUTPUT, (self.c,))
         self._outputs = [INVERSE_OUTPUT]
         self.refiner: Refiner | None = None
+        self.moment_form: MomentForm | None = None
         self.point_indices = np.asarray(bundle.input_indices, np.int64)
         if bundle.refine_onnx is not None and bundle.refine_hessian is not None:
-            self.refiner = _refiner(bundle, threads, refine)
+            self.refiner, self.moment_form = _refiner(bundle, threads, refine)
             if bundle.refine_projection is not None:
                 self.point_indices = np.concatenate([self.point_indices,
                                                      bundle.refine_projection.indices])
@@ -156,16 +204,41 @@ class InverseModel:
 
     def solve(self, points: np.ndarray) -> np.ndarray:
         """points (N, len(point_indices), 3) float32 -> controls (N, C) float32."""
+        return self.solve_pass(points).controls
+
+    def network(self, points: np.ndarray) -> np.ndarray:
+        """The inverse graph alone: the K input points (N, K, 3) float32 -> controls (N, C)."""
+        out: np.ndarray = self.session.run(self._outputs,
+                                           {INVERSE_INPUT: np.ascontiguousarray(points)})[0]
+        return out
+
+    def solve_pass(self, points: np.ndarray) -> SolvePass:
+        """points (N, len(point_indices), 3) float32 -> SolvePass (controls (N, C) float32)."""
         k = self.k
         if points.ndim != 3 or points.shape[1:] != (self.point_indices.shape[0], 3):
             raise BundleError(f"solve needs the frames' {self.point_indices.shape[0]} solve "
                               f"points (N, {self.point_indices.shape[0]}, 3), got {points.shape}")
-        net_in = points if points.shape[1] == k else np.ascontiguousarray(points[:, :k])
-        result: np.ndarray = self.session.run(self._outputs, {INVERSE_INPUT: net_in})[0]
-        if self.refiner is not None and np.isfinite(result).all():
-            result = self.refiner.refine(result, points[:, k:] if points.shape[1] > k
-                                         else net_in)
-        return result
+        result = self.network(points if points.shape[1] == k else points[:, :k])
+        if self.refiner is None or not np.isfinite(result).all():
+            return SolvePass(result)
+        if self.moment_form is not None:
+            fm = self.moment_form.moments(points[:, k:])
+            return SolvePass(self.refiner.refine(result, state=projection_state(fm)), fm)
+        return SolvePass(self.refiner.refine(result, points[:, k:] if points.shape[1] > k
+                                             else points))
+
+    def solve_moved(self, inputs: np.ndarray, moments: FrameMoments, linear: np.ndarray,
+                    shift: np.ndarray) -> np.ndarray:
+        """Solve again after a realignment, in the moment form, without projecting the frames
+        again: inputs (N, K, 3) the network's input points already moved; moments the frames'
+        first moments; x -> linear x + shift (centred, see ``moments.moved_state``) the move.
+        -> controls (N, C) float32."""
+        assert self.refiner is not None and self.moment_form is not None
+        result = self.network(inputs)
+        if not np.isfinite(result).all():
+            return result
+        state = moved_state(moments, self.moment_form.constants, linear, shift)
+        return self.refiner.refine(result, state=state)
 
 
 def refine_settings(bundle: Bundle) -> RefineSettings:
@@ -179,7 +252,8 @@ def refine_settings(bundle: Bundle) -> RefineSettings:
         raise BundleError(f"bundle manifest 'refine' section is invalid: {exc}") from None
 
 
-def _refiner(bundle: Bundle, threads: int, settings: RefineSettings | None) -> Refiner:
+def _refiner(bundle: Bundle, threads: int, settings: RefineSettings | None
+             ) -> tuple[Refiner, MomentForm | None]:
     assert bundle.refine_onnx is not None and bundle.refine_hessian is not None
     session = open_session(bundle.refine_onnx, threads=threads)
     projected = bundle.refine_projection
@@ -198,18 +272,25 @@ def _refiner(bundle: Bundle, threads: int, settings: RefineSettings | None) -> R
             return g, rss
 
         return Refiner(gradient, bundle.refine_hessian, schema.lower, schema.upper,
-                       schema.defaults, 3 * int(bundle.input_indices.shape[0]), chosen)
+                       schema.defaults, 3 * int(bundle.input_indices.shape[0]), chosen), None
     project = open_session(projected.project_onnx, threads=threads)
     got_in = [i.name for i in project.get_inputs()]
-    got_out = {o.name for o in project.get_outputs()}
-    if got_in != [PROJECT_POINTS] or not {REFINE_PROJECTION, PROJECT_NORM} <= got_out:
+    p_out = {o.name for o in project.get_outputs()}
+    moment = {PROJECT_MOMENTS, PROJECT_NORM, PROJECT_CONSTANTS, PROJECT_CENTRE} <= p_out
+    if got_in != [PROJECT_POINTS] or not (moment or {REFINE_PROJECTION, PROJECT_NORM} <= p_out):
         raise BundleError(f"refine projection graph must map {PROJECT_POINTS!r} to "
-                          f"({REFINE_PROJECTION!r}, {PROJECT_NORM!r}); has {got_in} -> "
-                          f"{sorted(got_out)}")
+                          f"({PROJECT_MOMENTS!r}, {PROJECT_NORM!r}) or ({REFINE_PROJECTION!r}, "
+                          f"{PROJECT_NORM!r}); has {got_in} -> {sorted(p_out)}")
+    if moment and REFINE_WEIGHTS not in got_out:
+        raise BundleError(f"refine graph of a moment-form bundle lacks output {REFINE_WEIGHTS!r}")
+    count = int(projected.indices.shape[0])
+    form = MomentForm(project, session, count) if moment else None
     outs = [REFINE_PROJECTION, PROJECT_NORM]
 
     def prepare(points: np.ndarray) -> np.ndarray:
         """points (N, S, 3) -> (N, R + 1) float64: the projection, then |y|^2."""
+        if form is not None:
+            return projection_state(form.moments(points))
         proj, norm = project.run(outs, {PROJECT_POINTS: np.ascontiguousarray(points)})
         return np.concatenate([proj, norm[:, None]], axis=1, dtype=np.float64)
 
@@ -220,7 +301,7 @@ def _refiner(bundle: Bundle, threads: int, settings: RefineSettings | None) -> R
         return g, state[:, -1] + quad
 
     return Refiner(gradient_projected, bundle.refine_hessian, schema.lower, schema.upper,
-                   schema.defaults, 3 * int(projected.indices.shape[0]), chosen, prepare)
+                   schema.defaults, 3 * count, chosen, prepare), form
 
 
 class ForwardModel:

@@ -36,10 +36,9 @@ from rigcast.runtime.solve.solve_core import (
     check_compatible,
     filter_and_clamp,
     frame_fit_error,
-    infer,
     load_stream_model,
-    realign,
     rms_or_nan,
+    solve_points,
     stabilise_for,
     stabilise_frames,
 )
@@ -158,12 +157,9 @@ class StreamState:
         inputs, rigid = stabilise_frames(model, mesh.vertices[None], stabilise=self.stabilise,
                                          scale=cfg.stabilise_scale, inputs=self._inputs)
         t1 = time.perf_counter_ns()
-        solved = infer(model, inputs, mesh.frame)
-        passes = cfg.realign
-        if rigid is not None and passes:
-            solved, rigid = realign(model, mesh.vertices[None], solved, rigid, passes=passes,
-                                    scale=cfg.stabilise_scale, first_frame=mesh.frame,
-                                    inputs=self._inputs)
+        solved, rigid = solve_points(model, mesh.vertices[None], inputs, rigid,
+                                     passes=cfg.realign, scale=cfg.stabilise_scale,
+                                     first_frame=mesh.frame, inputs=self._inputs)
         t2 = time.perf_counter_ns()
         self._t[0] = mesh.t_send_ns
         self._frame[0] = mesh.frame

@@ -264,15 +264,21 @@ class Refiner:
         g, rss = self.gradient(c, mesh)
         return np.asarray(g, np.float64), np.asarray(rss, np.float64)
 
-    def refine(self, controls: np.ndarray, mesh: np.ndarray) -> np.ndarray:
+    def refine(self, controls: np.ndarray, mesh: np.ndarray | None = None, *,
+               state: np.ndarray | None = None) -> np.ndarray:
         """controls (N, C) the network's answer; mesh (N, S, 3) the vertices the refinement
-        fits, in the neutral's frame -> (N, C) float32."""
+        fits, in the neutral's frame, or ``state`` what ``prepare`` makes of them, already
+        made -> (N, C) float32."""
         s = self.settings
         u = np.clip((np.asarray(controls, np.float64) - self.lower) / self.span, 0.0, 1.0)
         if s.steps == 0 or u.shape[0] == 0:
             return np.asarray(controls, np.float32)
-        if self.prepare is not None:
+        if state is not None:
+            mesh = state
+        elif self.prepare is not None:
+            assert mesh is not None
             mesh = self.prepare(mesh)
+        assert mesh is not None
         u0 = u.copy()
         g, rss = self._evaluate(u, mesh)
         live = np.arange(u.shape[0])  # frames still refining; the others are done

@@ -36,8 +36,9 @@ from rigcast.runtime.solve.align import (
     fit_rigid_pairs,
     stable_target,
 )
-from rigcast.runtime.solve.inference import ForwardModel, InverseModel
+from rigcast.runtime.solve.inference import ForwardModel, InverseModel, SolvePass
 from rigcast.runtime.solve.manifold import floor_for_bundle, training_fit_error
+from rigcast.runtime.solve.moments import compose, realign_fit, uncentre
 from rigcast.runtime.solve.one_euro import OneEuroFilter, OneEuroParams
 from rigcast.runtime.solve.stages import clamp, fit_error, gather_inputs
 
@@ -147,20 +148,63 @@ def stabilise_frames(model: SolveModel, frames: np.ndarray, *, stabilise: bool, 
     return gather_inputs(frames, model.inverse.point_indices, rigid, inputs), rigid
 
 
+def solve_points(model: SolveModel, frames: np.ndarray, points: np.ndarray,
+                 rigid: RigidBatch | None, *, passes: int, scale: bool, first_frame: int = 0,
+                 inputs: np.ndarray | None = None) -> tuple[np.ndarray, RigidBatch | None]:
+    """The infer stage: frames (B, V, 3) float32 as received, points (B, P, 3) their solve
+    points from :func:`stabilise_frames`, rigid their rigid fits (None: not stabilised) ->
+    (controls (B, C) float32, the frames' rigid fits, realigned when ``passes``).
+
+    Solves, then realigns ``passes`` times: fits, on the vertices the solve reads, the rigid
+    motion that maps each frame onto the forward model's mesh for its solved controls (Umeyama
+    1991 with a per-frame target), and solves again from the frame moved by it: the deformation
+    is now explained, so every vertex the refinement fits steadies the head, not only the
+    stable ones. On the demo face with 0.1-0.2 % of D sensor noise one pass took the solve's
+    error against the clean mesh from 0.98x to 0.76x that of per-frame non-linear least squares.
+    Bundles in the moment form (runtime/solve/moments.py) do this from the first projection's
+    moments, on their S refinement vertices and the stable ones, with no new projection and no
+    forward model on all V vertices; older bundles fit on all V vertices against the forward
+    graph (:func:`realign`). The returned fits keep the stable vertices' residual (``mse``) of
+    the first: it measures the stabilisation, as before."""
+    first = model.inverse.solve_pass(points)
+    _check_finite(first.controls, first_frame)
+    if rigid is None or passes <= 0:
+        return first.controls, rigid
+    if first.moments is None:
+        return realign(model, frames, first.controls, rigid, passes=passes, scale=scale,
+                       first_frame=first_frame, inputs=inputs)
+    return _realign_moments(model, frames, points, first, rigid, passes, scale, first_frame)
+
+
+def _realign_moments(model: SolveModel, frames: np.ndarray, points: np.ndarray, first: SolvePass,
+                     rigid: RigidBatch, passes: int, scale: bool, first_frame: int
+                     ) -> tuple[np.ndarray, RigidBatch]:
+    inverse, bundle = model.inverse, model.bundle
+    form = inverse.moment_form
+    assert form is not None and first.moments is not None
+    stable = rigid.apply(np.take(frames, bundle.stable_indices, axis=1))
+    stable_home = bundle.neutral[bundle.stable_indices]
+    net = points[:, : inverse.k]
+    solved = first.controls
+    for _ in range(passes):
+        fit = realign_fit(first.moments, form.constants, form.weights(solved),
+                          extra_source=stable, extra_target=stable_home, scale=scale)
+        linear, shift = uncentre(fit, form.constants.centre)
+        moved = (net @ linear.transpose(0, 2, 1) + shift[:, None]).astype(np.float32)
+        solved = inverse.solve_moved(moved, first.moments,
+                                     fit.scale[:, None, None] * fit.rotation, fit.translation)
+        _check_finite(solved, first_frame)
+    return solved, compose(rigid, linear, shift)
+
+
 def realign(model: SolveModel, frames: np.ndarray, solved: np.ndarray, rigid: RigidBatch, *,
             passes: int, scale: bool, first_frame: int = 0, inputs: np.ndarray | None = None
             ) -> tuple[np.ndarray, RigidBatch]:
-    """frames (B, V, 3) float32 as received; solved (B, C) their controls after a stabilised
-    solve; rigid their stabilisation -> (controls (B, C), the frames' rigid fits).
-
-    Each pass fits, on every vertex, the rigid motion that maps each frame onto the forward
-    model's mesh for its solved controls (Umeyama 1991 with a per-frame target), and solves
-    again from the frame moved by it: the deformation is now explained, so every vertex can
-    steady the fit, not only the stable ones. On the demo face with 0.1-0.2 % of D sensor
-    noise one pass took the solve's error against the clean mesh from 0.98x to 0.76x that of
-    per-frame non-linear least squares (0.71x for the same take solved unstabilised). The
-    returned fits keep the stable vertices' residual (``mse``) of the first: it measures the
-    stabilisation, as before. ``inputs`` (B, P, 3) float32 receives the last solve points."""
+    """The realignment of bundles before the moment form (see :func:`solve_points`): frames
+    (B, V, 3) float32 as received; solved (B, C) their controls after a stabilised solve; rigid
+    their stabilisation -> (controls (B, C), the frames' rigid fits), fitting on every vertex
+    against the forward graph's mesh. ``inputs`` (B, P, 3) float32 receives the last solve
+    points."""
     moved = rigid
     for _ in range(passes):
         moved = fit_rigid_pairs(frames, model.forward.evaluate(solved), scale=scale)
@@ -174,12 +218,16 @@ def infer(model: SolveModel, inputs: np.ndarray, first_frame: int = 0) -> np.nda
     frame (``first_frame`` + index) when the inverse returns NaN or Inf: finite but extreme input
     can overflow inside the graph, and that must never reach a filter's state."""
     solved = model.inverse.solve(inputs)
+    _check_finite(solved, first_frame)
+    return solved
+
+
+def _check_finite(solved: np.ndarray, first_frame: int) -> None:
     finite = np.isfinite(solved).all(axis=1)
     if not finite.all():
         raise FloatingPointError(f"frame {first_frame + int(np.argmin(finite))}: the inverse "
                                  "returned NaN or Inf (the mesh is far outside anything the "
                                  "bundle was trained on)")
-    return solved
 
 
 def filter_and_clamp(model: SolveModel, filt: OneEuroFilter | None, solved: np.ndarray,

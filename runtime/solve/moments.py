@@ -1,0 +1,167 @@
+"""Frame moments: one pass over the refinement's basis that serves every rigid motion of a frame.
+
+The projected refinement (runtime/solve/refine.py) reads a frame through p = A y, y = x - offset on
+its S vertices, A (R, 3S) the forward model's bases there; a_ri (3,) is row r's part at vertex i.
+Bundles since the moment form project each frame once onto the 3 x 3 moments
+
+    m_r = sum_i y_i a_ri^T        (R, 3, 3), stored m[r, k, j] = sum_i y_ik a_rij
+
+(with q = sum_i y_i oc_i^T, s = sum_i y_i and |y|^2, oc_i = offset_i - mean(offset)), in
+``refine_project.onnx``. That pass reads A once, as the plain projection did, yet from it follow
+exactly, in R numbers and a few 3 x 3 products:
+
+- the projection itself, p_r = trace(m_r);
+- the projection and |y|^2 of the frame moved by any similarity x -> L x + t
+  (:func:`moved_state`), so a realignment need not project the frame again;
+- the cross moments between the frame and the forward model's mesh for any weights z
+  (offset + A^T z), which is what Umeyama's fit of one onto the other needs
+  (:func:`realign_fit`), so a realignment need not evaluate the forward model on all V
+  vertices either.
+
+All positions are taken relative to the offset's centroid (``BasisConstants.centre``): stage
+meshes can sit far from the origin, and products of uncentred float32 coordinates would lose the
+few millimetres the fit is about. Every function here has a naive twin in the tests that builds
+the vertices explicitly.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from rigcast.runtime.solve.align import RigidBatch, _umeyama_batch
+
+
+@dataclass(frozen=True)
+class BasisConstants:
+    """What the moment form needs of the basis itself, from the graph's constant outputs, float64.
+
+    cross (R, 3, 3): sum_i oc_ik a_rij at [r, k, j]; colsum (R, 3): sum_i a_ri; scatter (3, 3):
+    sum_i oc_i oc_i^T; oc_sum (3,): sum_i oc_i (zero up to rounding); count: S; centre (3,): the
+    offset's centroid."""
+
+    cross: np.ndarray
+    colsum: np.ndarray
+    scatter: np.ndarray
+    oc_sum: np.ndarray
+    count: float
+    centre: np.ndarray
+
+    @classmethod
+    def from_outputs(cls, table: np.ndarray, centre: np.ndarray) -> BasisConstants:
+        """table (4, 3R + 4) float64 = [oc | 1]^T [A' | oc | 1] with A' (S, 3R), A'[i, 3r + j] =
+        a_rij (the graph's ``moment_constants``); centre (3,)."""
+        t = np.asarray(table, np.float64)
+        r = (t.shape[1] - 4) // 3
+        return cls(
+            cross=t[:3, : 3 * r].reshape(3, r, 3).transpose(1, 0, 2).copy(),
+            colsum=t[3, : 3 * r].reshape(r, 3).copy(),
+            scatter=t[:3, 3 * r : 3 * r + 3].copy(),
+            oc_sum=t[3, 3 * r : 3 * r + 3].copy(),
+            count=float(t[3, 3 * r + 3]),
+            centre=np.asarray(centre, np.float64).copy(),
+        )
+
+
+@dataclass(frozen=True)
+class FrameMoments:
+    """One batch of frames through the moment graph, float64.
+
+    m (N, R, 3, 3): sum_i y_ik a_rij at [n, r, k, j]; q (N, 3, 3): sum_i y_ik oc_ij; s (N, 3):
+    sum_i y_i; yy (N,): |y|^2."""
+
+    m: np.ndarray
+    q: np.ndarray
+    s: np.ndarray
+    yy: np.ndarray
+
+    @classmethod
+    def from_outputs(cls, moments: np.ndarray, norm_sq: np.ndarray) -> FrameMoments:
+        """moments (N, 3, 3R + 4) = y^T [A' | oc | 1] per frame; norm_sq (N,) = |y|^2."""
+        mo = np.asarray(moments, np.float64)
+        n, r = mo.shape[0], (mo.shape[2] - 4) // 3
+        return cls(m=mo[:, :, : 3 * r].reshape(n, 3, r, 3).transpose(0, 2, 1, 3),
+                   q=mo[:, :, 3 * r : 3 * r + 3], s=mo[:, :, 3 * r + 3],
+                   yy=np.asarray(norm_sq, np.float64))
+
+    def take(self, rows: np.ndarray) -> FrameMoments:
+        return FrameMoments(self.m[rows], self.q[rows], self.s[rows], self.yy[rows])
+
+
+def projection_state(fm: FrameMoments) -> np.ndarray:
+    """(N, R + 1): the projection p = A y (p_r = trace(m_r)), then |y|^2 (the refinement's state)."""
+    p = np.einsum("nrkk->nr", fm.m)
+    out: np.ndarray = np.concatenate([p, fm.yy[:, None]], axis=1)
+    return out
+
+
+def moved_state(fm: FrameMoments, const: BasisConstants, linear: np.ndarray,
+                shift: np.ndarray) -> np.ndarray:
+    """The refinement's state (N, R + 1) of the frames moved by x -> L x + t, where t (N, 3) is
+    the translation in centred coordinates (``shift``, i.e. the move of x - centre) and L (N, 3, 3)
+    a scaled rotation. With y' = L y + (L - I) oc_i + t:
+
+        p'_r   = <L, m_r^T> + <L - I, cross_r^T> + t . colsum_r
+        |y'|^2 = s^2 |y|^2 + 2 <L^T (L - I), q> + 2 t . L s_y + tr((L - I) scatter (L - I)^T)
+                 + 2 t . (L - I) oc_sum + S |t|^2,   s^2 = tr(L^T L) / 3.
+    """
+    lin = np.asarray(linear, np.float64)
+    t = np.asarray(shift, np.float64)
+    d = lin - np.eye(3)
+    p = (np.einsum("njk,nrkj->nr", lin, fm.m) + np.einsum("njk,rkj->nr", d, const.cross)
+         + t @ const.colsum.T)
+    s2 = np.einsum("njk,njk->n", lin, lin) / 3.0
+    x = np.einsum("nkj,nkl->njl", lin, d)  # L^T (L - I)
+    yy = (s2 * fm.yy + 2.0 * np.einsum("nkj,nkj->n", x, fm.q)
+          + 2.0 * np.einsum("nj,njk,nk->n", t, lin, fm.s)
+          + np.einsum("njk,kl,njl->n", d, const.scatter, d)
+          + 2.0 * np.einsum("nj,njk,k->n", t, d, const.oc_sum) + const.count * (t * t).sum(axis=1))
+    out: np.ndarray = np.concatenate([p, yy[:, None]], axis=1)
+    return out
+
+
+def realign_fit(fm: FrameMoments, const: BasisConstants, weights: np.ndarray, *,
+                extra_source: np.ndarray | None = None, extra_target: np.ndarray | None = None,
+                scale: bool = False) -> RigidBatch:
+    """Umeyama (1991) per frame: the similarity, in centred coordinates, that maps the frames'
+    S vertices x_i (= y_i + offset_i) onto the forward model's mesh offset_i + sum_r z_r a_ri,
+    z = weights (N, R), together with extra pairs (the stable vertices: extra_source (N, E, 3)
+    in the frames, extra_target (E, 3) where they belong). Returns the fit of
+    (x - centre) -> (target - centre); its ``mse`` is not computed (zeros)."""
+    z = np.asarray(weights, np.float64)
+    c = const
+    sum_s = fm.s + c.oc_sum  # (N, 3): sum of x - centre
+    sum_t = c.oc_sum + z @ c.colsum  # sum of target - centre
+    cross = (fm.q.transpose(0, 2, 1) + c.scatter + np.einsum("nr,nrkj->njk", z, fm.m)
+             + np.einsum("nr,rkj->njk", z, c.cross))  # sum (t - centre)(x - centre)^T
+    sq_s = fm.yy + 2.0 * np.einsum("nkk->n", fm.q) + np.trace(c.scatter)
+    n = np.full(z.shape[0], c.count)
+    if extra_source is not None and extra_target is not None:
+        es = np.asarray(extra_source, np.float64) - c.centre
+        et = np.asarray(extra_target, np.float64) - c.centre
+        sum_s = sum_s + es.sum(axis=1)
+        sum_t = sum_t + et.sum(axis=0)
+        cross = cross + np.einsum("ej,nek->njk", et, es)
+        sq_s = sq_s + np.einsum("nek,nek->n", es, es)
+        n = n + es.shape[1]
+    mu_s, mu_t = sum_s / n[:, None], sum_t / n[:, None]
+    cov = cross / n[:, None, None] - np.einsum("nj,nk->njk", mu_t, mu_s)
+    var_s = sq_s / n - (mu_s * mu_s).sum(axis=1)
+    fit = _umeyama_batch(cov, mu_s, var_s, mu_t, 0.0, scale)
+    return RigidBatch(fit.rotation, fit.translation, fit.scale, np.zeros(z.shape[0]))
+
+
+def uncentre(fit: RigidBatch, centre: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """A fit of (x - centre) -> (x' - centre) as x' = L x + t: (L (N, 3, 3), t (N, 3))."""
+    lin = fit.scale[:, None, None] * fit.rotation
+    t = fit.translation + centre - lin @ np.asarray(centre, np.float64)
+    return lin, t
+
+
+def compose(first: RigidBatch, linear: np.ndarray, shift: np.ndarray) -> RigidBatch:
+    """x -> L (s R x + t0) + t as one RigidBatch (the first fit's ``mse`` kept); L a scaled
+    rotation (N, 3, 3), shift t (N, 3)."""
+    s = np.cbrt(np.linalg.det(linear))
+    rot = (linear / s[:, None, None]) @ first.rotation
+    return RigidBatch(rot, np.einsum("njk,nk->nj", linear, first.translation) + shift,
+                      s * first.scale, first.mse)
