@@ -137,12 +137,16 @@ def realign_fit(fm: FrameMoments, const: BasisConstants, weights: np.ndarray, *,
     sq_s = fm.yy + 2.0 * np.einsum("nkk->n", fm.q) + np.trace(c.scatter)
     n = np.full(z.shape[0], c.count)
     if extra_source is not None and extra_target is not None:
-        es = np.asarray(extra_source, np.float64) - c.centre
-        et = np.asarray(extra_target, np.float64) - c.centre
-        sum_s = sum_s + es.sum(axis=1)
-        sum_t = sum_t + et.sum(axis=0)
-        cross = cross + np.einsum("ej,nek->njk", et, es)
-        sq_s = sq_s + np.einsum("nek,nek->n", es, es)
+        # float32 products through BLAS (as align.fit_rigid_pairs): on the ~2,000 stable
+        # vertices of a batch, float64 copies and einsum cost more than the rest of the fit.
+        centre = c.centre.astype(np.float32)
+        es = np.asarray(extra_source, np.float32) - centre  # (N, E, 3), centred coordinates
+        et = np.asarray(extra_target, np.float32) - centre  # (E, 3)
+        ones = np.ones((1, es.shape[1]), np.float32)
+        sum_s = sum_s + np.matmul(ones, es)[:, 0].astype(np.float64)
+        sum_t = sum_t + et.sum(axis=0, dtype=np.float64)
+        cross = cross + np.matmul(et.T, es).astype(np.float64)  # sum_e t_e x_e^T
+        sq_s = sq_s + np.einsum("nek,nek->n", es, es, dtype=np.float64)
         n = n + es.shape[1]
     mu_s, mu_t = sum_s / n[:, None], sum_t / n[:, None]
     cov = cross / n[:, None, None] - np.einsum("nj,nk->njk", mu_t, mu_s)
