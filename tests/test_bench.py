@@ -121,15 +121,15 @@ def test_batch_bench_synthetic_run_writes_fps_frames_and_fit_error_mode(tmp_path
     proc = run_bench("batch.py", "--synthetic", "--frames", "1500", "--repeats", "1",
                      "--batch-size", "256", "--per-frame-frames", "100", "--out", str(tmp_path),
                      timeout=120.0)
-    assert "fit error subset" in proc.stdout
+    assert "fit error full" in proc.stdout
     figures = json.loads((tmp_path / "batch.json").read_text())
     assert figures["bundle"] == "synthetic"
     assert figures["frames"] == 1500
     assert isinstance(figures["frames_per_second"], float) and figures["frames_per_second"] > 0
-    assert figures["fit_error"] == "subset"
+    assert figures["fit_error"] == "full"
     by_mode = figures["frames_per_second_by_fit_error"]
     assert set(by_mode) == {"subset", "full", "off"} and all(v > 0 for v in by_mode.values())
-    assert math.isclose(figures["frames_per_second"], by_mode["subset"])
+    assert math.isclose(figures["frames_per_second"], by_mode["full"])
     assert 0 < figures["fit_vertices"] <= figures["vertices"]
     assert figures["off_manifold_planted"] > 0
     assert 0 <= figures["off_manifold_found"] <= figures["off_manifold_planted"]

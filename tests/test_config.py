@@ -174,4 +174,4 @@ def test_the_old_fit_error_spellings_still_work_with_a_line_saying_so(
         solve = parser.parse_args(["solve", "b.rcb", "t.npz", "-o", "o.csv", "--fit-error", "full"])
     assert solve.fit_error_scope == "full"
     assert "--fit-error is now --fit-error-scope" in caplog.text
-    assert parser.parse_args(["solve", "b.rcb", "t.npz", "-o", "o.csv"]).fit_error_scope == "subset"
+    assert parser.parse_args(["solve", "b.rcb", "t.npz", "-o", "o.csv"]).fit_error_scope == "full"

@@ -119,11 +119,12 @@ def add_solve(subs: Subparsers) -> None:
     add_stream_arguments(p)  # --config, --stream and serve's per-stream flags
     p.add_argument("--smooth-hz", type=float, default=3.0,
                    help="cutoff of the zero-phase smoother (--filter smooth), Hz")
-    scopes = ("subset", "full", "off")
-    p.add_argument("--fit-error-scope", choices=scopes, default="subset",
-                   help="which vertices the fit error and off-manifold flags read: the bundle's "
-                        "input and stable vertices plus a fixed sample of the others (fast), "
-                        "every vertex, or none (no fit error)")
+    scopes = ("full", "subset", "off")
+    p.add_argument("--fit-error-scope", choices=scopes, default="full",
+                   help="which vertices the fit error and off-manifold flags read: every vertex "
+                        "(as the live server), the bundle's input and stable vertices plus a "
+                        "fixed sample of the others (faster, but blind to a bulge elsewhere), or "
+                        "none (no fit error)")
     p.add_argument("--fit-error", dest="fit_error_scope", action=DeprecatedAlias,
                    new="--fit-error-scope", choices=scopes, help=argparse.SUPPRESS)
     p.add_argument("--batch-size", type=int, default=1024,

@@ -38,7 +38,7 @@ class SolveSettings:
     fps: float | None = None
     stream: StreamConfig = StreamConfig()  # noqa: RUF009 (frozen, so shared safely)
     smooth_hz: float = 3.0
-    fit_error_scope: Literal["subset", "full", "off"] = "subset"  # which vertices it reads
+    fit_error_scope: Literal["subset", "full", "off"] = "full"  # which vertices it reads
     batch_size: int = 1024
     rig: str | None = None
     bounds: Path | None = None
