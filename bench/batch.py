@@ -123,21 +123,21 @@ def main() -> None:
     threads = args.threads or all_cores()
     solver = BatchSolver(bundle, threads=threads, subset_graph=slice_forward_graph)
     bs = args.batch_size
-    headline = SolveOptions(batch_size=bs, fit_error=args.fit_error)
+    headline = SolveOptions(batch_size=bs, fit_error_scope=args.fit_error)
     for mode in FIT_ERROR_SCOPES:  # warm-up: sessions, subsets, thread pools
         solver.solve(verts[: min(bs, args.frames)], times[: min(bs, args.frames)],
-                     SolveOptions(batch_size=bs, fit_error=mode))
+                     SolveOptions(batch_size=bs, fit_error_scope=mode))
 
     fps_by_mode: dict[str, list[float]] = {m: [] for m in FIT_ERROR_SCOPES}
     for _ in range(args.repeats):
         for mode in FIT_ERROR_SCOPES:  # interleaved, so machine noise hits every mode alike
-            options = SolveOptions(batch_size=bs, fit_error=mode)
+            options = SolveOptions(batch_size=bs, fit_error_scope=mode)
             fps_by_mode[mode].append(solver.solve(verts, times, options).frames_per_second)
     per_batch = [solver.solve(verts[i0 : i0 + bs], times[i0 : i0 + bs], headline)
                  .frames_per_second for i0 in range(0, args.frames - bs + 1, bs)]
     result = solver.solve(verts, times, headline)
     full = solver.solve(verts[:distinct], times[:distinct],
-                        SolveOptions(batch_size=bs, fit_error="full"))
+                        SolveOptions(batch_size=bs, fit_error_scope="full"))
 
     inputs = np.ascontiguousarray(verts[:, solver.inverse.point_indices], np.float32)
     raw = []

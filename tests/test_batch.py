@@ -131,9 +131,9 @@ def test_off_manifold_frames_are_flagged(bundle: Bundle) -> None:
     assert list(np.flatnonzero(result.off_manifold)) == [20]
     assert result.fit_max[20] > result.fit_rms[20] > 0.01
     assert np.all(result.thresholds == 0.01)
-    quick = solve_take(bundle, meshes, times, SolveOptions(filter="none", fit_error="off"))
+    quick = solve_take(bundle, meshes, times, SolveOptions(filter="none", fit_error_scope="off"))
     assert np.isnan(quick.fit_rms).all() and not quick.off_manifold.any()
-    assert quick.fit_error == "off" and quick.fit_vertices == 0
+    assert quick.fit_error_scope == "off" and quick.fit_vertices == 0
 
 
 def test_zero_phase_has_no_lag_on_a_symmetric_bump(bundle: Bundle) -> None:
@@ -146,9 +146,9 @@ def test_zero_phase_has_no_lag_on_a_symmetric_bump(bundle: Bundle) -> None:
     meshes = rig.evaluate(truth)
     solver = BatchSolver(bundle, threads=1)
     smooth = solver.solve(meshes, times,
-                          SolveOptions(filter="smooth", smooth_hz=2.0, fit_error="off"))
+                          SolveOptions(filter="smooth", smooth_hz=2.0, fit_error_scope="off"))
     causal = solver.solve(meshes, times, SolveOptions(
-        filter="causal", fit_error="off",
+        filter="causal", fit_error_scope="off",
         stream=StreamConfig(min_cutoff=2.0, beta=0.0)))
     assert int(np.argmax(smooth.controls[:, 2])) == 120
     assert int(np.argmax(causal.controls[:, 2])) > 123  # a causal low pass lags
@@ -223,12 +223,12 @@ def test_subset_fit_error_tracks_the_full_one(bundle: Bundle, cut: bool) -> None
     meshes[100, moving[:60]] += 0.05
     solver = BatchSolver(bundle, threads=2, subset_graph=slice_forward_graph if cut else None)
     assert solver.subset_forward(60) is cut
-    full = solver.solve(meshes, times, SolveOptions(fit_error="full", filter="none",
+    full = solver.solve(meshes, times, SolveOptions(fit_error_scope="full", filter="none",
                                                     fit_sample=60, batch_size=64))
-    sub = solver.solve(meshes, times, SolveOptions(fit_error="subset", filter="none",
+    sub = solver.solve(meshes, times, SolveOptions(fit_error_scope="subset", filter="none",
                                                    fit_sample=60, batch_size=64))
-    assert full.fit_error == "full" and full.fit_vertices == bundle.vertex_count
-    assert sub.fit_error == "subset" and sub.fit_vertices == 40 + 16 + 60
+    assert full.fit_error_scope == "full" and full.fit_vertices == bundle.vertex_count
+    assert sub.fit_error_scope == "subset" and sub.fit_vertices == 40 + 16 + 60
     np.testing.assert_allclose(sub.fit_rms, full.fit_rms, rtol=0.15)
     assert np.all(sub.fit_max <= full.fit_max + 1e-6)
     np.testing.assert_array_equal(sub.controls, full.controls)
@@ -236,7 +236,7 @@ def test_subset_fit_error_tracks_the_full_one(bundle: Bundle, cut: bool) -> None
     # and the naive twin over the whole take, frame by frame, gives the same numbers
     subset = solver.fit_subset(60)
     forward = ForwardModel(bundle)
-    plain = solver.solve(meshes, times, SolveOptions(filter="none", fit_error="off"))
+    plain = solver.solve(meshes, times, SolveOptions(filter="none", fit_error_scope="off"))
     raw, fit = plain.controls, plain.rigid  # the realigned fits
     assert fit is not None
     first = fit_rigid_batch(meshes[:, bundle.stable_indices], solver.neutral_stable)
@@ -277,19 +277,19 @@ def test_the_solve_returns_the_fits_that_stabilised_each_frame(bundle: Bundle) -
     stabilise."""
     meshes, times, _ = _take(70, seed=6)
     solver = BatchSolver(bundle, threads=2)
-    result = solver.solve(meshes, times, SolveOptions(batch_size=16, fit_error="off",
+    result = solver.solve(meshes, times, SolveOptions(batch_size=16, fit_error_scope="off",
                                                       stream=StreamConfig(realign=0)))
     assert result.rigid is not None and len(result.rigid) == 70
     ref = fit_rigid_batch(meshes[:, bundle.stable_indices], solver.neutral_stable)
     np.testing.assert_allclose(result.rigid.rotation, ref.rotation, atol=1e-12)
     np.testing.assert_allclose(result.rigid.translation, ref.translation, atol=1e-12)
     np.testing.assert_allclose(np.sqrt(result.rigid.mse), result.align_rms, rtol=1e-5, atol=1e-7)
-    again = solver.solve(meshes, times, SolveOptions(batch_size=16, fit_error="off"))
+    again = solver.solve(meshes, times, SolveOptions(batch_size=16, fit_error_scope="off"))
     assert again.rigid is not None and len(again.rigid) == 70
     np.testing.assert_allclose(again.rigid.rotation, ref.rotation, atol=1e-2)
     np.testing.assert_allclose(again.rigid.mse, ref.mse, rtol=1e-6)
     off = solver.solve(meshes, times, SolveOptions(stream=StreamConfig(stabilise=False),
-                                                   fit_error="off"))
+                                                   fit_error_scope="off"))
     assert off.rigid is None
 
 
@@ -305,7 +305,7 @@ def test_realignment_steadies_a_noisy_stabilisation(bundle: Bundle) -> None:
 
     def error(passes: int) -> float:
         got = solver.solve(meshes, times, SolveOptions(
-            filter="none", fit_error="off", stream=StreamConfig(realign=passes))).controls
+            filter="none", fit_error_scope="off", stream=StreamConfig(realign=passes))).controls
         return float(np.sqrt(((got - truth) ** 2).mean()))
 
     before, after = error(0), error(1)

@@ -122,9 +122,9 @@ def test_planted_off_manifold_frames_are_found_in_a_batch_solve(tmp_path: Path) 
         take = synth_take(rig, frames=900, fps=60.0, seed=seed,  # type: ignore[arg-type]
                           head_motion=True, wobble_sigma=0.0, off_manifold_frames=6)
         for mode in ("subset", "full"):
-            options = SolveOptions(filter="causal", fit_error=mode, fit_sample=200)
+            options = SolveOptions(filter="causal", fit_error_scope=mode, fit_sample=200)
             result = solve_take(bundle, take.vertices, take.times_s, options)
-            assert result.fit_error == mode
+            assert result.fit_error_scope == mode
             hits += int((result.off_manifold & take.off_manifold).sum())
             false += int((result.off_manifold & ~take.off_manifold).sum())
             planted += int(take.off_manifold.sum())

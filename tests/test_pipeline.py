@@ -41,7 +41,7 @@ def test_a_stream_publishes_what_the_batch_solve_computes(tmp_path: Path) -> Non
         state.process(mesh, 0, 0, 0, lambda f: sent.append(protocol.decode_controls(f)))
     live = np.array([m.values for m in sent])
     batch = solve_take(load_bundle(path), meshes, times,
-                       SolveOptions(stream=settings, batch_size=32, fit_error="off"))
+                       SolveOptions(stream=settings, batch_size=32, fit_error_scope="off"))
     np.testing.assert_allclose(live, batch.controls, rtol=0, atol=1e-6)
     assert [m.has(protocol.FLAG_FILTERED) for m in sent].count(False) == 2  # first and gap
     assert np.abs(np.diff(live, axis=0)).max() > 1e-3  # the take moves: the test can fail

@@ -77,8 +77,8 @@ def test_solve_and_serve_skip_stabilisation_without_a_rigid_region(tmp_path: Pat
     meshes = np.stack([rig_mesh(rig, c) for c in controls]).astype(np.float32) + shift
     times = np.arange(6) / 60.0
     solver = BatchSolver(bundle, threads=1)
-    by_default = solver.solve(meshes, times, SolveOptions(filter="none", fit_error="off"))
-    forced = solver.solve(meshes, times, SolveOptions(filter="none", fit_error="off",
+    by_default = solver.solve(meshes, times, SolveOptions(filter="none", fit_error_scope="off"))
+    forced = solver.solve(meshes, times, SolveOptions(filter="none", fit_error_scope="off",
                                                       stream=StreamConfig(stabilise=True)))
     assert np.abs(forced.controls - controls).max() < 1e-3
     assert np.abs(by_default.controls - controls).max() > 0.05, "the shift was stabilised away"

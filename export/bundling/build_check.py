@@ -58,7 +58,7 @@ def served_solve(bundle_path: Path, meshes: np.ndarray, fps: float = 60.0
     bundle = load_bundle(bundle_path)
     solver = BatchSolver(bundle, threads=2)
     times = np.arange(meshes.shape[0], dtype=np.float64) / fps
-    res = solver.solve(meshes, times, SolveOptions(filter="none", fit_error="full"))
+    res = solver.solve(meshes, times, SolveOptions(filter="none", fit_error_scope="full"))
     return res.controls, res.fit_rms, bundle.rigid_region  # SolveOptions' default follows it
 
 

@@ -99,7 +99,7 @@ def solve_one(bundle_path: Path, take_path: Path, out: Path,
     cutter = slice_forward_graph if take.vertices.shape[0] >= CUT_MIN_FRAMES else None
     solver = BatchSolver(bundle, threads=settings.threads, subset_graph=cutter)
     options = SolveOptions(stream=settings.stream, filter=settings.filter,
-                           smooth_hz=settings.smooth_hz, fit_error=settings.fit_error_scope,
+                           smooth_hz=settings.smooth_hz, fit_error_scope=settings.fit_error_scope,
                            batch_size=settings.batch_size)
     basis, skeleton = output_form(bundle, out, solver.forward, settings.rig, settings.bounds)
     result = solver.solve(take.vertices, take.times_s, options)
@@ -120,12 +120,12 @@ def solve_one(bundle_path: Path, take_path: Path, out: Path,
         partial.unlink(missing_ok=True)
     from rigcast.writers.frame_info import describe_ranges
 
-    if result.fit_error == "off":
+    if result.fit_error_scope == "off":
         fit = "fit error off"
         mean = float("nan")
     else:
         mean = float(np.nanmean(result.fit_rms))
-        fit = (f"fit error ({result.fit_error}, {result.fit_vertices} of "
+        fit = (f"fit error ({result.fit_error_scope}, {result.fit_vertices} of "
                f"{bundle.vertex_count} vertices) RMS mean {mean:.5f}, "
                f"{int(result.off_manifold.sum())} off-manifold frames")
     first = (f"solved {result.controls.shape[0]} frames at {take.fps_note} in "

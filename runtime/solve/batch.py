@@ -63,8 +63,8 @@ __all__ = ["FILTERS", "FIT_ERROR_SCOPES", "BatchError", "BatchSolve", "BatchSolv
 
 FilterKind = Literal["none", "causal", "smooth"]
 FILTERS: tuple[str, ...] = ("none", "causal", "smooth")
-# Which vertices the fit error reads. (The server's fit_error is another concept: *when* it runs,
-# config.FitErrorSchedule.)
+# Which vertices the fit error reads (``fit_error_scope``); when the server computes it is
+# another setting, ``config.StreamConfig.fit_error_schedule``.
 FitErrorScope = Literal["full", "subset", "off"]
 FIT_ERROR_SCOPES: tuple[str, ...] = ("subset", "full", "off")
 FIT_SLICE = 128  # frames per forward-model call in the fit error
@@ -85,7 +85,7 @@ class BatchSolve:
     when the fit error was not computed); off_manifold (T,) bool, fit_max above thresholds (T,)
     (NaN when not computed, inf during the detector's warm-up); align_rms (T,) float32 residual
     of the stabilisation (0 when off); seconds of wall time; frames_per_second = T / seconds;
-    fit_error the scope used ("subset", "full", "off") and fit_vertices how many vertices it read;
+    fit_error_scope the scope used ("subset", "full", "off") and fit_vertices how many vertices it read;
     rigid the fits that stabilised the frames (the head pose is their inverse,
     ``head_pose.HeadPose.from_stabiliser(rigid.pose(t))``), None when not stabilised.
     """
@@ -98,7 +98,7 @@ class BatchSolve:
     align_rms: np.ndarray
     seconds: float
     frames_per_second: float
-    fit_error: str
+    fit_error_scope: str
     fit_vertices: int
     rigid: RigidBatch | None = None  # each frame's stabilising fit (T frames); None when off
 
@@ -121,7 +121,7 @@ class SolveOptions:
     off_manifold_threshold); None: their defaults. Its ``stream`` and ``bundle`` are not used.
     filter: "causal" (the live server's One Euro filter with those settings), "smooth" (offline,
     zero-phase, no lag; cutoff ``smooth_hz``) or "none". batch_size: frames per onnxruntime call.
-    fit_error: which vertices the fit error reads: "full" (default, every vertex, as the live
+    fit_error_scope: which vertices the fit error reads: "full" (default, every vertex, as the live
     server reads), "subset" (faster: the inverse's input and stable vertices plus
     ``fit_sample`` others drawn once with a fixed seed; its max misses a bulge on the vertices
     it does not read: off-manifold recall 0.75 against 0.95 with "full" on a zoo rig) or
@@ -133,16 +133,16 @@ class SolveOptions:
     filter: FilterKind = "causal"
     smooth_hz: float = 3.0
     batch_size: int = 1024
-    fit_error: FitErrorScope = "full"
+    fit_error_scope: FitErrorScope = "full"
     fit_sample: int = 512
     manifold: ManifoldConfig | None = None
 
     def __post_init__(self) -> None:
         if self.filter not in FILTERS:
             raise BatchError(f"filter must be one of {FILTERS}, got {self.filter!r}")
-        if self.fit_error not in FIT_ERROR_SCOPES:
-            raise BatchError(f"fit_error must be one of {FIT_ERROR_SCOPES}, "
-                             f"got {self.fit_error!r}")
+        if self.fit_error_scope not in FIT_ERROR_SCOPES:
+            raise BatchError(f"fit_error_scope must be one of {FIT_ERROR_SCOPES}, "
+                             f"got {self.fit_error_scope!r}")
         if not isinstance(self.batch_size, int) or self.batch_size < 1:
             raise BatchError(f"batch_size must be an integer >= 1, got {self.batch_size!r}")
         if not isinstance(self.fit_sample, int) or self.fit_sample < 0:
@@ -214,9 +214,9 @@ class BatchSolver:
         opts = options or SolveOptions()
         settings = opts.settings
         # Sessions and the fit-error subset are set up once per solver, outside the timing.
-        subset, cut = (self._subset(opts.fit_sample) if opts.fit_error == "subset"
+        subset, cut = (self._subset(opts.fit_sample) if opts.fit_error_scope == "subset"
                        else (None, None))
-        fitting = opts.fit_error != "off"
+        fitting = opts.fit_error_scope != "off"
         stabilise = stabilise_for(settings.stabilise, self.bundle, f"solve {self.bundle.name}")
         causal = opts.filter == "causal" and not settings.passthrough
         filt = build_filter(settings, self.bundle.schema) if causal else None
@@ -300,17 +300,17 @@ class BatchSolver:
         thresholds, off = self._off_manifold(fit_rms, fit_max, opts)
         seconds = time.perf_counter() - start
         log.info("batch solve: %d frames in %.3f s (%.0f frames/s), fit error %s",
-                 t, seconds, t / seconds, opts.fit_error)
-        fit_vertices = (0 if opts.fit_error == "off" else subset.indices.shape[0]
+                 t, seconds, t / seconds, opts.fit_error_scope)
+        fit_vertices = (0 if opts.fit_error_scope == "off" else subset.indices.shape[0]
                         if subset is not None else self.bundle.vertex_count)
         return BatchSolve(controls, fit_rms, fit_max, off, thresholds, align_rms, seconds,
-                          t / seconds, opts.fit_error, fit_vertices, fits)
+                          t / seconds, opts.fit_error_scope, fit_vertices, fits)
 
     def _off_manifold(self, fit_rms: np.ndarray, fit_max: np.ndarray, opts: SolveOptions
                       ) -> tuple[np.ndarray, np.ndarray]:
         """As the live server rules: a fixed threshold on the frame's fit RMS, else the adaptive
         one on its worst vertex."""
-        if opts.fit_error == "off":
+        if opts.fit_error_scope == "off":
             return np.full(fit_max.shape, np.nan), np.zeros(fit_max.shape, bool)
         fixed = opts.settings.off_manifold_threshold
         if fixed is not None:
