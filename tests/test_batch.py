@@ -175,7 +175,7 @@ def test_bad_takes_are_refused(bundle: Bundle) -> None:
 
 @pytest.mark.parametrize(("field", "value", "match"), [
     ("filter", "median", "filter must be one of"),
-    ("fit_error", "some", "fit_error must be one of"),
+    ("fit_error_scope", "some", "fit_error_scope must be one of"),
     ("batch_size", 0, "batch_size"),
     ("fit_sample", -1, "fit_sample"),
     ("smooth_hz", float("nan"), "smooth_hz"),
