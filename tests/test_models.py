@@ -19,6 +19,7 @@ from rigcast.export.training.models import (
     unit_output,
     unit_output_naive,
 )
+from rigcast.export.training.train_forward import fold_input_map
 from rigcast.runtime.schema import Control, ControlSchema
 
 
@@ -131,6 +132,30 @@ def test_fit_linear_is_exact_on_an_affine_map() -> None:
     gw, gb = train.fit_linear(u, (u @ w + b).astype(np.float32), ridge=0.0)
     np.testing.assert_allclose(gw, w, atol=1e-4)
     np.testing.assert_allclose(gb, b, atol=1e-4)
+
+
+@pytest.mark.parametrize("scale", [0.5, 1.0, 2.0, 3.7])
+def test_folded_input_map_equals_the_centred_input(scale: float) -> None:
+    # Naive twin: the layer applied to scale (u - rest) before folding, against the folded layer on u.
+    torch.manual_seed(5)
+    layer = torch.nn.Linear(6, 9)
+    u, rest = torch.rand(40, 6), torch.rand(6)
+    with torch.no_grad():
+        want = layer(scale * (u - rest))
+        fold_input_map(layer, scale, rest)
+        got = layer(u)
+    torch.testing.assert_close(got, want, atol=1e-5, rtol=1e-5)
+
+
+@pytest.mark.parametrize("scale", [0.0, -1.0, float("nan")])
+def test_forward_rejects_a_bad_input_scale(scale: float) -> None:
+    rig = PatchRig()
+    c = sparse_controls(40, rig.control_count, 2)
+    with pytest.raises(train.TrainError, match="input_scale"):
+        train.train_forward(
+            c, rig.evaluate(c), rig.neutral, rig.schema.lower, rig.schema.upper,
+            train.ForwardConfig(hidden=(8,), components=4, epochs=1, input_scale=scale),
+        )
 
 
 def test_randomized_pca_matches_full_svd() -> None:

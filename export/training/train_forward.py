@@ -7,6 +7,16 @@
    squared error on coefficients equals squared mesh error within the basis, and it is far cheaper
    than a loss over all 3V coordinates.
 
+The MLP trains on inputs with the rest pose at the origin, ``x = a (u - r)`` (``input_scale`` a;
+r each control's median, its default in sparse samples) and on targets in units of their RMS; both
+maps are then folded into its first and last layers (``fold_input_map``), so the exported model
+still takes u and gives the coefficients. Measured on the lantern arm (linear blend skinning, where
+the MLP carries nearly everything, 16,000 sparse samples): at 60 epochs centring the inputs halved
+the held-out mean error; lr 1e-2 (was 3e-3) and 150 epochs (was 40) took it from 0.79 % to about
+0.1 % of the diagonal. Centring on the rest pose, not on u = 0.5, is what keeps the demo face (rest
+at u = 0) stable at lr 1e-2. Common practice (zero-centred inputs and unit-scale targets), no
+source for a = 2 and the schedule.
+
 Adam with a one-cycle schedule, fixed seeds, two torch threads (the machine is shared).
 """
 
@@ -39,9 +49,9 @@ log = logging.getLogger(__name__)
 class ForwardConfig:
     hidden: tuple[int, ...] = (256, 256, 256)
     components: int = 96
-    epochs: int = 40
+    epochs: int = 150
     batch: int = 512
-    lr: float = 3e-3
+    lr: float = 1e-2
     holdout: float = 0.1
     seed: int = 0
     # A time budget (None: the fixed schedule, so a build gives the same bundle on a busy
@@ -53,6 +63,8 @@ class ForwardConfig:
     # own shape, so alone the forward model overstated it: on the demo face five expressions
     # came back 6-8 % short of a full activation, and the fit preferred that to the truth.
     linear: str = "anchored"
+    # a in x = a (2u - 1), the correction MLP's training input (see the module docstring).
+    input_scale: float = 2.0
 
 
 
@@ -95,6 +107,14 @@ def randomized_pca_naive(x: np.ndarray, k: int) -> np.ndarray:
     """Exact twin of ``randomized_pca``: full SVD, top-k right singular vectors."""
     _, _, vt = np.linalg.svd(np.asarray(x, np.float64), full_matrices=False)
     return vt[: min(k, *x.shape)]
+
+
+def fold_input_map(first: torch.nn.Linear, scale: float, rest: torch.Tensor) -> None:
+    """Fold x = scale (u - rest) into the layer ``first`` (weight (H, C), bias (H,)); rest: (C,).
+    In place: afterwards first(u) equals the old first(x), i.e. W' = scale W, b' = b - W' rest."""
+    with torch.no_grad():
+        first.weight.mul_(scale)
+        first.bias.sub_(first.weight @ rest.to(first.weight.dtype))
 
 
 def fit_linear(
@@ -206,7 +226,18 @@ def _fit_coefficients(
     progress: Progress | None,
 ) -> None:
     assert model.correction is not None
-    ut, tt = torch.from_numpy(u), torch.from_numpy(targets)
+    scale = float(config.input_scale)
+    if not scale > 0.0 or not math.isfinite(scale):
+        raise TrainError(f"forward input_scale must be a positive finite number, got {scale!r}")
+    # Targets in units of their RMS, so the schedule behaves the same whatever the residual's
+    # size (a near-linear rig's residual of 1e-6 is otherwise buried under the MLP's start-up
+    # noise); the RMS goes back into the last layer after training.
+    rms = float(np.sqrt(np.mean(np.square(targets, dtype=np.float64))))
+    unit = rms if rms > 0.0 and math.isfinite(rms) else 1.0
+    # The rest pose at the input's origin: each control's median, its default in sparse samples.
+    rest = torch.from_numpy(np.median(u, axis=0).astype(np.float32))
+    ut = scale * (torch.from_numpy(u) - rest)
+    tt = torch.from_numpy((targets / unit).astype(np.float32))
     n = ut.shape[0]
     per_epoch = max(1, math.ceil(n / config.batch))
     total = per_epoch * config.epochs
@@ -237,7 +268,13 @@ def _fit_coefficients(
         epoch += 1
         if progress is not None:
             progress("forward", epoch, epochs)
-    log.debug("forward: final coefficient mse %.3g", float(loss.detach()))
+    first, last = model.correction[0], model.correction[-1]
+    assert isinstance(first, torch.nn.Linear) and isinstance(last, torch.nn.Linear)
+    fold_input_map(first, scale, rest)
+    with torch.no_grad():
+        last.weight.mul_(unit)
+        last.bias.mul_(unit)
+    log.debug("forward: final coefficient mse %.3g", unit * unit * float(loss.detach()))
 
 
 @torch.no_grad()
