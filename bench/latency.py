@@ -46,7 +46,7 @@ from rigcast.export.bundling.synthetic_bundle import build_synthetic_bundle, mak
 from rigcast.runtime.trust.keys import ClientCurve, create_key_pair
 
 # The measuring code is the package's, shared with `rigcast latency-check`.
-from rigcast.live.latency_probe import Client, echo_main, ms_percentiles
+from rigcast.live.latency_probe import Client, echo_main, ms_percentiles, pose_meshes
 
 CONTROLS, INPUTS, STABLE, HIDDEN, SEED = 50, 256, 128, 256, 7
 STREAM = "bench"
@@ -57,17 +57,10 @@ WARMUP_S = 3.0
 # --- client process --------------------------------------------------------------------------
 
 def make_meshes(vertices: int, count: int = 32) -> list[np.ndarray]:
-    """Rig poses with a little rigid head motion, so stabilisation does real work."""
+    """Rig poses with a little rigid head motion, so stabilisation does real work (the recipe is
+    rigcast.live.latency_probe.pose_meshes, which `rigcast latency-check` draws too)."""
     rig = make_synthetic_rig(vertices, CONTROLS, inputs=INPUTS, stable=STABLE, seed=SEED)
-    rng = np.random.default_rng(1)
-    out = []
-    for i in range(count):
-        w = np.clip(rng.normal(0.2, 0.15, CONTROLS), 0, 1)
-        a = np.radians(3.0 * np.sin(i / 5))
-        rot = np.array([[np.cos(a), 0, np.sin(a)], [0, 1, 0], [-np.sin(a), 0, np.cos(a)]])
-        mesh = rig.evaluate(w[None])[0].astype(np.float64) @ rot.T + [0.01 * i, 0, 0]
-        out.append(np.ascontiguousarray(mesh, dtype=np.float32))
-    return out
+    return pose_meshes(rig.evaluate, rig.schema.lower, rig.schema.upper, count)
 
 
 def client_main(args: argparse.Namespace) -> None:

@@ -188,8 +188,8 @@ def add_latency_check(subs: Subparsers) -> None:
 
     p = sub(
         subs, "latency-check", "measure end-to-end latency of your bundle on this machine",
-        "Start a server on your bundle and send it frames of its own rig from this process, "
-        "paced at --fps, after measuring the transport floor (an echo process on the same "
+        "Start a server on your bundle and send it frames of its own rig from a sender process "
+        "of its own, paced at --fps, after measuring the transport floor (an echo process on the same "
         "sockets) in the same run. Prints p50, p95, p99 and max end to end, the server's "
         "per-stage medians, the headroom against the frame budget at --fps and the largest "
         "rate it sustains, and writes a report (Markdown, JSON, and with matplotlib a latency "
