@@ -46,6 +46,14 @@ def test_demo_quick_runs_end_to_end(tmp_path: Path) -> None:
     for name in ("controls.png", "fit_error.png", "latency.png"):
         data = (report / name).read_bytes()
         assert data[:8] == PNG_MAGIC and len(data) > 5000, name
+    # `rigcast latency-check` on the bundle the demo built (issue 15: a short run on the demo
+    # bundle), checked as tests/test_latency_check.py checks its runs.
+    from rigcast.runtime.bundle import load_bundle
+    from test_latency_check import check_report, run_latency_check
+
+    bundle = report / "demo-face.rcb"
+    done = run_latency_check(bundle, tmp_path / "latency")
+    check_report(tmp_path / "latency", done, load_bundle(bundle).vertex_count)
 
 
 def test_corrupt_schedule_spreads_each_kind() -> None:
