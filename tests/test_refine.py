@@ -12,6 +12,7 @@ from dataclasses import asdict
 import numpy as np
 import pytest
 from rigcast.runtime.solve.refine import (
+    ActiveFactors,
     Refiner,
     RefineSettings,
     active_set,
@@ -51,6 +52,51 @@ def test_solve_active_matches_its_naive_twin() -> None:
             np.testing.assert_allclose(solve_active(h, g[i : i + 1], free[i : i + 1], 0.1, one),
                                        want[i : i + 1], rtol=1e-10, atol=1e-12)
     assert not np.allclose(solve_active(h, g, free, 0.1, ridge), solve_active(h, g, free, 0.1))
+
+
+def test_active_factors_match_the_dense_solves() -> None:
+    """The live path's cached factors (eigendecomposition with a ridge, H_AA^-1) against
+    ``solve_active``: the same step and the same full Gauss-Newton decrease, for sets that recur
+    and sets that push older ones out of the cache."""
+    rng = np.random.default_rng(8)
+    m = rng.standard_normal((11, 11))
+    h = m @ m.T + 0.1 * np.eye(11)
+    factors = ActiveFactors(h, 0.1, size=3)
+    for _ in range(60):
+        free = rng.random((1, 11)) < rng.uniform(0.1, 0.9)
+        g = rng.standard_normal((1, 11))
+        ridge = float(rng.uniform(0.0, 3.0))
+        a = np.flatnonzero(free[0])
+        np.testing.assert_allclose(factors.step(a, g[0], ridge),
+                                   solve_active(h, g, free, 0.1, np.array([ridge]))[0],
+                                   rtol=1e-9, atol=1e-12)
+        full = solve_active(h, g, free, 0.0)[0]
+        np.testing.assert_allclose(factors.full_decrease(a, g[0]), float(g[0] @ full),
+                                   rtol=1e-9, atol=1e-12)
+    assert len(factors._sets) <= 3
+
+
+@pytest.mark.parametrize("prior_sd", [0.02, 0.0])
+def test_one_frame_takes_the_steps_a_batch_takes(prior_sd: float) -> None:
+    """The live path (a batch of one: ``Refiner._steps_one``) against the batch path on the same
+    frames, noisy and clean, with a network answer that is off and misses controls: the same
+    controls to rounding."""
+    c = 12
+    a, gradient = _linear_problem(9, c, coords=600)
+    rng = np.random.default_rng(10)
+    truth = _sparse_truth(rng, 24, c)
+    clean = truth @ a.T
+    noisy = clean + 0.02 * rng.standard_normal(clean.shape) * (np.arange(24) % 2)[:, None]
+    mesh = noisy.reshape(24, -1, 3).astype(np.float32)
+    guess = np.clip(truth + 0.1 * rng.standard_normal(truth.shape), 0, 1).astype(np.float32)
+    guess[::3, 0] = 0.0
+    refiner = Refiner(gradient, a.T @ a, np.zeros(c), np.ones(c), np.zeros(c), a.shape[0],
+                      RefineSettings(prior_sd=prior_sd))
+    batch = refiner.refine(guess, mesh)
+    alone = np.concatenate([refiner.refine(guess[i : i + 1], mesh[i : i + 1])
+                            for i in range(24)])
+    np.testing.assert_allclose(alone, batch, rtol=0, atol=1e-6)
+    assert np.abs(batch - guess).max() > 0.05  # the steps moved the controls
 
 
 def test_refine_reaches_the_bounded_least_squares_optimum_on_a_linear_rig() -> None:

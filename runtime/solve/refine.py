@@ -49,8 +49,10 @@ Each step then:
    if none lowers the cost it keeps its controls and stops.
 
 Finally, controls within ``snap`` of their default (share of the range) return to it exactly.
-Frames are independent: a batch of one (live) and a batch of many (``rigcast solve``) take the
-same path.
+Frames are independent: a batch of many (``rigcast solve``) gathers each frame's active system
+and solves them in one batched call; a batch of one (live) takes the same steps on vectors, with
+each active set's factors cached while the set recurs (``ActiveFactors``), and is tested to give
+the batch's controls.
 """
 
 from __future__ import annotations
@@ -216,6 +218,56 @@ def solve_active_naive(hessian: np.ndarray, g: np.ndarray, free: np.ndarray, dam
     return delta
 
 
+class ActiveFactors:
+    """Per active set, the factors a frame's step needs, kept while the set recurs.
+
+    For the active controls A of a frame: H_AA^-1 (the prior weight's full Gauss-Newton step)
+    and the eigendecomposition Q diag(lam) Q^T of H_AA + damping diag(H_AA), so that the step's
+    system with any ridge rho, (H_AA + damping diag(H_AA) + rho I), is solved as
+    Q diag(1 / (lam + rho)) Q^T (a ridge adds to every eigenvalue of a symmetric matrix and keeps
+    its eigenvectors). A live stream's active set changes rarely from one frame to the next, so
+    a frame's two small dense solves become four matrix-vector products. ``solve_active`` is the
+    twin these are tested against. At most ``size`` sets are kept (the oldest go first).
+    """
+
+    def __init__(self, hessian: np.ndarray, damping: float, size: int = 256) -> None:
+        self.hessian, self.damping, self.size = hessian, float(damping), int(size)
+        self._sets: dict[bytes, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
+
+    def get(self, a: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """a (k,) int64 active controls -> (H_AA^-1 (k, k), Q (k, k), lam (k,))."""
+        key = a.tobytes()
+        hit = self._sets.get(key)
+        if hit is not None:
+            return hit
+        h = self.hessian[a[:, None], a]
+        damped = h.copy()
+        damped[np.diag_indices(a.size)] *= 1.0 + self.damping
+        lam, q = np.linalg.eigh(damped)
+        hit = (np.linalg.inv(h), q, lam)
+        if len(self._sets) >= self.size:
+            self._sets.pop(next(iter(self._sets)))
+        self._sets[key] = hit
+        return hit
+
+    def full_decrease(self, a: np.ndarray, g: np.ndarray) -> float:
+        """a (k,) active controls, g (C,) one frame's gradient -> g_A^T H_AA^-1 g_A, what a full
+        undamped Gauss-Newton step on A would remove from |r|^2."""
+        if a.size == 0:
+            return 0.0
+        ga = g[a]
+        return float(ga @ (self.get(a)[0] @ ga))
+
+    def step(self, a: np.ndarray, rhs: np.ndarray, ridge: float) -> np.ndarray:
+        """a (k,) active controls, rhs (C,) one frame's right-hand side, ridge >= 0 -> delta (C,):
+        (H_AA + damping diag(H_AA) + ridge I) delta_A = rhs_A, zero outside A."""
+        delta = np.zeros(rhs.shape[0], np.float64)
+        if a.size:
+            _, q, lam = self.get(a)
+            delta[a] = q @ ((q.T @ rhs[a]) / (lam + ridge))
+        return delta
+
+
 class Refiner:
     """Bounded sparse Gauss-Newton after the network; see the module docstring.
 
@@ -245,6 +297,8 @@ class Refiner:
         self.d = np.clip((np.asarray(defaults, np.float64) - self.lower) / self.span, 0.0, 1.0)
         self.coords = int(coords)
         self.prepare = prepare
+        s = self.settings
+        self.factors = ActiveFactors(self.hessian, s.damping + s.prior)
 
     def prior_weight(self, g: np.ndarray, rss: np.ndarray, free: np.ndarray) -> np.ndarray:
         """g (N, C) gradient, rss (N,) residual squared norms, free (N, C) the active set ->
@@ -253,8 +307,7 @@ class Refiner:
         sd = self.settings.prior_sd
         if sd <= 0.0:
             return np.zeros(rss.shape, np.float64)
-        full = solve_active(self.hessian, g, free, 0.0)
-        left = np.maximum(rss - (g * full).sum(axis=1), 0.0)
+        left = np.maximum(rss - (g * solve_active(self.hessian, g, free, 0.0)).sum(axis=1), 0.0)
         dof = np.maximum(self.coords - free.sum(axis=1), 1)
         out: np.ndarray = left / dof / sd**2
         return out
@@ -279,6 +332,50 @@ class Refiner:
             assert mesh is not None
             mesh = self.prepare(mesh)
         assert mesh is not None
+        u = self._steps_one(u, mesh) if u.shape[0] == 1 else self._steps(u, mesh)
+        u = np.where(np.abs(u - self.d) <= s.snap, self.d, u)
+        out: np.ndarray = (self.lower + self.span * u).astype(np.float32)
+        return out
+
+    def _steps_one(self, u: np.ndarray, state: np.ndarray) -> np.ndarray:
+        """The steps of :meth:`_steps` for a batch of one frame (the live path), with the frame's
+        numbers as vectors and scalars and the active set's cached factors instead of the
+        batch's gathers and dense solves; tested against :meth:`_steps`. u (1, C) -> (1, C)."""
+        s, d, fixed = self.settings, self.d, self.settings.prior * self.diag
+        u0 = u[0].copy()
+        gb, rb = self._evaluate(u, state)
+        x, g, rss = u0.copy(), gb[0], float(rb[0])
+        for _ in range(s.steps):
+            free = active_set(x[None], d, g[None], np.array([rss]), self.diag, s.kappa,
+                              self.coords, s.wake_share)[0]
+            a = np.flatnonzero(free)
+            lam = 0.0
+            if s.prior_sd > 0.0:
+                left = max(rss - self.factors.full_decrease(a, g), 0.0)
+                lam = left / max(self.coords - a.size, 1) / s.prior_sd**2
+            dx = x - u0
+            step = self.factors.step(a, g - (lam + fixed) * dx, lam)
+            if a.size == 0 or np.abs(step).max() < s.tol:
+                break
+            cost = rss + float(((lam + fixed) * dx**2).sum())
+            share, took = 1.0, False
+            for _halving in range(s.backtrack + 1):
+                trial = np.clip(x + share * step, 0.0, 1.0)
+                gb, rb = self._evaluate(trial[None], state)
+                r_new = float(rb[0])
+                if np.isfinite(r_new) and r_new + float(((lam + fixed) * (trial - u0) ** 2
+                                                         ).sum()) <= cost:
+                    x, g, rss, took = trial, gb[0], r_new, True
+                    break
+                share *= 0.5
+            if not took:  # no step lowered the cost: keep the controls
+                break
+        return x[None]
+
+    def _steps(self, u: np.ndarray, mesh: np.ndarray) -> np.ndarray:
+        """The damped, bounded, safeguarded steps on a batch: u (N, C) the network's answer in
+        normalised controls, mesh (N, ...) the frames' state -> (N, C) before the snap."""
+        s = self.settings
         u0 = u.copy()
         g, rss = self._evaluate(u, mesh)
         live = np.arange(u.shape[0])  # frames still refining; the others are done
@@ -311,6 +408,4 @@ class Refiner:
                     break
                 share *= 0.5
             live = live[~pending]  # a frame whose cost no step lowered keeps its controls
-        u = np.where(np.abs(u - self.d) <= s.snap, self.d, u)
-        out: np.ndarray = (self.lower + self.span * u).astype(np.float32)
-        return out
+        return u
