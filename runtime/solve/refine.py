@@ -155,15 +155,25 @@ def active_set(u: np.ndarray, d: np.ndarray, g: np.ndarray, rss: np.ndarray,
     d (C,) normalised defaults; g (N, C) gradient J^T r; rss (N,) |r|^2; hessian_diag (C,);
     coords: 3K, the residual's length; wake_share: least share of |r|^2 that g_c^2 / H_cc (what
     control c alone removes) must reach to wake it. -> (N, C) bool."""
-    at_rest = np.abs(u - d) <= 1e-6
-    rss = np.maximum(rss, 0.0)
-    tau = kappa * np.sqrt(hessian_diag)[None] * np.sqrt(rss / coords)[:, None]
-    tau = np.maximum(tau, np.sqrt(wake_share * hessian_diag[None] * rss[:, None]))
-    up, down = g > tau, g < -tau
-    violate = at_rest & ((up & (u < 1.0)) | (down & (u > 0.0)))
-    blocked = ((u >= 1.0) & (g > 0.0)) | ((u <= 0.0) & (g < 0.0))
-    free: np.ndarray = ((~at_rest) | violate) & ~blocked
-    return free
+    # max(kappa sqrt(H_cc) sigma, sqrt(wake_share H_cc |r|^2)), sigma = |r| / sqrt(coords)
+    tau = np.sqrt(hessian_diag)[None] * (wake_factor(kappa, coords, wake_share)
+                                         * np.sqrt(np.maximum(rss, 0.0)))[:, None]
+    return free_controls(u, d, g, tau)
+
+
+def free_controls(u: np.ndarray, d: np.ndarray, g: np.ndarray, tau: np.ndarray) -> np.ndarray:
+    """u, g, tau (..., C), d (C,) -> (..., C) bool: a control is free when it is away from its
+    default or its gradient beats the threshold tau, and its gradient does not push it past the
+    bound it sits on."""
+    moved = (np.abs(u - d) > 1e-6) | (np.abs(g) > tau)
+    out: np.ndarray = moved & ~np.where(g > 0.0, u >= 1.0, (u <= 0.0) & (g < 0.0))
+    return out
+
+
+def wake_factor(kappa: float, coords: int, wake_share: float) -> float:
+    """The correlation test's threshold per sqrt(H_cc) |r|: an at-rest control wakes when
+    |g_c| > wake_factor sqrt(H_cc) |r| (see ``active_set``)."""
+    return max(kappa / np.sqrt(coords), np.sqrt(wake_share))
 
 
 def solve_active(hessian: np.ndarray, g: np.ndarray, free: np.ndarray, damping: float,
@@ -342,13 +352,13 @@ class Refiner:
         numbers as vectors and scalars and the active set's cached factors instead of the
         batch's gathers and dense solves; tested against :meth:`_steps`. u (1, C) -> (1, C)."""
         s, d, fixed = self.settings, self.d, self.settings.prior * self.diag
+        root_diag, factor = np.sqrt(self.diag), wake_factor(s.kappa, self.coords, s.wake_share)
         u0 = u[0].copy()
         gb, rb = self._evaluate(u, state)
         x, g, rss = u0.copy(), gb[0], float(rb[0])
         for _ in range(s.steps):
-            free = active_set(x[None], d, g[None], np.array([rss]), self.diag, s.kappa,
-                              self.coords, s.wake_share)[0]
-            a = np.flatnonzero(free)
+            tau = root_diag * (factor * np.sqrt(max(rss, 0.0)))  # ``active_set`` on one frame
+            a = np.flatnonzero(free_controls(x, d, g, tau))
             lam = 0.0
             if s.prior_sd > 0.0:
                 left = max(rss - self.factors.full_decrease(a, g), 0.0)
@@ -360,7 +370,7 @@ class Refiner:
             cost = rss + float(((lam + fixed) * dx**2).sum())
             share, took = 1.0, False
             for _halving in range(s.backtrack + 1):
-                trial = np.clip(x + share * step, 0.0, 1.0)
+                trial = np.minimum(np.maximum(x + share * step, 0.0), 1.0)
                 gb, rb = self._evaluate(trial[None], state)
                 r_new = float(rb[0])
                 if np.isfinite(r_new) and r_new + float(((lam + fixed) * (trial - u0) ** 2
