@@ -296,12 +296,22 @@ def _refiner(bundle: Bundle, threads: int, settings: RefineSettings | None
 
     def gradient_projected(controls: np.ndarray, state: np.ndarray
                            ) -> tuple[np.ndarray, np.ndarray]:
-        proj = state[:, :-1].astype(np.float32)
-        g, quad = session.run(names, {REFINE_CONTROLS: controls, REFINE_PROJECTION: proj})
-        return g, state[:, -1] + quad
+        return bind(state)(controls)
+
+    def bind(state: np.ndarray) -> Callable[[np.ndarray], tuple[np.ndarray, np.ndarray]]:
+        """The gradient on fixed frames: their projection in float32 and |y|^2 made once."""
+        feed = {REFINE_PROJECTION: state[:, :-1].astype(np.float32)}
+        norm = state[:, -1]
+
+        def run(controls: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+            feed[REFINE_CONTROLS] = controls
+            g, quad = session.run(names, feed)
+            return g, norm + quad
+
+        return run
 
     return Refiner(gradient_projected, bundle.refine_hessian, schema.lower, schema.upper,
-                   schema.defaults, 3 * count, chosen, prepare), form
+                   schema.defaults, 3 * count, chosen, prepare, bind), form
 
 
 class ForwardModel:

@@ -72,6 +72,9 @@ log = logging.getLogger(__name__)
 GradientFn = Callable[[np.ndarray, np.ndarray], tuple[np.ndarray, np.ndarray]]
 #: frames' refinement vertices (N, S, 3) float32 -> per-frame state (N, ...)
 PrepareFn = Callable[[np.ndarray], np.ndarray]
+#: one frame's state (1, ...) -> the GradientFn on that frame, controls (1, C) float32 -> (gradient
+#: (1, C), residual_sq (1,)), with what depends on the frame alone made once (the live path)
+BindFn = Callable[[np.ndarray], Callable[[np.ndarray], tuple[np.ndarray, np.ndarray]]]
 
 
 class RefineError(RigcastError, ValueError):
@@ -290,7 +293,7 @@ class Refiner:
     def __init__(self, gradient: GradientFn, hessian: np.ndarray, lower: np.ndarray,
                  upper: np.ndarray, defaults: np.ndarray, coords: int,
                  settings: RefineSettings | None = None,
-                 prepare: PrepareFn | None = None) -> None:
+                 prepare: PrepareFn | None = None, bind: BindFn | None = None) -> None:
         c = lower.shape[0]
         h = np.asarray(hessian, np.float64)
         if h.shape != (c, c) or not np.isfinite(h).all():
@@ -307,6 +310,7 @@ class Refiner:
         self.d = np.clip((np.asarray(defaults, np.float64) - self.lower) / self.span, 0.0, 1.0)
         self.coords = int(coords)
         self.prepare = prepare
+        self.bind = bind
         s = self.settings
         self.factors = ActiveFactors(self.hessian, s.damping + s.prior)
 
@@ -353,9 +357,17 @@ class Refiner:
         batch's gathers and dense solves; tested against :meth:`_steps`. u (1, C) -> (1, C)."""
         s, d, fixed = self.settings, self.d, self.settings.prior * self.diag
         root_diag, factor = np.sqrt(self.diag), wake_factor(s.kappa, self.coords, s.wake_share)
+        gradient = (self.bind(state) if self.bind is not None
+                    else lambda c: self.gradient(c, state))
+        lower, span = self.lower, self.span
+
+        def evaluate(x: np.ndarray) -> tuple[np.ndarray, float]:
+            gb, rb = gradient((lower + span * x).astype(np.float32)[None])
+            return np.asarray(gb[0], np.float64), float(rb[0])
+
         u0 = u[0].copy()
-        gb, rb = self._evaluate(u, state)
-        x, g, rss = u0.copy(), gb[0], float(rb[0])
+        x = u0.copy()
+        g, rss = evaluate(x)
         for _ in range(s.steps):
             tau = root_diag * (factor * np.sqrt(max(rss, 0.0)))  # ``active_set`` on one frame
             a = np.flatnonzero(free_controls(x, d, g, tau))
@@ -371,11 +383,10 @@ class Refiner:
             share, took = 1.0, False
             for _halving in range(s.backtrack + 1):
                 trial = np.minimum(np.maximum(x + share * step, 0.0), 1.0)
-                gb, rb = self._evaluate(trial[None], state)
-                r_new = float(rb[0])
+                g_new, r_new = evaluate(trial)
                 if np.isfinite(r_new) and r_new + float(((lam + fixed) * (trial - u0) ** 2
                                                          ).sum()) <= cost:
-                    x, g, rss, took = trial, gb[0], r_new, True
+                    x, g, rss, took = trial, g_new, r_new, True
                     break
                 share *= 0.5
             if not took:  # no step lowered the cost: keep the controls
