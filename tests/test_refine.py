@@ -99,6 +99,23 @@ def test_one_frame_takes_the_steps_a_batch_takes(prior_sd: float) -> None:
     assert np.abs(batch - guess).max() > 0.05  # the steps moved the controls
 
 
+def test_settings_changed_after_construction_reach_the_one_frame_path() -> None:
+    """The one-frame path caches factors that hold the damping: settings set on a live refiner
+    (as bench/quality.py does) must give what a refiner built with them gives."""
+    c = 12
+    a, gradient = _linear_problem(11, c)
+    truth = _sparse_truth(np.random.default_rng(12), 1, c)
+    mesh = (truth @ a.T).reshape(1, -1, 3).astype(np.float32)
+    guess = np.clip(truth * 0.5, 0, 1).astype(np.float32)
+    chosen = RefineSettings(damping=2.0, steps=1)
+    built = Refiner(gradient, a.T @ a, np.zeros(c), np.ones(c), np.zeros(c), a.shape[0], chosen)
+    later = Refiner(gradient, a.T @ a, np.zeros(c), np.ones(c), np.zeros(c), a.shape[0])
+    before = later.refine(guess, mesh)
+    later.settings = chosen
+    np.testing.assert_allclose(later.refine(guess, mesh), built.refine(guess, mesh), atol=1e-7)
+    assert np.abs(before - built.refine(guess, mesh)).max() > 1e-3
+
+
 def test_refine_reaches_the_bounded_least_squares_optimum_on_a_linear_rig() -> None:
     """Noise-free sparse poses, a network answer that is off and misses a control: the steps
     must land on SciPy's bounded optimum (here the true pose) and keep at-rest controls at rest."""

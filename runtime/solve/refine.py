@@ -299,7 +299,6 @@ class Refiner:
         if h.shape != (c, c) or not np.isfinite(h).all():
             raise RefineError(f"refine hessian must be finite ({c}, {c}), got {h.shape}")
         self.gradient = gradient
-        self.settings = settings or RefineSettings()
         self.hessian = 0.5 * (h + h.T)
         # A control the rig never moves has no curvature; a tiny floor keeps systems solvable.
         floor = 1e-9 * max(float(np.max(np.diag(self.hessian))), 1e-30)
@@ -311,8 +310,18 @@ class Refiner:
         self.coords = int(coords)
         self.prepare = prepare
         self.bind = bind
-        s = self.settings
-        self.factors = ActiveFactors(self.hessian, s.damping + s.prior)
+        self.settings = settings or RefineSettings()
+
+    @property
+    def settings(self) -> RefineSettings:
+        """The step settings; setting them also renews the cached factors, which hold the
+        damping."""
+        return self._settings
+
+    @settings.setter
+    def settings(self, value: RefineSettings) -> None:
+        self._settings = value
+        self.factors = ActiveFactors(self.hessian, value.damping + value.prior)
 
     def prior_weight(self, g: np.ndarray, rss: np.ndarray, free: np.ndarray) -> np.ndarray:
         """g (N, C) gradient, rss (N,) residual squared norms, free (N, C) the active set ->
