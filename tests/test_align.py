@@ -186,8 +186,14 @@ def test_per_frame_target_fit_agrees_with_the_naive_fit(seed: int, with_scale: b
         assert fast.scale[b] == pytest.approx(naive.scale, rel=1e-5)
         moved = naive.apply(src[b].astype(np.float64))
         direct = float(np.sqrt(((moved - targets[b]) ** 2).sum(axis=1).mean()))
-        # the closed-form residual of float32 moments (the realignment keeps the stable fit's)
-        assert fast.rms[b] == pytest.approx(direct, rel=1e-4, abs=1e-3)
+        # the closed-form residual of float32 moments (the realignment keeps the stable fit's):
+        # mse = var_t + var_s - 2 tr(DS) cancels, leaving about sqrt(eps32 (var_s + var_t)),
+        # a few 1e-3 on these points (~3 units from the origin); seed 891481179 gave 1.003e-3
+        # where 0 was exact
+        second = float((src[b].astype(np.float64) ** 2).sum(axis=1).mean()
+                       + (targets[b] ** 2).sum(axis=1).mean())
+        spread = float(np.sqrt(np.finfo(np.float32).eps * 4 * second))
+        assert fast.rms[b] == pytest.approx(direct, rel=1e-4, abs=max(1e-3, spread))
     with pytest.raises(AlignError, match="both be"):
         fit_rigid_pairs(src, targets[:2])
 

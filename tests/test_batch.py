@@ -15,6 +15,7 @@ from rigcast.runtime.solve.batch import (
     BatchError,
     BatchSolver,
     SolveOptions,
+    _check_finite,
     fit_error_batch,
     fit_error_batch_naive,
     fit_rigid_batch,
@@ -269,6 +270,39 @@ def test_chunk_size_does_not_change_the_result(bundle: Bundle) -> None:
     np.testing.assert_array_equal(one.off_manifold, many.off_manifold)
 
 
+
+@pytest.mark.parametrize("filter_kind", ["causal", "smooth"])
+def test_the_thread_pool_gives_the_one_thread_result_bit_for_bit(bundle: Bundle,
+                                                                  filter_kind: str) -> None:
+    """Chunks solved on a pool of threads, the causal filter run over them in frame order
+    afterwards: every figure equals the one-thread path's exactly, since each chunk's work is the
+    same whichever thread does it (onnxruntime's sessions run one intra-op thread each)."""
+    meshes, times, _ = _take(150, seed=5)
+    options = SolveOptions(batch_size=16, filter=filter_kind)  # type: ignore[arg-type]
+    one = BatchSolver(bundle, threads=1).solve(meshes, times, options)
+    pooled = BatchSolver(bundle, threads=3).solve(meshes, times, options)
+    for field in ("controls", "fit_rms", "fit_max", "off_manifold", "thresholds", "align_rms"):
+        np.testing.assert_array_equal(getattr(pooled, field), getattr(one, field), err_msg=field)
+    assert one.rigid is not None and pooled.rigid is not None
+    np.testing.assert_array_equal(pooled.rigid.rotation, one.rigid.rotation)
+    np.testing.assert_array_equal(pooled.rigid.translation, one.rigid.translation)
+
+
+def test_huge_finite_coordinates_pass_the_finite_check() -> None:
+    """The finite check sums each frame (NaN and Inf carry through a sum, IEEE 754); a sum that
+    overflows on finite values must not condemn the frame, and a NaN after it is still found."""
+    frames = np.full((3, 4, 3), 3e38, np.float32)  # each frame's sum overflows to inf
+    _check_finite(frames, 0)
+    frames[2, 3, 0] = np.nan
+    with pytest.raises(BatchError, match="frame 12 has NaN"):
+        _check_finite(frames, 10)
+
+
+def test_bad_thread_counts_are_refused_by_name(bundle: Bundle) -> None:
+    with pytest.raises(BatchError, match="threads must be an integer >= 1, got 0"):
+        BatchSolver(bundle, threads=0)
+    with pytest.raises(BatchError, match="session_threads must be an integer >= 1, got -1"):
+        BatchSolver(bundle, session_threads=-1)
 
 def test_the_solve_returns_the_fits_that_stabilised_each_frame(bundle: Bundle) -> None:
     """BatchSolve.rigid is the stabilising fit of every frame (so writers need not fit again),

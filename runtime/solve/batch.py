@@ -38,7 +38,7 @@ from rigcast.runtime.serve.config import StreamConfig
 from rigcast.runtime.solve.align import RigidBatch, fit_rigid_batch
 from rigcast.runtime.solve.inference import open_session
 from rigcast.runtime.solve.manifold import ManifoldConfig, off_manifold_thresholds
-from rigcast.runtime.solve.one_euro import zero_phase_smooth
+from rigcast.runtime.solve.one_euro import OneEuroFilter, zero_phase_smooth
 from rigcast.runtime.solve.solve_core import (
     SolveModel,
     build_filter,
@@ -67,7 +67,7 @@ FILTERS: tuple[str, ...] = ("none", "causal", "smooth")
 # another setting, ``config.StreamConfig.fit_error_schedule``.
 FitErrorScope = Literal["full", "subset", "off"]
 FIT_ERROR_SCOPES: tuple[str, ...] = ("subset", "full", "off")
-FIT_SLICE = 128  # frames per forward-model call in the fit error
+FIT_SLICE = 32  # frames per forward-model call in the fit error (its output stays in cache)
 _DEFAULT_STREAM = StreamConfig()
 
 
@@ -169,10 +169,15 @@ class BatchSolver:
     """
 
     def __init__(self, bundle: Bundle, *, threads: int | None = None,
-                 subset_graph: GraphCutter | None = None) -> None:
+                 session_threads: int = 1, subset_graph: GraphCutter | None = None) -> None:
+        if threads is not None and (not isinstance(threads, int) or threads < 1):
+            raise BatchError(f"threads must be an integer >= 1, got {threads!r}")
+        if not isinstance(session_threads, int) or session_threads < 1:
+            raise BatchError(f"session_threads must be an integer >= 1, got {session_threads!r}")
         self.bundle = bundle
         self.threads = threads or all_cores()
-        self.model: SolveModel = open_model(bundle, label=bundle.name, threads=self.threads)
+        self.session_threads = session_threads
+        self.model: SolveModel = open_model(bundle, label=bundle.name, threads=session_threads)
         self.inverse = self.model.inverse
         self.forward = self.model.forward
         self._cutter = subset_graph
@@ -196,7 +201,7 @@ class BatchSolver:
             if self._cutter is not None and subset.indices.shape[0] < b.vertex_count:
                 graph = self._cutter(b.forward_onnx, b.vertex_count, subset.indices)
                 if graph is not None:
-                    session = open_session(graph, threads=self.threads)
+                    session = open_session(graph, threads=self.session_threads)
             log.info("fit-error subset: %d of %d vertices, %s forward graph",
                      subset.indices.shape[0], b.vertex_count, "cut" if session else "full")
             self._subsets[sample] = (subset, session)
@@ -232,8 +237,11 @@ class BatchSolver:
         model = self.model
         passes = settings.realign
 
-        def solve_chunk(i0: int) -> RigidBatch | None:
-            chunk = verts[i0 : i0 + bs]
+        def solve_chunk(i0: int) -> None:
+            """Stabilise, solve and fit frames i0 .. i0 + bs - 1 (one job on the pool: a chunk's
+            frames stay in this thread's cache from the solve to the fit error)."""
+            i1 = min(i0 + bs, t)
+            chunk = verts[i0:i1]
             _check_finite(chunk, i0)
             inputs, rigid = stabilise_frames(model, chunk, stabilise=stabilise,
                                              scale=settings.stabilise_scale)
@@ -242,14 +250,15 @@ class BatchSolver:
                                              scale=settings.stabilise_scale, first_frame=i0)
             except FloatingPointError as exc:
                 raise BatchError(str(exc)) from None
-            raw[i0 : i0 + bs] = solved
+            raw[i0:i1] = solved
             if rigid is not None and fits is not None:
-                align_rms[i0 : i0 + bs] = rigid.rms
+                align_rms[i0:i1] = rigid.rms
                 for mine, part in zip((fits.rotation, fits.translation, fits.scale, fits.mse),
                                       (rigid.rotation, rigid.translation, rigid.scale, rigid.mse),
                                       strict=True):
-                    mine[i0 : i0 + bs] = part
-            return rigid
+                    mine[i0:i1] = part
+            if fitting:
+                fit_chunk(i0, i1, rigid)
 
         def predict(controls: np.ndarray) -> np.ndarray:
             """controls (n, C) -> the subset's (n, M, 3), or every vertex (n, V, 3)."""
@@ -259,11 +268,11 @@ class BatchSolver:
             full = model.forward.evaluate(controls)
             return full if subset is None else np.take(full, subset.indices, axis=1)
 
-        def fit_chunk(i0: int, rigid: RigidBatch | None) -> None:
+        def fit_chunk(i0: int, i1: int, rigid: RigidBatch | None) -> None:
             # In slices of FIT_SLICE frames: the forward model's output then stays in cache
             # while the fit error reads it back.
-            for j0 in range(i0, min(i0 + bs, t), FIT_SLICE):
-                j1 = min(j0 + FIT_SLICE, i0 + bs, t)
+            for j0 in range(i0, i1, FIT_SLICE):
+                j1 = min(j0 + FIT_SLICE, i1)
                 obs = verts[j0:j1] if subset is None else np.take(verts[j0:j1], subset.indices,
                                                                     axis=1)
                 part = rigid.frames(j0 - i0, j1 - i0) if rigid is not None else None
@@ -276,27 +285,30 @@ class BatchSolver:
         controls = np.empty((t, c), np.float32)
         t_ns = np.round(times * 1e9).astype(np.int64)
         numbers = np.arange(t, dtype=np.int64)
-        with ThreadPoolExecutor(max_workers=self.threads) as pool:
-            starts = range(0, t, bs)
-            solving = [pool.submit(solve_chunk, i0) for i0 in starts]
-            fitted_chunks = []
-            try:
-                for i0, job in zip(starts, solving, strict=True):
-                    rigid = job.result()
-                    if fitting:
-                        fitted_chunks.append(pool.submit(fit_chunk, i0, rigid))
-                    if opts.filter != "smooth":
-                        i1 = min(i0 + bs, t)
-                        filter_and_clamp(model, filt, raw[i0:i1], t_ns[i0:i1], numbers[i0:i1],
-                                         controls[i0:i1])
-                if opts.filter == "smooth":
-                    filter_and_clamp(model, None, zero_phase_smooth(raw, times, opts.smooth_hz),
-                                     t_ns, None, controls)
-                for fitted in fitted_chunks:
-                    fitted.result()
-            except BaseException:
-                pool.shutdown(wait=True, cancel_futures=True)  # a bad frame: skip the rest
-                raise
+        starts = range(0, t, bs)
+        causal_in_order = opts.filter != "smooth"
+        if self.threads == 1 or len(starts) == 1:
+            for i0 in starts:  # the one-thread path: the pool's work, in order, here
+                solve_chunk(i0)
+                if causal_in_order:
+                    self._filter(filt, raw, t_ns, numbers, controls, i0, min(i0 + bs, t))
+        else:
+            with ThreadPoolExecutor(max_workers=self.threads) as pool:
+                jobs = [pool.submit(solve_chunk, i0) for i0 in starts]
+                try:
+                    # The causal filter runs here, chunk after chunk in frame order, while the
+                    # pool solves the chunks after them.
+                    for i0, job in zip(starts, jobs, strict=True):
+                        job.result()
+                        if causal_in_order:
+                            self._filter(filt, raw, t_ns, numbers, controls, i0,
+                                         min(i0 + bs, t))
+                except BaseException:
+                    pool.shutdown(wait=True, cancel_futures=True)  # a bad frame: skip the rest
+                    raise
+        if opts.filter == "smooth":
+            filter_and_clamp(model, None, zero_phase_smooth(raw, times, opts.smooth_hz),
+                             t_ns, None, controls)
         thresholds, off = self._off_manifold(fit_rms, fit_max, opts)
         seconds = time.perf_counter() - start
         log.info("batch solve: %d frames in %.3f s (%.0f frames/s), fit error %s",
@@ -305,6 +317,13 @@ class BatchSolver:
                         if subset is not None else self.bundle.vertex_count)
         return BatchSolve(controls, fit_rms, fit_max, off, thresholds, align_rms, seconds,
                           t / seconds, opts.fit_error_scope, fit_vertices, fits)
+
+    def _filter(self, filt: OneEuroFilter | None, raw: np.ndarray, t_ns: np.ndarray,
+                numbers: np.ndarray, controls: np.ndarray, i0: int, i1: int) -> None:
+        """Filter (causal One Euro, or none) and clamp frames i0 .. i1 - 1 into ``controls``;
+        the filter's state carries on to the next chunk."""
+        filter_and_clamp(self.model, filt, raw[i0:i1], t_ns[i0:i1], numbers[i0:i1],
+                         controls[i0:i1])
 
     def _off_manifold(self, fit_rms: np.ndarray, fit_max: np.ndarray, opts: SolveOptions
                       ) -> tuple[np.ndarray, np.ndarray]:
@@ -339,9 +358,17 @@ class BatchSolver:
 
 def _check_finite(chunk: np.ndarray, first_frame: int) -> None:
     """BatchError naming the first frame of ``chunk`` (B, V, 3) with NaN or Inf."""
-    if np.isfinite(chunk).all():
+    # One BLAS pass, each frame's coordinates summed: NaN and Inf carry through a sum (IEEE 754),
+    # so finite sums clear the chunk; a sum that overflowed on finite values only sends the
+    # chunk to the exact test below.
+    flat = chunk.reshape(chunk.shape[0], -1)
+    with np.errstate(over="ignore", invalid="ignore"):
+        sums = flat @ np.ones(flat.shape[1], flat.dtype)
+    if np.isfinite(sums).all():
         return
-    finite = np.isfinite(chunk.reshape(chunk.shape[0], -1)).all(axis=1)
+    finite = np.isfinite(flat).all(axis=1)
+    if finite.all():
+        return
     raise BatchError(f"frame {first_frame + int(np.argmin(finite))} has NaN or Inf vertices")
 
 

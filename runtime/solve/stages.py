@@ -28,12 +28,15 @@ def gather_inputs(frames: np.ndarray, indices: np.ndarray, rigid: RigidBatch | N
     """frames (B, V, 3), indices (K,) -> (B, K, 3) float32: rigid.apply(frames[:, indices]), or
     the gathered rows as they are when ``rigid`` is None. Only the K rows are moved, never all V.
     ``out`` (B, K, 3) float32, when given, receives the result."""
-    if out is None:
-        out = np.empty((frames.shape[0], indices.shape[0], 3), np.float32)
-    np.take(frames, indices, axis=1, out=out)
-    if rigid is not None:
-        rigid.apply(out, out=out)
-    return out
+    if rigid is None:
+        if out is None:
+            out = np.empty((frames.shape[0], indices.shape[0], 3), np.float32)
+        np.take(frames, indices, axis=1, out=out)
+        return out
+    # Gathered apart, then moved into ``out``: a product into its own operand would make numpy
+    # copy the operand first.
+    moved: np.ndarray = rigid.apply(np.take(frames, indices, axis=1), out=out)
+    return moved
 
 
 def gather_inputs_naive(frames: np.ndarray, indices: np.ndarray, rigid: RigidBatch | None
@@ -112,13 +115,15 @@ def fit_error(predicted: np.ndarray, observed: np.ndarray, rigid: RigidBatch | N
     weights (M,) per-vertex weights of the RMS (``FitSubset.weights``; None: all 1).
     Returns (rms (B,), max (B,)) float64, mesh units.
     """
-    diff = (rigid.apply(observed) if rigid is not None
-            else np.array(observed, dtype=np.float32))
-    diff -= predicted
-    # d2[b, m] = sum_x diff[b, m, x]^2, as an in-place square and two strided adds
+    if rigid is not None:
+        diff = rigid.apply(observed)
+        diff -= predicted
+    else:
+        diff = np.subtract(observed, predicted, dtype=np.float32)
+    # d2[b, m] = sum_x diff[b, m, x]^2: an in-place square, then the three summed by a product
+    # with a column of ones (BLAS; two strided adds cost twice as much)
     np.square(diff, out=diff)
-    d2 = diff[:, :, 0] + diff[:, :, 1]
-    d2 += diff[:, :, 2]
+    d2 = diff @ np.ones(3, np.float32)
     if weights is None:
         mean_d2 = d2.mean(axis=1, dtype=np.float64)
     else:
