@@ -7,10 +7,14 @@ Builds (or reuses, cached under DIR/cache) the demo face bundle, makes a synthet
 real rig with head motion, noise and planted off-manifold frames (2,000 distinct frames tiled to
 ``--frames``), and solves it with ``rigcast.runtime.solve.batch`` with the default options (stabilise,
 causal One Euro, clamp, fit error in the ``--fit-error`` mode, adaptive off-manifold flags). In
-the same run it measures every fit-error mode, and two baselines on the same frames: the raw
-onnxruntime inverse alone (pre-gathered inputs, same batch size and threads) and the live
-per-frame pipeline one frame at a time. It scores the off-manifold flags against the planted
-frames (of the first 2,000). Prints the figures and writes DIR/batch.json.
+the same run it measures every fit-error mode, and three baselines on the same frames: the same
+solve on one thread (the chunks in order, no pool; its result must equal the pool's bit for bit,
+and the bench says whether it does), the raw onnxruntime inverse alone (pre-gathered inputs, same
+batch size, one thread: the sessions run one intra-op thread each) and the live per-frame pipeline
+one frame at a time. Beside wall-clock frames/s it gives the process's CPU time per frame (all
+threads), which a machine loaded by others disturbs less, and the load average. It scores the
+off-manifold flags against the planted frames (of the first 2,000). Prints the figures and writes
+DIR/batch.json.
 
 ``--synthetic`` uses a small hand-built bundle (export/bundling/synthetic_bundle.py) instead of the demo
 face, so the script runs in seconds (the bench's smoke test); its figures say nothing about the
@@ -22,6 +26,7 @@ from __future__ import annotations
 import argparse
 import json
 import logging
+import os
 import time
 from pathlib import Path
 from typing import Any
@@ -96,7 +101,9 @@ def main() -> None:
     ap.add_argument("--frames", type=int, default=20000)
     ap.add_argument("--repeats", type=int, default=5)
     ap.add_argument("--batch-size", type=int, default=1024)
-    ap.add_argument("--threads", type=int, default=None, help="default: all cores")
+    ap.add_argument("--threads", type=int, default=None,
+                    help="chunks solved at once (default: all cores); the one-thread path is "
+                         "measured beside it in the same run")
     ap.add_argument("--fit-error", choices=FIT_ERROR_SCOPES, default="full",
                     help="which vertices the fit error of the headline figure reads (default: full)")
     source = ap.add_mutually_exclusive_group()
@@ -128,14 +135,30 @@ def main() -> None:
         solver.solve(verts[: min(bs, args.frames)], times[: min(bs, args.frames)],
                      SolveOptions(batch_size=bs, fit_error_scope=mode))
 
+    one_thread = BatchSolver(bundle, threads=1, subset_graph=slice_forward_graph)
+    one_thread.solve(verts[: min(bs, args.frames)], times[: min(bs, args.frames)], headline)
+
     fps_by_mode: dict[str, list[float]] = {m: [] for m in FIT_ERROR_SCOPES}
+    cpu_us: list[float] = []  # process CPU time per frame of the headline runs, all threads
+    serial: list[float] = []
+    serial_cpu_us: list[float] = []
     for _ in range(args.repeats):
         for mode in FIT_ERROR_SCOPES:  # interleaved, so machine noise hits every mode alike
             options = SolveOptions(batch_size=bs, fit_error_scope=mode)
+            cpu = time.process_time()
             fps_by_mode[mode].append(solver.solve(verts, times, options).frames_per_second)
+            if mode == args.fit_error:
+                cpu_us.append((time.process_time() - cpu) / args.frames * 1e6)
+        cpu = time.process_time()
+        serial.append(one_thread.solve(verts, times, headline).frames_per_second)
+        serial_cpu_us.append((time.process_time() - cpu) / args.frames * 1e6)
     per_batch = [solver.solve(verts[i0 : i0 + bs], times[i0 : i0 + bs], headline)
                  .frames_per_second for i0 in range(0, args.frames - bs + 1, bs)]
     result = solver.solve(verts, times, headline)
+    alone = one_thread.solve(verts, times, headline)
+    same = all(np.array_equal(getattr(result, f), getattr(alone, f), equal_nan=True)
+               for f in ("controls", "fit_rms", "fit_max", "off_manifold", "align_rms"))
+    pool_vs_one = float(np.max(np.abs(result.controls - alone.controls)))
     full = solver.solve(verts[:distinct], times[:distinct],
                         SolveOptions(batch_size=bs, fit_error_scope="full"))
 
@@ -169,6 +192,13 @@ def main() -> None:
         "frames_per_second_p99_low": float(np.percentile(runs, 1)),
         "frames_per_second_by_fit_error": {m: float(np.median(v)) for m, v in fps_by_mode.items()},
         "frames_per_second_no_fit_error": float(np.median(fps_by_mode["off"])),
+        "cpu_us_per_frame": float(np.median(cpu_us)),
+        "baseline_one_thread_fps": float(np.median(serial)),
+        "baseline_one_thread_cpu_us_per_frame": float(np.median(serial_cpu_us)),
+        "ratio_vs_one_thread": fps / float(np.median(serial)),
+        "pool_equals_one_thread": bool(same),
+        "pool_vs_one_thread_max_control_diff": pool_vs_one,
+        "load_average_1min": os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan"),
         "per_batch_fps_median": float(np.median(per_batch)) if per_batch else float("nan"),
         "per_batch_fps_p99_low": float(np.percentile(per_batch, 1)) if per_batch else float("nan"),
         "baseline_raw_inverse_fps": float(np.median(raw)),
@@ -197,6 +227,12 @@ def main() -> None:
     print(f"  full pipeline, fit error {args.fit_error} ({result.fit_vertices} vertices{cut}): median "
           f"{fps:,.0f} frames/s (p99-low {figures['frames_per_second_p99_low']:,.0f}) over "
           f"{args.repeats} runs")
+    print(f"  CPU time, all threads:           {figures['cpu_us_per_frame']:.0f} us a frame "
+          f"(one thread: {figures['baseline_one_thread_cpu_us_per_frame']:.0f})")
+    print(f"  baseline one thread, same chunks: {figures['baseline_one_thread_fps']:,.0f} frames/s "
+          f"(pool is {figures['ratio_vs_one_thread']:.2f}x; same bits: "
+          f"{figures['pool_equals_one_thread']}, max control difference {pool_vs_one:.3g}); "
+          f"load average {figures['load_average_1min']:.2f}")
     print("  by fit-error mode:               "
           + ", ".join(f"{m} {v:,.0f}" for m, v in by_mode.items()) + " frames/s")
     print(f"  per batch of {bs}:               median {figures['per_batch_fps_median']:,.0f}, "

@@ -128,7 +128,12 @@ def add_solve(subs: Subparsers) -> None:
     p.add_argument("--fit-error", dest="fit_error_scope", action=DeprecatedAlias,
                    new="--fit-error-scope", choices=scopes, help=argparse.SUPPRESS)
     p.add_argument("--batch-size", type=int, default=1024,
-                   help="frames per onnxruntime call")
+                   help="frames per chunk: each chunk is stabilised, solved and fitted as one "
+                        "job (one onnxruntime call per stage); the chunks run on --threads")
+    p.add_argument("--threads", type=int, default=None,
+                   help="chunks solved at once, each on one core (default: every core this "
+                        "process may use; a batch of takes in parallel workers gives each 1); "
+                        "the result is the same bit for bit whatever the count")
 
 
 def add_inspect(subs: Subparsers) -> None:
@@ -216,7 +221,7 @@ def _solve_settings(args: argparse.Namespace) -> SolveSettings:
     return SolveSettings(filter=kind, fps=args.fps, stream=stream,
                          smooth_hz=args.smooth_hz,
                          fit_error_scope=args.fit_error_scope, batch_size=args.batch_size,
-                         rig=args.rig,
+                         threads=args.threads, rig=args.rig,
                          bounds=args.bounds)
 
 
