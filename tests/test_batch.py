@@ -12,6 +12,7 @@ from rigcast.runtime.bundle import Bundle, load_bundle
 from rigcast.runtime.serve.config import GroupFilter, StreamConfig
 from rigcast.runtime.solve.align import fit_rigid_naive
 from rigcast.runtime.solve.batch import (
+    STABILISE_SLICE,
     BatchError,
     BatchSolver,
     SolveOptions,
@@ -24,7 +25,7 @@ from rigcast.runtime.solve.batch import (
 )
 from rigcast.runtime.solve.inference import ForwardModel, InverseModel, open_session
 from rigcast.runtime.solve.one_euro import one_euro_step_naive
-from rigcast.runtime.solve.solve_core import filter_params
+from rigcast.runtime.solve.solve_core import filter_params, stabilise_frames
 
 from rigcast.solving.forward_subset import slice_forward_graph
 
@@ -287,6 +288,21 @@ def test_the_thread_pool_gives_the_one_thread_result_bit_for_bit(bundle: Bundle,
     np.testing.assert_array_equal(pooled.rigid.rotation, one.rigid.rotation)
     np.testing.assert_array_equal(pooled.rigid.translation, one.rigid.translation)
 
+
+def test_sliced_stabilisation_equals_the_whole_chunk(bundle: Bundle) -> None:
+    """The batch stabilises a chunk in slices of STABILISE_SLICE frames (for the cache); the
+    points and fits are those of solve_core.stabilise_frames on the whole chunk, bit for bit."""
+    meshes, _, _ = _take(STABILISE_SLICE * 2 + 5, seed=8)
+    solver = BatchSolver(bundle, threads=1)
+    points, rigid = solver._stabilise(meshes, True, False)
+    whole_points, whole = stabilise_frames(solver.model, meshes, stabilise=True, scale=False)
+    np.testing.assert_array_equal(points, whole_points)
+    assert rigid is not None and whole is not None
+    for field in ("rotation", "translation", "scale", "mse"):
+        np.testing.assert_array_equal(getattr(rigid, field), getattr(whole, field))
+    unmoved, none = solver._stabilise(meshes, False, False)
+    assert none is None
+    np.testing.assert_array_equal(unmoved, meshes[:, solver.inverse.point_indices])
 
 def test_huge_finite_coordinates_pass_the_finite_check() -> None:
     """The finite check sums each frame (NaN and Inf carry through a sum, IEEE 754); a sum that

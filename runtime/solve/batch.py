@@ -56,10 +56,10 @@ from rigcast.runtime.solve.stages import fit_error_naive as fit_error_batch_naiv
 log = logging.getLogger(__name__)
 
 # Names other modules import from here.
-__all__ = ["FILTERS", "FIT_ERROR_SCOPES", "BatchError", "BatchSolve", "BatchSolver", "FilterKind",
-           "FitErrorScope", "FitSubset", "RigidBatch", "SolveOptions", "all_cores",
-           "fit_error_batch", "fit_error_batch_naive", "fit_rigid_batch", "fit_subset",
-           "solve_take"]
+__all__ = ["FILTERS", "FIT_ERROR_SCOPES", "FIT_SLICE", "STABILISE_SLICE", "BatchError",
+           "BatchSolve", "BatchSolver", "FilterKind", "FitErrorScope", "FitSubset", "RigidBatch",
+           "SolveOptions", "all_cores", "fit_error_batch", "fit_error_batch_naive",
+           "fit_rigid_batch", "fit_subset", "solve_take"]
 
 FilterKind = Literal["none", "causal", "smooth"]
 FILTERS: tuple[str, ...] = ("none", "causal", "smooth")
