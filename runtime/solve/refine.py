@@ -57,6 +57,7 @@ the batch's controls.
 
 from __future__ import annotations
 
+import contextlib
 import logging
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, fields
@@ -268,10 +269,9 @@ class ActiveFactors:
         lam, q = np.linalg.eigh(damped)
         hit = (np.linalg.inv(h), q, lam)
         if len(self._sets) >= self.size:
-            try:  # the batch path's threads may share a refiner: drop the oldest, if still there
+            # the batch path's threads may share a refiner: drop the oldest, if still there
+            with contextlib.suppress(StopIteration, RuntimeError):
                 self._sets.pop(next(iter(self._sets)), None)
-            except (StopIteration, RuntimeError):
-                pass
         self._sets[key] = hit
         return hit
 
