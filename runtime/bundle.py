@@ -24,6 +24,8 @@ A bundle is a ZIP archive (stored, not compressed) with these members:
                         float64, the z = [u; MLP(u)] whose mesh is offset + A^T z;
                       * input-vertex (older bundles): ``controls`` (N, C) and ``mesh`` (N, K, 3)
                         to ``gradient`` (N, C) and ``residual_sq`` (N,).
+                      Moment-form bundles may add ``refine_rest_*`` arrays (``RestOfMesh``):
+                      the rest of the mesh, for the realignment's fit.
 
 The manifest's ``stabilise`` section records whether the rig has a rigid region (measured by the
 build), which sets whether ``serve`` and ``solve`` stabilise by default.
@@ -90,6 +92,19 @@ class RefineProjection:
 
     indices: np.ndarray
     project_onnx: bytes = field(repr=False)
+    rest: RestOfMesh | None = None
+
+
+@dataclass(frozen=True)
+class RestOfMesh:
+    """The vertices the realignment also fits that the refinement does not read (neither in
+    ``RefineProjection.indices`` nor stable): indices (W,) int64; basis (R, 3W) and offset (3W,)
+    float32, so the forward model there is offset + basis^T z for the refinement graph's
+    ``basis_weights`` z."""
+
+    indices: np.ndarray
+    basis: np.ndarray = field(repr=False)
+    offset: np.ndarray = field(repr=False)
 
 
 @dataclass(frozen=True)
@@ -178,6 +193,11 @@ def write_bundle(
         if refine_onnx is None:
             raise BundleError("refine_projection needs refine_onnx")
         stored["refine_indices"] = np.ascontiguousarray(refine_projection.indices, np.int64)
+        rest = refine_projection.rest
+        if rest is not None:
+            stored["refine_rest_indices"] = np.ascontiguousarray(rest.indices, np.int64)
+            stored["refine_rest_basis"] = np.ascontiguousarray(rest.basis, np.float32)
+            stored["refine_rest_offset"] = np.ascontiguousarray(rest.offset, np.float32)
     buf = io.BytesIO()
     np.savez(buf, **stored)
     arrays = buf.getvalue()
@@ -283,6 +303,7 @@ def parse_bundle(blobs: Mapping[str, bytes], path: Path | None = None) -> Bundle
             arrays = {k: npz[k] for k in ("neutral", "faces", "stable_indices", "input_indices")}
             hessian = npz["refine_hessian"] if "refine_hessian" in npz.files else None
             refine_idx = npz["refine_indices"] if "refine_indices" in npz.files else None
+            rest_parts = [npz[k] if k in npz.files else None for k in _REST_KEYS]
     except (KeyError, ValueError, OSError, EOFError, zipfile.BadZipFile) as exc:
         raise BundleError(f"{where}: arrays.npz is unreadable ({exc})") from None
     for name, kinds in (("neutral", "fiu"), ("faces", "iu"), ("stable_indices", "iu"),
@@ -316,6 +337,11 @@ def parse_bundle(blobs: Mapping[str, bytes], path: Path | None = None) -> Bundle
         hessian.setflags(write=False)
     projection = _refine_projection(refine_idx, blobs.get("refine_project.onnx"), hessian,
                                     neutral.shape[0], where)
+    if any(a is not None for a in rest_parts):
+        if projection is None:
+            raise BundleError(f"{where}: refine_rest_* arrays need the projected refinement")
+        projection = RefineProjection(projection.indices, projection.project_onnx,
+                                      _rest_of_mesh(rest_parts, neutral.shape[0], where))
     for a in (neutral, faces, stable, inputs):
         a.setflags(write=False)
     return Bundle(
@@ -348,6 +374,32 @@ def _refine_projection(idx: np.ndarray | None, graph: bytes | None, hessian: np.
         raise BundleError(f"{where}: refine_indices out of range 0..{vertex_count - 1}")
     out = RefineProjection(idx.astype(np.int64, copy=False), graph)
     out.indices.setflags(write=False)
+    return out
+
+
+_REST_KEYS = ("refine_rest_indices", "refine_rest_basis", "refine_rest_offset")
+
+
+def _rest_of_mesh(parts: list[np.ndarray | None], vertex_count: int, where: str) -> RestOfMesh:
+    """The realignment's rest-of-mesh arrays, checked."""
+    idx, basis, offset = parts
+    if idx is None or basis is None or offset is None:
+        raise BundleError(f"{where}: {', '.join(_REST_KEYS)} come together")
+    if idx.ndim != 1 or idx.dtype.kind not in "iu" or not idx.size:
+        raise BundleError(f"{where}: refine_rest_indices must be a non-empty list of integers")
+    if int(idx.min()) < 0 or int(idx.max()) >= vertex_count:
+        raise BundleError(f"{where}: refine_rest_indices out of range 0..{vertex_count - 1}")
+    w = 3 * idx.shape[0]
+    if (basis.ndim != 2 or basis.shape[1] != w or basis.dtype.kind != "f"
+            or offset.shape != (w,) or offset.dtype.kind != "f"
+            or not (np.isfinite(basis).all() and np.isfinite(offset).all())):
+        raise BundleError(f"{where}: refine_rest_basis must be finite (R, {w}) and "
+                          f"refine_rest_offset ({w},) floats, got {basis.shape} and "
+                          f"{offset.shape}")
+    out = RestOfMesh(idx.astype(np.int64, copy=False), basis.astype(np.float32, copy=False),
+                     offset.astype(np.float32, copy=False))
+    for a in (out.indices, out.basis, out.offset):
+        a.setflags(write=False)
     return out
 
 

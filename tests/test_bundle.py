@@ -166,3 +166,50 @@ def test_a_forward_graph_of_another_rig_is_refused_at_open(tmp_path: Path) -> No
                         input_indices=rig.input_indices, inverse_onnx=inverse_graph(rig),
                         forward_onnx=forward_graph(rig))
     assert load_stream_model(good, threads=1, threshold=None, factor=3.0).vertex_count == len(moved)
+
+
+def _rewrite_arrays(src: Path, dst: Path, change: Callable[[dict[str, np.ndarray]], None]) -> Path:
+    """Copy a bundle with its arrays.npz edited and its checksum made right again."""
+    with zipfile.ZipFile(src) as zf:
+        blobs = {name: zf.read(name) for name in zf.namelist()}
+    with np.load(io.BytesIO(blobs["arrays.npz"])) as npz:
+        arrays = {k: npz[k] for k in npz.files}
+    change(arrays)
+    buf = io.BytesIO()
+    np.savez(buf, **arrays)
+    blobs["arrays.npz"] = buf.getvalue()
+    manifest = json.loads(blobs["manifest.json"])
+    manifest["members"]["arrays.npz"] = hashlib.sha256(blobs["arrays.npz"]).hexdigest()
+    blobs["manifest.json"] = json.dumps(manifest).encode()
+    with zipfile.ZipFile(dst, "w") as zf:
+        for name, data in blobs.items():
+            zf.writestr(name, data)
+    return dst
+
+
+REST_CORRUPTIONS: list[tuple[str, Callable[[dict[str, np.ndarray]], None], str]] = [
+    ("rest without offset", lambda a: a.pop("refine_rest_offset"), "come together"),
+    ("rest index range", lambda a: a.update(refine_rest_indices=a["refine_rest_indices"] + 10**6),
+     "refine_rest_indices out of range"),
+    ("rest basis shape", lambda a: a.update(refine_rest_basis=a["refine_rest_basis"][:, :-1]),
+     "refine_rest_basis must be finite"),
+    ("rest basis NaN", lambda a: a.update(refine_rest_basis=a["refine_rest_basis"] * np.nan),
+     "refine_rest_basis must be finite"),
+]
+
+
+def test_the_rest_of_the_mesh_round_trips_and_bad_rest_arrays_are_refused(tmp_path: Path) -> None:
+    from rigcast.export.bundling.synthetic_bundle import build_synthetic_bundle
+
+    path = build_synthetic_bundle(tmp_path / "m.rcb", refine="projected", seed=3)
+    b = load_bundle(path)
+    assert b.refine_projection is not None
+    rest = b.refine_projection.rest
+    assert rest is not None and rest.basis.shape == (8, 3 * rest.indices.size)
+    refined = set(b.refine_projection.indices.tolist()) | set(b.stable_indices.tolist())
+    assert not refined & set(rest.indices.tolist())  # the rest is what neither reads
+    assert not rest.basis.flags.writeable
+    for label, change, words in REST_CORRUPTIONS:
+        bad = _rewrite_arrays(path, tmp_path / f"{label}.rcb", change)
+        with pytest.raises(BundleError, match=re.escape(words)):
+            load_bundle(bad)

@@ -82,7 +82,8 @@ def finish(
     t = time.perf_counter()
     inv_bytes, inv_parity = export_inverse(inv, check_x[:16][:, inputs])
     fwd_bytes, fwd_parity = export_forward(fwd)
-    ref_bytes, hessian, projection, ref_parity = projected_refine_parts(fwd, poses, check_x[:16])
+    ref_bytes, hessian, projection, ref_parity = projected_refine_parts(fwd, poses, check_x[:16],
+                                                                    stable=stable)
     timings["export"] = time.perf_counter() - t
     if progress is not None:
         progress("export", 1, 1)

@@ -39,6 +39,7 @@ from rigcast.runtime.bundle import (
     REFINE_RESIDUAL,
     REFINE_WEIGHTS,
     RefineProjection,
+    RestOfMesh,
     write_bundle,
 )
 from rigcast.runtime.schema import Control, ControlSchema
@@ -252,7 +253,7 @@ def projected_refine_graph(rig: SyntheticRig, cap: int = 4096, moments: bool = T
     vertices ``export.training.refine.refine_vertices`` picks. ``moments``: the moment form
     (export/bundling/moments_graph.py, and z as ``basis_weights``), else the earlier float64
     projection. Returns (bytes, hessian, projection)."""
-    from rigcast.export.training.refine import refine_vertices
+    from rigcast.export.training.refine import refine_vertices, rest_vertices
 
     n_controls = rig.deltas.shape[0]
     lo, hi = rig.schema.lower, rig.schema.upper
@@ -298,7 +299,14 @@ def projected_refine_graph(rig: SyntheticRig, cap: int = 4096, moments: bool = T
     at_lo = rig.neutral[idx] + np.einsum("c,cvk->vk", lo.astype(np.float64), rig.deltas[:, idx])
     offset = at_lo.reshape(-1).astype(np.float32)  # the mesh at u = 0
     project = moments_graph(a, offset) if moments else project_graph(a, offset)
-    return _finish(graph), gram, RefineProjection(idx, project)
+    rest = None
+    others = rest_vertices(rig.neutral.shape[0], idx, rig.stable_indices)
+    if moments and others.size:
+        rest_lo = rig.neutral[others] + np.einsum("c,cvk->vk", lo.astype(np.float64),
+                                                  rig.deltas[:, others])
+        rest = RestOfMesh(others, scaled[:, others].reshape(n_controls, -1).astype(np.float32),
+                          rest_lo.reshape(-1).astype(np.float32))
+    return _finish(graph), gram, RefineProjection(idx, project, rest)
 
 
 def project_graph(basis: np.ndarray, offset: np.ndarray) -> bytes:

@@ -29,7 +29,7 @@ from collections.abc import Sequence
 import numpy as np
 import torch
 from rigcast.export.training.models import ForwardApproximator, VertexSubset, normalise_controls
-from rigcast.runtime.bundle import RefineProjection
+from rigcast.runtime.bundle import RefineProjection, RestOfMesh
 from rigcast.runtime.solve.refine import project_naive
 from torch import nn
 
@@ -287,15 +287,44 @@ def projection_arrays(forward: ForwardApproximator, indices: np.ndarray
     return a.numpy().astype(np.float32), offset.numpy().astype(np.float32), a64 @ a64.T
 
 
+def rest_vertices(vertex_count: int, refined: np.ndarray, stable: np.ndarray,
+                  cap: int = 2048) -> np.ndarray:
+    """The vertices the realignment fits besides the refinement's and the stable ones: every
+    other vertex, or ``cap`` of them evenly spread over the index range. -> (W,) sorted int64.
+
+    The realignment's rigid fit is only as steady as the vertices it reads: on the demo face
+    the refinement and stable vertices leave out 727 of 3,714 that move a little, and fitting
+    them too took the noisy take's error from 0.84x to 0.76x that of per-frame non-linear
+    least squares. ``cap`` bounds the live cost on dense meshes, where a few thousand vertices
+    already steady the fit."""
+    keep = np.ones(vertex_count, bool)
+    keep[np.asarray(refined, np.int64)] = False
+    keep[np.asarray(stable, np.int64)] = False
+    rest = np.flatnonzero(keep)
+    if rest.size > cap:
+        rest = rest[np.linspace(0, rest.size - 1, cap).round().astype(np.int64)]
+    return rest.astype(np.int64)
+
+
+def rest_of_mesh(forward: ForwardApproximator, refined: np.ndarray,
+                 stable: np.ndarray) -> RestOfMesh | None:
+    """The forward model's bases on :func:`rest_vertices` (None when there are none)."""
+    rest = rest_vertices(forward.vertex_count, refined, stable)
+    if rest.size == 0:
+        return None
+    basis, offset, _ = projection_arrays(forward, rest)
+    return RestOfMesh(rest, basis, offset)
+
+
 def projected_refine_parts(forward: ForwardApproximator, poses: np.ndarray,
                            example_points: np.ndarray | None = None, cap: int = 4096,
-                           share: float = 0.995
+                           share: float = 0.995, stable: np.ndarray | None = None
                            ) -> tuple[bytes, np.ndarray, RefineProjection, float]:
     """What a bundle needs for the projected refinement: (refine.onnx bytes, hessian (C, C),
-    the projection (vertex indices and graph), worst parity of the two graphs). poses (M, C):
-    controls the curvature and the vertices' information are averaged over; example_points
-    (E, V, 3): meshes for the exports' parity checks (poses through the forward model when
-    None)."""
+    the projection (vertex indices, graph and, given the ``stable`` indices, the rest of the
+    mesh for the realignment), worst parity of the two graphs). poses (M, C): controls the
+    curvature and the vertices' information are averaged over; example_points (E, V, 3):
+    meshes for the exports' parity checks (poses through the forward model when None)."""
     from rigcast.export.bundling.moments_graph import moments_graph
     from rigcast.export.bundling.onnx_export import export_refine_core, export_refine_project
 
@@ -314,4 +343,5 @@ def projected_refine_parts(forward: ForwardApproximator, poses: np.ndarray,
                                       forward.upper.numpy(), proj)
     log.info("projected refinement on %d of %d vertices (R = %d)", indices.size,
              forward.vertex_count, basis.shape[0])
-    return data, hessian, RefineProjection(indices, project), max(parity, parity_p)
+    rest = None if stable is None else rest_of_mesh(forward, indices, stable)
+    return data, hessian, RefineProjection(indices, project, rest), max(parity, parity_p)

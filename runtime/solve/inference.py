@@ -33,6 +33,7 @@ from rigcast.runtime.bundle import (
     REFINE_WEIGHTS,
     Bundle,
     BundleError,
+    RestOfMesh,
 )
 from rigcast.runtime.solve.moments import (
     BasisConstants,
@@ -147,12 +148,24 @@ class MomentForm:
     basis weights z (runtime/solve/moments.py)."""
 
     def __init__(self, project: ort.InferenceSession, refine: ort.InferenceSession,
-                 count: int) -> None:
+                 count: int, rest: RestOfMesh | None = None) -> None:
         self.project, self.refine = project, refine
         table, centre = project.run([PROJECT_CONSTANTS, PROJECT_CENTRE],
                                     {PROJECT_POINTS: np.zeros((1, count, 3), np.float32)})
         self.constants = BasisConstants.from_outputs(table, centre)
         self._outs = [PROJECT_MOMENTS, PROJECT_NORM]
+        r = self.constants.colsum.shape[0]
+        if rest is not None and rest.basis.shape[0] != r:
+            raise BundleError(f"refine_rest_basis has {rest.basis.shape[0]} rows, the moment "
+                              f"graph's basis {r}")
+        self.rest = rest
+
+    def rest_targets(self, z: np.ndarray) -> np.ndarray:
+        """z (N, R) basis weights -> the forward model on the rest of the mesh (N, W, 3) float32
+        (offset + basis^T z; ``rest`` must be set)."""
+        assert self.rest is not None
+        flat = np.matmul(z.astype(np.float32), self.rest.basis) + self.rest.offset
+        return flat.reshape(z.shape[0], -1, 3)
 
     def moments(self, points: np.ndarray) -> FrameMoments:
         """points (N, S, 3) float32 -> their FrameMoments."""
@@ -284,7 +297,7 @@ def _refiner(bundle: Bundle, threads: int, settings: RefineSettings | None
     if moment and REFINE_WEIGHTS not in got_out:
         raise BundleError(f"refine graph of a moment-form bundle lacks output {REFINE_WEIGHTS!r}")
     count = int(projected.indices.shape[0])
-    form = MomentForm(project, session, count) if moment else None
+    form = MomentForm(project, session, count, projected.rest) if moment else None
     outs = [REFINE_PROJECTION, PROJECT_NORM]
 
     def prepare(points: np.ndarray) -> np.ndarray:

@@ -125,9 +125,10 @@ def realign_fit(fm: FrameMoments, const: BasisConstants, weights: np.ndarray, *,
                 scale: bool = False) -> RigidBatch:
     """Umeyama (1991) per frame: the similarity, in centred coordinates, that maps the frames'
     S vertices x_i (= y_i + offset_i) onto the forward model's mesh offset_i + sum_r z_r a_ri,
-    z = weights (N, R), together with extra pairs (the stable vertices: extra_source (N, E, 3)
-    in the frames, extra_target (E, 3) where they belong). Returns the fit of
-    (x - centre) -> (target - centre); its ``mse`` is not computed (zeros)."""
+    z = weights (N, R), together with extra pairs (the stable vertices and the rest of the mesh:
+    extra_source (N, E, 3) in the frames, extra_target (E, 3) or per frame (N, E, 3) where they
+    belong). Returns the fit of (x - centre) -> (target - centre); its ``mse`` is not computed
+    (zeros)."""
     z = np.asarray(weights, np.float64)
     c = const
     sum_s = fm.s + c.oc_sum  # (N, 3): sum of x - centre
@@ -141,11 +142,11 @@ def realign_fit(fm: FrameMoments, const: BasisConstants, weights: np.ndarray, *,
         # vertices of a batch, float64 copies and einsum cost more than the rest of the fit.
         centre = c.centre.astype(np.float32)
         es = np.asarray(extra_source, np.float32) - centre  # (N, E, 3), centred coordinates
-        et = np.asarray(extra_target, np.float32) - centre  # (E, 3)
+        et = np.asarray(extra_target, np.float32) - centre  # (E, 3) or (N, E, 3)
         ones = np.ones((1, es.shape[1]), np.float32)
         sum_s = sum_s + np.matmul(ones, es)[:, 0].astype(np.float64)
-        sum_t = sum_t + et.sum(axis=0, dtype=np.float64)
-        cross = cross + np.matmul(et.T, es).astype(np.float64)  # sum_e t_e x_e^T
+        sum_t = sum_t + et.sum(axis=-2, dtype=np.float64)
+        cross = cross + np.matmul(np.swapaxes(et, -1, -2), es).astype(np.float64)  # t_e x_e^T
         sq_s = sq_s + np.einsum("nek,nek->n", es, es, dtype=np.float64)
         n = n + es.shape[1]
     mu_s, mu_t = sum_s / n[:, None], sum_t / n[:, None]

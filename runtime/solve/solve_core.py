@@ -182,13 +182,21 @@ def _realign_moments(model: SolveModel, frames: np.ndarray, points: np.ndarray, 
     inverse, bundle = model.inverse, model.bundle
     form = inverse.moment_form
     assert form is not None and first.moments is not None
-    stable = rigid.apply(np.take(frames, bundle.stable_indices, axis=1))
     stable_home = bundle.neutral[bundle.stable_indices]
+    extra = bundle.stable_indices
+    if form.rest is not None:  # the rest of the mesh, against the forward model's mesh there
+        extra = np.concatenate([extra, form.rest.indices])
+    source = rigid.apply(np.take(frames, extra, axis=1))
     net = points[:, : inverse.k]
     solved = first.controls
     for _ in range(passes):
-        fit = realign_fit(first.moments, form.constants, form.weights(solved),
-                          extra_source=stable, extra_target=stable_home, scale=scale)
+        z = form.weights(solved)
+        target: np.ndarray = stable_home
+        if form.rest is not None:
+            target = np.concatenate([np.broadcast_to(stable_home, (z.shape[0], *stable_home.shape)),
+                                     form.rest_targets(z)], axis=1)
+        fit = realign_fit(first.moments, form.constants, z, extra_source=source,
+                          extra_target=target, scale=scale)
         linear, shift = uncentre(fit, form.constants.centre)
         moved = (net @ linear.transpose(0, 2, 1) + shift[:, None]).astype(np.float32)
         solved = inverse.solve_moved(moved, first.moments,
