@@ -100,15 +100,12 @@ class RefineSettings:
     noisy-take error and jitter) and checked on rigs not used to choose them. Three steps, not
     five: five recover one more control on each of the two rigs but cost 0.7 ms more per live
     frame at 20,000 vertices (bench/latency.py, infer stage 1.23 against 1.97 ms). Damping
-    0.001 (was 0.1): where two controls move the mesh alike (neighbouring joints of a chain, a lip
-    control beside a jaw control) the fixed curvature's valley is narrow, and damping its
-    diagonal turned each step across the valley instead of along it, so three steps covered a
-    fraction of the way: on the lantern arm 10 of 12 controls alone at their bound came back 5-15
-    % of the range short, none at 0.001 (within 0.8 %); on the demo faces lip_press came back
-    5.6 % short, within 1 % at 0.001; noisy-take errors on the faces and two zoo rigs moved by
-    under 1.5 % either way (at 0). What is left of the damping keeps each system's smallest
-    eigenvalue at least 0.001 x the smallest curvature on its diagonal; the backtracking and the
-    prior's ridge keep the steps safe."""
+    0.001 (was 0.1): where two controls move the mesh alike (neighbouring joints, a lip control
+    beside the jaw) the curvature's valley is narrow, and damping its diagonal turned each step
+    across the valley, not along it: on the lantern arm 10 of 12 controls alone at their bound
+    came back 5-15 % of the range short, none at 0.001; on the demo faces lip_press 5.6 %, under
+    1 % at 0.001; noisy-take errors on the faces and two zoo rigs moved under 1.5 %. What is left
+    keeps each system's smallest eigenvalue >= 0.001 x its smallest diagonal curvature."""
 
     steps: int = 3
     kappa: float = 4.0
