@@ -5,8 +5,7 @@ on a batch of one frame, here on chunks of ``batch_size`` frames:
 
 1. stabilise: the batched Umeyama/Kabsch fit of every frame's stable vertices onto the
    neutral's (Umeyama, IEEE TPAMI 13(4), 1991), applied to the input vertices only;
-2. batched onnxruntime inference of the inverse graph (and its refinement), sessions using all
-   cores;
+2. batched onnxruntime inference of the inverse graph (and its refinement);
 3. filter: the live server's causal One Euro filter, built from the same per-stream settings
    (``SolveOptions.stream``, a ``config.StreamConfig``: ``rigcast solve --config serve.toml``
    reads it from the server's file), or, since offline need not be causal, "smooth" (zero-phase
@@ -17,6 +16,12 @@ on a batch of one frame, here on chunks of ``batch_size`` frames:
    fixed random sample, with a stratified RMS estimate), on all of them, or off;
 6. off-manifold flags: the adaptive threshold of ``runtime.solve.manifold`` on each frame's max vertex
    error (running median + k MAD, floored by the bundle's training fit error), or a fixed one.
+
+Threads: stages 1, 2 and 5 of a chunk are one job on a pool of ``threads`` workers (numpy's large
+operations and onnxruntime release the GIL), each session running one intra-op thread, so the
+chunks share the cores without onnxruntime's threads competing with the pool's; the filter runs on
+the calling thread over the chunks in frame order as they finish. A chunk's work is the same on
+any thread, so the result equals the one-thread path's bit for bit (tests/test_batch.py).
 """
 
 from __future__ import annotations
@@ -167,6 +172,8 @@ class BatchSolver:
     (``rigcast.solving.forward_subset.slice_forward_graph``: forward bytes, V, indices (M,) -> ONNX bytes
     or None); the subset fit error then costs a fraction of the full forward model. Without it,
     or when it returns None, the full forward graph runs and the subset is gathered from it.
+    ``threads``: chunks solved at once (None: every core this process may use);
+    ``session_threads``: onnxruntime's intra-op threads per session (1: the pool fills the cores).
     """
 
     def __init__(self, bundle: Bundle, *, threads: int | None = None,
@@ -213,8 +220,9 @@ class BatchSolver:
         """vertices (T, V, 3), times_s (T,) increasing seconds -> BatchSolve.
 
         Chunks of ``batch_size`` frames are stabilised, solved and fitted on a thread pool (numpy
-        and onnxruntime release the GIL); the causal filter runs over each chunk in order on this
-        thread meanwhile. The fit error uses the solved controls before the filter, as the live
+        and onnxruntime release the GIL), or in order on this thread when ``threads`` is 1 or
+        there is one chunk; the causal filter runs over each chunk in frame order on this thread
+        as they finish. The fit error uses the solved controls before the filter, as the live
         server does: the filter's lag on fast motion is not a property of the mesh.
         """
         opts = options or SolveOptions()
