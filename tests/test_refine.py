@@ -11,14 +11,13 @@ from dataclasses import asdict
 
 import numpy as np
 import pytest
-from rigcast.runtime.solve.refine import (
+from rigcast.runtime.solve.active import (
     ActiveFactors,
-    Refiner,
-    RefineSettings,
     active_set,
     solve_active,
     solve_active_naive,
 )
+from rigcast.runtime.solve.refine import Refiner, RefineSettings
 from scipy.optimize import lsq_linear
 
 
@@ -52,6 +51,13 @@ def test_solve_active_matches_its_naive_twin() -> None:
             np.testing.assert_allclose(solve_active(h, g[i : i + 1], free[i : i + 1], 0.1, one),
                                        want[i : i + 1], rtol=1e-10, atol=1e-12)
     assert not np.allclose(solve_active(h, g, free, 0.1, ridge), solve_active(h, g, free, 0.1))
+    per_control = ridge[:, None] * (rng.random((40, 9)) < 0.7)  # the pull on some controls only
+    np.testing.assert_allclose(solve_active(h, g, free, 0.1, per_control),
+                               solve_active_naive(h, g, free, 0.1, per_control),
+                               rtol=1e-10, atol=1e-12)
+    np.testing.assert_allclose(solve_active(h, g[:1], free[:1], 0.1, per_control[:1]),
+                               solve_active_naive(h, g[:1], free[:1], 0.1, per_control[:1]),
+                               rtol=1e-10, atol=1e-12)
 
 
 def test_active_factors_match_the_dense_solves() -> None:
@@ -97,6 +103,35 @@ def test_one_frame_takes_the_steps_a_batch_takes(prior_sd: float) -> None:
                             for i in range(24)])
     np.testing.assert_allclose(alone, batch, rtol=0, atol=1e-6)
     assert np.abs(batch - guess).max() > 0.05  # the steps moved the controls
+
+
+@pytest.mark.parametrize("batch", [1, 16])
+def test_a_control_the_network_left_at_rest_comes_back_on_a_noisy_mesh(batch: int) -> None:
+    """The prior pulls only the controls the network moved: one it left at rest while the mesh
+    shows it (a missed expression) has no pull back to rest once woken, so it returns even under
+    noise, where the pull of the Gaussian prior held it near 0. Controls the network moved are
+    still tempered."""
+    c = 12
+    a, _ = _linear_problem(13, c, coords=900)
+    a[:, 5] *= np.sqrt(0.5) / np.linalg.norm(a[:, 5])  # a small expression: |a_5|^2 = 0.5
+
+    def gradient(controls: np.ndarray, mesh: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        r = mesh.reshape(mesh.shape[0], -1) - controls.astype(np.float64) @ a.T
+        return (r @ a).astype(np.float32), (r * r).sum(axis=1).astype(np.float32)
+
+    rng = np.random.default_rng(14)
+    truth = np.zeros((batch, c))
+    truth[:, [2, 5, 7]] = rng.uniform(0.5, 0.9, (batch, 3))
+    clean = truth @ a.T
+    noisy = (clean + 0.01 * rng.standard_normal(clean.shape)).reshape(batch, -1, 3)
+    guess = truth.copy()
+    guess[:, 5] = 0.0  # missed
+    guess[:, [2, 7]] += 0.03  # a little off
+    refiner = Refiner(gradient, a.T @ a, np.zeros(c), np.ones(c), np.zeros(c), a.shape[0])
+    got = refiner.refine(guess.astype(np.float32), noisy.astype(np.float32))
+    assert np.abs(got[:, 5] - truth[:, 5]).max() < 0.05
+    others = np.setdiff1d(np.arange(c), [2, 5, 7])
+    assert np.abs(got[:, others]).max() < 0.01  # at-rest controls stay at rest
 
 
 def test_settings_changed_after_construction_reach_the_one_frame_path() -> None:

@@ -44,7 +44,10 @@ Each step then:
    on noisy inputs) tempers it. (Tikhonov regularisation weighted as in a Bayesian linear model,
    Bishop, "Pattern Recognition and Machine Learning", 2006, 3.3, with the noise variance
    estimated from the residual's degrees of freedom.) An older, fixed pull ``prior`` (relative
-   to the curvature's diagonal) stays for bundles built with it.
+   to the curvature's diagonal) stays for bundles built with it. The prior holds only the
+   controls the network moved (``active.pull_mask``): where it left a control at rest the mesh
+   had to wake it, and there the network's error is a whole missed expression, far outside a
+   Gaussian of 2 % of the range, so a woken control answers to the fit alone.
 3. **Safeguard.** A frame whose cost (fit plus pull) grew tries half the step, then a quarter;
    if none lowers the cost it keeps its controls and stops.
 
@@ -57,7 +60,6 @@ the batch's controls.
 
 from __future__ import annotations
 
-import contextlib
 import logging
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, fields
@@ -65,6 +67,15 @@ from typing import Any
 
 import numpy as np
 from rigcast.runtime.errors import RigcastError
+from rigcast.runtime.solve.active import (
+    ActiveFactors,
+    a_mask,
+    active_set,
+    free_controls,
+    pull_mask,
+    solve_active,
+    wake_factor,
+)
 
 log = logging.getLogger(__name__)
 
@@ -105,11 +116,16 @@ class RefineSettings:
     across the valley, not along it: on the lantern arm 10 of 12 controls alone at their bound
     came back 5-15 % of the range short, none at 0.001; on the demo faces lip_press 5.6 %, under
     1 % at 0.001; noisy-take errors on the faces and two zoo rigs moved under 1.5 %. What is left
-    keeps each system's smallest eigenvalue >= 0.001 x its smallest diagonal curvature."""
+    keeps each system's smallest eigenvalue >= 0.001 x its smallest diagonal curvature.
+    wake_share 0.1 (was 0.5) with no pull on woken controls: on noisy takes a missed expression
+    explains a small share of |r|^2, most of which is noise, so several missed at once stayed
+    lost (face and face-linear takes -8 % and -13 % error, off-manifold false flags 5.5 -> 2.8 %
+    and 5.0 -> 2.4 %; zoo-269008 unchanged, zoo-899926 +5 %, lantern arm +3 %; 0.03 wakes more
+    on the faces but cost the zoo rigs 20-30 %)."""
 
     steps: int = 3
     kappa: float = 4.0
-    wake_share: float = 0.5
+    wake_share: float = 0.1
     prior: float = 0.0
     damping: float = 0.001
     snap: float = 0.002
@@ -156,138 +172,6 @@ def project_naive(points: np.ndarray, basis: np.ndarray, offset: np.ndarray) -> 
         y = frame.reshape(-1) - np.asarray(offset, np.float64)
         out.append([*(np.asarray(basis, np.float64) @ y), float(y @ y)])
     return np.asarray(out, np.float64).reshape(len(out), basis.shape[0] + 1)
-
-
-def active_set(u: np.ndarray, d: np.ndarray, g: np.ndarray, rss: np.ndarray,
-               hessian_diag: np.ndarray, kappa: float, coords: int,
-               wake_share: float = 0.0) -> np.ndarray:
-    """Which controls take part in the next step. u (N, C) normalised controls in [0, 1];
-    d (C,) normalised defaults; g (N, C) gradient J^T r; rss (N,) |r|^2; hessian_diag (C,);
-    coords: 3K, the residual's length; wake_share: least share of |r|^2 that g_c^2 / H_cc (what
-    control c alone removes) must reach to wake it. -> (N, C) bool."""
-    # max(kappa sqrt(H_cc) sigma, sqrt(wake_share H_cc |r|^2)), sigma = |r| / sqrt(coords)
-    tau = np.sqrt(hessian_diag)[None] * (wake_factor(kappa, coords, wake_share)
-                                         * np.sqrt(np.maximum(rss, 0.0)))[:, None]
-    return free_controls(u, d, g, tau)
-
-
-def free_controls(u: np.ndarray, d: np.ndarray, g: np.ndarray, tau: np.ndarray) -> np.ndarray:
-    """u, g, tau (..., C), d (C,) -> (..., C) bool: a control is free when it is away from its
-    default or its gradient beats the threshold tau, and its gradient does not push it past the
-    bound it sits on."""
-    moved = (np.abs(u - d) > 1e-6) | (np.abs(g) > tau)
-    out: np.ndarray = moved & ~np.where(g > 0.0, u >= 1.0, (u <= 0.0) & (g < 0.0))
-    return out
-
-
-def wake_factor(kappa: float, coords: int, wake_share: float) -> float:
-    """The correlation test's threshold per sqrt(H_cc) |r|: an at-rest control wakes when
-    |g_c| > wake_factor sqrt(H_cc) |r| (see ``active_set``)."""
-    return max(kappa / np.sqrt(coords), np.sqrt(wake_share))
-
-
-def solve_active(hessian: np.ndarray, g: np.ndarray, free: np.ndarray, damping: float,
-                 ridge: np.ndarray | None = None) -> np.ndarray:
-    """The damped Gauss-Newton step on each frame's active controls.
-
-    hessian (C, C); g (N, C); free (N, C) bool; each active diagonal entry becomes
-    H_cc (1 + damping) + ridge_n, ridge (N,) (zeros if None) -> delta (N, C), zero outside the
-    active set.
-    Each frame's system is gathered to its own active controls, padded to the batch's largest
-    active count with identity rows, and solved in one batched call.
-    """
-    n, c = g.shape
-    delta = np.zeros((n, c), np.float64)
-    ridge = np.zeros(n) if ridge is None else np.asarray(ridge, np.float64)
-    if n == 1:  # the live path: one frame, plain indexing is several times cheaper
-        a = np.flatnonzero(free[0])
-        if a.size:
-            h = hessian[a[:, None], a]
-            h[np.diag_indices(a.size)] = h[np.diag_indices(a.size)] * (1.0 + damping) + ridge[0]
-            delta[0, a] = np.linalg.solve(h, g[0, a])
-        return delta
-    counts = free.sum(axis=1)
-    width = int(counts.max()) if n else 0
-    if width == 0:
-        return delta
-    idx = np.argsort(~free, axis=1, kind="stable")[:, :width]  # active controls first
-    valid = np.arange(width)[None] < counts[:, None]  # (N, W)
-    pair = valid[:, :, None] & valid[:, None, :]
-    sub = np.where(pair, hessian[idx[:, :, None], idx[:, None, :]], 0.0)  # (N, W, W)
-    diag = np.einsum("nii->ni", sub)  # (N, W) view of each frame's diagonal
-    eye = np.where(valid, 1.0 + damping, 1.0)
-    sub[:, np.arange(width), np.arange(width)] = np.where(valid, diag * eye + ridge[:, None], 1.0)
-    rhs = np.where(valid, np.take_along_axis(g, idx, axis=1), 0.0)
-    step = np.linalg.solve(sub, rhs[..., None])[..., 0]  # (N, W)
-    np.put_along_axis(delta, idx, np.where(valid, step, 0.0), axis=1)
-    return delta
-
-
-def solve_active_naive(hessian: np.ndarray, g: np.ndarray, free: np.ndarray, damping: float,
-                       ridge: np.ndarray | None = None) -> np.ndarray:
-    """Per-frame twin of ``solve_active``: index lists and one small solve per frame."""
-    delta = np.zeros(g.shape, np.float64)
-    for i in range(g.shape[0]):
-        a = [j for j in range(g.shape[1]) if free[i, j]]
-        if not a:
-            continue
-        h = np.array([[hessian[p, q] for q in a] for p in a], np.float64)
-        for j in range(len(a)):
-            h[j, j] = h[j, j] * (1.0 + damping) + (0.0 if ridge is None else float(ridge[i]))
-        delta[i, a] = np.linalg.solve(h, g[i, a])
-    return delta
-
-
-class ActiveFactors:
-    """Per active set, the factors a frame's step needs, kept while the set recurs.
-
-    For the active controls A of a frame: H_AA^-1 (the prior weight's full Gauss-Newton step)
-    and the eigendecomposition Q diag(lam) Q^T of H_AA + damping diag(H_AA), so that the step's
-    system with any ridge rho, (H_AA + damping diag(H_AA) + rho I), is solved as
-    Q diag(1 / (lam + rho)) Q^T (a ridge adds to every eigenvalue of a symmetric matrix and keeps
-    its eigenvectors). A live stream's active set changes rarely from one frame to the next, so
-    a frame's two small dense solves become four matrix-vector products. ``solve_active`` is the
-    twin these are tested against. At most ``size`` sets are kept (the oldest go first).
-    """
-
-    def __init__(self, hessian: np.ndarray, damping: float, size: int = 256) -> None:
-        self.hessian, self.damping, self.size = hessian, float(damping), int(size)
-        self._sets: dict[bytes, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
-
-    def get(self, a: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """a (k,) int64 active controls -> (H_AA^-1 (k, k), Q (k, k), lam (k,))."""
-        key = a.tobytes()
-        hit = self._sets.get(key)
-        if hit is not None:
-            return hit
-        h = self.hessian[a[:, None], a]
-        damped = h.copy()
-        damped[np.diag_indices(a.size)] *= 1.0 + self.damping
-        lam, q = np.linalg.eigh(damped)
-        hit = (np.linalg.inv(h), q, lam)
-        if len(self._sets) >= self.size:
-            # the batch path's threads may share a refiner: drop the oldest, if still there
-            with contextlib.suppress(StopIteration, RuntimeError):
-                self._sets.pop(next(iter(self._sets)), None)
-        self._sets[key] = hit
-        return hit
-
-    def full_decrease(self, a: np.ndarray, g: np.ndarray) -> float:
-        """a (k,) active controls, g (C,) one frame's gradient -> g_A^T H_AA^-1 g_A, what a full
-        undamped Gauss-Newton step on A would remove from |r|^2."""
-        if a.size == 0:
-            return 0.0
-        ga = g[a]
-        return float(ga @ (self.get(a)[0] @ ga))
-
-    def step(self, a: np.ndarray, rhs: np.ndarray, ridge: float) -> np.ndarray:
-        """a (k,) active controls, rhs (C,) one frame's right-hand side, ridge >= 0 -> delta (C,):
-        (H_AA + damping diag(H_AA) + ridge I) delta_A = rhs_A, zero outside A."""
-        delta = np.zeros(rhs.shape[0], np.float64)
-        if a.size:
-            _, q, lam = self.get(a)
-            delta[a] = q @ ((q.T @ rhs[a]) / (lam + ridge))
-        return delta
 
 
 class Refiner:
@@ -386,6 +270,7 @@ class Refiner:
         u0 = u[0].copy()
         x = u0.copy()
         g, rss = evaluate(x)
+        pulled = pull_mask(u0, d)
         for _ in range(s.steps):
             tau = root_diag * (factor * np.sqrt(max(rss, 0.0)))  # ``active_set`` on one frame
             a = np.flatnonzero(free_controls(x, d, g, tau))
@@ -394,15 +279,20 @@ class Refiner:
                 left = max(rss - self.factors.full_decrease(a, g), 0.0)
                 lam = left / max(self.coords - a.size, 1) / s.prior_sd**2
             dx = x - u0
-            step = self.factors.step(a, g - (lam + fixed) * dx, lam)
+            weight = lam * pulled + fixed  # (C,) the pull on each control
+            if pulled[a].all():  # the usual case: one ridge on every active control
+                step = self.factors.step(a, g - weight * dx, lam)
+            else:
+                step = solve_active(self.hessian, (g - weight * dx)[None], a_mask(a, x.size),
+                                    s.damping + s.prior, (lam * pulled)[None])[0]
             if a.size == 0 or np.abs(step).max() < s.tol:
                 break
-            cost = rss + float(((lam + fixed) * dx**2).sum())
+            cost = rss + float((weight * dx**2).sum())
             share, took = 1.0, False
             for _halving in range(s.backtrack + 1):
                 trial = np.minimum(np.maximum(x + share * step, 0.0), 1.0)
                 g_new, r_new = evaluate(trial)
-                if np.isfinite(r_new) and r_new + float(((lam + fixed) * (trial - u0) ** 2
+                if np.isfinite(r_new) and r_new + float((weight * (trial - u0) ** 2
                                                          ).sum()) <= cost:
                     x, g, rss, took = trial, g_new, r_new, True
                     break
@@ -417,27 +307,29 @@ class Refiner:
         s = self.settings
         u0 = u.copy()
         g, rss = self._evaluate(u, mesh)
+        pulled = pull_mask(u0, self.d)  # (N, C)
         live = np.arange(u.shape[0])  # frames still refining; the others are done
         fixed = s.prior * self.diag  # (C,) the older fixed pull
         for _ in range(s.steps):
             ul, gl, rl, dl = u[live], g[live], rss[live], u[live] - u0[live]
             free = active_set(ul, self.d, gl, rl, self.diag, s.kappa, self.coords, s.wake_share)
             lam = self.prior_weight(gl, rl, free)  # (n,) the adaptive pull, per frame
-            pull = gl - (lam[:, None] + fixed) * dl
-            step = solve_active(self.hessian, pull, free, s.damping + s.prior, lam)
+            ridge = lam[:, None] * pulled[live]  # (n, C)
+            pull = gl - (ridge + fixed) * dl
+            step = solve_active(self.hessian, pull, free, s.damping + s.prior, ridge)
             moving = np.abs(step).max(axis=1, initial=0.0) >= s.tol  # converged frames stop
-            live, ul, step, lam, dl = live[moving], ul[moving], step[moving], lam[moving], \
+            live, ul, step, ridge, dl = live[moving], ul[moving], step[moving], ridge[moving], \
                 dl[moving]
             if live.size == 0:
                 break
-            cost = rl[moving] + ((lam[:, None] + fixed) * dl**2).sum(axis=1)
+            cost = rl[moving] + ((ridge + fixed) * dl**2).sum(axis=1)
             pending = np.ones(live.size, dtype=bool)  # no lower cost found yet
             share = 1.0
             for _halving in range(s.backtrack + 1):
                 rows = live[pending]
                 trial = np.clip(ul[pending] + share * step[pending], 0.0, 1.0)
                 g_new, rss_new = self._evaluate(trial, np.take(mesh, rows, axis=0))
-                cost_new = rss_new + ((lam[pending, None] + fixed) * (trial - u0[rows]) ** 2
+                cost_new = rss_new + ((ridge[pending] + fixed) * (trial - u0[rows]) ** 2
                                       ).sum(axis=1)
                 better = (cost_new <= cost[pending]) & np.isfinite(rss_new)
                 took = rows[better]
