@@ -159,12 +159,15 @@ class MomentForm:
             raise BundleError(f"refine_rest_basis has {rest.basis.shape[0]} rows, the moment "
                               f"graph's basis {r}")
         self.rest = rest
+        if rest is not None:  # the offset less the centre, as the realignment's fit reads it
+            centre = self.constants.centre.astype(np.float32)
+            self._rest_offset = (rest.offset.reshape(-1, 3) - centre).reshape(-1)
 
     def rest_targets(self, z: np.ndarray) -> np.ndarray:
-        """z (N, R) basis weights -> the forward model on the rest of the mesh (N, W, 3) float32
-        (offset + basis^T z; ``rest`` must be set)."""
+        """z (N, R) basis weights -> the forward model on the rest of the mesh less the centre
+        (N, W, 3) float32 (offset + basis^T z - centre; ``rest`` must be set)."""
         assert self.rest is not None
-        flat = np.matmul(z.astype(np.float32), self.rest.basis) + self.rest.offset
+        flat = np.matmul(z.astype(np.float32), self.rest.basis) + self._rest_offset
         return flat.reshape(z.shape[0], -1, 3)
 
     def moments(self, points: np.ndarray) -> FrameMoments:

@@ -122,13 +122,13 @@ def moved_state(fm: FrameMoments, const: BasisConstants, linear: np.ndarray,
 
 def realign_fit(fm: FrameMoments, const: BasisConstants, weights: np.ndarray, *,
                 extra_source: np.ndarray | None = None, extra_target: np.ndarray | None = None,
-                scale: bool = False) -> RigidBatch:
+                scale: bool = False, centred: bool = False) -> RigidBatch:
     """Umeyama (1991) per frame: the similarity, in centred coordinates, that maps the frames'
     S vertices x_i (= y_i + offset_i) onto the forward model's mesh offset_i + sum_r z_r a_ri,
     z = weights (N, R), together with extra pairs (the stable vertices and the rest of the mesh:
     extra_source (N, E, 3) in the frames, extra_target (E, 3) or per frame (N, E, 3) where they
-    belong). Returns the fit of (x - centre) -> (target - centre); its ``mse`` is not computed
-    (zeros)."""
+    belong; ``centred``: both already less ``const.centre``). Returns the fit of
+    (x - centre) -> (target - centre); its ``mse`` is not computed (zeros)."""
     z = np.asarray(weights, np.float64)
     c = const
     sum_s = fm.s + c.oc_sum  # (N, 3): sum of x - centre
@@ -140,9 +140,11 @@ def realign_fit(fm: FrameMoments, const: BasisConstants, weights: np.ndarray, *,
     if extra_source is not None and extra_target is not None:
         # float32 products through BLAS (as align.fit_rigid_pairs): on the ~2,000 stable
         # vertices of a batch, float64 copies and einsum cost more than the rest of the fit.
-        centre = c.centre.astype(np.float32)
-        es = np.asarray(extra_source, np.float32) - centre  # (N, E, 3), centred coordinates
-        et = np.asarray(extra_target, np.float32) - centre  # (E, 3) or (N, E, 3)
+        es = np.asarray(extra_source, np.float32)  # (N, E, 3), centred coordinates
+        et = np.asarray(extra_target, np.float32)  # (E, 3) or (N, E, 3)
+        if not centred:
+            centre = c.centre.astype(np.float32)
+            es, et = es - centre, et - centre
         ones = np.ones((1, es.shape[1]), np.float32)
         sum_s = sum_s + np.matmul(ones, es)[:, 0].astype(np.float64)
         sum_t = sum_t + et.sum(axis=-2, dtype=np.float64)

@@ -182,21 +182,26 @@ def _realign_moments(model: SolveModel, frames: np.ndarray, points: np.ndarray, 
     inverse, bundle = model.inverse, model.bundle
     form = inverse.moment_form
     assert form is not None and first.moments is not None
-    stable_home = bundle.neutral[bundle.stable_indices]
+    centre = form.constants.centre
+    stable_home = (bundle.neutral[bundle.stable_indices] - centre).astype(np.float32)
     extra = bundle.stable_indices
     if form.rest is not None:  # the rest of the mesh, against the forward model's mesh there
         extra = np.concatenate([extra, form.rest.indices])
-    source = rigid.apply(np.take(frames, extra, axis=1))
+    # the frames' vertices stabilised and centred in one move
+    centring = RigidBatch(rigid.rotation, rigid.translation - centre, rigid.scale, rigid.mse)
+    source = centring.apply(np.take(frames, extra, axis=1))
     net = points[:, : inverse.k]
     solved = first.controls
+    target: np.ndarray = stable_home
+    if form.rest is not None:
+        target = np.empty((frames.shape[0], extra.size, 3), np.float32)
+        target[:, : stable_home.shape[0]] = stable_home
     for _ in range(passes):
         z = form.weights(solved)
-        target: np.ndarray = stable_home
         if form.rest is not None:
-            target = np.concatenate([np.broadcast_to(stable_home, (z.shape[0], *stable_home.shape)),
-                                     form.rest_targets(z)], axis=1)
+            target[:, stable_home.shape[0] :] = form.rest_targets(z)
         fit = realign_fit(first.moments, form.constants, z, extra_source=source,
-                          extra_target=target, scale=scale)
+                          extra_target=target, scale=scale, centred=True)
         linear, shift = uncentre(fit, form.constants.centre)
         moved = (net @ linear.transpose(0, 2, 1) + shift[:, None]).astype(np.float32)
         solved = inverse.solve_moved(moved, first.moments,
