@@ -101,3 +101,44 @@ def test_bad_config_and_frames_are_named() -> None:
         BuildConfig(mode="batch")
     with pytest.raises(BuildError, match="take mode"):
         build_bundle(PatchRig(), "/nonexistent/x.rcb", BuildConfig(mode="take"))
+
+
+def _saturate(inverse_onnx: bytes, control: int, logit: float) -> bytes:
+    """The inverse graph with one output's last layer cut from the input: its logit is ``logit``
+    on every mesh (the dead output of a face-linear build, whose jaw_drop logit sat near -194)."""
+    import onnx
+    from onnx import numpy_helper
+
+    model = onnx.load_from_string(inverse_onnx)
+    last = [n for n in model.graph.node if n.op_type == "Gemm"][-1]
+    inits = {i.name: i for i in model.graph.initializer}
+    for name, row in ((last.input[1], 0.0), (last.input[2], logit)):
+        arr = numpy_helper.to_array(inits[name]).copy()
+        arr[control] = row
+        inits[name].CopyFrom(numpy_helper.from_array(arr, name))
+    return model.SerializeToString()
+
+
+def test_build_check_names_a_dead_output(built: tuple) -> None:
+    """A saturated output (logit -194 on every pose, deep in the scaled sigmoid's flat zone) is
+    named by the check, stuck and saturated; the trained bundle has none, and its manifest says
+    so. A logit of +4 is inside the clip's upper flat zone (s = 1.06 sigmoid(4) - 0.03 > 1), so
+    the output sits at its bound: stuck and saturated too."""
+    from dataclasses import replace
+
+    from rigcast.export.bundling.build_check import dead_outputs, flat_zone
+
+    rig, _, result, _ = built
+    bundle = load_bundle(result.bundle_path)
+    assert bundle.manifest["training"]["reference"]["dead_outputs"] == []
+    assert dead_outputs(bundle, rig) == []
+    for logit in (-194.0, 4.0):
+        broken = replace(bundle, inverse_onnx=_saturate(bundle.inverse_onnx, 2, logit))
+        dead = dead_outputs(broken, rig)
+        assert [d.control for d in dead] == ["bump2"]
+        assert dead[0].stuck and dead[0].saturated and dead[0].median_logit == pytest.approx(logit)
+        assert dead[0].poses == 4 and "bump2" not in dead[0].describe()
+    # the flat zone from its definition (models.unit_output): default 0, margin 0.03, band 0.04
+    z = np.array([[-194.0, -3.0, -2.0, 0.0, 3.0, 4.0]])
+    assert flat_zone(z, np.zeros(6), 0.03, 0.04).tolist() == [[True, True, False, False, False,
+                                                                 True]]

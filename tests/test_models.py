@@ -321,3 +321,40 @@ def test_smooth_field_bank_has_the_asked_rms_and_is_smooth() -> None:
     near = np.mean((field[:, a] - field[:, b]) ** 2)
     far = np.mean((field[:, a] - field[:, int(np.argmax(d[0] * (d[0] < 9)))]) ** 2)
     assert near < 0.2 * far
+
+
+def test_a_dead_output_comes_back(trained: dict) -> None:
+    """An output whose logit starts at -10 on every pose sits past the scaled sigmoid's flat-zone
+    edge (s = 1.06 sigmoid(z) - 0.03 inside the rest band [0, 0.04] below z = -2.65), where the
+    mesh loss has no gradient. With the early supervised term off, only the supervised floor
+    (its BCE gradient sigmoid(z) - target never vanishes) can pull it back: without it the
+    output stays at its default (a face-linear build lost jaw_drop so, its logit near -194)."""
+    rig, fwd, x, inputs = trained["rig"], trained["fwd"], trained["x"], trained["inputs"]
+    c = sparse_controls(600, rig.control_count, 1)
+    s = rig.schema
+    torch.manual_seed(0)
+    inv = InverseNetwork(rig.neutral[inputs], train.input_scale(x, rig.neutral, inputs), s.lower,
+                         s.upper, s.defaults, hidden=(64, 64))
+    with torch.no_grad():
+        inv.body[-1].bias[0] = -10.0
+    probe = np.zeros((4, rig.control_count), np.float32)
+    probe[:, 0] = (0.25, 0.5, 0.75, 1.0)
+    px = torch.from_numpy(rig.evaluate(probe)[:, inputs].astype(np.float32))
+    with torch.no_grad():
+        assert np.all(inv(px).numpy()[:, 0] == 0.0)  # dead at the start
+    inv, rep = train.train_inverse(
+        fwd, x, inputs, s.defaults,
+        train.InverseConfig(hidden=(64, 64), steps=300, batch=64, loss_vertices=0,
+                            supervised=0.0),
+        controls=c, init=inv,
+    )
+    with torch.no_grad():
+        out = inv(px).numpy()[:, 0]
+    assert out[-1] > 0.5 and np.ptp(out) > 0.25, out  # measured: 0, 0.18, 0.68, 0.91
+    assert rep.grad_norm_max >= rep.grad_norm_p50 > 0.0  # measured: 0.54 and 0.077, no clip
+    _, tight = train.train_inverse(
+        fwd, x, inputs, s.defaults,
+        train.InverseConfig(hidden=(64, 64), steps=20, batch=64, loss_vertices=0, clip_norm=1e-4),
+        controls=c,
+    )
+    assert tight.clipped_steps == 20 and tight.grad_norm_p50 > 1e-4  # measured: p50 0.037

@@ -4,12 +4,23 @@ Loss per batch of clean meshes ``x`` (B, V, 3):
 
     c    = inverse(x[:, K] + noise)            noise ~ N(0, sigma^2), sigma = noise_frac * diagonal
     loss = mean_v w_v |forward(c)_v - x_v|^2 / scale^2  +  l1 * mean |c - default| / range
-           (+ supervised, general mode only: BCE(u(c), u(c_true)) with a weight decaying to 0)
+           (+ supervised, general mode only: BCE(u(c), u(c_true)) with a weight decaying from
+              ``supervised`` to ``supervised_floor``)
 
 - general mode: batches mix the rig's sampled meshes with fresh random poses rendered through the
   frozen forward model (cheap augmentation); labels are known there, so an early, linearly
-  decaying supervised term on normalised controls speeds convergence; it is zero for the last
-  half of training, so the final solution is the mesh-space one.
+  decaying supervised term on normalised controls speeds convergence; after its decay it keeps a
+  small floor weight, so the final solution is the mesh-space one up to that small pull.
+- stability: the output's scaled sigmoid is flat past its clip and inside the rest band (see
+  models.py), so an output pushed there on every pose gets no gradient from the mesh loss and
+  stays dead (a face-linear build lost jaw_drop with its logit near -194 after a loss spike at
+  the peak learning rate). Two guards: the gradient norm is clipped before each Adam step
+  (``clip_norm``: one bad batch cannot throw the weights far), and the supervised floor's BCE on
+  the logits has the gradient sigmoid(z) - target, which never vanishes, so a dead output is
+  always pulled back (about 0.03 logit a step on the test rig; a quadratic penalty on logits past
+  8 was tried too: it pulled faster but, through the clip, doubled the held-out error). The
+  reported loss (``final_loss``, ``loss_curve``) is the mesh-space part (mesh + L1),
+  comparable between configs.
 - take mode: the user's frames only, no labels; purely self-supervised, starting from a given
   (general) inverse.
 
@@ -56,6 +67,9 @@ class InverseConfig:
     fresh_fraction: float = 0.5  # share of each general batch rendered through the forward model
     supervised: float = 1.0  # initial weight of the early supervised term (general mode only)
     supervised_until: float = 0.6  # share of the steps over which that weight decays to 0
+    supervised_floor: float = 0.01  # weight the supervised term keeps after its decay (above)
+    clip_norm: float = 1.0  # gradient-norm clip before each Adam step (0 = off); median norm on
+    # face-linear's first 80 steps: 0.71, max 10.6
     loss_vertices: int = 1536  # mesh loss on this many fixed random moving vertices (0 = all)
     seed: int = 0
     max_seconds: float | None = None  # a time budget; None: the fixed schedule (see above)
@@ -75,6 +89,9 @@ class InverseReport:
     seconds: float
     input_scale: float
     loss_curve: tuple[float, ...] = field(default=(), compare=False)
+    clipped_steps: int = 0  # steps whose gradient norm the clip cut (config.clip_norm)
+    grad_norm_p50: float = 0.0  # median gradient norm before the clip (0: no clip, not measured)
+    grad_norm_max: float = 0.0
 
 
 def activity_rates(
@@ -180,6 +197,8 @@ def train_inverse(
     sched = one_cycle(opt, config.lr, config.steps)
     inv_s2 = 1.0 / (scale * scale)
     curve: list[float] = []
+    norms: list[float] = []
+    clipped = 0
     model.train()
     loss_val, total, step = float("nan"), config.steps, 0
     t_loop = time.perf_counter()
@@ -221,17 +240,23 @@ def train_inverse(
         diff = fwd_sub(c) - x[:, loss_t]
         loss = (weights * diff.pow(2).sum(-1)).mean() * inv_s2 / 3.0
         loss = loss + config.l1 * ((c - def_t).abs() / span_t).mean()
+        objective = float(loss.detach())  # the mesh-space loss, without the supervised term
         ramp = max(0.0, 1.0 - step / max(1.0, config.supervised_until * total))
-        if c_true is not None and config.supervised > 0.0 and ramp > 0.0:
-            loss = loss + config.supervised * ramp * F.binary_cross_entropy_with_logits(
+        sup = max(config.supervised * ramp, config.supervised_floor)
+        if c_true is not None and sup > 0.0:
+            loss = loss + sup * F.binary_cross_entropy_with_logits(
                 z, model.sigmoid_target(c_true)
             )
         opt.zero_grad(set_to_none=True)
         loss.backward()
+        if config.clip_norm > 0.0:
+            norm = float(torch.nn.utils.clip_grad_norm_(model.parameters(), config.clip_norm))
+            clipped += norm > config.clip_norm
+            norms.append(norm)
         opt.step()
         if step < total - 1:
             sched.step()
-        loss_val = float(loss.detach())
+        loss_val = objective
         if step % 50 == 0:
             curve.append(loss_val)
             if progress is not None:
@@ -253,6 +278,9 @@ def train_inverse(
         seconds=time.perf_counter() - t0,
         input_scale=scale,
         loss_curve=tuple(curve),
+        clipped_steps=int(clipped),
+        grad_norm_p50=float(np.median(norms)) if norms else 0.0,
+        grad_norm_max=float(np.max(norms)) if norms else 0.0,
     )
     log.info(
         "inverse (%s): mean %.3g (%.3f%% diag), max %.3g, %d steps, %.1fs",
