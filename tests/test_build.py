@@ -138,6 +138,9 @@ def test_build_check_names_a_dead_output(built: tuple) -> None:
         assert [d.control for d in dead] == ["bump2"]
         assert dead[0].stuck and dead[0].saturated and dead[0].median_logit == pytest.approx(logit)
         assert dead[0].poses == 4 and "bump2" not in dead[0].describe()
+    held = np.where(np.random.default_rng(3).random((40, 8)) < 0.4, 0.9, 0.0)
+    dead = dead_outputs(broken, rig, rig.evaluate(held), held)  # held-out poses with their truth
+    assert [d.control for d in dead] == ["bump2"] and dead[0].poses == 4 + int((held[:, 2] > 0).sum())
     # the flat zone from its definition (models.unit_output): default 0, margin 0.03, band 0.04
     z = np.array([[-194.0, -3.0, -2.0, 0.0, 3.0, 4.0]])
     assert flat_zone(z, np.zeros(6), 0.03, 0.04).tolist() == [[True, True, False, False, False,

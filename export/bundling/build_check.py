@@ -77,20 +77,22 @@ def served_solve(bundle_path: Path, meshes: np.ndarray, fps: float = 60.0
     return res.controls, res.fit_rms, bundle.rigid_region  # SolveOptions' default follows it
 
 
-def check_served(bundle_path: Path, rig: Rig, meshes: np.ndarray, forward_err: float
-                 ) -> ServedCheck:
+def check_served(bundle_path: Path, rig: Rig, meshes: np.ndarray, forward_err: float,
+                 controls: np.ndarray | None = None) -> ServedCheck:
     """Score the served solve of held-out ``meshes`` (N, V, 3) through the real rig, and probe
     every control alone (``fidelity.recoverability``; ``forward_err`` the forward model's mean
-    held-out error, below which a control's mesh effect cannot be told apart)."""
+    held-out error, below which a control's mesh effect cannot be told apart); ``controls``
+    (N, C), the meshes' true controls when known, add them to the dead-output check."""
     from rigcast.export.quality.fidelity import recoverability
 
-    controls, fit_rms, stabilised = served_solve(bundle_path, meshes)
+    solved, fit_rms, stabilised = served_solve(bundle_path, meshes)
     rec = recoverability(rig, lambda m: served_solve(bundle_path, m)[0], forward_err)
     skip = {c.name for c in rec.controls if c.reason and not c.reason.startswith("not recovered")}
-    dead = [d for d in dead_outputs(load_bundle(bundle_path), rig) if d.control not in skip]
+    dead = [d for d in dead_outputs(load_bundle(bundle_path), rig, meshes, controls)
+            if d.control not in skip]
     for d in dead:
         log.warning("inverse output %s is dead: %s", d.control, d.describe())
-    err = np.linalg.norm(rig.evaluate(controls) - meshes, axis=-1)
+    err = np.linalg.norm(rig.evaluate(solved) - meshes, axis=-1)
     lo, hi = rig.schema.lower, rig.schema.upper
     lsq = solve_lsq(linearise_rig(rig), meshes, lo, hi).controls
     lsq_err = np.linalg.norm(rig.evaluate(lsq) - meshes, axis=-1)
@@ -186,7 +188,7 @@ def dead_outputs(bundle: Bundle, rig: Rig, meshes: np.ndarray | None = None,
         act = np.abs(truth[:, j] - s.defaults[j]) > STUCK_SPREAD * span[j]
         if not act.any():
             continue
-        spread = float(np.ptp(got[act, j])) / span[j]
+        spread = float(np.ptp(got[act, j]) / span[j])
         stuck = bool(spread <= STUCK_SPREAD)
         saturated = bool(flat[act, j].all()) if flat is not None else False
         if stuck or saturated:
