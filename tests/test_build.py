@@ -145,3 +145,17 @@ def test_build_check_names_a_dead_output(built: tuple) -> None:
     z = np.array([[-194.0, -3.0, -2.0, 0.0, 3.0, 4.0]])
     assert flat_zone(z, np.zeros(6), 0.03, 0.04).tolist() == [[True, True, False, False, False,
                                                                  True]]
+
+
+def test_the_build_summary_warns_of_a_dead_output_in_one_line() -> None:
+    from rigcast.commands.report import _reference_lines
+
+    ref = {"stabilised": True, "poses": 64, "rig_mean_err": 1e-4, "rig_max_err": 1e-3,
+           "lsq_mean_err": 2e-4, "lsq_max_err": 2e-3, "recoverable_controls": 46,
+           "unrecoverable": []}
+    dead = {"control": "jaw_drop", "stuck": True, "saturated": True, "spread_of_range": 0.0,
+            "median_logit": -194.0, "poses": 4}
+    lines = _reference_lines({**ref, "dead_outputs": [dead]})
+    warned = [line for line in lines if line.startswith("warning:") and "jaw_drop" in line]
+    assert len(warned) == 1 and "-194" in warned[0]
+    assert not [line for line in _reference_lines(ref) if "never moves" in line]

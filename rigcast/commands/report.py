@@ -325,6 +325,10 @@ def _reference_lines(ref: Any) -> list[str]:
     if ref.get("lost_controls"):
         lines.append(f"warning: {len(ref['lost_controls'])} control(s) cannot be recovered: "
                      f"{', '.join(ref['lost_controls'])}")
+    for item in ref.get("dead_outputs") or []:
+        lines.append(f"warning: the network alone never moves {item['control']} (it moves "
+                     f"{100 * item['spread_of_range']:.2g}% of its range, logit "
+                     f"{item['median_logit']:.3g}); the refinement may hide it; rebuild")
     return lines
 
 
