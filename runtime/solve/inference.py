@@ -148,7 +148,8 @@ class MomentForm:
     basis weights z (runtime/solve/moments.py)."""
 
     def __init__(self, project: ort.InferenceSession, refine: ort.InferenceSession,
-                 count: int, rest: RestOfMesh | None = None) -> None:
+                 count: int, rest: RestOfMesh | None = None,
+                 stable: np.ndarray | None = None, stable_home: np.ndarray | None = None) -> None:
         self.project, self.refine = project, refine
         table, centre = project.run([PROJECT_CONSTANTS, PROJECT_CENTRE],
                                     {PROJECT_POINTS: np.zeros((1, count, 3), np.float32)})
@@ -159,9 +160,15 @@ class MomentForm:
             raise BundleError(f"refine_rest_basis has {rest.basis.shape[0]} rows, the moment "
                               f"graph's basis {r}")
         self.rest = rest
+        centre = self.constants.centre.astype(np.float32)
         if rest is not None:  # the offset less the centre, as the realignment's fit reads it
-            centre = self.constants.centre.astype(np.float32)
             self._rest_offset = (rest.offset.reshape(-1, 3) - centre).reshape(-1)
+        # The realignment's extra pairs, made once: the stable vertices (then the rest of the
+        # mesh) it gathers from each frame, and the stable ones' place, less the centre.
+        stable = np.zeros(0, np.int64) if stable is None else np.asarray(stable, np.int64)
+        self.extra_indices = stable if rest is None else np.concatenate([stable, rest.indices])
+        self.stable_home = (np.zeros((0, 3), np.float32) if stable_home is None
+                            else (np.asarray(stable_home, np.float32) - centre))
 
     def rest_targets(self, z: np.ndarray) -> np.ndarray:
         """z (N, R) basis weights -> the forward model on the rest of the mesh less the centre
@@ -300,7 +307,8 @@ def _refiner(bundle: Bundle, threads: int, settings: RefineSettings | None
     if moment and REFINE_WEIGHTS not in got_out:
         raise BundleError(f"refine graph of a moment-form bundle lacks output {REFINE_WEIGHTS!r}")
     count = int(projected.indices.shape[0])
-    form = MomentForm(project, session, count, projected.rest) if moment else None
+    form = (MomentForm(project, session, count, projected.rest, bundle.stable_indices,
+                       bundle.neutral[bundle.stable_indices]) if moment else None)
     outs = [REFINE_PROJECTION, PROJECT_NORM]
 
     def prepare(points: np.ndarray) -> np.ndarray:

@@ -179,16 +179,13 @@ def solve_points(model: SolveModel, frames: np.ndarray, points: np.ndarray,
 def _realign_moments(model: SolveModel, frames: np.ndarray, points: np.ndarray, first: SolvePass,
                      rigid: RigidBatch, passes: int, scale: bool, first_frame: int
                      ) -> tuple[np.ndarray, RigidBatch]:
-    inverse, bundle = model.inverse, model.bundle
+    inverse = model.inverse
     form = inverse.moment_form
     assert form is not None and first.moments is not None
-    centre = form.constants.centre
-    stable_home = (bundle.neutral[bundle.stable_indices] - centre).astype(np.float32)
-    extra = bundle.stable_indices
-    if form.rest is not None:  # the rest of the mesh, against the forward model's mesh there
-        extra = np.concatenate([extra, form.rest.indices])
+    stable_home, extra = form.stable_home, form.extra_indices  # made once per bundle
     # the frames' vertices stabilised and centred in one move
-    centring = RigidBatch(rigid.rotation, rigid.translation - centre, rigid.scale, rigid.mse)
+    centring = RigidBatch(rigid.rotation, rigid.translation - form.constants.centre,
+                          rigid.scale, rigid.mse)
     source = centring.apply(np.take(frames, extra, axis=1))
     net = points[:, : inverse.k]
     solved = first.controls
