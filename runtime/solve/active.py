@@ -157,6 +157,13 @@ class ActiveFactors:
         ga = g[a]
         return float(ga @ (self.get(a)[0] @ ga))
 
+    def step_active(self, a: np.ndarray, rhs_a: np.ndarray, ridge: float) -> np.ndarray:
+        """:meth:`step` on the active controls only: a (k,) non-empty, rhs_a (k,) -> delta_A
+        (k,)."""
+        _, q, lam = self.get(a)
+        out: np.ndarray = q @ ((rhs_a @ q) / (lam + ridge))
+        return out
+
     def step(self, a: np.ndarray, rhs: np.ndarray, ridge: float) -> np.ndarray:
         """a (k,) active controls, rhs (C,) one frame's right-hand side, ridge >= 0 -> delta (C,):
         (H_AA + damping diag(H_AA) + ridge I) delta_A = rhs_A, zero outside A."""

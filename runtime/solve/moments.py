@@ -107,15 +107,24 @@ def moved_state(fm: FrameMoments, const: BasisConstants, linear: np.ndarray,
     """
     lin = np.asarray(linear, np.float64)
     t = np.asarray(shift, np.float64)
+    n, r = fm.m.shape[:2]
     d = lin - np.eye(3)
-    p = (np.einsum("njk,nrkj->nr", lin, fm.m) + np.einsum("njk,rkj->nr", d, const.cross)
+    # Each contraction as one matmul on flattened 3 x 3 blocks (a batch of one frame pays
+    # numpy's per-call cost, not the arithmetic): <L, m_r^T> = m_r.flat . L^T.flat.
+    lin_t = lin.transpose(0, 2, 1).reshape(n, 9, 1)
+    p = (np.matmul(fm.m.reshape(n, r, 9), lin_t)[..., 0]
+         + d.transpose(0, 2, 1).reshape(n, 9) @ const.cross.reshape(r, 9).T
          + t @ const.colsum.T)
-    s2 = np.einsum("njk,njk->n", lin, lin) / 3.0
-    x = np.einsum("nkj,nkl->njl", lin, d)  # L^T (L - I)
-    yy = (s2 * fm.yy + 2.0 * np.einsum("nkj,nkj->n", x, fm.q)
-          + 2.0 * np.einsum("nj,njk,nk->n", t, lin, fm.s)
-          + np.einsum("njk,kl,njl->n", d, const.scatter, d)
-          + 2.0 * np.einsum("nj,njk,k->n", t, d, const.oc_sum) + const.count * (t * t).sum(axis=1))
+    lin_flat, d_flat = lin.reshape(n, 9), d.reshape(n, 9)
+    s2 = (lin_flat * lin_flat).sum(axis=1) / 3.0
+    x = np.matmul(lin.transpose(0, 2, 1), d)  # L^T (L - I)
+    lin_s = np.matmul(lin, fm.s[..., None])[..., 0]  # L s_y
+    d_sc = np.matmul(d, const.scatter)  # (L - I) scatter
+    yy = (s2 * fm.yy + 2.0 * (x.reshape(n, 9) * fm.q.reshape(n, 9)).sum(axis=1)
+          + 2.0 * (t * lin_s).sum(axis=1)
+          + (d_sc.reshape(n, 9) * d_flat).sum(axis=1)
+          + 2.0 * (t * (d @ const.oc_sum)).sum(axis=1)
+          + const.count * (t * t).sum(axis=1))
     out: np.ndarray = np.concatenate([p, yy[:, None]], axis=1)
     return out
 
@@ -131,12 +140,18 @@ def realign_fit(fm: FrameMoments, const: BasisConstants, weights: np.ndarray, *,
     (x - centre) -> (target - centre); its ``mse`` is not computed (zeros)."""
     z = np.asarray(weights, np.float64)
     c = const
+    n_frames, r = fm.m.shape[:2]
     sum_s = fm.s + c.oc_sum  # (N, 3): sum of x - centre
     sum_t = c.oc_sum + z @ c.colsum  # sum of target - centre
-    cross = (fm.q.transpose(0, 2, 1) + c.scatter + np.einsum("nr,nrkj->njk", z, fm.m)
-             + np.einsum("nr,rkj->njk", z, c.cross))  # sum (t - centre)(x - centre)^T
-    sq_s = fm.yy + 2.0 * np.einsum("nkk->n", fm.q) + np.trace(c.scatter)
-    n = np.full(z.shape[0], c.count)
+    # sum (t - centre)(x - centre)^T; the two weighted sums over r as matmuls on flat 3 x 3s
+    weighted = (np.matmul(z[:, None], fm.m.reshape(n_frames, r, 9))[:, 0]
+                + z @ c.cross.reshape(r, 9))  # (N, 9): [k, j] of sum_r z_r (m_r + cross_r)
+    cross = fm.q.transpose(0, 2, 1) + c.scatter + weighted.reshape(n_frames, 3, 3
+                                                                   ).transpose(0, 2, 1)
+    n = np.full(n_frames, c.count)
+    sq_s = None
+    if scale:  # the source's spread sets the scale; a rigid fit does not read it
+        sq_s = fm.yy + 2.0 * np.trace(fm.q, axis1=1, axis2=2) + np.trace(c.scatter)
     if extra_source is not None and extra_target is not None:
         # float32 products through BLAS (as align.fit_rigid_pairs): on the ~2,000 stable
         # vertices of a batch, float64 copies and einsum cost more than the rest of the fit.
@@ -147,13 +162,15 @@ def realign_fit(fm: FrameMoments, const: BasisConstants, weights: np.ndarray, *,
             es, et = es - centre, et - centre
         ones = np.ones((1, es.shape[1]), np.float32)
         sum_s = sum_s + np.matmul(ones, es)[:, 0].astype(np.float64)
-        sum_t = sum_t + et.sum(axis=-2, dtype=np.float64)
+        sum_t = sum_t + np.matmul(ones, et)[..., 0, :].astype(np.float64)
         cross = cross + np.matmul(np.swapaxes(et, -1, -2), es).astype(np.float64)  # t_e x_e^T
-        sq_s = sq_s + np.einsum("nek,nek->n", es, es, dtype=np.float64)
+        if sq_s is not None:
+            sq_s = sq_s + np.einsum("nek,nek->n", es, es, dtype=np.float64)
         n = n + es.shape[1]
     mu_s, mu_t = sum_s / n[:, None], sum_t / n[:, None]
-    cov = cross / n[:, None, None] - np.einsum("nj,nk->njk", mu_t, mu_s)
-    var_s = sq_s / n - (mu_s * mu_s).sum(axis=1)
+    cov = cross / n[:, None, None] - mu_t[:, :, None] * mu_s[:, None, :]
+    var_s = (np.zeros(n_frames) if sq_s is None
+             else sq_s / n - (mu_s * mu_s).sum(axis=1))
     fit = _umeyama_batch(cov, mu_s, var_s, mu_t, 0.0, scale)
     return RigidBatch(fit.rotation, fit.translation, fit.scale, np.zeros(z.shape[0]))
 

@@ -215,6 +215,10 @@ class Refiner:
     def settings(self, value: RefineSettings) -> None:
         self._settings = value
         self.factors = ActiveFactors(self.hessian, value.damping + value.prior)
+        # what the one-frame steps read on every step, made once per setting
+        self._root_diag = np.sqrt(self.diag)
+        self._wake = wake_factor(value.kappa, self.coords, value.wake_share)
+        self._fixed = value.prior * self.diag
 
     def prior_weight(self, g: np.ndarray, rss: np.ndarray, free: np.ndarray) -> np.ndarray:
         """g (N, C) gradient, rss (N,) residual squared norms, free (N, C) the active set ->
@@ -256,44 +260,53 @@ class Refiner:
     def _steps_one(self, u: np.ndarray, state: np.ndarray) -> np.ndarray:
         """The steps of :meth:`_steps` for a batch of one frame (the live path), with the frame's
         numbers as vectors and scalars and the active set's cached factors instead of the
-        batch's gathers and dense solves; tested against :meth:`_steps`. u (1, C) -> (1, C)."""
-        s, d, fixed = self.settings, self.d, self.settings.prior * self.diag
-        root_diag, factor = np.sqrt(self.diag), wake_factor(s.kappa, self.coords, s.wake_share)
+        batch's gathers and dense solves; tested against :meth:`_steps`. u (1, C) -> (1, C).
+
+        Every numpy call on these few dozen numbers costs about a microsecond whatever its
+        size, so the step is written in as few calls as the arithmetic allows: the step and
+        the trial move only the active controls, and the pull's cost is a dot product."""
+        s, d, fixed = self.settings, self.d, self._fixed
+        root_diag, factor, use_fixed = self._root_diag, self._wake, s.prior > 0.0
         gradient = (self.bind(state) if self.bind is not None
                     else lambda c: self.gradient(c, state))
         lower, span = self.lower, self.span
 
         def evaluate(x: np.ndarray) -> tuple[np.ndarray, float]:
             gb, rb = gradient((lower + span * x).astype(np.float32)[None])
-            return np.asarray(gb[0], np.float64), float(rb[0])
+            return gb[0].astype(np.float64), float(rb[0])
 
         u0 = u[0].copy()
         x = u0.copy()
         g, rss = evaluate(x)
         pulled = pull_mask(u0, d)
+        every_pulled = bool(pulled.all())
         for _ in range(s.steps):
             tau = root_diag * (factor * np.sqrt(max(rss, 0.0)))  # ``active_set`` on one frame
             a = np.flatnonzero(free_controls(x, d, g, tau))
+            if a.size == 0:
+                break
             lam = 0.0
             if s.prior_sd > 0.0:
                 left = max(rss - self.factors.full_decrease(a, g), 0.0)
                 lam = left / max(self.coords - a.size, 1) / s.prior_sd**2
             dx = x - u0
-            weight = lam * pulled + fixed  # (C,) the pull on each control
-            if pulled[a].all():  # the usual case: one ridge on every active control
-                step = self.factors.step(a, g - weight * dx, lam)
+            weight = lam * pulled + fixed if use_fixed else lam * pulled  # (C,) each pull
+            if every_pulled or pulled[a].all():  # the usual case: one ridge on every active one
+                step_a = self.factors.step_active(a, (g - weight * dx)[a], lam)
             else:
-                step = solve_active(self.hessian, (g - weight * dx)[None], a_mask(a, x.size),
-                                    s.damping + s.prior, (lam * pulled)[None])[0]
-            if a.size == 0 or np.abs(step).max() < s.tol:
+                step_a = solve_active(self.hessian, (g - weight * dx)[None], a_mask(a, x.size),
+                                      s.damping + s.prior, (lam * pulled)[None])[0, a]
+            if np.abs(step_a).max() < s.tol:
                 break
-            cost = rss + float((weight * dx**2).sum())
+            cost = rss + float(np.dot(weight, dx * dx))
             share, took = 1.0, False
+            xa = x[a]
             for _halving in range(s.backtrack + 1):
-                trial = np.minimum(np.maximum(x + share * step, 0.0), 1.0)
+                trial = x.copy()
+                trial[a] = np.minimum(np.maximum(xa + share * step_a, 0.0), 1.0)
                 g_new, r_new = evaluate(trial)
-                if np.isfinite(r_new) and r_new + float((weight * (trial - u0) ** 2
-                                                         ).sum()) <= cost:
+                moved = trial - u0
+                if np.isfinite(r_new) and r_new + float(np.dot(weight, moved * moved)) <= cost:
                     x, g, rss, took = trial, g_new, r_new, True
                     break
                 share *= 0.5
