@@ -235,6 +235,7 @@ def _build(
         progress,
         motion,
         poses,
+        check_controls=check_c,
     )
 
 

@@ -71,8 +71,10 @@ def finish(
     motion: np.ndarray | None,
     poses: np.ndarray,
     stabilise: dict[str, Any] | None = None,
+    check_controls: np.ndarray | None = None,
 ) -> BuildResult:
-    """Export, write, re-load and check; cache the bundle and checkpoint."""
+    """Export, write, re-load and check; cache the bundle and checkpoint. ``check_controls``
+    (N, C): the true controls of ``check_x``, for the dead-output check."""
     from rigcast.export.bundling.build_check import check_served
     from rigcast.export.bundling.onnx_export import OPSET, export_forward, export_inverse
     from rigcast.export.training.models import EDGE_MARGIN, REST_BAND, save_checkpoint
@@ -130,7 +132,7 @@ def finish(
              "forward_onnx": fwd_bytes, "refine_onnx": ref_bytes, "refine_hessian": hessian,
              "refine_projection": projection}
     write_bundle(out_path, extra=extra, **parts)
-    served = check_served(out_path, rig, check_x, float(fwd_rep.mean_err))
+    served = check_served(out_path, rig, check_x, float(fwd_rep.mean_err), check_controls)
     training.update(check_mean_err=served.rig_mean_err,
                     check_mean_err_pct_diag=served.rig_mean_err_pct_diag,
                     reference=served.to_dict())

@@ -111,4 +111,5 @@ def fit_take(
         None,
         np.concatenate([rig.schema.defaults[None], check_c[:255]]),
         dict(bundle.manifest.get("stabilise", {"rigid_region": True})),
+        check_controls=check_c,
     )
