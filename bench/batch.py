@@ -12,7 +12,8 @@ solve on one thread (the chunks in order, no pool; its result must equal the poo
 and the bench says whether it does), the raw onnxruntime inverse alone (pre-gathered inputs, same
 batch size, one thread: the sessions run one intra-op thread each) and the live per-frame pipeline
 one frame at a time. Beside wall-clock frames/s it gives the process's CPU time per frame (all
-threads), which a machine loaded by others disturbs less, and the load average. It scores the
+threads), which a machine loaded by others disturbs less, its split by stage (each stage's
+thread CPU time, ``BatchSolve.stage_cpu_s``), and the load average. It scores the
 off-manifold flags against the planted frames (of the first 2,000). Prints the figures and writes
 DIR/batch.json.
 
@@ -35,7 +36,13 @@ import numpy as np
 from rigcast.runtime.bundle import Bundle, load_bundle
 from rigcast.runtime.messaging import protocol
 from rigcast.runtime.serve.config import StreamConfig
-from rigcast.runtime.solve.batch import FIT_ERROR_SCOPES, BatchSolver, SolveOptions, all_cores
+from rigcast.runtime.solve.batch import (
+    FIT_ERROR_SCOPES,
+    STAGES,
+    BatchSolver,
+    SolveOptions,
+    all_cores,
+)
 from rigcast.runtime.solve.pipeline import StreamState
 from rigcast.runtime.solve.solve_core import open_model
 
@@ -140,15 +147,19 @@ def main() -> None:
 
     fps_by_mode: dict[str, list[float]] = {m: [] for m in FIT_ERROR_SCOPES}
     cpu_us: list[float] = []  # process CPU time per frame of the headline runs, all threads
+    stage_us: dict[str, list[float]] = {s: [] for s in STAGES}  # headline runs, per frame
     serial: list[float] = []
     serial_cpu_us: list[float] = []
     for _ in range(args.repeats):
         for mode in FIT_ERROR_SCOPES:  # interleaved, so machine noise hits every mode alike
             options = SolveOptions(batch_size=bs, fit_error_scope=mode)
             cpu = time.process_time()
-            fps_by_mode[mode].append(solver.solve(verts, times, options).frames_per_second)
+            run = solver.solve(verts, times, options)
+            fps_by_mode[mode].append(run.frames_per_second)
             if mode == args.fit_error:
                 cpu_us.append((time.process_time() - cpu) / args.frames * 1e6)
+                for stage, seconds in run.stage_cpu_s.items():
+                    stage_us[stage].append(seconds / args.frames * 1e6)
         cpu = time.process_time()
         serial.append(one_thread.solve(verts, times, headline).frames_per_second)
         serial_cpu_us.append((time.process_time() - cpu) / args.frames * 1e6)
@@ -193,6 +204,7 @@ def main() -> None:
         "frames_per_second_by_fit_error": {m: float(np.median(v)) for m, v in fps_by_mode.items()},
         "frames_per_second_no_fit_error": float(np.median(fps_by_mode["off"])),
         "cpu_us_per_frame": float(np.median(cpu_us)),
+        "cpu_us_per_frame_by_stage": {s: float(np.median(v)) for s, v in stage_us.items()},
         "baseline_one_thread_fps": float(np.median(serial)),
         "baseline_one_thread_cpu_us_per_frame": float(np.median(serial_cpu_us)),
         "ratio_vs_one_thread": fps / float(np.median(serial)),
@@ -229,6 +241,11 @@ def main() -> None:
           f"{args.repeats} runs")
     print(f"  CPU time, all threads:           {figures['cpu_us_per_frame']:.0f} us a frame "
           f"(one thread: {figures['baseline_one_thread_cpu_us_per_frame']:.0f})")
+    by_stage = figures["cpu_us_per_frame_by_stage"]
+    assert isinstance(by_stage, dict)
+    print("  CPU by stage (thread time):       " + ", ".join(
+        f"{s.replace('_', ' ')} {v:.0f}" for s, v in by_stage.items())
+        + f" us a frame (sum {sum(by_stage.values()):.0f})")
     print(f"  baseline one thread, same chunks: {figures['baseline_one_thread_fps']:,.0f} frames/s "
           f"(pool is {figures['ratio_vs_one_thread']:.2f}x; same bits: "
           f"{figures['pool_equals_one_thread']}, max control difference {pool_vs_one:.3g}); "

@@ -30,9 +30,9 @@ import logging
 import math
 import os
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
 from concurrent.futures import ThreadPoolExecutor
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Literal
 
 import numpy as np
@@ -62,9 +62,9 @@ from rigcast.runtime.solve.stages import fit_error_naive as fit_error_batch_naiv
 log = logging.getLogger(__name__)
 
 # Names other modules import from here.
-__all__ = ["FILTERS", "FIT_ERROR_SCOPES", "FIT_SLICE", "STABILISE_SLICE", "BatchError",
-           "BatchSolve", "BatchSolver", "FilterKind", "FitErrorScope", "FitSubset", "RigidBatch",
-           "SolveOptions", "all_cores", "fit_error_batch", "fit_error_batch_naive",
+__all__ = ["FILTERS", "FIT_ERROR_SCOPES", "FIT_SLICE", "STABILISE_SLICE", "STAGES",
+           "BatchError", "BatchSolve", "BatchSolver", "FilterKind", "FitErrorScope", "FitSubset",
+           "RigidBatch", "SolveOptions", "all_cores", "fit_error_batch", "fit_error_batch_naive",
            "fit_rigid_batch", "fit_subset", "solve_take"]
 
 FilterKind = Literal["none", "causal", "smooth"]
@@ -75,6 +75,7 @@ FitErrorScope = Literal["full", "subset", "off"]
 FIT_ERROR_SCOPES: tuple[str, ...] = ("subset", "full", "off")
 FIT_SLICE = 32  # frames per forward-model call in the fit error (its output stays in cache)
 STABILISE_SLICE = 64  # frames per stabilisation call (its gathers stay in cache)
+STAGES: tuple[str, ...] = ("stabilise", "solve", "fit_error", "filter")  # BatchSolve.stage_cpu_s
 _DEFAULT_STREAM = StreamConfig()
 
 
@@ -94,7 +95,12 @@ class BatchSolve:
     of the stabilisation (0 when off); seconds of wall time; frames_per_second = T / seconds;
     fit_error_scope the scope used ("subset", "full", "off") and fit_vertices how many vertices it read;
     rigid the fits that stabilised the frames (the head pose is their inverse,
-    ``head_pose.HeadPose.from_stabiliser(rigid.pose(t))``), None when not stabilised.
+    ``head_pose.HeadPose.from_stabiliser(rigid.pose(t))``), None when not stabilised;
+    stage_cpu_s the CPU time of each stage on the threads that ran it, summed over the chunks
+    (``time.thread_time``, which a machine loaded by others disturbs less than wall time):
+    "stabilise" (with the finite check), "solve" (inference, refinement and realignment),
+    "fit_error", "filter"
+    (the filter and clamp).
     """
 
     controls: np.ndarray
@@ -108,6 +114,7 @@ class BatchSolve:
     fit_error_scope: str
     fit_vertices: int
     rigid: RigidBatch | None = None  # each frame's stabilising fit (T frames); None when off
+    stage_cpu_s: Mapping[str, float] = field(default_factory=dict)
 
 
 def all_cores() -> int:
@@ -259,8 +266,10 @@ class BatchSolver:
             frames stay in this thread's cache from the solve to the fit error)."""
             i1 = min(i0 + bs, t)
             chunk = verts[i0:i1]
+            c0 = time.thread_time()
             _check_finite(chunk, i0)
             inputs, rigid = self._stabilise(chunk, stabilise, settings.stabilise_scale)
+            c1 = time.thread_time()
             try:
                 solved, rigid = solve_points(model, chunk, inputs, rigid, passes=passes,
                                              scale=settings.stabilise_scale, first_frame=i0)
@@ -273,8 +282,11 @@ class BatchSolver:
                                       (rigid.rotation, rigid.translation, rigid.scale, rigid.mse),
                                       strict=True):
                     mine[i0:i1] = part
+            c2 = c3 = time.thread_time()
             if fitting:
                 fit_chunk(i0, i1, rigid)
+                c3 = time.thread_time()
+            cpu.append((c1 - c0, c2 - c1, c3 - c2, 0.0))  # one append: no lock needed
 
         def predict(controls: np.ndarray) -> np.ndarray:
             """controls (n, C) -> the subset's (n, M, 3), or every vertex (n, V, 3)."""
@@ -303,11 +315,18 @@ class BatchSolver:
         numbers = np.arange(t, dtype=np.int64)
         starts = range(0, t, bs)
         causal_in_order = opts.filter != "smooth"
+        cpu: list[tuple[float, float, float, float]] = []  # per chunk, as STAGES
+
+        def run_filter(i0: int) -> None:
+            c0 = time.thread_time()
+            self._filter(filt, raw, t_ns, numbers, controls, i0, min(i0 + bs, t))
+            cpu.append((0.0, 0.0, 0.0, time.thread_time() - c0))
+
         if self.threads == 1 or len(starts) == 1:
             for i0 in starts:  # the one-thread path: the pool's work, in order, here
                 solve_chunk(i0)
                 if causal_in_order:
-                    self._filter(filt, raw, t_ns, numbers, controls, i0, min(i0 + bs, t))
+                    run_filter(i0)
         else:
             with ThreadPoolExecutor(max_workers=self.threads) as pool:
                 jobs = [pool.submit(solve_chunk, i0) for i0 in starts]
@@ -317,22 +336,24 @@ class BatchSolver:
                     for i0, job in zip(starts, jobs, strict=True):
                         job.result()
                         if causal_in_order:
-                            self._filter(filt, raw, t_ns, numbers, controls, i0,
-                                         min(i0 + bs, t))
+                            run_filter(i0)
                 except BaseException:
                     pool.shutdown(wait=True, cancel_futures=True)  # a bad frame: skip the rest
                     raise
         if opts.filter == "smooth":
+            c0 = time.thread_time()
             filter_and_clamp(model, None, zero_phase_smooth(raw, times, opts.smooth_hz),
                              t_ns, None, controls)
+            cpu.append((0.0, 0.0, 0.0, time.thread_time() - c0))
         thresholds, off = self._off_manifold(fit_rms, fit_max, opts)
         seconds = time.perf_counter() - start
         log.info("batch solve: %d frames in %.3f s (%.0f frames/s), fit error %s",
                  t, seconds, t / seconds, opts.fit_error_scope)
         fit_vertices = (0 if opts.fit_error_scope == "off" else subset.indices.shape[0]
                         if subset is not None else self.bundle.vertex_count)
+        stage_cpu = dict(zip(STAGES, (float(x) for x in np.sum(cpu, axis=0)), strict=True))
         return BatchSolve(controls, fit_rms, fit_max, off, thresholds, align_rms, seconds,
-                          t / seconds, opts.fit_error_scope, fit_vertices, fits)
+                          t / seconds, opts.fit_error_scope, fit_vertices, fits, stage_cpu)
 
     def _stabilise(self, chunk: np.ndarray, stabilise: bool, scale: bool
                    ) -> tuple[np.ndarray, RigidBatch | None]:
