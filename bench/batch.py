@@ -13,7 +13,9 @@ and the bench says whether it does), the raw onnxruntime inverse alone (pre-gath
 batch size, one thread: the sessions run one intra-op thread each) and the live per-frame pipeline
 one frame at a time. Beside wall-clock frames/s it gives the process's CPU time per frame (all
 threads), which a machine loaded by others disturbs less, its split by stage (each stage's
-thread CPU time, ``BatchSolve.stage_cpu_s``), and the load average. It scores the
+thread CPU time, ``BatchSolve.stage_cpu_s``), onnxruntime's share of the one-thread solve (the
+graphs' arithmetic: the rate it allows on all cores bounds any batch solve of this bundle), and
+the load average. It scores the
 off-manifold flags against the planted frames (of the first 2,000). Prints the figures and writes
 DIR/batch.json.
 
@@ -102,6 +104,27 @@ def per_frame_fps(bundle: Bundle, verts: np.ndarray, times: np.ndarray) -> float
     return verts.shape[0] / (time.perf_counter() - start)
 
 
+def time_sessions(solver: BatchSolver) -> list[float]:
+    """Wraps ``run`` of each onnxruntime session of ``solver`` (on the session objects, so only
+    this solver's calls): the returned one-item list gathers their thread CPU time, seconds.
+    The moment form's projection and refinement sessions are reached through it; an older
+    bundle's refinement session is not, so its figure leaves that graph out."""
+    spent = [0.0]
+    form = solver.inverse.moment_form
+    found = [solver.inverse.session, solver.forward.session,
+             *((form.project, form.refine) if form is not None else ())]
+    for session in {id(s): s for s in found}.values():
+        def timed(*args: Any, _run: Any = session.run, **kwargs: Any) -> Any:
+            start = time.thread_time()
+            try:
+                return _run(*args, **kwargs)
+            finally:
+                spent[0] += time.thread_time() - start
+
+        session.run = timed
+    return spent
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--out", type=Path, required=True)
@@ -144,6 +167,8 @@ def main() -> None:
 
     one_thread = BatchSolver(bundle, threads=1, subset_graph=slice_forward_graph)
     one_thread.solve(verts[: min(bs, args.frames)], times[: min(bs, args.frames)], headline)
+    ort_spent = time_sessions(one_thread)
+    ort_us: list[float] = []  # onnxruntime's share of the one-thread runs, per frame
 
     fps_by_mode: dict[str, list[float]] = {m: [] for m in FIT_ERROR_SCOPES}
     cpu_us: list[float] = []  # process CPU time per frame of the headline runs, all threads
@@ -160,9 +185,10 @@ def main() -> None:
                 cpu_us.append((time.process_time() - cpu) / args.frames * 1e6)
                 for stage, seconds in run.stage_cpu_s.items():
                     stage_us[stage].append(seconds / args.frames * 1e6)
-        cpu = time.process_time()
+        cpu, ort = time.process_time(), ort_spent[0]
         serial.append(one_thread.solve(verts, times, headline).frames_per_second)
         serial_cpu_us.append((time.process_time() - cpu) / args.frames * 1e6)
+        ort_us.append((ort_spent[0] - ort) / args.frames * 1e6)
     per_batch = [solver.solve(verts[i0 : i0 + bs], times[i0 : i0 + bs], headline)
                  .frames_per_second for i0 in range(0, args.frames - bs + 1, bs)]
     result = solver.solve(verts, times, headline)
@@ -208,6 +234,9 @@ def main() -> None:
         "baseline_one_thread_fps": float(np.median(serial)),
         "baseline_one_thread_cpu_us_per_frame": float(np.median(serial_cpu_us)),
         "ratio_vs_one_thread": fps / float(np.median(serial)),
+        # the graphs' arithmetic alone, and the rate it allows on every core with nothing else
+        "onnxruntime_cpu_us_per_frame_one_thread": float(np.median(ort_us)),
+        "onnxruntime_bound_fps": threads * 1e6 / float(np.median(ort_us)),
         "pool_equals_one_thread": bool(same),
         "pool_vs_one_thread_max_control_diff": pool_vs_one,
         "load_average_1min": os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan"),
@@ -246,6 +275,10 @@ def main() -> None:
     print("  CPU by stage (thread time):       " + ", ".join(
         f"{s.replace('_', ' ')} {v:.0f}" for s, v in by_stage.items())
         + f" us a frame (sum {sum(by_stage.values()):.0f})")
+    print(f"  onnxruntime alone, one thread:   "
+          f"{figures['onnxruntime_cpu_us_per_frame_one_thread']:.0f} us a frame of "
+          f"{figures['baseline_one_thread_cpu_us_per_frame']:.0f} (on {threads} cores with "
+          f"nothing else: at most {figures['onnxruntime_bound_fps']:,.0f} frames/s)")
     print(f"  baseline one thread, same chunks: {figures['baseline_one_thread_fps']:,.0f} frames/s "
           f"(pool is {figures['ratio_vs_one_thread']:.2f}x; same bits: "
           f"{figures['pool_equals_one_thread']}, max control difference {pool_vs_one:.3g}); "
