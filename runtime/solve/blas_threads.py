@@ -50,7 +50,7 @@ def _loaded_openblas() -> list[str]:
 
 
 def _controls() -> list[tuple[Callable[[], int], Callable[[int], None]]]:
-    """(get, set) of every loaded OpenBLAS's thread count, found once."""
+    """(get, set) of every loaded OpenBLAS's thread count, found once (call it under _lock)."""
     global _found
     if _found is None:
         _found = []
@@ -77,7 +77,8 @@ def _controls() -> list[tuple[Callable[[], int], Callable[[int], None]]]:
 
 def blas_thread_counts() -> list[int]:
     """The thread count of every loaded OpenBLAS ([] when there is none)."""
-    return [get() for get, _ in _controls()]
+    with _lock:
+        return [get() for get, _ in _controls()]
 
 
 @contextmanager
