@@ -9,8 +9,10 @@ real rig with head motion, noise and planted off-manifold frames (2,000 distinct
 causal One Euro, clamp, fit error in the ``--fit-error`` mode, adaptive off-manifold flags). In
 the same run it measures every fit-error mode, and three baselines on the same frames: the same
 solve on one thread (the chunks in order, no pool; its result must equal the pool's bit for bit,
-and the bench says whether it does), the raw onnxruntime inverse alone (pre-gathered inputs, same
-batch size, one thread: the sessions run one intra-op thread each) and the live per-frame pipeline
+and the bench says whether it does), the inverse model alone (``InverseModel.solve``: the network
+and the refinement's first pass through onnxruntime, with no stabilisation, realignment or fit
+error; pre-gathered inputs, same batch size, one thread: the sessions run one intra-op
+thread each; JSON ``baseline_raw_inverse_fps``) and the live per-frame pipeline
 one frame at a time. Beside wall-clock frames/s it gives the process's CPU time per frame (all
 threads), which a machine loaded by others disturbs less, its split by stage (each stage's
 thread CPU time, ``BatchSolve.stage_cpu_s``), onnxruntime's share of the one-thread solve (the
@@ -287,7 +289,8 @@ def main() -> None:
           + ", ".join(f"{m} {v:,.0f}" for m, v in by_mode.items()) + " frames/s")
     print(f"  per batch of {bs}:               median {figures['per_batch_fps_median']:,.0f}, "
           f"p99-low {figures['per_batch_fps_p99_low']:,.0f} frames/s")
-    print(f"  baseline raw onnxruntime inverse: {figures['baseline_raw_inverse_fps']:,.0f} "
+    print(f"  baseline inverse alone (network and refinement, no realignment): "
+          f"{figures['baseline_raw_inverse_fps']:,.0f} "
           f"frames/s (ratio {figures['ratio_vs_raw_inverse']:.2f})")
     print(f"  baseline live per-frame pipeline: {live:,.0f} frames/s "
           f"(batch is {figures['ratio_vs_per_frame']:.1f}x)")
