@@ -29,6 +29,15 @@ Two forms with one definition:
 - :func:`off_manifold_thresholds`, for a whole take at once (vectorised), giving the thresholds the
   tracker would have used; :func:`off_manifold_thresholds_naive` is the definition as a loop.
 
+A statistic that looks for a local bump (not wired in yet): :class:`LocalMeans` and
+:func:`local_peak` give the frame's largest Gaussian-weighted neighbourhood mean of the residual
+vectors (neighbourhoods of 2 % of the neutral's diagonal, around centres spaced as far apart).
+White noise of sigma per coordinate averages down to about sigma / sqrt(n) over a neighbourhood
+of n vertices, while a bump that spans the neighbourhood keeps most of its height; the max vertex
+error keeps the whole noise tail. It is fed to the same adaptive rule in place of the max vertex
+error. docs/quality.md gives what it did on the quality bench's rigs (mixed: better recall,
+more false flags on frames the solve gets wrong).
+
 Semantics, shared by both: values are pushed in frame order; NaN values (fit error not computed)
 are skipped entirely. The threshold in force for the n-th value (n = values pushed before it) is
 ``inf`` while n < ``warmup``; otherwise it comes from the ``window`` values before the latest
@@ -56,6 +65,11 @@ MAD_TO_SIGMA = 1.4826  # 1 / Phi^-1(3/4): MAD -> standard deviation for Gaussian
 FLOOR_FACTOR = 3.0
 # With no training figure: 0.1% of the neutral's bounding-box diagonal (a starting point of ours).
 FALLBACK_FLOOR_OF_DIAGONAL = 0.001
+# The local statistic's neighbourhood: a Gaussian of sigma 2 % of the diagonal, cut at 2.5 sigma,
+# around centres about one sigma apart (our choice, from the bench's rigs; the planted bumps of
+# bench/quality.py are Gaussians of sigma 6 % of the diagonal).
+LOCAL_SCALE_OF_DIAGONAL = 0.02
+LOCAL_CUTOFF = 2.5
 
 
 class ManifoldError(RigcastError, ValueError):
@@ -248,3 +262,93 @@ def flag_off_manifold(values: np.ndarray, config: ManifoldConfig | None = None) 
     x = np.asarray(values, dtype=np.float64)
     with np.errstate(invalid="ignore"):
         return np.asarray(x > off_manifold_thresholds(x, config))  # NaN compares False
+
+
+def farthest_points(points: np.ndarray, spacing: float) -> np.ndarray:
+    """points (M, 3), spacing > 0 -> (P,) int64 indices of centres picked by farthest-point
+    sampling (from the point of least x, then always the point farthest from those picked) until
+    every point lies within ``spacing`` of a centre. Deterministic."""
+    p = np.asarray(points, dtype=np.float64)
+    if p.ndim != 2 or p.shape[1] != 3 or p.shape[0] == 0:
+        raise ManifoldError(f"points must be (M, 3) with M >= 1, got shape {p.shape}")
+    if not (math.isfinite(spacing) and spacing > 0):
+        raise ManifoldError(f"spacing must be finite and > 0, got {spacing!r}")
+    picked = [int(np.argmin(p[:, 0]))]
+    gap = np.linalg.norm(p - p[picked[0]], axis=1)
+    while float(gap.max()) > spacing:
+        i = int(np.argmax(gap))
+        picked.append(i)
+        np.minimum(gap, np.linalg.norm(p - p[i], axis=1), out=gap)
+    return np.asarray(picked, dtype=np.int64)
+
+
+@dataclass(frozen=True)
+class LocalMeans:
+    """Gaussian-weighted neighbourhood means over a fixed set of M points (e.g. the neutral's
+    vertices the fit error reads), in sparse form: centre p owns pairs ``starts[p]`` up to the
+    next start; pair i reads point ``members[i]`` with weight ``weights[i]`` (a centre's weights
+    sum to 1). centres (P,) int64 point indices; members (N,) int64; weights (N,) float32;
+    starts (P,) int64, increasing, starts[0] = 0."""
+
+    centres: np.ndarray
+    members: np.ndarray
+    weights: np.ndarray
+    starts: np.ndarray
+
+    @classmethod
+    def build(cls, points: np.ndarray, scale: float | None = None,
+              cutoff: float = LOCAL_CUTOFF) -> LocalMeans:
+        """points (M, 3) -> neighbourhoods of sigma ``scale`` (mesh units; None: 2 % of the
+        points' bounding-box diagonal), cut at ``cutoff`` sigma, centres ``scale`` apart."""
+        p = np.asarray(points, dtype=np.float64)
+        if p.ndim != 2 or p.shape[1] != 3 or p.shape[0] == 0:
+            raise ManifoldError(f"points must be (M, 3) with M >= 1, got shape {p.shape}")
+        if scale is None:
+            scale = LOCAL_SCALE_OF_DIAGONAL * float(np.linalg.norm(np.ptp(p, axis=0)))
+        if not (math.isfinite(scale) and scale > 0):
+            raise ManifoldError(f"scale must be finite and > 0, got {scale!r}")
+        centres = farthest_points(p, scale)
+        members, weights, starts = [], [], []
+        count = 0
+        for c in centres:
+            d2 = np.sum((p - p[c]) ** 2, axis=1)
+            near = np.flatnonzero(d2 <= (cutoff * scale) ** 2)
+            w = np.exp(-d2[near] / (2.0 * scale * scale))
+            members.append(near)
+            weights.append(w / w.sum())
+            starts.append(count)
+            count += near.shape[0]
+        return cls(centres, np.concatenate(members).astype(np.int64),
+                   np.concatenate(weights).astype(np.float32), np.asarray(starts, np.int64))
+
+    @property
+    def pairs(self) -> int:
+        return int(self.members.shape[0])
+
+    def means(self, diff: np.ndarray) -> np.ndarray:
+        """diff (B, M, 3) residual vectors -> (B, P, 3) float32 neighbourhood means."""
+        gathered = np.take(np.asarray(diff, np.float32), self.members, axis=1)  # (B, N, 3)
+        gathered *= self.weights[None, :, None]
+        out: np.ndarray = np.add.reduceat(gathered, self.starts, axis=1)
+        return out
+
+
+def local_peak(diff: np.ndarray, local: LocalMeans) -> np.ndarray:
+    """diff (B, M, 3) residual vectors (observed minus the forward model's mesh, over the points
+    ``local`` was built on) -> (B,) float64: each frame's largest neighbourhood-mean length."""
+    m = local.means(diff)
+    return np.sqrt(np.max(np.einsum("bpx,bpx->bp", m, m), axis=1).astype(np.float64))
+
+
+def local_peak_naive(diff: np.ndarray, local: LocalMeans) -> np.ndarray:
+    """Twin of local_peak: loops over frames and centres, in float64."""
+    d = np.asarray(diff, dtype=np.float64)
+    ends = np.append(local.starts[1:], local.pairs)
+    out = np.zeros(d.shape[0])
+    for b in range(d.shape[0]):
+        for s, e in zip(local.starts, ends, strict=True):
+            mean = np.zeros(3)
+            for i in range(int(s), int(e)):
+                mean += float(local.weights[i]) * d[b, local.members[i]]
+            out[b] = max(out[b], float(np.linalg.norm(mean)))
+    return out
