@@ -42,6 +42,7 @@ from pathlib import Path
 
 import numpy as np
 import torch
+from rigcast.export.training.kinematic import KinematicChain
 from torch import nn
 
 log = logging.getLogger(__name__)
@@ -140,6 +141,8 @@ class ForwardApproximator(nn.Module):
     neutral: (V, 3); lower, upper: (C,); linear_weight: (C, 3V) and linear_bias: (3V,) act on
     normalised controls; basis: (P, 3V) orthonormal rows of the residual PCA. ``hidden`` sizes
     the correction MLP; its last layer starts at zero, so an untrained model is the linear layer.
+    ``chain``: an optional learned kinematic chain (export/training/kinematic.py) whose output
+    adds to the MLP's coefficients, for skinned joints; the mesh stays offset + basis weights.
     """
 
     neutral: torch.Tensor
@@ -156,6 +159,7 @@ class ForwardApproximator(nn.Module):
         linear_bias: np.ndarray,
         basis: np.ndarray,
         hidden: tuple[int, ...] = (256, 256, 256),
+        chain: KinematicChain | None = None,
     ) -> None:
         super().__init__()
         v = int(neutral.shape[0])
@@ -176,12 +180,18 @@ class ForwardApproximator(nn.Module):
             assert isinstance(last, nn.Linear)
             nn.init.zeros_(last.weight)
             nn.init.zeros_(last.bias)
+        if chain is not None and (p == 0 or chain.out.out_features != p):
+            raise ValueError(f"the kinematic chain gives {chain.out.out_features} coefficients, "
+                             f"the residual basis has {p}")
+        self.chain = chain
 
     def coefficients(self, u: torch.Tensor) -> torch.Tensor:
         """u: (N, C) normalised controls -> (N, P) residual-basis coefficients."""
         if self.correction is None:
             return u.new_zeros((u.shape[0], 0))
         out: torch.Tensor = self.correction(u)
+        if self.chain is not None:
+            out = out + self.chain(u)
         return out
 
     def offsets(self, controls: torch.Tensor) -> torch.Tensor:
@@ -317,6 +327,8 @@ def save_checkpoint(
             "control_count": forward.control_count,
             "components": int(forward.basis.shape[0]),
             "hidden": list(forward.hidden),
+            "chain": (None if forward.chain is None
+                      else forward.chain.select.argmax(dim=1).tolist()),
         },
         "inverse": {
             "state": inverse.state_dict(),
@@ -340,8 +352,12 @@ def load_checkpoint(path: str | Path) -> tuple[ForwardApproximator, InverseNetwo
     f, i = payload["forward"], payload["inverse"]
     v, c, p = int(f["vertex_count"]), int(f["control_count"]), int(f["components"])
     z = np.zeros
+    joints = f.get("chain")
+    chain = None if joints is None else KinematicChain(z((len(joints), 3)), z(c), p,
+                                                       controls=np.asarray(joints))
     fwd = ForwardApproximator(
-        z((v, 3)), z(c), np.ones(c), z((c, 3 * v)), z(3 * v), z((p, 3 * v)), tuple(f["hidden"])
+        z((v, 3)), z(c), np.ones(c), z((c, 3 * v)), z(3 * v), z((p, 3 * v)), tuple(f["hidden"]),
+        chain,
     )
     fwd.load_state_dict(f["state"])
     k = int(i["input_count"])

@@ -50,9 +50,10 @@ def fit_budget(total: int, done: int, elapsed: float, budget: float) -> int:
 
 
 def one_cycle(
-    opt: torch.optim.Optimizer, lr: float, total: int
+    opt: torch.optim.Optimizer, lr: float | list[float], total: int
 ) -> torch.optim.lr_scheduler.LRScheduler:
-    """The one-cycle learning-rate schedule both networks train with (15 % warm-up)."""
+    """The one-cycle learning-rate schedule both networks train with (15 % warm-up); ``lr``: the
+    peak, or one peak per parameter group."""
     return torch.optim.lr_scheduler.OneCycleLR(
         opt, max_lr=lr, total_steps=max(total, 2), pct_start=0.15
     )

@@ -26,10 +26,12 @@ import logging
 import math
 import time
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import torch
 import torch.nn.functional as F
+from rigcast.export.training.kinematic import KinematicChain, chain_from_anchors
 from rigcast.export.training.models import ForwardApproximator
 from rigcast.export.training.train_common import (
     TORCH_THREADS,
@@ -43,6 +45,10 @@ from rigcast.export.training.train_common import (
 )
 
 log = logging.getLogger(__name__)
+
+#: The kinematic chain's learning rate, as a share of the MLP's: its geometry starts from the
+#: anchors' rotation fits and its output layer from least squares, so it is only polished.
+CHAIN_LR = 0.1
 
 
 @dataclass(frozen=True)
@@ -65,6 +71,8 @@ class ForwardConfig:
     linear: str = "anchored"
     # a in x = a (2u - 1), the correction MLP's training input (see the module docstring).
     input_scale: float = 2.0
+    # A learned kinematic chain beside the MLP (export/training/kinematic.py), for joint rigs.
+    chain: bool = False
 
 
 
@@ -182,9 +190,11 @@ def train_forward(
     flat_neutral = np.asarray(neutral, np.float32).reshape(1, v * 3)
     offs = (vertices[train_idx].reshape(-1, v * 3) - flat_neutral).astype(np.float32)
     u = u_all[train_idx]
-    if anchors is not None and config.linear == "anchored":
+    ua: np.ndarray | None = None
+    if anchors is not None:
         ua = ((np.asarray(anchors[0], np.float32) - lo) / (hi - lo)).astype(np.float32)
         oa = (np.asarray(anchors[1], np.float32).reshape(-1, v * 3) - flat_neutral)
+    if ua is not None and config.linear == "anchored":
         weight, bias = fit_anchored(ua, oa)
         u = np.concatenate([u, ua])
         offs = np.concatenate([offs, oa.astype(np.float32)])
@@ -196,7 +206,12 @@ def train_forward(
     basis = randomized_pca(offs[sub], config.components, seed=config.seed)
     targets = (offs @ basis.T).astype(np.float32)  # (N_train, P) residual coefficients
     del offs
-    model = ForwardApproximator(neutral, lo, hi, weight, bias, basis, hidden=config.hidden)
+    chain = None
+    if config.chain and ua is not None and basis.shape[0] > 0:
+        chain = chain_from_anchors(ua, oa, np.asarray(neutral, np.float32),
+                                   np.median(u, axis=0), basis.shape[0], seed=config.seed)
+    model = ForwardApproximator(neutral, lo, hi, weight, bias, basis, hidden=config.hidden,
+                                chain=chain)
     if model.correction is not None:
         _fit_coefficients(model, u, targets, config, progress)
     model.eval()
@@ -236,13 +251,21 @@ def _fit_coefficients(
     unit = rms if rms > 0.0 and math.isfinite(rms) else 1.0
     # The rest pose at the input's origin: each control's median, its default in sparse samples.
     rest = torch.from_numpy(np.median(u, axis=0).astype(np.float32))
-    ut = scale * (torch.from_numpy(u) - rest)
+    uc = torch.from_numpy(u)
+    ut = scale * (uc - rest)
     tt = torch.from_numpy((targets / unit).astype(np.float32))
     n = ut.shape[0]
     per_epoch = max(1, math.ceil(n / config.batch))
     total = per_epoch * config.epochs
-    opt = torch.optim.Adam(model.correction.parameters(), lr=config.lr)
-    sched = one_cycle(opt, config.lr, total)
+    groups: list[dict[str, Any]] = [{"params": list(model.correction.parameters()),
+                                     "lr": config.lr}]
+    peaks = [config.lr]
+    if model.chain is not None:
+        _start_chain_output(model.chain, uc, tt)
+        groups.append({"params": list(model.chain.parameters()), "lr": CHAIN_LR * config.lr})
+        peaks.append(CHAIN_LR * config.lr)
+    opt = torch.optim.Adam(groups, lr=config.lr)
+    sched = one_cycle(opt, peaks, total)
     gen = torch.Generator().manual_seed(config.seed)
     start, step, epochs = time.perf_counter(), 0, config.epochs
     model.train()
@@ -254,11 +277,14 @@ def _fit_coefficients(
                 log.warning("forward: the %.0fs time budget cut training to %d of %d epochs",
                             config.max_seconds, epochs, config.epochs)
                 total = per_epoch * epochs
-                sched = one_cycle(opt, config.lr, total - step)
+                sched = one_cycle(opt, peaks, total - step)
         perm = torch.randperm(n, generator=gen)
         for b in range(per_epoch):
             idx = perm[b * config.batch : (b + 1) * config.batch]
-            loss = F.mse_loss(model.correction(ut[idx]), tt[idx])
+            pred = model.correction(ut[idx])
+            if model.chain is not None:
+                pred = pred + model.chain(uc[idx])
+            loss = F.mse_loss(pred, tt[idx])
             opt.zero_grad(set_to_none=True)
             loss.backward()
             opt.step()
@@ -272,9 +298,24 @@ def _fit_coefficients(
     assert isinstance(first, torch.nn.Linear) and isinstance(last, torch.nn.Linear)
     fold_input_map(first, scale, rest)
     with torch.no_grad():
-        last.weight.mul_(unit)
-        last.bias.mul_(unit)
+        for out in [last] + ([model.chain.out] if model.chain is not None else []):
+            out.weight.mul_(unit)
+            out.bias.mul_(unit)
     log.debug("forward: final coefficient mse %.3g", unit * unit * float(loss.detach()))
+
+
+@torch.no_grad()
+def _start_chain_output(chain: KinematicChain, u: torch.Tensor, targets: torch.Tensor,
+                        ridge: float = 1e-6) -> None:
+    """The chain's output layer by least squares on its features at its starting geometry:
+    u (N, C), targets (N, P). The mesh is linear in the joints' transforms, so with the
+    geometry found from the anchors this is nearly the whole residual before any step."""
+    feats = torch.cat([chain.features(u), torch.ones(u.shape[0], 1)], dim=1).double()
+    gram = feats.T @ feats
+    gram += ridge * float(gram.diagonal().mean()) * torch.eye(gram.shape[0], dtype=gram.dtype)
+    sol = torch.linalg.solve(gram, feats.T @ targets.double())
+    chain.out.weight.copy_(sol[:-1].T.float())
+    chain.out.bias.copy_(sol[-1].float())
 
 
 @torch.no_grad()

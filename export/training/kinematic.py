@@ -1,0 +1,236 @@
+"""A learned kinematic chain: the forward approximator's structure for skinned joints.
+
+Linear blend skinning moves each vertex by a weighted sum of its joints' transforms, so the mesh
+is linear in the 12 entries of each joint's 3 x 4 world transform; along a chain each transform
+is the product of its parents' local rotations. A plain MLP has to learn those products of sines
+and cosines from samples that mostly move a few controls at a time, and misses them where many
+move at once (dense poses). Here the product is built in:
+
+    theta_c = s_c (u_c - r_c)                               angle of control c (r: rest)
+    R_c     = I + sin(theta_c) K_c + (1 - cos(theta_c)) K_c^2     (Rodrigues), K_c = [a_c]_x
+    t_c     = p_c - R_c p_c                                 rotation about the pivot p_c
+    A_k     = A_{k-1} R_k,  b_k = b_{k-1} + A_{k-1} t_k     prefix transforms, A_0 = I, b_0 = 0
+    F_k     = [vec(A_k - I), b_k]                           (12,) per control k
+    out     = [F_1 .. F_C] L^T + l                           (P,) residual-basis coefficients
+
+with a learned unit axis a_c, pivot p_c and angle scale s_c per control, composed in the
+schema's order (a rig's controls listed root to tip, as joint chains are; a control that is no
+rotation learns s_c near 0 and its F_k only repeats its parent's). The mesh stays linear in the
+residual basis (offset + basis weights, as the refinement's moment form needs); only the
+coefficients' function of u changes, so everything that differentiates the coefficients needs
+this module's hand-written ``jacobian`` (forward mode) and ``vjp`` (reverse mode): both are
+plain matrix products and element-wise ops, so they export to ONNX like the MLP's.
+(Rodrigues' rotation formula; the prefix products are the forward kinematics of a serial chain,
+e.g. Craig, "Introduction to Robotics", ch. 3.)
+"""
+
+from __future__ import annotations
+
+import logging
+
+import numpy as np
+import torch
+from torch import nn
+
+log = logging.getLogger(__name__)
+
+
+def skew(a: torch.Tensor) -> torch.Tensor:
+    """a: (..., 3) -> (..., 3, 3) the cross-product matrix [a]_x (so [a]_x v = a x v)."""
+    z = torch.zeros_like(a[..., 0])
+    return torch.stack(
+        [
+            torch.stack([z, -a[..., 2], a[..., 1]], -1),
+            torch.stack([a[..., 2], z, -a[..., 0]], -1),
+            torch.stack([-a[..., 1], a[..., 0], z], -1),
+        ],
+        -2,
+    )
+
+
+class KinematicChain(nn.Module):
+    """u (N, C) normalised controls -> (N, P) coefficients, by the chain of the module docstring
+    over the J controls ``controls`` (J,) (all C when None), in that order.
+
+    pivots: (J, 3) starting pivots in mesh units; axes (J, 3), scales (J,): starting axes and
+    angles per unit of u (random axes and 1 when None); rest: (C,) the rest pose in u; length:
+    the mesh's size (pivots are stored in its units, so the parameters are of order 1). The
+    output layer starts at zero: an untrained chain adds nothing.
+    """
+
+    rest: torch.Tensor
+    select: torch.Tensor
+
+    def __init__(self, pivots: np.ndarray, rest: np.ndarray, outputs: int, length: float = 1.0,
+                 seed: int = 0, controls: np.ndarray | None = None,
+                 axes: np.ndarray | None = None, scales: np.ndarray | None = None) -> None:
+        super().__init__()
+        c = int(np.asarray(rest).shape[0])
+        idx = np.arange(c) if controls is None else np.asarray(controls, np.int64)
+        j = int(idx.shape[0])
+        self.control_count = c
+        self.joint_count = j
+        self.length = float(length) if length > 0 else 1.0
+        gen = torch.Generator().manual_seed(seed)
+        self.axis = nn.Parameter(torch.randn(j, 3, generator=gen) if axes is None else
+                                 torch.as_tensor(np.asarray(axes, np.float32)).clone())
+        self.pivot = nn.Parameter(
+            torch.as_tensor(np.asarray(pivots, np.float32) / self.length).reshape(j, 3).clone())
+        self.scale = nn.Parameter(torch.ones(j) if scales is None else
+                                  torch.as_tensor(np.asarray(scales, np.float32)).clone())
+        sel = np.zeros((j, c), np.float32)
+        sel[np.arange(j), idx] = 1.0
+        self.register_buffer("select", torch.from_numpy(sel))  # (J, C): u_J = u @ select^T
+        self.register_buffer("rest", torch.as_tensor(
+            np.asarray(rest, np.float32)[idx]).clone())
+        self.out = nn.Linear(12 * j, outputs)
+        nn.init.zeros_(self.out.weight)
+        nn.init.zeros_(self.out.bias)
+
+    def _parts(self, u: torch.Tensor) -> tuple[torch.Tensor, ...]:
+        """u (N, C) -> (R (N, J, 3, 3), t (N, J, 3), dR/du (N, J, 3, 3), dt/du (N, J, 3))."""
+        k = skew(self.axis / self.axis.norm(dim=1, keepdim=True))  # (C, 3, 3)
+        kk = k @ k
+        th = self.scale * (u @ self.select.T - self.rest)  # (N, J)
+        s, co = torch.sin(th)[..., None, None], torch.cos(th)[..., None, None]
+        eye = torch.eye(3, dtype=u.dtype)
+        r = eye + s * k + (1.0 - co) * kk
+        dr = self.scale[:, None, None] * (co * k + s * kk)
+        p = self.pivot[..., None]  # (C, 3, 1)
+        t = self.pivot - (r @ p)[..., 0]
+        dt = -(dr @ p)[..., 0]
+        return r, t, dr, dt
+
+    def features(self, u: torch.Tensor) -> torch.Tensor:
+        """u: (N, C) -> (N, 12J) the prefix transforms [vec(A_k - I), b_k], k = 1..J."""
+        r, t, _, _ = self._parts(u)
+        n = u.shape[0]
+        eye = torch.eye(3, dtype=u.dtype)
+        a, b = eye.expand(n, 3, 3), u.new_zeros((n, 3))
+        feats = []
+        for j in range(self.joint_count):
+            b = b + (a @ t[:, j, :, None])[..., 0]
+            a = a @ r[:, j]
+            feats.append(torch.cat([(a - eye).reshape(n, 9), b], 1))
+        return torch.cat(feats, 1)
+
+    def forward(self, u: torch.Tensor) -> torch.Tensor:
+        out: torch.Tensor = self.out(self.features(u))
+        return out
+
+    def jacobian(self, u: torch.Tensor) -> torch.Tensor:
+        """d out / du for u (N, C) -> (N, C, P), in forward mode by hand (one tangent per
+        control): dA_k = dA_{k-1} R_k + [c = k] A_{k-1} dR_k, db_k = db_{k-1} + dA_{k-1} t_k
+        + [c = k] A_{k-1} dt_k."""
+        r, t, dr, dt = self._parts(u)
+        n, c = u.shape[0], self.joint_count
+        eye = torch.eye(3, dtype=u.dtype)
+        a = eye.expand(n, 3, 3)
+        da, db = u.new_zeros((n, c, 3, 3)), u.new_zeros((n, c, 3))
+        onehot = torch.eye(c, dtype=u.dtype)
+        feats = []
+        for j in range(c):
+            hit = onehot[j][None, :, None]  # (1, C, 1): the tangent of control j
+            db = db + (da @ t[:, j, None, :, None])[..., 0] \
+                + hit * (a @ dt[:, j, :, None])[:, None, :, 0]
+            da = da @ r[:, j, None] + hit[..., None] * (a @ dr[:, j])[:, None]
+            a = a @ r[:, j]
+            feats.append(torch.cat([da.reshape(n, c, 9), db], 2))
+        jac = torch.cat(feats, 2) @ self.out.weight.T  # (N, J, 12J) -> (N, J, P)
+        return torch.einsum("jc,njp->ncp", self.select, jac)  # (N, C, P)
+
+    def vjp(self, u: torch.Tensor, back: torch.Tensor) -> torch.Tensor:
+        """(d out / du)^T back for u (N, C), back (N, P) -> (N, C), in reverse mode by hand."""
+        r, t, dr, dt = self._parts(u)
+        n, c = u.shape[0], self.joint_count
+        g = (back @ self.out.weight).reshape(n, c, 12)  # adjoints of each F_k
+        eye = torch.eye(3, dtype=u.dtype)
+        prev = [eye.expand(n, 3, 3)]  # A_0 .. A_{C-1}
+        for j in range(c - 1):
+            prev.append(prev[-1] @ r[:, j])
+        ga, gb = u.new_zeros((n, 3, 3)), u.new_zeros((n, 3))
+        cols = []
+        for j in range(c - 1, -1, -1):
+            ga = ga + g[:, j, :9].reshape(n, 3, 3)
+            gb = gb + g[:, j, 9:]
+            ap = prev[j]
+            g_r = ap.transpose(1, 2) @ ga  # d/dR_j of <ga, A_{j-1} R_j>
+            g_t = (ap.transpose(1, 2) @ gb[..., None])[..., 0]
+            cols.append((g_r * dr[:, j]).sum((1, 2)) + (g_t * dt[:, j]).sum(1))
+            ga = ga @ r[:, j].transpose(1, 2) + gb[:, :, None] * t[:, j, None, :]
+        return torch.stack(cols[::-1], 1) @ self.select  # (N, J) -> (N, C)
+
+
+def rotation_fit(source: np.ndarray, target: np.ndarray) -> tuple[np.ndarray, np.ndarray, float]:
+    """The rotation about an axis that best moves ``source`` (V, 3) onto ``target`` (V, 3),
+    each vertex weighted by its squared displacement (the vertices that move carry the fit):
+    weighted Kabsch (Umeyama 1991, without scale). -> (axis-angle vector (3,), a pivot on the
+    axis (3,), the residual's RMS relative to the displacement's, 1.0 when nothing moves)."""
+    x, y = np.asarray(source, np.float64), np.asarray(target, np.float64)
+    w = np.square(y - x).sum(axis=1)
+    total = float(w.sum())
+    if not total > 0.0:
+        return np.zeros(3), x.mean(axis=0), 1.0
+    w = w / total
+    mx, my = w @ x, w @ y
+    h = (x - mx).T @ ((y - my) * w[:, None])
+    u, _, vt = np.linalg.svd(h)
+    d = np.sign(np.linalg.det(vt.T @ u.T)) or 1.0
+    r = vt.T @ np.diag([1.0, 1.0, d]) @ u.T
+    t = my - r @ mx
+    moved = float(np.sqrt((w * np.square(y - x).sum(axis=1)).sum()))
+    resid = float(np.sqrt((w * np.square(y - x @ r.T - t).sum(axis=1)).sum())) / moved
+    angle = float(np.arccos(np.clip((np.trace(r) - 1.0) / 2.0, -1.0, 1.0)))
+    vec = np.array([r[2, 1] - r[1, 2], r[0, 2] - r[2, 0], r[1, 0] - r[0, 1]])
+    if angle < 1e-6 or np.linalg.norm(vec) < 1e-12:
+        return np.zeros(3), mx, resid
+    axis = vec / np.linalg.norm(vec)
+    pivot = np.linalg.lstsq(np.eye(3) - r, t, rcond=None)[0]
+    pivot = pivot + axis * float((mx - pivot) @ axis)
+    return axis * angle, pivot, resid
+
+
+#: Largest relative residual of a control's rotation fit (weighted RMS misfit over weighted RMS
+#: displacement) for it to join the chain. Measured on the demo rigs: the lantern arm's joints
+#: 0.0000-0.0015 (rigid up to the blend region), the face's skinned jaw with its correctives
+#: 0.18, its blendshapes 0.25 and more. A rule of thumb between them.
+RIGID_TOL = 0.1
+#: Smallest rotation (radians) of a control alone at its far bound for it to join the chain.
+MIN_ANGLE = 0.01
+
+
+def chain_from_anchors(u: np.ndarray, offsets: np.ndarray, neutral: np.ndarray, rest: np.ndarray,
+                       outputs: int, seed: int = 0) -> KinematicChain | None:
+    """A chain over the controls that turn the mesh rigidly, started from their anchors.
+
+    u (C + 1, C), offsets (C + 1, 3V): the rest pose then each control alone at its far bound
+    (``sampling.anchor_poses``), normalised, as offsets from ``neutral`` (V, 3); rest (C,) the
+    rest pose in u. Each control's rotation about an axis is fitted to its anchor
+    (``rotation_fit``); those within ``RIGID_TOL`` join the chain in schema order with that
+    axis, pivot and angle per unit of u. None when no control turns the mesh (a blendshape
+    face: its forward model is then exactly the MLP's)."""
+    v = neutral.shape[0]
+    base = np.asarray(neutral, np.float64) + np.asarray(offsets[0], np.float64).reshape(v, 3)
+    picked, axes, pivots, scales = [], [], [], []
+    for c in range(u.shape[1]):
+        step = float(u[c + 1, c] - rest[c])
+        if abs(step) < 1e-6:
+            continue
+        moved = np.asarray(neutral, np.float64) + np.asarray(offsets[c + 1], np.float64
+                                                             ).reshape(v, 3)
+        rotvec, pivot, resid = rotation_fit(base, moved)
+        angle = float(np.linalg.norm(rotvec))
+        log.debug("chain: control %d turns %.3g rad, rigid residual %.3g", c, angle, resid)
+        if angle < MIN_ANGLE or resid > RIGID_TOL:
+            continue
+        picked.append(c)
+        axes.append(rotvec / angle)
+        pivots.append(pivot)
+        scales.append(angle / step)
+    if not picked:
+        return None
+    length = float(np.linalg.norm(neutral.max(axis=0) - neutral.min(axis=0))) or 1.0
+    log.info("forward: kinematic chain over %d of %d controls", len(picked), u.shape[1])
+    return KinematicChain(np.array(pivots), rest, outputs, length, seed=seed,
+                          controls=np.array(picked), axes=np.array(axes),
+                          scales=np.array(scales))
