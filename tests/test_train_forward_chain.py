@@ -94,14 +94,16 @@ def test_chain_jacobian_and_vjp_equal_autograd() -> None:
 
 
 def test_chain_features_are_the_forward_kinematics() -> None:
-    """With each axis along x and pivots at the origin, the first prefix transform is the
-    rotation about x by s (u - r) (Rodrigues), the second the product of the first two."""
+    """With the axes along x and z, the first prefix transform is the rotation about x by
+    s (u - r) (Rodrigues), the second the product of the first two."""
     chain = KinematicChain(np.zeros((2, 3)), np.array([0.5, 0.5]), 1)
     with torch.no_grad():
         chain.axis.copy_(torch.tensor([[1.0, 0.0, 0.0], [0.0, 0.0, 1.0]]))
         chain.scale.copy_(torch.tensor([2.0, 1.0]))
         chain.pivot.copy_(torch.tensor([[0.0, 0.0, 0.0], [0.0, 1.0, 0.0]]))
-    f = chain.features(torch.tensor([[0.75, 0.25]])).detach().reshape(2, 12)
+    full = chain.features(torch.tensor([[0.75, 0.25]])).detach()
+    np.testing.assert_allclose(full[0, 24:].numpy(), [0.25, -0.25])  # then u - r
+    f = full[:, :24].reshape(2, 12)
     a, b = 0.5, -0.25
     rx = np.array([[1, 0, 0], [0, np.cos(a), -np.sin(a)], [0, np.sin(a), np.cos(a)]])
     rz = np.array([[np.cos(b), -np.sin(b), 0], [np.sin(b), np.cos(b), 0], [0, 0, 1]])
@@ -139,8 +141,9 @@ def chain_data() -> tuple[ChainRig, np.ndarray, np.ndarray, tuple[np.ndarray, np
 
 
 def test_chain_fits_a_skinned_chain_better_than_the_mlp(chain_data, tmp_path) -> None:
-    """Same samples, basis, MLP and schedule: with the chain the held-out error is several times
-    lower (the joints' products of rotations are built in, not learned from sparse samples);
+    """Same samples, basis, MLP and schedule: with the chain the held-out error is over 100x
+    lower (measured: 0.0015 against 2.7 % of D; the joints' products of rotations are built in,
+    not learned from sparse samples, and the chain is exact on linear blend skinning);
     the model with the chain survives a checkpoint and exports to ONNX within parity."""
     torch.manual_seed(0)
     rig, c, x, anchors = chain_data
@@ -151,7 +154,7 @@ def test_chain_fits_a_skinned_chain_better_than_the_mlp(chain_data, tmp_path) ->
                                                                   "chain": True}),
                                    anchors=anchors)
     assert model.chain is not None and model.chain.joint_count == 6
-    assert chained.mean_err_pct_diag < 0.5 * plain.mean_err_pct_diag, (chained, plain)
+    assert chained.mean_err_pct_diag < 0.01 * plain.mean_err_pct_diag, (chained, plain)
     inv = InverseNetwork(rig.neutral[:4], 1.0, rig.schema.lower, rig.schema.upper,
                          rig.schema.defaults, hidden=(8,))
     fwd, _, _ = load_checkpoint(save_checkpoint(tmp_path / "c.pt", model, inv))

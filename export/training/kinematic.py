@@ -11,7 +11,7 @@ move at once (dense poses). Here the product is built in:
     t_c     = p_c - R_c p_c                                 rotation about the pivot p_c
     A_k     = A_{k-1} R_k,  b_k = b_{k-1} + A_{k-1} t_k     prefix transforms, A_0 = I, b_0 = 0
     F_k     = [vec(A_k - I), b_k]                           (12,) per control k
-    out     = [F_1 .. F_C] L^T + l                           (P,) residual-basis coefficients
+    out     = [F_1 .. F_C, u - r] L^T + l                    (P,) residual-basis coefficients
 
 with a learned unit axis a_c, pivot p_c and angle scale s_c per control, composed in the
 schema's order (a rig's controls listed root to tip, as joint chains are; a control that is no
@@ -83,7 +83,7 @@ class KinematicChain(nn.Module):
         self.register_buffer("select", torch.from_numpy(sel))  # (J, C): u_J = u @ select^T
         self.register_buffer("rest", torch.as_tensor(
             np.asarray(rest, np.float32)[idx]).clone())
-        self.out = nn.Linear(12 * j, outputs)
+        self.out = nn.Linear(13 * j, outputs)
         nn.init.zeros_(self.out.weight)
         nn.init.zeros_(self.out.bias)
 
@@ -102,7 +102,9 @@ class KinematicChain(nn.Module):
         return r, t, dr, dt
 
     def features(self, u: torch.Tensor) -> torch.Tensor:
-        """u: (N, C) -> (N, 12J) the prefix transforms [vec(A_k - I), b_k], k = 1..J."""
+        """u: (N, C) -> (N, 13J) the prefix transforms [vec(A_k - I), b_k], k = 1..J, then the
+        chain's own controls u_J - r (the residual the chain fits is the mesh less the linear
+        layer's u W, linear in u and so in no span of rotations)."""
         r, t, _, _ = self._parts(u)
         n = u.shape[0]
         eye = torch.eye(3, dtype=u.dtype)
@@ -112,6 +114,7 @@ class KinematicChain(nn.Module):
             b = b + (a @ t[:, j, :, None])[..., 0]
             a = a @ r[:, j]
             feats.append(torch.cat([(a - eye).reshape(n, 9), b], 1))
+        feats.append(u @ self.select.T - self.rest)
         return torch.cat(feats, 1)
 
     def forward(self, u: torch.Tensor) -> torch.Tensor:
@@ -136,14 +139,16 @@ class KinematicChain(nn.Module):
             da = da @ r[:, j, None] + hit[..., None] * (a @ dr[:, j])[:, None]
             a = a @ r[:, j]
             feats.append(torch.cat([da.reshape(n, c, 9), db], 2))
-        jac = torch.cat(feats, 2) @ self.out.weight.T  # (N, J, 12J) -> (N, J, P)
+        feats.append(onehot.expand(n, c, c))  # d (u_J - r) / d u_J
+        jac = torch.cat(feats, 2) @ self.out.weight.T  # (N, J, 13J) -> (N, J, P)
         return torch.einsum("jc,njp->ncp", self.select, jac)  # (N, C, P)
 
     def vjp(self, u: torch.Tensor, back: torch.Tensor) -> torch.Tensor:
         """(d out / du)^T back for u (N, C), back (N, P) -> (N, C), in reverse mode by hand."""
         r, t, dr, dt = self._parts(u)
         n, c = u.shape[0], self.joint_count
-        g = (back @ self.out.weight).reshape(n, c, 12)  # adjoints of each F_k
+        full = back @ self.out.weight  # (N, 13J): adjoints of each F_k, then of u_J
+        g = full[:, : 12 * c].reshape(n, c, 12)
         eye = torch.eye(3, dtype=u.dtype)
         prev = [eye.expand(n, 3, 3)]  # A_0 .. A_{C-1}
         for j in range(c - 1):
@@ -158,35 +163,50 @@ class KinematicChain(nn.Module):
             g_t = (ap.transpose(1, 2) @ gb[..., None])[..., 0]
             cols.append((g_r * dr[:, j]).sum((1, 2)) + (g_t * dt[:, j]).sum(1))
             ga = ga @ r[:, j].transpose(1, 2) + gb[:, :, None] * t[:, j, None, :]
-        return torch.stack(cols[::-1], 1) @ self.select  # (N, J) -> (N, C)
+        return (torch.stack(cols[::-1], 1) + full[:, 12 * c :]) @ self.select  # (N, C)
 
 
-def rotation_fit(source: np.ndarray, target: np.ndarray) -> tuple[np.ndarray, np.ndarray, float]:
-    """The rotation about an axis that best moves ``source`` (V, 3) onto ``target`` (V, 3),
-    each vertex weighted by its squared displacement (the vertices that move carry the fit):
-    weighted Kabsch (Umeyama 1991, without scale). -> (axis-angle vector (3,), a pivot on the
-    axis (3,), the residual's RMS relative to the displacement's, 1.0 when nothing moves)."""
-    x, y = np.asarray(source, np.float64), np.asarray(target, np.float64)
-    w = np.square(y - x).sum(axis=1)
-    total = float(w.sum())
-    if not total > 0.0:
-        return np.zeros(3), x.mean(axis=0), 1.0
-    w = w / total
+def _kabsch(x: np.ndarray, y: np.ndarray, w: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Weighted Kabsch (Umeyama 1991, without scale): x, y (V, 3), w (V,) summing to 1 ->
+    (R (3, 3), t (3,)) minimising sum_v w_v |y_v - R x_v - t|^2."""
     mx, my = w @ x, w @ y
-    h = (x - mx).T @ ((y - my) * w[:, None])
-    u, _, vt = np.linalg.svd(h)
+    u, _, vt = np.linalg.svd((x - mx).T @ ((y - my) * w[:, None]))
     d = np.sign(np.linalg.det(vt.T @ u.T)) or 1.0
     r = vt.T @ np.diag([1.0, 1.0, d]) @ u.T
-    t = my - r @ mx
-    moved = float(np.sqrt((w * np.square(y - x).sum(axis=1)).sum()))
-    resid = float(np.sqrt((w * np.square(y - x @ r.T - t).sum(axis=1)).sum())) / moved
+    return r, my - r @ mx
+
+
+def rotation_fit(source: np.ndarray, target: np.ndarray, passes: int = 2
+                 ) -> tuple[np.ndarray, np.ndarray, float]:
+    """The rotation about an axis that best moves ``source`` (V, 3) onto ``target`` (V, 3),
+    each vertex weighted by its squared displacement (the vertices that move carry the fit).
+    -> (axis-angle vector (3,), a pivot on the axis (3,), the first fit's weighted residual RMS
+    relative to the displacement's, 1.0 when nothing moves). Then ``passes`` refits on the
+    vertices that first fit within a tenth of their displacement: a joint's own vertices, not
+    the blend region between it and its parent, which bends (the axis and pivot come out
+    exact on a chain skinned with blend regions, where one fit over all is off)."""
+    x, y = np.asarray(source, np.float64), np.asarray(target, np.float64)
+    d2 = np.square(y - x).sum(axis=1)
+    total = float(d2.sum())
+    if not total > 0.0:
+        return np.zeros(3), x.mean(axis=0), 1.0
+    w = d2 / total
+    r, t = _kabsch(x, y, w)
+    resid = float(np.sqrt((w * np.square(y - x @ r.T - t).sum(axis=1)).sum() / (w @ d2)))
+    for _ in range(passes):
+        keep = np.square(y - x @ r.T - t).sum(axis=1) <= 0.01 * d2
+        if keep.sum() < 3 or not float(d2[keep].sum()) > 0.0:
+            break
+        wk = np.where(keep, d2, 0.0)
+        r, t = _kabsch(x, y, wk / wk.sum())
     angle = float(np.arccos(np.clip((np.trace(r) - 1.0) / 2.0, -1.0, 1.0)))
     vec = np.array([r[2, 1] - r[1, 2], r[0, 2] - r[2, 0], r[1, 0] - r[0, 1]])
+    centre = w @ x
     if angle < 1e-6 or np.linalg.norm(vec) < 1e-12:
-        return np.zeros(3), mx, resid
+        return np.zeros(3), centre, resid
     axis = vec / np.linalg.norm(vec)
     pivot = np.linalg.lstsq(np.eye(3) - r, t, rcond=None)[0]
-    pivot = pivot + axis * float((mx - pivot) @ axis)
+    pivot = pivot + axis * float((centre - pivot) @ axis)
     return axis * angle, pivot, resid
 
 
