@@ -148,7 +148,7 @@ def realign_fit(fm: FrameMoments, const: BasisConstants, weights: np.ndarray, *,
                 + z @ c.cross.reshape(r, 9))  # (N, 9): [k, j] of sum_r z_r (m_r + cross_r)
     cross = fm.q.transpose(0, 2, 1) + c.scatter + weighted.reshape(n_frames, 3, 3
                                                                    ).transpose(0, 2, 1)
-    n = np.full(n_frames, c.count)
+    n = c.count  # pairs per frame, the same for every frame
     sq_s = None
     if scale:  # the source's spread sets the scale; a rigid fit does not read it
         sq_s = fm.yy + 2.0 * np.trace(fm.q, axis1=1, axis2=2) + np.trace(c.scatter)
@@ -160,19 +160,34 @@ def realign_fit(fm: FrameMoments, const: BasisConstants, weights: np.ndarray, *,
         if not centred:
             centre = c.centre.astype(np.float32)
             es, et = es - centre, et - centre
-        ones = np.ones((1, es.shape[1]), np.float32)
+        ones = _ones(es.shape[1])
         sum_s = sum_s + np.matmul(ones, es)[:, 0].astype(np.float64)
         sum_t = sum_t + np.matmul(ones, et)[..., 0, :].astype(np.float64)
         cross = cross + np.matmul(np.swapaxes(et, -1, -2), es).astype(np.float64)  # t_e x_e^T
         if sq_s is not None:
             sq_s = sq_s + np.einsum("nek,nek->n", es, es, dtype=np.float64)
         n = n + es.shape[1]
-    mu_s, mu_t = sum_s / n[:, None], sum_t / n[:, None]
-    cov = cross / n[:, None, None] - mu_t[:, :, None] * mu_s[:, None, :]
+    mu_s, mu_t = sum_s / n, sum_t / n
+    cov = cross / n - mu_t[:, :, None] * mu_s[:, None, :]
     var_s = (np.zeros(n_frames) if sq_s is None
              else sq_s / n - (mu_s * mu_s).sum(axis=1))
     fit = _umeyama_batch(cov, mu_s, var_s, mu_t, 0.0, scale)
     return RigidBatch(fit.rotation, fit.translation, fit.scale, np.zeros(z.shape[0]))
+
+
+_ONES: dict[int, np.ndarray] = {}
+
+
+def _ones(count: int) -> np.ndarray:
+    """(1, count) float32 ones, read-only, made once per count (the sums as BLAS products)."""
+    ones = _ONES.get(count)
+    if ones is None:
+        if len(_ONES) >= 8:
+            _ONES.clear()
+        ones = np.ones((1, count), np.float32)
+        ones.setflags(write=False)
+        _ONES[count] = ones
+    return ones
 
 
 def uncentre(fit: RigidBatch, centre: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
