@@ -60,9 +60,10 @@ def _counted(model: SolveModel) -> list[int]:
 
 def test_only_a_solve_before_a_realignment_is_rough(tmp_path: Path) -> None:
     """With a realignment the first solve takes ROUGH_STEPS steps (fewer graph evaluations than
-    the bundle's), and the controls stay within a small share of the range of those with the
-    full first solve, in a batch and one frame at a time (the live path); with none (passes 0,
-    or not stabilised) the solve is the bundle's own, bit for bit."""
+    the bundle's), as does the middle one of two passes, and the controls stay within a small
+    share of the range of those with full solves, in a batch and one frame at a time (the live
+    path); with none (passes 0, or not stabilised) the solve is the bundle's own, bit for
+    bit."""
     path = build_synthetic_bundle(tmp_path / "m.rcb", refine="projected", seed=13,
                                   inverse="mlp", hidden=32)
     model = open_model(load_bundle(path), label="m", threads=1)
@@ -77,7 +78,7 @@ def test_only_a_solve_before_a_realignment_is_rough(tmp_path: Path) -> None:
     calls = {}
     out = {}
     for label, m in (("rough", model), ("full", full)):
-        for passes in (0, 1):
+        for passes in (0, 1, 2):
             count[0] = 0
             out[label, passes], _ = solve_points(m, frames, points, rigid, passes=passes,
                                                  scale=False)
@@ -90,9 +91,11 @@ def test_only_a_solve_before_a_realignment_is_rough(tmp_path: Path) -> None:
     np.testing.assert_array_equal(out["rough", 0], out["full", 0])
     np.testing.assert_array_equal(out["rough", 0], model.inverse.solve(points))
     assert calls["rough", 1] < calls["full", 1]
+    assert calls["rough", 2] - calls["rough", 1] < calls["full", 2] - calls["full", 1]
     assert calls["rough", "one"] < calls["full", "one"]
     # controls in [0, 1]; the realignment's target moved, the solve from the moved frame did not
     assert float(np.abs(out["rough", 1] - out["full", 1]).max()) < 0.02
+    assert float(np.abs(out["rough", 2] - out["full", 2]).max()) < 0.02
     # the live path (one frame) and the batch path agree
     np.testing.assert_allclose(out["rough", "one"], out["rough", 1], atol=1e-5)
     unstabilised, _ = solve_points(model, frames, points, None, passes=1, scale=False)

@@ -39,7 +39,13 @@ from rigcast.runtime.solve.align import (
 )
 from rigcast.runtime.solve.inference import ForwardModel, InverseModel, SolvePass
 from rigcast.runtime.solve.manifold import floor_for_bundle, training_fit_error
-from rigcast.runtime.solve.moments import compose, projection_state, realign_fit, uncentre
+from rigcast.runtime.solve.moments import (
+    compose,
+    moved_state,
+    projection_state,
+    realign_fit,
+    uncentre,
+)
 from rigcast.runtime.solve.one_euro import OneEuroFilter, OneEuroParams
 from rigcast.runtime.solve.refine import Refiner
 from rigcast.runtime.solve.stages import clamp, fit_error, gather_inputs
@@ -204,14 +210,18 @@ def solve_points(model: SolveModel, frames: np.ndarray, points: np.ndarray,
     the first: it measures the stabilisation, as before.
 
     When a realignment follows (moment form), the first solve only sets the realignment's
-    target, so its refinement takes ``ROUGH_STEPS`` steps (``RoughRefiner``); the solve from the
-    moved frame takes the bundle's. Measured on 600-frame noisy takes (0.15 % of D noise, with
-    and without head motion, seeds 7, 8, 31, 32), stabilised: mean error against the clean mesh
+    target, so its refinement takes ``ROUGH_STEPS`` steps (``RoughRefiner``), as does every
+    solve but the last with more than one pass; the last takes the bundle's. Measured on
+    600-frame noisy takes (0.15 % of D noise, with and without head motion, seeds 7, 8, 31,
+    32), stabilised: mean error against the clean mesh
     within 0.2 % of the full first solve's on the demo face, the linear face and zoo rigs 269008
     and 899926; recoverability unchanged; noise-free held-out poses of the demo face 0.88e-5 ->
     0.94e-5 D with the runtime's default refinement (0.005 % of D is the issue's floor). It
     takes 3 of 12 refinement-graph evaluations off a frame of the latency bench's bundle (an
-    untrained network: every step runs), 0.4 of 5.8 off the demo face's."""
+    untrained network: every step runs), 0.4 of 5.8 off the demo face's. Two passes with the
+    middle solve rough cost about what one pass with a full first solve did, and took the
+    noisy takes' error 6-17 % lower on both faces (13.7, 12.8, 13.5, 12.1 against 16.0, 15.5,
+    14.4, 13.9 e-5 D on the demo face), as two full passes did."""
     inverse = model.inverse
     rough = (model.rough.get() if model.rough is not None and rigid is not None and passes > 0
              and inverse.moment_form is not None else None)
@@ -248,7 +258,8 @@ def _realign_moments(model: SolveModel, frames: np.ndarray, points: np.ndarray, 
     if form.rest is not None:
         target = np.empty((frames.shape[0], extra.size, 3), np.float32)
         target[:, : stable_home.shape[0]] = stable_home
-    for _ in range(passes):
+    rough = model.rough.get() if model.rough is not None else None
+    for done in range(1, passes + 1):
         z = form.weights(solved)
         if form.rest is not None:
             target[:, stable_home.shape[0] :] = form.rest_targets(z)
@@ -256,8 +267,14 @@ def _realign_moments(model: SolveModel, frames: np.ndarray, points: np.ndarray, 
                           extra_target=target, scale=scale, centred=True)
         linear, shift = uncentre(fit, form.constants.centre)
         moved = (net @ linear.transpose(0, 2, 1) + shift[:, None]).astype(np.float32)
-        solved = inverse.solve_moved(moved, first.moments,
-                                     fit.scale[:, None, None] * fit.rotation, fit.translation)
+        scaled = fit.scale[:, None, None] * fit.rotation
+        if done == passes or rough is None:
+            solved = inverse.solve_moved(moved, first.moments, scaled, fit.translation)
+        else:  # inverse.solve_moved with the rough refiner: the next realignment reads it
+            solved = inverse.network(moved)
+            if np.isfinite(solved).all():
+                solved = rough.refine(solved, state=moved_state(first.moments, form.constants,
+                                                                scaled, fit.translation))
         _check_finite(solved, first_frame)
     return solved, compose(rigid, linear, shift)
 
