@@ -219,9 +219,10 @@ def solve_points(model: SolveModel, frames: np.ndarray, points: np.ndarray,
     0.94e-5 D with the runtime's default refinement (0.005 % of D is the issue's floor). It
     takes 3 of 12 refinement-graph evaluations off a frame of the latency bench's bundle (an
     untrained network: every step runs), 0.4 of 5.8 off the demo face's. Two passes with the
-    middle solve rough cost about what one pass with a full first solve did, and took the
-    noisy takes' error 6-17 % lower on both faces (13.7, 12.8, 13.5, 12.1 against 16.0, 15.5,
-    14.4, 13.9 e-5 D on the demo face), as two full passes did."""
+    middle solve rough took the noisy takes' error 6-17 % lower on both faces (13.7, 12.8,
+    13.5, 12.1 against 16.0, 15.5, 14.4, 13.9 e-5 D on the demo face), as two full passes did,
+    for a frame about 1.2x (bench bundle) and 1.4x (demo face) one pass with a full first
+    solve (thread time, one frame at a time)."""
     inverse = model.inverse
     rough = (model.rough.get() if model.rough is not None and rigid is not None and passes > 0
              and inverse.moment_form is not None else None)
