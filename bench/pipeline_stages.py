@@ -1,13 +1,14 @@
 """The live pipeline's own cost per frame, in one process, with no network and warm caches.
 
     python bench/pipeline_stages.py [--vertices 5000 20000] [--frames 3000] [--no-refine]
-                                    [--out DIR]
+                                    [--realign N] [--out DIR]
 
 For each vertex count it builds the same synthetic bundle as bench/latency.py and runs the
 server's per-frame code (protocol decode, then runtime/solve/pipeline.py StreamState.process, the solve
 core on a batch of one: stabilise, infer (with the bundle's refinement steps unless
 ``--no-refine``), filter, clamp, publish with the head pose on a PUB socket with no subscriber)
-back to back, the first 500 frames being warm-up. It prints per-stage medians and p99 in
+back to back, the first 500 frames being warm-up; ``--realign N`` sets the stream's realignment
+passes (default 1, the server's). It prints per-stage medians and p99 in
 microseconds. Set beside bench/latency.py, it separates what the code costs from what waking up
 and crossing the sockets costs: the paced server's stage medians there include cold caches after
 each 8 ms idle gap and the ZeroMQ I/O thread's work on the same core. ``--out DIR`` writes
@@ -37,12 +38,14 @@ from rigcast.runtime.solve.pipeline import StreamState, load_stream_model
 WARMUP = 500
 
 
-def measure(vertices: int, frames: int, work: Path, refine: bool = True) -> dict[str, Any]:
+def measure(vertices: int, frames: int, work: Path, refine: bool = True,
+            realign: int = 1) -> dict[str, Any]:
     path = build_synthetic_bundle(work / f"bench_{vertices}_{refine}.rcb", vertices=vertices,
                                   controls=CONTROLS, inputs=INPUTS, stable=STABLE,
                                   inverse="mlp", hidden=HIDDEN, seed=SEED, refine=refine)
     model = load_stream_model(path, threads=1, threshold=None, factor=3.0)
-    state = StreamState(StreamConfig(stream="bench", bundle=path), model, window=1000)
+    state = StreamState(StreamConfig(stream="bench", bundle=path, realign=realign), model,
+                        window=1000)
     rig = make_synthetic_rig(vertices, CONTROLS, inputs=INPUTS, stable=STABLE, seed=SEED)
     rng = np.random.default_rng(SEED)
     meshes = rig.evaluate(rng.uniform(0, 1, (32, CONTROLS)).astype(np.float32))
@@ -69,8 +72,8 @@ def measure(vertices: int, frames: int, work: Path, refine: bool = True) -> dict
     us = np.asarray(rows, dtype=np.float64) / 1e3
     med = dict(zip(STAGES, np.median(us, axis=0).tolist(), strict=True))
     p99 = dict(zip(STAGES, np.percentile(us, 99, axis=0).tolist(), strict=True))
-    return {"vertices": vertices, "frames": frames, "refine": refine, "median_us": med,
-            "p99_us": p99}
+    return {"vertices": vertices, "frames": frames, "refine": refine, "realign": realign,
+            "median_us": med, "p99_us": p99}
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -80,15 +83,19 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--out", type=Path, help="folder for pipeline_stages.json")
     ap.add_argument("--no-refine", action="store_true",
                     help="a bundle without the refinement graph (the inverse network alone)")
+    ap.add_argument("--realign", type=int, default=1,
+                    help="the stream's realignment passes (StreamConfig.realign)")
     args = ap.parse_args(argv)
     runs = []
     with tempfile.TemporaryDirectory(prefix="rigcast-stages-") as tmp:
         for v in args.vertices:
-            run = measure(v, args.frames, Path(tmp), refine=not args.no_refine)
+            run = measure(v, args.frames, Path(tmp), refine=not args.no_refine,
+                          realign=args.realign)
             runs.append(run)
             for label, key in (("median", "median_us"), ("p99", "p99_us")):
                 cells = ", ".join(f"{s} {run[key][s]:.1f}" for s in STAGES)
-                print(f"V={v} refine={'off' if args.no_refine else 'on'} {label} (us): {cells}")
+                print(f"V={v} refine={'off' if args.no_refine else 'on'} realign={args.realign} "
+                      f"{label} (us): {cells}")
     if args.out is not None:
         args.out.mkdir(parents=True, exist_ok=True)
         (args.out / "pipeline_stages.json").write_text(json.dumps({"runs": runs}, indent=2))
