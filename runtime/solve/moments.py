@@ -88,6 +88,10 @@ class FrameMoments:
         return FrameMoments(self.m[rows], self.q[rows], self.s[rows], self.yy[rows])
 
 
+_EYE3 = np.eye(3)
+_EYE3.setflags(write=False)
+
+
 def projection_state(fm: FrameMoments) -> np.ndarray:
     """(N, R + 1): the projection p = A y (p_r = trace(m_r)), then |y|^2 (the refinement's state)."""
     p = np.einsum("nrkk->nr", fm.m)
@@ -108,23 +112,25 @@ def moved_state(fm: FrameMoments, const: BasisConstants, linear: np.ndarray,
     lin = np.asarray(linear, np.float64)
     t = np.asarray(shift, np.float64)
     n, r = fm.m.shape[:2]
-    d = lin - np.eye(3)
+    d = lin - _EYE3
     # Each contraction as one matmul on flattened 3 x 3 blocks (a batch of one frame pays
-    # numpy's per-call cost, not the arithmetic): <L, m_r^T> = m_r.flat . L^T.flat.
+    # numpy's per-call cost, not the arithmetic): <L, m_r^T> = m_r.flat . L^T.flat. The row
+    # sums are np.add.reduce, what ndarray.sum calls, without its Python wrapper.
     lin_t = lin.transpose(0, 2, 1).reshape(n, 9, 1)
     p = (np.matmul(fm.m.reshape(n, r, 9), lin_t)[..., 0]
          + d.transpose(0, 2, 1).reshape(n, 9) @ const.cross.reshape(r, 9).T
          + t @ const.colsum.T)
     lin_flat, d_flat = lin.reshape(n, 9), d.reshape(n, 9)
-    s2 = (lin_flat * lin_flat).sum(axis=1) / 3.0
+    add = np.add.reduce
+    s2 = add(lin_flat * lin_flat, axis=1) / 3.0
     x = np.matmul(lin.transpose(0, 2, 1), d)  # L^T (L - I)
     lin_s = np.matmul(lin, fm.s[..., None])[..., 0]  # L s_y
     d_sc = np.matmul(d, const.scatter)  # (L - I) scatter
-    yy = (s2 * fm.yy + 2.0 * (x.reshape(n, 9) * fm.q.reshape(n, 9)).sum(axis=1)
-          + 2.0 * (t * lin_s).sum(axis=1)
-          + (d_sc.reshape(n, 9) * d_flat).sum(axis=1)
-          + 2.0 * (t * (d @ const.oc_sum)).sum(axis=1)
-          + const.count * (t * t).sum(axis=1))
+    yy = (s2 * fm.yy + 2.0 * add(x.reshape(n, 9) * fm.q.reshape(n, 9), axis=1)
+          + 2.0 * add(t * lin_s, axis=1)
+          + add(d_sc.reshape(n, 9) * d_flat, axis=1)
+          + 2.0 * add(t * (d @ const.oc_sum), axis=1)
+          + const.count * add(t * t, axis=1))
     out: np.ndarray = np.concatenate([p, yy[:, None]], axis=1)
     return out
 
