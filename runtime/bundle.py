@@ -71,6 +71,8 @@ PROJECT_MOMENTS = "moments"  # the moment form (runtime/solve/moments.py)
 PROJECT_CONSTANTS = "moment_constants"
 PROJECT_CENTRE = "moment_centre"
 REFINE_WEIGHTS = "basis_weights"  # z = [u; MLP(u)] of the projected refinement
+REFINE_TANGENTS = "tangents"  # (N, T, C) directions of the curvature at the current point
+REFINE_CURVATURE = "curvature"  # (N, T, T) the Gauss-Newton matrix along them
 _MEMBERS = ("manifest.json", "arrays.npz", "inverse.onnx", "forward.onnx")
 _OPTIONAL = ("refine.onnx", "refine_project.onnx")
 

@@ -321,6 +321,7 @@ def test_projected_refine_core_matches_the_direct_fit_on_its_vertices() -> None:
         PROJECT_POINTS,
         REFINE_CONTROLS,
         REFINE_PROJECTION,
+        REFINE_TANGENTS,
     )
     from rigcast.runtime.solve.moments import FrameMoments, projection_state
     from rigcast.runtime.solve.refine import project_naive
@@ -353,8 +354,9 @@ def test_projected_refine_core_matches_the_direct_fit_on_its_vertices() -> None:
                                                     {PROJECT_POINTS: pts})
     state = projection_state(FrameMoments.from_outputs(mo, norm))
     np.testing.assert_allclose(state, project_naive(pts, a, offset), rtol=1e-4, atol=1e-3)
-    g, quad, z = session(data).run(None, {REFINE_CONTROLS: ctrl,
-                                          REFINE_PROJECTION: state[:, :-1].astype(np.float32)})
+    g, quad, z, _ = session(data).run(None, {
+        REFINE_CONTROLS: ctrl, REFINE_PROJECTION: state[:, :-1].astype(np.float32),
+        REFINE_TANGENTS: np.zeros((7, 0, c), np.float32)})
     np.testing.assert_allclose(g, refine_gradient_naive(fwd, idx, ctrl, pts), rtol=1e-3,
                                atol=1e-3)
     with torch.no_grad():

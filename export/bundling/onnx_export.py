@@ -45,7 +45,8 @@ class ExportError(RigcastError, RuntimeError):
 
 
 def _export(module: nn.Module, example: torch.Tensor | tuple[torch.Tensor, ...],
-            input_name: str | list[str], output_name: str | list[str]) -> bytes:
+            input_name: str | list[str], output_name: str | list[str],
+            axes: dict[str, dict[int, str]] | None = None) -> bytes:
     buf = io.BytesIO()
     module.eval()
     inputs = [input_name] if isinstance(input_name, str) else input_name
@@ -58,7 +59,7 @@ def _export(module: nn.Module, example: torch.Tensor | tuple[torch.Tensor, ...],
             buf,  # type: ignore[arg-type]  # file-like objects are accepted at runtime
             input_names=inputs,
             output_names=outputs,
-            dynamic_axes={name: {0: "N"} for name in inputs + outputs},
+            dynamic_axes={name: {0: "N"} for name in inputs + outputs} | (axes or {}),
             opset_version=OPSET,
             do_constant_folding=True,
             dynamo=False,
@@ -175,41 +176,53 @@ def export_refine(graph: nn.Module, lower: np.ndarray, upper: np.ndarray,
 def export_refine_core(graph: nn.Module, lower: np.ndarray, upper: np.ndarray,
                        example_projections: np.ndarray, seed: int = 0) -> tuple[bytes, float]:
     """Export the projected refinement graph (``export.training.refine.RefineCore``): inputs
-    ``controls`` (N, C) and ``projection`` (N, R) -> outputs ``gradient`` (N, C) float32,
-    ``quad`` (N,) float64 and ``basis_weights`` (N, R) float64. example_projections (M, R):
-    realistic projections for the parity check. returns: (model bytes, worst relative parity
-    error)."""
+    ``controls`` (N, C), ``projection`` (N, R) and ``tangents`` (N, T, C) -> outputs
+    ``gradient`` (N, C) float32, ``quad`` (N,) float64, ``basis_weights`` (N, R) float64 and
+    ``curvature`` (N, T, T) float64. example_projections (M, R): realistic projections for the
+    parity check (with three random tangents a frame). returns: (model bytes, worst relative
+    parity error)."""
     from rigcast.runtime.bundle import (
         REFINE_CONTROLS,
+        REFINE_CURVATURE,
         REFINE_GRADIENT,
         REFINE_PROJECTION,
         REFINE_QUAD,
+        REFINE_TANGENTS,
         REFINE_WEIGHTS,
     )
 
     return _export_refine_pair(graph, lower, upper, example_projections, seed,
-                               (REFINE_CONTROLS, REFINE_PROJECTION),
-                               (REFINE_GRADIENT, REFINE_QUAD, REFINE_WEIGHTS))
+                               (REFINE_CONTROLS, REFINE_PROJECTION, REFINE_TANGENTS),
+                               (REFINE_GRADIENT, REFINE_QUAD, REFINE_WEIGHTS, REFINE_CURVATURE),
+                               tangents=3)
 
 
 def _export_refine_pair(graph: nn.Module, lower: np.ndarray, upper: np.ndarray,
-                        example: np.ndarray, seed: int, inputs: tuple[str, str],
-                        outputs: tuple[str, ...]) -> tuple[bytes, float]:
-    """Export a refinement graph of (controls, ``example``-shaped input) -> its outputs, and
-    check it: the example inputs, paired with random controls within the bounds, through
-    onnxruntime against torch, relative to the largest magnitude of each output (<= 1e-4)."""
+                        example: np.ndarray, seed: int, inputs: tuple[str, ...],
+                        outputs: tuple[str, ...], tangents: int = 0) -> tuple[bytes, float]:
+    """Export a refinement graph of (controls, ``example``-shaped input[, tangents]) -> its
+    outputs, and check it: the example inputs, paired with random controls within the bounds
+    (and ``tangents`` random directions a frame, when the graph takes them, its second axis
+    dynamic), through onnxruntime against torch, relative to the largest magnitude of each
+    output (<= 1e-4)."""
     graph = graph.eval()
     rng = np.random.default_rng(seed)
     lo, hi = np.asarray(lower, np.float32), np.asarray(upper, np.float32)
     second = np.asarray(example, np.float32)
     ctrl = (lo + (hi - lo) * rng.random((second.shape[0], lo.shape[0]))).astype(np.float32)
-    torch_in = (torch.from_numpy(ctrl), torch.from_numpy(second))
-    data = _export(graph, torch_in, list(inputs), list(outputs))
+    arrays = [ctrl, second]
+    axes: dict[str, dict[int, str]] = {}
+    if tangents:
+        arrays.append(rng.standard_normal((second.shape[0], tangents, lo.shape[0]))
+                      .astype(np.float32))
+        axes = {inputs[2]: {0: "N", 1: "T"}, outputs[-1]: {0: "N", 1: "T", 2: "T"}}
+    torch_in = tuple(torch.from_numpy(a) for a in arrays)
+    data = _export(graph, torch_in, list(inputs), list(outputs), axes)
     check_graph(data, "refine")
     worst = 0.0
     with torch.no_grad():
         refs = graph(*torch_in)
-    got = session(data).run(None, {inputs[0]: ctrl, inputs[1]: second})
+    got = session(data).run(None, dict(zip(inputs, arrays, strict=True)))
     for g, r in zip(got, refs, strict=True):
         ref = r.numpy()
         worst = max(worst, float(np.max(np.abs(g - ref)) / max(float(np.max(np.abs(ref))), 1e-12)))

@@ -32,11 +32,13 @@ from rigcast.runtime.bundle import (
     PROJECT_NORM,
     PROJECT_POINTS,
     REFINE_CONTROLS,
+    REFINE_CURVATURE,
     REFINE_GRADIENT,
     REFINE_MESH,
     REFINE_PROJECTION,
     REFINE_QUAD,
     REFINE_RESIDUAL,
+    REFINE_TANGENTS,
     REFINE_WEIGHTS,
     RefineProjection,
     RestOfMesh,
@@ -284,18 +286,22 @@ def projected_refine_graph(rig: SyntheticRig, cap: int = 4096, moments: bool = T
     ]
     outputs = [helper.make_tensor_value_info(REFINE_GRADIENT, TensorProto.FLOAT, ["N", n_controls]),
                helper.make_tensor_value_info(REFINE_QUAD, TensorProto.DOUBLE, ["N"])]
-    if moments:
-        nodes.append(helper.make_node("Identity", ["z"], [REFINE_WEIGHTS]))
-        outputs.append(helper.make_tensor_value_info(REFINE_WEIGHTS, TensorProto.DOUBLE,
-                                                     ["N", n_controls]))
-    graph = helper.make_graph(
-        nodes,
-        "synthetic_refine_projected",
-        [helper.make_tensor_value_info(REFINE_CONTROLS, TensorProto.FLOAT, ["N", n_controls]),
-         helper.make_tensor_value_info(REFINE_PROJECTION, TensorProto.FLOAT, ["N", n_controls])],
-        outputs,
-        inits,
-    )
+    inputs = [helper.make_tensor_value_info(REFINE_CONTROLS, TensorProto.FLOAT, ["N", n_controls]),
+              helper.make_tensor_value_info(REFINE_PROJECTION, TensorProto.FLOAT,
+                                            ["N", n_controls])]
+    if moments:  # what builds write: z, and the curvature V G V^T along tangents V (J_z = I)
+        nodes += [helper.make_node("Identity", ["z"], [REFINE_WEIGHTS]),
+                  helper.make_node("Cast", [REFINE_TANGENTS], ["vt"], to=TensorProto.DOUBLE),
+                  helper.make_node("MatMul", ["vt", "gram"], ["vg"]),
+                  helper.make_node("Transpose", ["vt"], ["vtt"], perm=[0, 2, 1]),
+                  helper.make_node("MatMul", ["vg", "vtt"], [REFINE_CURVATURE])]
+        outputs += [helper.make_tensor_value_info(REFINE_WEIGHTS, TensorProto.DOUBLE,
+                                                  ["N", n_controls]),
+                    helper.make_tensor_value_info(REFINE_CURVATURE, TensorProto.DOUBLE,
+                                                  ["N", "T", "T"])]
+        inputs.append(helper.make_tensor_value_info(REFINE_TANGENTS, TensorProto.FLOAT,
+                                                    ["N", "T", n_controls]))
+    graph = helper.make_graph(nodes, "synthetic_refine_projected", inputs, outputs, inits)
     at_lo = rig.neutral[idx] + np.einsum("c,cvk->vk", lo.astype(np.float64), rig.deltas[:, idx])
     offset = at_lo.reshape(-1).astype(np.float32)  # the mesh at u = 0
     project = moments_graph(a, offset) if moments else project_graph(a, offset)

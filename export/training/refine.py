@@ -50,6 +50,7 @@ class RefineGraph(nn.Module):
         self.layers: list[nn.Linear] = [m for m in layers if isinstance(m, nn.Linear)]
         if any(not isinstance(m, (nn.Linear, nn.SiLU)) for m in layers):
             raise ValueError("the refinement graph supports Linear/SiLU correction MLPs only")
+        self.chain = forward.chain
 
     def forward(self, controls: torch.Tensor, mesh: torch.Tensor) -> tuple[torch.Tensor,
                                                                             torch.Tensor]:
@@ -60,11 +61,16 @@ class RefineGraph(nn.Module):
         pre: list[torch.Tensor] = []
         if len(self.linears):
             m, pre = _mlp_pre(self.layers, u)
+            if self.chain is not None:
+                m = m + self.chain(u)
             flat = flat + m @ self.sub.basis  # (N, 3K)
         r = mesh.reshape(n, -1) - flat  # (N, 3K)
         grad = r @ self.sub.weight.T  # (N, C): W_K r
         if len(self.linears):
-            grad = grad + _mlp_vjp(self.layers, pre, r @ self.sub.basis.T)  # B_K r back
+            back = r @ self.sub.basis.T  # B_K r
+            grad = grad + _mlp_vjp(self.layers, pre, back)
+            if self.chain is not None:
+                grad = grad + self.chain.vjp(u, back)
         return grad, (r * r).sum(dim=1)
 
 
@@ -83,6 +89,8 @@ def coefficient_jacobian(forward: ForwardApproximator, u: torch.Tensor) -> torch
             sg = torch.sigmoid(a)
             tangent = tangent * (sg * (1.0 + a * (1.0 - sg)))[:, None, :]  # SiLU'(a)
             h = a * sg
+    if forward.chain is not None:
+        tangent = tangent + forward.chain.jacobian(u)
     return tangent
 
 
@@ -174,8 +182,8 @@ def _mlp_vjp(linears: Sequence[nn.Linear], pre: list[torch.Tensor], back: torch.
 
 
 class RefineCore(nn.Module):
-    """(controls (N, C), projection (N, R)) -> (gradient (N, C), quad (N,) float64, z (N, R)
-    float64), R = C + P.
+    """(controls (N, C), projection (N, R), tangents (N, T, C)) -> (gradient (N, C), quad (N,)
+    float64, z (N, R) float64, curvature (N, T, T) float64), R = C + P.
 
     The projected refinement's graph. A frame's S vertices x are projected once (runtime
     ``refine.project``): p = A y, y = x - offset, A = [W_S; B_S] (R, 3S) the forward model's
@@ -200,16 +208,19 @@ class RefineCore(nn.Module):
         self.layers: list[nn.Linear] = [m for m in layers if isinstance(m, nn.Linear)]
         if any(not isinstance(m, (nn.Linear, nn.SiLU)) for m in layers):
             raise ValueError("the refinement graph supports Linear/SiLU correction MLPs only")
+        self.chain = forward.chain
         self.c = int(forward.lower.shape[0])
         self.register_buffer("gram", torch.from_numpy(np.asarray(gram, np.float64).copy()))
         self.register_buffer("lower", forward.lower.clone())
         self.register_buffer("upper", forward.upper.clone())
 
-    def forward(self, controls: torch.Tensor, projection: torch.Tensor
-                ) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
+    def forward(self, controls: torch.Tensor, projection: torch.Tensor, tangents: torch.Tensor
+                ) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor, torch.Tensor]:
         u = normalise_controls(controls, self.lower, self.upper)  # (N, C)
         if len(self.linears):
             m, pre = _mlp_pre(self.layers, u)
+            if self.chain is not None:
+                m = m + self.chain(u)
             z = torch.cat([u, m], dim=1).double()  # (N, R)
         else:
             z, pre = u.double(), []
@@ -221,7 +232,29 @@ class RefineCore(nn.Module):
         grad = e32[:, : self.c]
         if len(self.linears):
             grad = grad + _mlp_vjp(self.layers, pre, e32[:, self.c :])
-        return grad, quad, z
+            if self.chain is not None:
+                grad = grad + self.chain.vjp(u, e32[:, self.c :])
+        return grad, quad, z, self.curvature(u, pre, tangents)
+
+    def curvature(self, u: torch.Tensor, pre: list[torch.Tensor], tangents: torch.Tensor
+                  ) -> torch.Tensor:
+        """The Gauss-Newton matrix at u (N, C) along the tangents V (N, T, C) (normalised
+        controls; the runtime sends the frame's active controls as one-hot rows):
+        (J_z V)^T G (J_z V) -> (N, T, T) float64, J_z = dz/du = [I; dMLP/du] in forward mode
+        (Linear, then times SiLU'(a); the chain's own Jacobian added)."""
+        jz = tangents
+        if len(self.linears):
+            t = tangents
+            for i, lin in enumerate(self.layers):
+                t = t @ lin.weight.T  # (N, T, out)
+                if i < len(self.layers) - 1:
+                    s = torch.sigmoid(pre[i])
+                    t = t * (s * (1.0 + pre[i] * (1.0 - s)))[:, None, :]  # SiLU'(a)
+            if self.chain is not None:
+                t = t + tangents @ self.chain.jacobian(u)
+            jz = torch.cat([tangents, t], dim=2)  # (N, T, R)
+        jd = jz.double()
+        return (jd @ self.gram) @ jd.transpose(1, 2)
 
 
 def vertex_information(forward: ForwardApproximator, poses: np.ndarray, chunk: int = 1024

@@ -80,22 +80,39 @@ def solve_active(hessian: np.ndarray, g: np.ndarray, free: np.ndarray, damping: 
             h[np.diag_indices(a.size)] = h[np.diag_indices(a.size)] * (1.0 + damping) + ridge[0, a]
             delta[0, a] = np.linalg.solve(h, g[0, a])
         return delta
-    counts = free.sum(axis=1)
-    width = int(counts.max()) if n else 0
-    if width == 0:
+    idx, valid = gather_active(free)
+    if idx.shape[1] == 0:
         return delta
-    idx = np.argsort(~free, axis=1, kind="stable")[:, :width]  # active controls first
-    valid = np.arange(width)[None] < counts[:, None]  # (N, W)
-    pair = valid[:, :, None] & valid[:, None, :]
-    sub = np.where(pair, hessian[idx[:, :, None], idx[:, None, :]], 0.0)  # (N, W, W)
-    diag = np.einsum("nii->ni", sub)  # (N, W) view of each frame's diagonal
-    eye = np.where(valid, 1.0 + damping, 1.0)
-    ridge_w = np.take_along_axis(ridge, idx, axis=1)
-    sub[:, np.arange(width), np.arange(width)] = np.where(valid, diag * eye + ridge_w, 1.0)
-    rhs = np.where(valid, np.take_along_axis(g, idx, axis=1), 0.0)
-    step = np.linalg.solve(sub, rhs[..., None])[..., 0]  # (N, W)
-    np.put_along_axis(delta, idx, np.where(valid, step, 0.0), axis=1)
+    sub = hessian[idx[:, :, None], idx[:, None, :]]  # (N, W, W)
+    step = solve_gathered(sub, np.take_along_axis(g, idx, axis=1), valid, damping,
+                          np.take_along_axis(ridge, idx, axis=1))
+    np.put_along_axis(delta, idx, step, axis=1)
     return delta
+
+
+def gather_active(free: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """free (N, C) bool -> (idx (N, W) each frame's active controls first, in order, then
+    padding; valid (N, W) bool, which entries are active), W the largest active count."""
+    counts = free.sum(axis=1)
+    width = int(counts.max()) if free.shape[0] else 0
+    idx = np.argsort(~free, axis=1, kind="stable")[:, :width]
+    return idx, np.arange(width)[None] < counts[:, None]
+
+
+def solve_gathered(sub: np.ndarray, rhs: np.ndarray, valid: np.ndarray, damping: float,
+                   ridge: np.ndarray) -> np.ndarray:
+    """Each frame's gathered system: sub (N, W, W) the curvature on its active controls
+    (anything in padded rows and columns), rhs, ridge (N, W), valid (N, W) bool -> step (N, W),
+    zero where not valid: (sub (1 + damping on the diagonal) + ridge) step = rhs on the valid
+    entries, identity rows on the padding."""
+    pair = valid[:, :, None] & valid[:, None, :]
+    sub = np.where(pair, sub, 0.0)
+    w = sub.shape[1]
+    diag = sub[:, np.arange(w), np.arange(w)]
+    sub[:, np.arange(w), np.arange(w)] = np.where(valid, diag * (1.0 + damping) + ridge, 1.0)
+    step = np.linalg.solve(sub, np.where(valid, rhs, 0.0)[..., None])[..., 0]
+    out: np.ndarray = np.where(valid, step, 0.0)
+    return out
 
 
 def solve_active_naive(hessian: np.ndarray, g: np.ndarray, free: np.ndarray, damping: float,

@@ -25,11 +25,13 @@ from rigcast.runtime.bundle import (
     PROJECT_NORM,
     PROJECT_POINTS,
     REFINE_CONTROLS,
+    REFINE_CURVATURE,
     REFINE_GRADIENT,
     REFINE_MESH,
     REFINE_PROJECTION,
     REFINE_QUAD,
     REFINE_RESIDUAL,
+    REFINE_TANGENTS,
     REFINE_WEIGHTS,
     Bundle,
     BundleError,
@@ -151,6 +153,7 @@ class MomentForm:
                  count: int, rest: RestOfMesh | None = None,
                  stable: np.ndarray | None = None, stable_home: np.ndarray | None = None) -> None:
         self.project, self.refine = project, refine
+        self.tangents = REFINE_TANGENTS in {i.name for i in refine.get_inputs()}
         table, centre = project.run([PROJECT_CONSTANTS, PROJECT_CENTRE],
                                     {PROJECT_POINTS: np.zeros((1, count, 3), np.float32)})
         self.constants = BasisConstants.from_outputs(table, centre)
@@ -185,9 +188,11 @@ class MomentForm:
     def weights(self, controls: np.ndarray) -> np.ndarray:
         """controls (N, C) float32 -> z (N, R) float64, the forward model on S = offset + A^T z."""
         r = self.constants.colsum.shape[0]
-        z = self.refine.run([REFINE_WEIGHTS], {REFINE_CONTROLS: controls,
-                                               REFINE_PROJECTION: np.zeros((controls.shape[0], r),
-                                                                           np.float32)})[0]
+        feed = {REFINE_CONTROLS: controls,
+                REFINE_PROJECTION: np.zeros((controls.shape[0], r), np.float32)}
+        if self.tangents:
+            feed[REFINE_TANGENTS] = np.zeros((controls.shape[0], 0, controls.shape[1]), np.float32)
+        z = self.refine.run([REFINE_WEIGHTS], feed)[0]
         return np.asarray(z, np.float64)
 
 
@@ -284,10 +289,15 @@ def _refiner(bundle: Bundle, threads: int, settings: RefineSettings | None
     names = [REFINE_GRADIENT, REFINE_RESIDUAL if projected is None else REFINE_QUAD]
     got_in = sorted(i.name for i in session.get_inputs())
     got_out = {o.name for o in session.get_outputs()}
+    # bundles since the curvature at the current point: tangents in, the curvature along them out
+    curved = projected is not None and REFINE_TANGENTS in got_in and REFINE_CURVATURE in got_out
+    if curved:
+        want_in.append(REFINE_TANGENTS)
     if got_in != sorted(want_in) or not set(names) <= got_out:
         raise BundleError(f"refine graph must map {tuple(want_in)} to {tuple(names)}; has "
                           f"{got_in} -> {sorted(got_out)}")
     schema = bundle.schema
+    c = int(schema.lower.shape[0])
     chosen = settings or refine_settings(bundle)
     if projected is None:
         def gradient(controls: np.ndarray, mesh: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -325,6 +335,8 @@ def _refiner(bundle: Bundle, threads: int, settings: RefineSettings | None
     def bind(state: np.ndarray) -> Callable[[np.ndarray], tuple[np.ndarray, np.ndarray]]:
         """The gradient on fixed frames: their projection in float32 and |y|^2 made once."""
         feed = {REFINE_PROJECTION: state[:, :-1].astype(np.float32)}
+        if curved:
+            feed[REFINE_TANGENTS] = np.zeros((state.shape[0], 0, c), np.float32)
         norm = state[:, -1]
 
         def run(controls: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -334,8 +346,29 @@ def _refiner(bundle: Bundle, threads: int, settings: RefineSettings | None
 
         return run
 
+    def curvature(controls: np.ndarray, state: np.ndarray, tangents: np.ndarray
+                  ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """The gradient, |r|^2 and the Gauss-Newton matrix along tangents (N, T, C)."""
+        return bind_curvature(state)(controls, tangents)
+
+    def bind_curvature(state: np.ndarray) -> Callable[[np.ndarray, np.ndarray],
+                                                      tuple[np.ndarray, np.ndarray, np.ndarray]]:
+        """``curvature`` on fixed frames: their projection and |y|^2 made once."""
+        feed = {REFINE_PROJECTION: state[:, :-1].astype(np.float32)}
+        norm = state[:, -1]
+        outs = [*names, REFINE_CURVATURE]
+
+        def run(controls: np.ndarray, tangents: np.ndarray
+                ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+            feed[REFINE_CONTROLS], feed[REFINE_TANGENTS] = controls, tangents
+            g, quad, h = session.run(outs, feed)
+            return g, norm + quad, h
+
+        return run
+
     return Refiner(gradient_projected, bundle.refine_hessian, schema.lower, schema.upper,
-                   schema.defaults, 3 * count, chosen, prepare, bind), form
+                   schema.defaults, 3 * count, chosen, prepare, bind,
+                   curvature if curved else None, bind_curvature if curved else None), form
 
 
 class ForwardModel:

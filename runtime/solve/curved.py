@@ -1,0 +1,237 @@
+"""The refinement's steps with the curvature at the current point (bundles since it).
+
+A bundle's refinement graph can return, beside the gradient, the Gauss-Newton matrix
+J(u)^T G J(u) of the forward model's fit at the frame's current controls u, along the directions
+it is given (export/training/refine.py ``RefineCore.curvature``); the runtime sends the frame's
+active controls, so a step solves the frame's own Gauss-Newton system on them instead of the
+bundle's fixed matrix averaged over poses (runtime/solve/refine.py, a chord method). On a rig
+whose mesh is not linear in its controls (correctives, skinned joints) the fixed matrix can
+point a full step the wrong way and converges slowly near the optimum; Gauss-Newton at the
+current point converges in a few steps near it (Nocedal & Wright, "Numerical Optimization",
+2nd ed. 2006, 10.3). The active set, the prior's pull, the damping, the bounds and the
+halvings are those of ``Refiner._steps``.
+
+``curvature`` sets when a frame's matrix is made again: "step", after every step that moved
+the frame (Gauss-Newton); "frame", once for the frame's first active set, then only when a
+control outside it wakes (a chord method with the frame's own matrix).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from typing import TYPE_CHECKING
+
+import numpy as np
+from rigcast.runtime.solve.active import (
+    active_set,
+    free_controls,
+    gather_active,
+    pull_mask,
+    solve_gathered,
+)
+
+if TYPE_CHECKING:
+    from rigcast.runtime.solve.refine import Refiner
+
+#: (controls (N, C) float32, per-frame state (N, ...), tangents (N, T, C) float32) ->
+#: (gradient (N, C), residual_sq (N,), the Gauss-Newton matrix along the tangents (N, T, T))
+CurvatureFn = Callable[[np.ndarray, np.ndarray, np.ndarray],
+                       tuple[np.ndarray, np.ndarray, np.ndarray]]
+#: one frame's state (1, ...) -> (controls (1, C), tangents (1, T, C)) -> the same three, with
+#: what depends on the frame alone made once (the live path)
+BindCurvatureFn = Callable[[np.ndarray], Callable[[np.ndarray, np.ndarray],
+                                                  tuple[np.ndarray, np.ndarray, np.ndarray]]]
+
+
+def one_hot(idx: np.ndarray, valid: np.ndarray, c: int) -> np.ndarray:
+    """idx, valid (N, W) from ``gather_active`` -> (N, W, C) float32 tangents, one row per active
+    control, zero rows on the padding."""
+    out = np.zeros((*idx.shape, c), np.float32)
+    r, w = np.nonzero(valid)
+    out[r, w, idx[r, w]] = 1.0
+    return out
+
+
+class CurvatureStore:
+    """Each frame's Gauss-Newton matrix on a set of its controls, made at its current point.
+
+    h (N, W, W) the matrices, have (N, C) which controls each holds, pos (N, C) their place."""
+
+    def __init__(self, n: int, c: int) -> None:
+        self.h = np.zeros((n, 0, 0))
+        self.have = np.zeros((n, c), bool)
+        self.pos = np.zeros((n, c), np.int64)
+
+    def put(self, rows: np.ndarray, idx: np.ndarray, valid: np.ndarray, h: np.ndarray) -> None:
+        """rows (M,) frames, idx and valid (M, W), h (M, W, W): their new matrices."""
+        w = idx.shape[1]
+        if w > self.h.shape[1]:
+            grown = np.zeros((self.h.shape[0], w, w))
+            grown[:, : self.h.shape[1], : self.h.shape[1]] = self.h
+            self.h = grown
+        self.h[rows] = 0.0
+        self.h[rows, :w, :w] = h
+        self.have[rows] = False
+        r, k = np.nonzero(valid)
+        self.have[rows[r], idx[r, k]] = True
+        self.pos[rows[r], idx[r, k]] = k
+
+    def gather(self, rows: np.ndarray, idx: np.ndarray) -> np.ndarray:
+        """rows (M,), idx (M, W) controls each frame holds -> (M, W, W) their matrices."""
+        p = np.take_along_axis(self.pos[rows], idx, axis=1)
+        out: np.ndarray = self.h[rows[:, None, None], p[:, :, None], p[:, None, :]]
+        return out
+
+
+def curved_steps(ref: Refiner, curvature: CurvatureFn, u: np.ndarray, mesh: np.ndarray,
+                 mode: str) -> np.ndarray:
+    """The steps of ``Refiner._steps`` with each frame's curvature at its current point.
+    u (N, C) the network's answer in normalised controls, mesh (N, ...) the frames' state ->
+    (N, C) before the snap."""
+    s = ref.settings
+    n, c = u.shape
+    u0 = u.copy()
+    pulled = pull_mask(u0, ref.d)
+    fixed = s.prior * ref.diag
+    floor = 1e-6 * ref.diag  # a control whose effect vanishes here keeps a solvable system
+    store = CurvatureStore(n, c)
+    # the first matrices along the controls the network moved: most frames' first active set
+    idx0, valid0 = gather_active(pulled > 0.0)
+    g, rss, h0 = curvature(ref.controls(u), mesh, one_hot(idx0, valid0, c))
+    g, rss = np.asarray(g, np.float64), np.asarray(rss, np.float64)
+    store.put(np.arange(n), idx0, valid0, np.asarray(h0, np.float64))
+    live = np.arange(n)
+    for _ in range(s.steps):
+        ul, gl, rl, dl = u[live], g[live], rss[live], u[live] - u0[live]
+        free = active_set(ul, ref.d, gl, rl, ref.diag, s.kappa, ref.coords, s.wake_share)
+        need = (free & ~store.have[live]).any(axis=1)
+        if need.any():
+            rows = live[need]
+            idx_n, valid_n = gather_active(free[need])
+            _, _, h_n = curvature(ref.controls(u[rows]), np.take(mesh, rows, axis=0),
+                                  one_hot(idx_n, valid_n, c))
+            store.put(rows, idx_n, valid_n, np.asarray(h_n, np.float64))
+        idx, valid = gather_active(free)
+        if idx.shape[1] == 0:
+            break
+        sub = store.gather(live, idx)
+        w = idx.shape[1]
+        diag = sub[:, np.arange(w), np.arange(w)]
+        sub[:, np.arange(w), np.arange(w)] = np.maximum(diag, floor[idx])
+        g_w = np.take_along_axis(gl, idx, axis=1)
+        lam = np.zeros(live.size)
+        if s.prior_sd > 0.0:
+            left = np.maximum(rl - (g_w * solve_gathered(sub, g_w, valid, 0.0,
+                                                         np.zeros(valid.shape))).sum(axis=1), 0.0)
+            lam = left / np.maximum(ref.coords - free.sum(axis=1), 1) / s.prior_sd**2
+        ridge = lam[:, None] * pulled[live]  # (n, C)
+        pull = gl - (ridge + fixed) * dl
+        step = np.zeros((live.size, c))
+        np.put_along_axis(step, idx, solve_gathered(
+            sub, np.take_along_axis(pull, idx, axis=1), valid, s.damping + s.prior,
+            np.take_along_axis(ridge, idx, axis=1)), axis=1)
+        moving = np.abs(step).max(axis=1, initial=0.0) >= s.tol
+        live, ul, step, ridge, dl = live[moving], ul[moving], step[moving], ridge[moving], \
+            dl[moving]
+        if live.size == 0:
+            break
+        cost = rl[moving] + ((ridge + fixed) * dl**2).sum(axis=1)
+        pending = np.ones(live.size, dtype=bool)
+        share = 1.0
+        idx, valid = idx[moving], valid[moving]
+        for _halving in range(s.backtrack + 1):
+            rows = live[pending]
+            trial = np.clip(ul[pending] + share * step[pending], 0.0, 1.0)
+            state = np.take(mesh, rows, axis=0)
+            if mode == "step":  # the trial's matrix along this step's set comes with it
+                g_new, rss_new, h_new = curvature(ref.controls(trial), state,
+                                                  one_hot(idx[pending], valid[pending], c))
+            else:
+                g_new, rss_new = ref._evaluate(trial, state)
+            cost_new = rss_new + ((ridge[pending] + fixed) * (trial - u0[rows]) ** 2).sum(axis=1)
+            better = (cost_new <= cost[pending]) & np.isfinite(rss_new)
+            took = rows[better]
+            u[took], g[took], rss[took] = trial[better], g_new[better], rss_new[better]
+            if mode == "step":  # moved: its matrix is the one made at the new point
+                store.put(took, idx[pending][better], valid[pending][better],
+                          np.asarray(h_new, np.float64)[better])
+            pending[np.flatnonzero(pending)[better]] = False
+            if not pending.any():
+                break
+            share *= 0.5
+        live = live[~pending]
+    return u
+
+
+def curved_steps_one(ref: Refiner, run: Callable[[np.ndarray, np.ndarray],
+                                                 tuple[np.ndarray, np.ndarray, np.ndarray]],
+                     u: np.ndarray, mode: str) -> np.ndarray:
+    """:func:`curved_steps` for a batch of one frame (the live path), on vectors, with the
+    frame's graph bound once (``run``: controls (1, C), tangents (1, T, C) -> gradient, |r|^2 and
+    the matrix along them); tested against :func:`curved_steps`. u (1, C) -> (1, C)."""
+    s, d = ref.settings, ref.d
+    c = u.shape[1]
+    lower, span = ref.lower, ref.span
+    root_diag, factor, floor = ref.root_diag, ref.wake, 1e-6 * ref.diag
+    damp = 1.0 + s.damping + s.prior
+    eye = np.eye(c, dtype=np.float32)
+
+    def evaluate(x: np.ndarray, a: np.ndarray) -> tuple[np.ndarray, float, np.ndarray]:
+        gb, rb, hb = run((lower + span * x).astype(np.float32)[None], eye[a][None])
+        return gb[0].astype(np.float64), float(rb[0]), hb[0]
+
+    u0 = u[0].copy()
+    x = u0.copy()
+    pulled = pull_mask(u0, d)
+    fixed = s.prior * ref.diag
+    held = np.flatnonzero(pulled)
+    have = pulled > 0.0
+    pos = np.zeros(c, np.int64)
+    pos[held] = np.arange(held.size)
+    g, rss, h = evaluate(x, held)
+    for _ in range(s.steps):
+        tau = root_diag * (factor * np.sqrt(max(rss, 0.0)))
+        a = np.flatnonzero(free_controls(x, d, g, tau))
+        if a.size == 0:
+            break
+        if not have[a].all():  # a control woke: its matrix along the new set
+            g, rss, h = evaluate(x, a)
+            have[:] = False
+            have[a] = True
+            pos[a] = np.arange(a.size)
+        p = pos[a]
+        sub = h[p[:, None], p]
+        k = np.arange(a.size)
+        sub[k, k] = np.maximum(sub[k, k], floor[a])
+        ga = g[a]
+        lam = 0.0
+        if s.prior_sd > 0.0:
+            left = max(rss - float(ga @ np.linalg.solve(sub, ga)), 0.0)
+            lam = left / max(ref.coords - a.size, 1) / s.prior_sd**2
+        dx = x - u0
+        weight = lam * pulled + fixed  # (C,) each control's pull
+        system = sub.copy()
+        system[k, k] = sub[k, k] * damp + lam * pulled[a]
+        step_a = np.linalg.solve(system, (g - weight * dx)[a])
+        if np.abs(step_a).max() < s.tol:
+            break
+        cost = rss + float(np.dot(weight, dx * dx))
+        share, took = 1.0, False
+        xa = x[a]
+        for _halving in range(s.backtrack + 1):
+            trial = x.copy()
+            trial[a] = np.minimum(np.maximum(xa + share * step_a, 0.0), 1.0)
+            g_new, r_new, h_new = evaluate(trial, a if mode == "step" else a[:0])
+            moved = trial - u0
+            if np.isfinite(r_new) and r_new + float(np.dot(weight, moved * moved)) <= cost:
+                x, g, rss, took = trial, g_new, r_new, True
+                if mode == "step":  # its matrix along this step's set, at the new point
+                    h = h_new
+                    have[:] = False
+                    have[a] = True
+                    pos[a] = k
+                break
+            share *= 0.5
+        if not took:
+            break
+    return x[None]
