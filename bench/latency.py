@@ -24,6 +24,7 @@ By default the server (or echo) process is pinned to CPU 0 and the client to CPU
 os.sched_setaffinity, so they do not steal each other's core. ``--curve`` turns CurveZMQ
 (RFC 26) on for the server, the echo process and the client alike (fresh keys made with
 runtime/trust/keys.py), so the floor and the server are measured with the same encryption.
+``--realign N`` passes the server its realignment passes (default 1, the server's own).
 ``--out DIR`` writes DIR/latency.json as {"runs": [{...}, ...]}.
 
     python bench/latency.py --duration 60 --out bench/out
@@ -163,7 +164,7 @@ def measure(vertices: int, args: argparse.Namespace, work: Path) -> dict[str, An
            "--input", "tcp://127.0.0.1:*", "--output", "tcp://127.0.0.1:*", "--ready-file",
            str(ready), "--fit-error-schedule", "after_publish", "--telemetry-hz", "10",
            "--window", "1000", "--log-level", "WARNING",
-           "--busy-poll-us", str(args.busy_poll_us)]
+           "--busy-poll-us", str(args.busy_poll_us), "--realign", str(args.realign)]
     if args.curve_keys is not None:
         cmd += ["--curve-secret-key", str(args.curve_keys / "server.key_secret"),
                 "--authorized-keys", str(args.curve_keys / "clients")]
@@ -185,6 +186,7 @@ def measure(vertices: int, args: argparse.Namespace, work: Path) -> dict[str, An
         "duration_s": args.duration,
         "fps": FPS,
         "fit_error": "after_publish",
+        "realign": args.realign,
         "floor_p50_ms": f50,
         "floor_p95_ms": f95,
         "floor_p99_ms": f99,
@@ -229,6 +231,8 @@ def main() -> None:
                         help="spin-then-block budget for server, echo and client waits (µs)")
     parser.add_argument("--curve", action="store_true",
                         help="CurveZMQ on (server, echo and client), floor and server alike")
+    parser.add_argument("--realign", type=int, default=1,
+                        help="the server's realignment passes (serve --realign; default 1, its own)")
     parser.add_argument("--out", type=Path, default=None)
     parser.add_argument("--curve-keys", type=Path, default=None, help=argparse.SUPPRESS)
     parser.add_argument("--mode", default="server", help=argparse.SUPPRESS)
