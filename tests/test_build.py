@@ -57,6 +57,13 @@ def test_bundle_loads_and_carries_training_figures(built: tuple) -> None:
     assert bundle.input_indices.shape == (48,) and bundle.stable_indices.shape == (12,)
     assert set(bundle.stable_indices.tolist()) <= set(rig.static.tolist())
     assert result.forward_model is not None and result.inverse_model is not None
+    # the refinement's curvature, chosen by the held-out figures the manifest records
+    from rigcast.export.bundling.build_check import CURVATURE_GAIN
+
+    err = m["training"]["curvature_check"]
+    assert set(err) == {"fixed", "step"} and all(v > 0 for v in err.values())
+    want = "step" if err["step"] <= CURVATURE_GAIN * err["fixed"] else "fixed"
+    assert m["refine"]["curvature"] == want
 
 
 def test_bundle_inverse_solves_through_the_real_rig(built: tuple) -> None:

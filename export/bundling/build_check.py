@@ -67,6 +67,39 @@ class ServedCheck:
         return asdict(self)
 
 
+#: The refinement takes Gauss-Newton steps at the current point ("step") only where they lower
+#: the held-out error to this share of the fixed matrix's ("fixed") or less: they cost about
+#: twice the refinement's arithmetic a frame (demo face, batch), and on rigs that are nearly
+#: linear in their controls they bring nothing (demo face 3.2e-5 -> 3.5e-5, face-linear equal;
+#: lantern arm 4.1e-3 -> 2.8e-3, zoo rigs 0.73-0.95x). A threshold of ours.
+CURVATURE_GAIN = 0.9
+
+
+def choose_curvature(bundle_path: Path, rig: Rig, meshes: np.ndarray
+                     ) -> tuple[str, dict[str, float]]:
+    """The refinement's curvature for this bundle, by evidence: the served solve of held-out
+    ``meshes`` (N, V, 3) with each setting, scored through the real rig. -> (the choice, each
+    setting's mean vertex error). A bundle whose graph has no curvature keeps "fixed"."""
+    from dataclasses import replace
+
+    bundle = load_bundle(bundle_path)
+    solver = BatchSolver(bundle, threads=2)
+    refiner = solver.inverse.refiner
+    if refiner is None or refiner.curvature is None:
+        return "fixed", {}
+    times = np.arange(meshes.shape[0], dtype=np.float64) / 60.0
+    errors: dict[str, float] = {}
+    base = refiner.settings
+    for mode in ("fixed", "step"):
+        refiner.settings = replace(base, curvature=mode)
+        got = solver.solve(meshes, times, SolveOptions(filter="none", fit_error_scope="off"))
+        errors[mode] = float(np.linalg.norm(rig.evaluate(got.controls) - meshes, axis=-1).mean())
+    choice = "step" if errors["step"] <= CURVATURE_GAIN * errors["fixed"] else "fixed"
+    log.info("refinement curvature %s: held-out error %.3g at the current point, %.3g fixed",
+             choice, errors["step"], errors["fixed"])
+    return choice, errors
+
+
 def served_solve(bundle_path: Path, meshes: np.ndarray, fps: float = 60.0
                  ) -> tuple[np.ndarray, np.ndarray, bool]:
     """meshes (N, V, 3) -> (controls (N, C), fit rms (N,), stabilised) from the served solve."""

@@ -75,7 +75,7 @@ def finish(
 ) -> BuildResult:
     """Export, write, re-load and check; cache the bundle and checkpoint. ``check_controls``
     (N, C): the true controls of ``check_x``, for the dead-output check."""
-    from rigcast.export.bundling.build_check import check_served
+    from rigcast.export.bundling.build_check import check_served, choose_curvature
     from rigcast.export.bundling.onnx_export import OPSET, export_forward, export_inverse
     from rigcast.export.training.models import EDGE_MARGIN, REST_BAND, save_checkpoint
     from rigcast.export.training.refine import projected_refine_parts
@@ -125,13 +125,18 @@ def finish(
         "refine": asdict(RefineSettings()),
         "stabilise": stabilise,
     }
-    # Written twice: the check runs the served solve from the written file, and its figures
-    # then go into the manifest of the final one.
+    # Written two or three times: the curvature choice and the check run the served solve from
+    # the written file, and their figures then go into the manifest of the final one.
     parts = {"name": rig.name, "schema": rig.schema, "neutral": rig.neutral, "faces": rig.faces,
              "stable_indices": stable, "input_indices": inputs, "inverse_onnx": inv_bytes,
              "forward_onnx": fwd_bytes, "refine_onnx": ref_bytes, "refine_hessian": hessian,
              "refine_projection": projection}
     write_bundle(out_path, extra=extra, **parts)
+    curvature, curvature_errors = choose_curvature(out_path, rig, check_x)
+    if curvature != extra["refine"]["curvature"]:
+        extra["refine"] = asdict(RefineSettings(curvature=curvature))
+        write_bundle(out_path, extra=extra, **parts)
+    training["curvature_check"] = curvature_errors
     served = check_served(out_path, rig, check_x, float(fwd_rep.mean_err), check_controls)
     training.update(check_mean_err=served.rig_mean_err,
                     check_mean_err_pct_diag=served.rig_mean_err_pct_diag,
