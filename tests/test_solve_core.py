@@ -7,7 +7,9 @@ Real parts: a synthetic moment-form bundle written to disk, real onnxruntime ses
 from __future__ import annotations
 
 import dataclasses
+from collections.abc import Callable
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 from rigcast.export.bundling.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
@@ -35,26 +37,28 @@ def _frames(n: int, seed: int) -> np.ndarray:
 
 
 def _counted(model: SolveModel) -> list[int]:
-    """Count the refinement graph's evaluations, batched (``gradient``) and on one frame
-    (``bind``); the rough copy, made later, shares both."""
+    """Count the refinement graph's evaluations, batched and on one frame, with the bundle's
+    fixed curvature (``gradient``, ``bind``) or the frame's own (``curvature``,
+    ``bind_curvature``); the rough copy, made later, shares them all."""
     refiner = model.inverse.refiner
-    assert refiner is not None and refiner.bind is not None
-    bind, gradient, count = refiner.bind, refiner.gradient, [0]
+    assert refiner is not None
+    count = [0]
 
-    def batched(controls: np.ndarray, state: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        count[0] += 1
-        return gradient(controls, state)
-
-    def counting(state: np.ndarray):  # type: ignore[no-untyped-def]
-        run = bind(state)
-
-        def step(controls: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    def counted(fn: Callable[..., Any]) -> Callable[..., Any]:
+        def run(*args: Any) -> Any:
             count[0] += 1
-            return run(controls)
+            return fn(*args)
 
-        return step
+        return run
 
-    refiner.bind, refiner.gradient = counting, batched
+    def bound(fn: Callable[..., Any]) -> Callable[..., Any]:
+        return lambda state: counted(fn(state))
+
+    for name, wrap in (("gradient", counted), ("bind", bound), ("curvature", counted),
+                       ("bind_curvature", bound)):
+        fn = getattr(refiner, name, None)
+        if fn is not None:
+            setattr(refiner, name, wrap(fn))
     return count
 
 
