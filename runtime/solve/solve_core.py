@@ -56,8 +56,8 @@ log = logging.getLogger(__name__)
 #: realignment's target (the forward model's mesh, for a rigid fit on thousands of vertices),
 #: and the solve from the moved frame takes the refinement's full steps. Two of five left the
 #: noisy takes' mean error against the clean mesh within 0.2 % on the demo face, the linear face
-#: and two zoo rigs (stabilisation forced), four takes each, with or without head motion
-#: (our measurement, see ``solve_points``).
+#: and two zoo rigs (stabilisation forced), four takes each, with or without head motion, with
+#: the fixed curvature and the current point's (our measurement, see ``solve_points``).
 ROUGH_STEPS = 2
 
 
@@ -211,18 +211,22 @@ def solve_points(model: SolveModel, frames: np.ndarray, points: np.ndarray,
 
     When a realignment follows (moment form), the first solve only sets the realignment's
     target, so its refinement takes ``ROUGH_STEPS`` steps (``RoughRefiner``), as does every
-    solve but the last with more than one pass; the last takes the bundle's. Measured on
-    600-frame noisy takes (0.15 % of D noise, with and without head motion, seeds 7, 8, 31,
-    32), stabilised: mean error against the clean mesh
-    within 0.2 % of the full first solve's on the demo face, the linear face and zoo rigs 269008
-    and 899926; recoverability unchanged; noise-free held-out poses of the demo face 0.88e-5 ->
-    0.94e-5 D with the runtime's default refinement (0.005 % of D is the issue's floor). It
-    takes 3 of 12 refinement-graph evaluations off a frame of the latency bench's bundle (an
-    untrained network: every step runs), 0.4 of 5.8 off the demo face's. Two passes with the
-    middle solve rough took the noisy takes' error 6-17 % lower on both faces (13.7, 12.8,
-    13.5, 12.1 against 16.0, 15.5, 14.4, 13.9 e-5 D on the demo face), as two full passes did,
-    for a frame about 1.2x (bench bundle) and 1.4x (demo face) one pass with a full first
-    solve (thread time, one frame at a time)."""
+    solve but the last with more than one pass; the last takes the bundle's. A bound on the
+    worst frame more than a saving on the usual one: frames the refinement settles in two
+    steps cost the same. Measured on 600-frame noisy takes (0.15 % of D noise, with and
+    without head motion, seeds 7, 8, 31, 32), stabilised, with the runtime's default
+    refinement: mean error against the clean mesh within 0.2 % of the full first solve's on
+    the demo face, the linear face and zoo rigs 269008 and 899926 (within 0.04 % with the
+    curvature at the current point, 4234c26); recoverability unchanged; noise-free held-out
+    poses of the demo face 0.88e-5 -> 0.94e-5 D (0.95e-5 -> 0.98e-5 D with the current
+    point's curvature; 0.005 % of D is the issue's floor). On the latency bench's bundle (an
+    untrained network: every step runs) the frame took 3.9 of 13.9 graph evaluations and 14 %
+    of its thread time less (current point's curvature); on the demo face 0.4 of 5.8 with
+    the fixed curvature, none of 4.9 with the current point's. Two passes with the middle
+    solve rough took the noisy takes' error 6-17 % lower on both faces (13.7, 12.8, 13.5,
+    12.1 against 16.0, 15.5, 14.4, 13.9 e-5 D on the demo face, fixed curvature), as two full
+    passes did, for a frame about 1.2x (bench bundle) and 1.4x (demo face) one pass with a
+    full first solve (thread time, one frame at a time)."""
     inverse = model.inverse
     rough = (model.rough.get() if model.rough is not None and rigid is not None and passes > 0
              and inverse.moment_form is not None else None)
