@@ -15,9 +15,15 @@ from rigcast.export.training.kinematic import (
     RIGID_TOL,
     KinematicChain,
     chain_from_anchors,
+    parents_from_motion,
     rotation_fit,
 )
-from rigcast.export.training.models import InverseNetwork, load_checkpoint, save_checkpoint
+from rigcast.export.training.models import (
+    ForwardApproximator,
+    InverseNetwork,
+    load_checkpoint,
+    save_checkpoint,
+)
 from rigcast.export.training.train import ForwardConfig, train_forward
 from rigcast.runtime.schema import Control, ControlSchema
 
@@ -69,19 +75,22 @@ class ChainRig(Rig):
         return skin_points(self.neutral, mats, self.weights).astype(np.float32)
 
 
-def _chain(c: int = 5, p: int = 5) -> KinematicChain:
+def _chain(c: int = 5, p: int = 5, parents: list[int] | None = None) -> KinematicChain:
     rng = np.random.default_rng(3)
     chain = KinematicChain(rng.normal(size=(c - 1, 3)), rng.random(c), p, length=1.0,
-                           controls=np.array([0, 3, 1, 4])).double()  # control 2 left out
+                           controls=np.array([0, 3, 1, 4]),  # control 2 left out
+                           parents=None if parents is None else np.array(parents)).double()
     torch.nn.init.normal_(chain.out.weight, generator=torch.Generator().manual_seed(0))
     torch.nn.init.normal_(chain.scale, 1.0, 0.5, generator=torch.Generator().manual_seed(1))
     return chain
 
 
-def test_chain_jacobian_and_vjp_equal_autograd() -> None:
+@pytest.mark.parametrize("parents", [None, [-1, 0, -1, 2], [-1, 0, 0, -1]])
+def test_chain_jacobian_and_vjp_equal_autograd(parents: list[int] | None) -> None:
     """The hand-written forward- and reverse-mode derivatives (what the refinement graphs
-    need) against torch.autograd's Jacobian of the chain's output."""
-    chain = _chain()
+    need) against torch.autograd's Jacobian of the chain's output: one serial chain, two
+    chains, and a joint with two children."""
+    chain = _chain(parents=parents)
     u = torch.rand(6, 5, dtype=torch.float64, generator=torch.Generator().manual_seed(2))
     jac = torch.stack([torch.autograd.functional.jacobian(lambda x: chain(x[None])[0], row)
                        for row in u])  # (N, P, C)
@@ -130,6 +139,53 @@ def test_rotation_fit_finds_a_known_turn() -> None:
     bump = pts.copy()
     bump[:, 2] += 0.3 * np.exp(-np.square(pts).sum(axis=1))
     assert rotation_fit(pts, bump)[2] > 3 * RIGID_TOL
+
+
+def test_two_chains_are_independent_and_keep_their_parents(tmp_path) -> None:
+    """With parents [-1, 0, -1, 2] the second chain's transforms do not see the first's
+    rotations (its features are those of a chain of its own two joints), and the parents
+    survive a checkpoint (models.save_checkpoint / load_checkpoint); a state without them (an
+    older checkpoint) loads as one serial chain."""
+    forest = _chain(parents=[-1, 0, -1, 2])
+    alone = KinematicChain(np.zeros((2, 3)), np.zeros(2), 5, controls=np.array([1, 0])).double()
+    with torch.no_grad():
+        for name in ("axis", "pivot", "scale"):
+            getattr(alone, name).copy_(getattr(forest, name)[2:])
+        alone.rest.copy_(forest.rest[2:])
+    u = torch.rand(3, 5, dtype=torch.float64, generator=torch.Generator().manual_seed(5))
+    f_forest = forest.features(u).detach()
+    np.testing.assert_allclose(f_forest[:, 24:48].numpy(),
+                               alone.features(u[:, [4, 1]]).detach()[:, :24].numpy(), atol=1e-12)
+    serial = _chain().features(u).detach()
+    assert float((serial[:, 24:48] - f_forest[:, 24:48]).abs().max()) > 1e-2
+    np.testing.assert_array_equal(serial[:, :24].numpy(), f_forest[:, :24].numpy())
+    neutral = ChainRig(joints=2, rings=4, around=4).neutral
+    v, c, z = neutral.shape[0], 5, np.zeros
+    inv = InverseNetwork(neutral[:4], 1.0, z(c), np.ones(c), z(c), hidden=(8,))
+    fwd = ForwardApproximator(neutral, z(c), np.ones(c), z((c, 3 * v)), z(3 * v),
+                              np.eye(5, 3 * v), (4,), forest.float())
+    back, _, _ = load_checkpoint(save_checkpoint(tmp_path / "f.pt", fwd, inv))
+    assert back.chain is not None and back.chain._parents == [-1, 0, -1, 2]
+    with torch.no_grad():
+        np.testing.assert_array_equal(back.chain(u.float()).numpy(), forest(u.float()).numpy())
+    state = {k: v for k, v in forest.state_dict().items() if k != "parent"}
+    old = _chain(parents=[-1, -1, -1, -1])
+    old.load_state_dict(state)
+    assert old._parents == [-1, 0, 1, 2]
+
+
+def test_parents_from_motion_splits_branches() -> None:
+    """Two joints on one tube then two on another: the second of each pair is under the first,
+    the second tube's first joint is a root (it moves none of the first tube's vertices)."""
+    d2 = np.zeros((4, 10))
+    d2[0, 1:5] = 1.0  # tube 1's first joint; vertex 0 lies on its axis and stays
+    d2[1, 3:5] = 1.0  # tube 1's second joint, inside the first's
+    d2[2, 5:], d2[3, 8:] = 1.0, 1.0  # tube 2's
+    assert parents_from_motion(d2).tolist() == [-1, 0, -1, 2]
+    d2[3, 0] = 1.0  # joint 3 also moves a vertex joint 2 leaves still: 1/3 < PARENT_TOL
+    assert parents_from_motion(d2).tolist() == [-1, 0, -1, 2]
+    d2[3, 1:3] = 1.0  # now 3 of its 5 moved vertices are outside joint 2's and joint 0's
+    assert parents_from_motion(d2).tolist() == [-1, 0, -1, -1]
 
 
 @pytest.fixture(scope="module")
