@@ -6,6 +6,9 @@ Loss per batch of clean meshes ``x`` (B, V, 3):
     loss = mean_v w_v |forward(c)_v - x_v|^2 / scale^2  +  l1 * mean |c - default| / range
            (+ supervised, general mode only: BCE(u(c), u(c_true)) with a weight decaying from
               ``supervised`` to ``supervised_floor``)
+           (+ consistency * mean ((c - c') / range)^2,   c' = inverse(x[:, K] + noise'), a second,
+              independent draw of the same noise; or, in mesh space, the weighted mean of
+              |forward(c) - forward(c')|^2 / scale^2)
 
 - general mode: batches mix the rig's sampled meshes with fresh random poses rendered through the
   frozen forward model (cheap augmentation); labels are known there, so an early, linearly
@@ -24,6 +27,11 @@ Loss per batch of clean meshes ``x`` (B, V, 3):
   dead output recoverable. The
   reported loss (``final_loss``, ``loss_curve``) is the mesh-space part (mesh + L1),
   comparable between configs.
+- noise consistency: the same pose under two noise draws should give the same controls (the
+  method's "similar meshes, similar controls"). The mesh loss alone already charges the output's
+  variance under noise once, but only by its mesh effect: controls that move the mesh little or
+  alike (a per-frame fit's ill-conditioned directions) follow the noise nearly for free, and those
+  dominate the take's jitter. The term in normalised controls charges them by their range.
 - take mode: the user's frames only, no labels; purely self-supervised, starting from a given
   (general) inverse.
 
@@ -74,6 +82,8 @@ class InverseConfig:
     clip_norm: float = 1.0  # gradient-norm clip before each Adam step (0 = off); median norm on
     # face-linear's first 80 steps: 0.71, max 10.6
     loss_vertices: int = 1536  # mesh loss on this many fixed random moving vertices (0 = all)
+    consistency: float = 0.0  # weight of the noise-consistency term (see the module docstring)
+    consistency_space: Literal["mesh", "controls"] = "mesh"  # where that term measures
     seed: int = 0
     max_seconds: float | None = None  # a time budget; None: the fixed schedule (see above)
 
@@ -155,6 +165,11 @@ def train_inverse(
     rng = np.random.default_rng(config.seed)
     if mode not in ("general", "take"):
         raise TrainError(f"inverse mode must be 'general' or 'take', got {mode!r}")
+    if config.consistency < 0.0 or config.consistency_space not in ("mesh", "controls"):
+        raise TrainError(
+            "inverse consistency must be >= 0 in space 'mesh' or 'controls', got "
+            f"{config.consistency!r} in {config.consistency_space!r}"
+        )
     if mode == "take" and init is None:
         raise TrainError("take mode fine-tunes an existing inverse; pass init=")
     neutral = forward.neutral.numpy().reshape(-1, 3)
@@ -232,18 +247,21 @@ def train_inverse(
             with torch.no_grad():
                 x = torch.cat([x, forward(c_new)])
             c_true = torch.cat([c_true, c_new])
-        noisy = x[:, idx_t] + sigma * torch.randn(x.shape[0], idx_t.shape[0], 3)
-        if jitter > 0.0:
-            noisy = noisy + jitter * torch.randn(x.shape[0], 1, 3)
-        if wobble_bank is not None:
-            amp = torch.randn(x.shape[0], wobble_bank.shape[0], 3)
-            noisy = noisy + torch.einsum("kv,nkx->nvx", wobble_bank, amp)
-        z = model.logits(noisy)
+        z = model.logits(_augment(x[:, idx_t], sigma, jitter, wobble_bank))
         c = model.from_logits(z)
-        diff = fwd_sub(c) - x[:, loss_t]
+        pred = fwd_sub(c)
+        diff = pred - x[:, loss_t]
         loss = (weights * diff.pow(2).sum(-1)).mean() * inv_s2 / 3.0
         loss = loss + config.l1 * ((c - def_t).abs() / span_t).mean()
         objective = float(loss.detach())  # the mesh-space loss, without the supervised term
+        if config.consistency > 0.0:
+            # a second, independent noise draw on the same poses must give the same answer
+            c2 = model(_augment(x[:, idx_t], sigma, jitter, wobble_bank))
+            if config.consistency_space == "mesh":
+                gap = (weights * (pred - fwd_sub(c2)).pow(2).sum(-1)).mean() * inv_s2 / 3.0
+            else:
+                gap = ((c - c2) / span_t).pow(2).mean()
+            loss = loss + config.consistency * gap
         ramp = max(0.0, 1.0 - step / max(1.0, config.supervised_until * total))
         sup = max(config.supervised * ramp, config.supervised_floor)
         if c_true is not None and sup > 0.0:
@@ -295,6 +313,21 @@ def train_inverse(
         report.seconds,
     )
     return model, report
+
+
+def _augment(
+    clean: torch.Tensor, sigma: float, jitter: float, wobble_bank: torch.Tensor | None
+) -> torch.Tensor:
+    """clean: (N, K, 3) input vertices -> one draw of the training's input noise on them: white
+    noise of ``sigma`` per coordinate, a rigid shift of ``jitter`` and a smooth field from
+    ``wobble_bank`` (K', K) when given."""
+    noisy = clean + sigma * torch.randn(clean.shape[0], clean.shape[1], 3)
+    if jitter > 0.0:
+        noisy = noisy + jitter * torch.randn(clean.shape[0], 1, 3)
+    if wobble_bank is not None:
+        amp = torch.randn(clean.shape[0], wobble_bank.shape[0], 3)
+        noisy = noisy + torch.einsum("kv,nkx->nvx", wobble_bank, amp)
+    return noisy
 
 
 def smooth_field_bank(
