@@ -11,12 +11,7 @@ from dataclasses import asdict
 
 import numpy as np
 import pytest
-from rigcast.runtime.solve.active import (
-    ActiveFactors,
-    active_set,
-    solve_active,
-    solve_active_naive,
-)
+from rigcast.runtime.solve.active import active_set, gather_active, solve_gathered
 from rigcast.runtime.solve.refine import Refiner, RefineSettings
 from scipy.optimize import lsq_linear
 
@@ -30,6 +25,39 @@ def _linear_problem(seed: int, c: int = 12, coords: int = 300):
         return (r @ a).astype(np.float32), (r * r).sum(axis=1).astype(np.float32)
 
     return a, gradient
+
+
+def solve_active(hessian: np.ndarray, g: np.ndarray, free: np.ndarray, damping: float,
+                 ridge: np.ndarray | None = None) -> np.ndarray:
+    """The product's batched step (``gather_active``, then ``solve_gathered``) on a fixed
+    matrix: hessian (C, C), g (N, C), free (N, C), ridge (N,) or (N, C) -> delta (N, C)."""
+    n, c = g.shape
+    r = np.zeros((n, c)) if ridge is None else np.asarray(ridge, np.float64)
+    r = np.repeat(r[:, None], c, axis=1) if r.ndim == 1 else r
+    idx, valid = gather_active(free)
+    delta = np.zeros((n, c))
+    if idx.shape[1]:
+        np.put_along_axis(delta, idx, solve_gathered(
+            hessian[idx[:, :, None], idx[:, None, :]], np.take_along_axis(g, idx, axis=1), valid,
+            damping, np.take_along_axis(r, idx, axis=1)), axis=1)
+    return delta
+
+
+def solve_active_naive(hessian: np.ndarray, g: np.ndarray, free: np.ndarray, damping: float,
+                       ridge: np.ndarray | None = None) -> np.ndarray:
+    """Per-frame twin of the batched step: index lists and one small solve per frame."""
+    delta = np.zeros(g.shape, np.float64)
+    for i in range(g.shape[0]):
+        a = [j for j in range(g.shape[1]) if free[i, j]]
+        if not a:
+            continue
+        h = np.array([[hessian[p, q] for q in a] for p in a], np.float64)
+        for j in range(len(a)):
+            extra = 0.0 if ridge is None else (float(ridge[i]) if np.ndim(ridge) == 1
+                                               else float(ridge[i][a[j]]))
+            h[j, j] = h[j, j] * (1.0 + damping) + extra
+        delta[i, a] = np.linalg.solve(h, g[i, a])
+    return delta
 
 
 def test_solve_active_matches_its_naive_twin() -> None:
@@ -60,31 +88,9 @@ def test_solve_active_matches_its_naive_twin() -> None:
                                rtol=1e-10, atol=1e-12)
 
 
-def test_active_factors_match_the_dense_solves() -> None:
-    """The live path's cached factors (eigendecomposition with a ridge, H_AA^-1) against
-    ``solve_active``: the same step and the same full Gauss-Newton decrease, for sets that recur
-    and sets that push older ones out of the cache."""
-    rng = np.random.default_rng(8)
-    m = rng.standard_normal((11, 11))
-    h = m @ m.T + 0.1 * np.eye(11)
-    factors = ActiveFactors(h, 0.1, size=3)
-    for _ in range(60):
-        free = rng.random((1, 11)) < rng.uniform(0.1, 0.9)
-        g = rng.standard_normal((1, 11))
-        ridge = float(rng.uniform(0.0, 3.0))
-        a = np.flatnonzero(free[0])
-        np.testing.assert_allclose(factors.step(a, g[0], ridge),
-                                   solve_active(h, g, free, 0.1, np.array([ridge]))[0],
-                                   rtol=1e-9, atol=1e-12)
-        full = solve_active(h, g, free, 0.0)[0]
-        np.testing.assert_allclose(factors.full_decrease(a, g[0]), float(g[0] @ full),
-                                   rtol=1e-9, atol=1e-12)
-    assert len(factors._sets) <= 3
-
-
 @pytest.mark.parametrize("prior_sd", [0.02, 0.0])
 def test_one_frame_takes_the_steps_a_batch_takes(prior_sd: float) -> None:
-    """The live path (a batch of one: ``Refiner._steps_one``) against the batch path on the same
+    """The live path (a batch of one: ``curved_steps_one``) against the batch path on the same
     frames, noisy and clean, with a network answer that is off and misses controls: the same
     controls to rounding."""
     c = 12
@@ -135,7 +141,7 @@ def test_a_control_the_network_left_at_rest_comes_back_on_a_noisy_mesh(batch: in
 
 
 def test_settings_changed_after_construction_reach_the_one_frame_path() -> None:
-    """The one-frame path caches factors that hold the damping: settings set on a live refiner
+    """The one-frame path reads constants made per setting: settings set on a live refiner
     (as bench/quality.py does) must give what a refiner built with them gives."""
     c = 12
     a, gradient = _linear_problem(11, c)

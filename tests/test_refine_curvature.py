@@ -13,7 +13,7 @@ import dataclasses
 
 import numpy as np
 import pytest
-from rigcast.runtime.solve.active import gather_active, solve_active, solve_gathered
+from rigcast.runtime.solve.active import gather_active, solve_gathered
 from rigcast.runtime.solve.curved import CurvatureStore, one_hot
 from rigcast.runtime.solve.refine import RefineError, Refiner, RefineSettings
 from scipy.optimize import least_squares
@@ -83,7 +83,7 @@ def test_the_graphs_curvature_is_the_gauss_newton_matrix_along_the_tangents(chai
 
 def test_gathered_solve_and_store_match_the_dense_systems() -> None:
     """``solve_gathered`` on matrices kept in a ``CurvatureStore`` (made along a superset of
-    each frame's active controls) equals ``solve_active`` on the frame's full matrix."""
+    each frame's active controls) equals a dense solve on the frame's full matrix."""
     rng = np.random.default_rng(8)
     n, c = 30, 9
     full = rng.standard_normal((n, c, c))
@@ -102,8 +102,13 @@ def test_gathered_solve_and_store_match_the_dense_systems() -> None:
                                                np.take_along_axis(g, idx, axis=1), valid, 0.1,
                                                np.full(valid.shape, 0.3)), axis=1)
     for i in range(n):
-        want = solve_active(full[i], g[i : i + 1], free[i : i + 1], 0.1, np.array([0.3]))
-        np.testing.assert_allclose(got[i : i + 1], want, rtol=1e-9, atol=1e-12)
+        a = np.flatnonzero(free[i])
+        want = np.zeros(c)
+        if a.size:
+            sys_ = full[i][np.ix_(a, a)]
+            sys_[np.diag_indices(a.size)] = sys_[np.diag_indices(a.size)] * 1.1 + 0.3
+            want[a] = np.linalg.solve(sys_, g[i, a])
+        np.testing.assert_allclose(got[i], want, rtol=1e-9, atol=1e-12)
     assert np.all(store.have == have)
     t = one_hot(idx, valid, c)
     assert t.shape == (n, idx.shape[1], c) and np.all(t.sum(axis=(1, 2)) == free.sum(axis=1))

@@ -3,14 +3,11 @@
 Which controls take part in a Gauss-Newton step (``active_set``: away from the default, or at it
 with a gradient that the noise does not explain, and never pushed past a bound), how strongly the
 prior pulls each one (``pull_mask``), and the damped, ridged systems on each frame's active
-controls: batched for many frames (``solve_active``, with its per-frame twin
-``solve_active_naive``), and from factors cached per active set for the live path's one frame
-(``ActiveFactors``).
+controls, gathered (``gather_active``) and solved in one batched call (``solve_gathered``; its
+per-frame twin is in tests/test_refine.py).
 """
 
 from __future__ import annotations
-
-import contextlib
 
 import numpy as np
 
@@ -36,13 +33,6 @@ def pull_mask(u0: np.ndarray, d: np.ndarray) -> np.ndarray:
     return out
 
 
-def a_mask(a: np.ndarray, c: int) -> np.ndarray:
-    """Active control indices a (k,) -> (1, C) bool."""
-    out = np.zeros((1, c), bool)
-    out[0, a] = True
-    return out
-
-
 def free_controls(u: np.ndarray, d: np.ndarray, g: np.ndarray, tau: np.ndarray) -> np.ndarray:
     """u, g, tau (..., C), d (C,) -> (..., C) bool: a control is free when it is away from its
     default or its gradient beats the threshold tau, and its gradient does not push it past the
@@ -56,38 +46,6 @@ def wake_factor(kappa: float, coords: int, wake_share: float) -> float:
     """The correlation test's threshold per sqrt(H_cc) |r|: an at-rest control wakes when
     |g_c| > wake_factor sqrt(H_cc) |r| (see ``active_set``)."""
     return max(kappa / np.sqrt(coords), np.sqrt(wake_share))
-
-
-def solve_active(hessian: np.ndarray, g: np.ndarray, free: np.ndarray, damping: float,
-                 ridge: np.ndarray | None = None) -> np.ndarray:
-    """The damped Gauss-Newton step on each frame's active controls.
-
-    hessian (C, C); g (N, C); free (N, C) bool; each active diagonal entry becomes
-    H_cc (1 + damping) + ridge_nc, ridge (N,) per frame or (N, C) per frame and control (zeros
-    if None) -> delta (N, C), zero outside the active set.
-    Each frame's system is gathered to its own active controls, padded to the batch's largest
-    active count with identity rows, and solved in one batched call.
-    """
-    n, c = g.shape
-    delta = np.zeros((n, c), np.float64)
-    ridge = np.zeros((n, c)) if ridge is None else np.asarray(ridge, np.float64)
-    if ridge.ndim == 1:
-        ridge = np.repeat(ridge[:, None], c, axis=1)
-    if n == 1:  # one frame: plain indexing is several times cheaper
-        a = np.flatnonzero(free[0])
-        if a.size:
-            h = hessian[a[:, None], a]
-            h[np.diag_indices(a.size)] = h[np.diag_indices(a.size)] * (1.0 + damping) + ridge[0, a]
-            delta[0, a] = np.linalg.solve(h, g[0, a])
-        return delta
-    idx, valid = gather_active(free)
-    if idx.shape[1] == 0:
-        return delta
-    sub = hessian[idx[:, :, None], idx[:, None, :]]  # (N, W, W)
-    step = solve_gathered(sub, np.take_along_axis(g, idx, axis=1), valid, damping,
-                          np.take_along_axis(ridge, idx, axis=1))
-    np.put_along_axis(delta, idx, step, axis=1)
-    return delta
 
 
 def gather_active(free: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -113,79 +71,3 @@ def solve_gathered(sub: np.ndarray, rhs: np.ndarray, valid: np.ndarray, damping:
     step = np.linalg.solve(sub, np.where(valid, rhs, 0.0)[..., None])[..., 0]
     out: np.ndarray = np.where(valid, step, 0.0)
     return out
-
-
-def solve_active_naive(hessian: np.ndarray, g: np.ndarray, free: np.ndarray, damping: float,
-                       ridge: np.ndarray | None = None) -> np.ndarray:
-    """Per-frame twin of ``solve_active``: index lists and one small solve per frame."""
-    delta = np.zeros(g.shape, np.float64)
-    for i in range(g.shape[0]):
-        a = [j for j in range(g.shape[1]) if free[i, j]]
-        if not a:
-            continue
-        h = np.array([[hessian[p, q] for q in a] for p in a], np.float64)
-        for j in range(len(a)):
-            extra = 0.0 if ridge is None else (float(ridge[i]) if np.ndim(ridge) == 1
-                                               else float(ridge[i][a[j]]))
-            h[j, j] = h[j, j] * (1.0 + damping) + extra
-        delta[i, a] = np.linalg.solve(h, g[i, a])
-    return delta
-
-
-class ActiveFactors:
-    """Per active set, the factors a frame's step needs, kept while the set recurs.
-
-    For the active controls A of a frame: H_AA^-1 (the prior weight's full Gauss-Newton step)
-    and the eigendecomposition Q diag(lam) Q^T of H_AA + damping diag(H_AA), so that the step's
-    system with any ridge rho, (H_AA + damping diag(H_AA) + rho I), is solved as
-    Q diag(1 / (lam + rho)) Q^T (a ridge adds to every eigenvalue of a symmetric matrix and keeps
-    its eigenvectors). A live stream's active set changes rarely from one frame to the next, so
-    a frame's two small dense solves become four matrix-vector products. ``solve_active`` is the
-    twin these are tested against. At most ``size`` sets are kept (the oldest go first).
-    """
-
-    def __init__(self, hessian: np.ndarray, damping: float, size: int = 256) -> None:
-        self.hessian, self.damping, self.size = hessian, float(damping), int(size)
-        self._sets: dict[bytes, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
-
-    def get(self, a: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """a (k,) int64 active controls -> (H_AA^-1 (k, k), Q (k, k), lam (k,))."""
-        key = a.tobytes()
-        hit = self._sets.get(key)
-        if hit is not None:
-            return hit
-        h = self.hessian[a[:, None], a]
-        damped = h.copy()
-        damped[np.diag_indices(a.size)] *= 1.0 + self.damping
-        lam, q = np.linalg.eigh(damped)
-        hit = (np.linalg.inv(h), q, lam)
-        if len(self._sets) >= self.size:
-            # the batch path's threads may share a refiner: drop the oldest, if still there
-            with contextlib.suppress(StopIteration, RuntimeError):
-                self._sets.pop(next(iter(self._sets)), None)
-        self._sets[key] = hit
-        return hit
-
-    def full_decrease(self, a: np.ndarray, g: np.ndarray) -> float:
-        """a (k,) active controls, g (C,) one frame's gradient -> g_A^T H_AA^-1 g_A, what a full
-        undamped Gauss-Newton step on A would remove from |r|^2."""
-        if a.size == 0:
-            return 0.0
-        ga = g[a]
-        return float(ga @ (self.get(a)[0] @ ga))
-
-    def step_active(self, a: np.ndarray, rhs_a: np.ndarray, ridge: float) -> np.ndarray:
-        """:meth:`step` on the active controls only: a (k,) non-empty, rhs_a (k,) -> delta_A
-        (k,)."""
-        _, q, lam = self.get(a)
-        out: np.ndarray = q @ ((rhs_a @ q) / (lam + ridge))
-        return out
-
-    def step(self, a: np.ndarray, rhs: np.ndarray, ridge: float) -> np.ndarray:
-        """a (k,) active controls, rhs (C,) one frame's right-hand side, ridge >= 0 -> delta (C,):
-        (H_AA + damping diag(H_AA) + ridge I) delta_A = rhs_A, zero outside A."""
-        delta = np.zeros(rhs.shape[0], np.float64)
-        if a.size:
-            _, q, lam = self.get(a)
-            delta[a] = q @ ((q.T @ rhs[a]) / (lam + ridge))
-        return delta

@@ -53,9 +53,11 @@ Each step then:
 
 Finally, controls within ``snap`` of their default (share of the range) return to it exactly.
 Frames are independent: a batch of many (``rigcast solve``) gathers each frame's active system
-and solves them in one batched call; a batch of one (live) takes the same steps on vectors, with
-each active set's factors cached while the set recurs (``ActiveFactors``), and is tested to give
-the batch's controls.
+and solves them in one batched call; a batch of one (live) takes the same steps on vectors, and
+is tested to give the batch's controls. Both are in runtime/solve/curved.py, which takes the
+curvature of each step from a function: the bundle's fixed matrix H along the active controls
+(the chord method above), or the frame's own matrix at its current controls where the bundle's
+graph gives it and the settings ask for it (``RefineSettings.curvature``).
 """
 
 from __future__ import annotations
@@ -67,15 +69,7 @@ from typing import Any
 
 import numpy as np
 from rigcast.runtime.errors import RigcastError
-from rigcast.runtime.solve.active import (
-    ActiveFactors,
-    a_mask,
-    active_set,
-    free_controls,
-    pull_mask,
-    solve_active,
-    wake_factor,
-)
+from rigcast.runtime.solve.active import wake_factor
 from rigcast.runtime.solve.curved import (
     BindCurvatureFn,
     CurvatureFn,
@@ -243,30 +237,47 @@ class Refiner:
 
     @property
     def settings(self) -> RefineSettings:
-        """The step settings; setting them also renews the cached factors, which hold the
-        damping."""
+        """The step settings; setting them also renews what the one-frame steps read."""
         return self._settings
 
     @settings.setter
     def settings(self, value: RefineSettings) -> None:
         self._settings = value
-        self.factors = ActiveFactors(self.hessian, value.damping + value.prior)
         # what the one-frame steps read on every step, made once per setting
         self.root_diag = np.sqrt(self.diag)
         self.wake = wake_factor(value.kappa, self.coords, value.wake_share)
-        self._fixed = value.prior * self.diag
 
-    def prior_weight(self, g: np.ndarray, rss: np.ndarray, free: np.ndarray) -> np.ndarray:
-        """g (N, C) gradient, rss (N,) residual squared norms, free (N, C) the active set ->
-        (N,) lam = sigma^2 / prior_sd^2 with sigma^2 the residual a full Gauss-Newton step would
-        leave, per remaining degree of freedom (0 without an adaptive prior)."""
-        sd = self.settings.prior_sd
-        if sd <= 0.0:
-            return np.zeros(rss.shape, np.float64)
-        left = np.maximum(rss - (g * solve_active(self.hessian, g, free, 0.0)).sum(axis=1), 0.0)
-        dof = np.maximum(self.coords - free.sum(axis=1), 1)
-        out: np.ndarray = left / dof / sd**2
-        return out
+    @property
+    def _curvature(self) -> CurvatureFn:
+        assert self.curvature is not None
+        return self.curvature
+
+    def _fixed_curvature(self, controls: np.ndarray, state: np.ndarray, tangents: np.ndarray
+                         ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """The gradient graph with the bundle's fixed matrix along the tangents (N, T, C):
+        V H V^T, the same for every frame (the chord method)."""
+        g, rss = self.gradient(controls, state)
+        t = tangents.astype(np.float64)
+        return g, rss, t @ self.hessian @ t.transpose(0, 2, 1)
+
+    def _bound(self, state: np.ndarray, current: bool) -> Callable[
+            [np.ndarray, np.ndarray], tuple[np.ndarray, np.ndarray, np.ndarray]]:
+        """One frame's graph as ``curved_steps_one`` calls it: the bundle's curvature when
+        ``current`` (unbound), else the gradient (bound once when the bundle allows) with the
+        fixed matrix."""
+        if current:
+            return lambda c, t: self._curvature(c, state, t)
+        gradient = self.bind(state) if self.bind is not None else (
+            lambda c: self.gradient(c, state))
+        hessian = self.hessian
+
+        def run(controls: np.ndarray, tangents: np.ndarray
+                ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+            g, rss = gradient(controls)
+            t = tangents[0].astype(np.float64)
+            return g, rss, (t @ hessian @ t.T)[None]
+
+        return run
 
     def controls(self, u: np.ndarray) -> np.ndarray:
         """u (N, C) normalised -> (N, C) float32 controls."""
@@ -292,110 +303,15 @@ class Refiner:
             assert mesh is not None
             mesh = self.prepare(mesh)
         assert mesh is not None
-        if self.curvature is not None and s.curvature != "fixed":
-            if u.shape[0] == 1 and self.bind_curvature is not None:
-                u = curved_steps_one(self, self.bind_curvature(mesh), u, s.curvature)
-            else:
-                u = curved_steps(self, self.curvature, u, mesh, s.curvature)
+        current = self.curvature is not None and s.curvature != "fixed"
+        mode = s.curvature if current else "fixed"
+        if u.shape[0] == 1:  # the live path: the frame's graph bound once
+            run = (self.bind_curvature(mesh) if current and self.bind_curvature is not None
+                   else self._bound(mesh, current))
+            u = curved_steps_one(self, run, u, mode)
         else:
-            u = self._steps_one(u, mesh) if u.shape[0] == 1 else self._steps(u, mesh)
+            u = curved_steps(self, self._curvature if current else self._fixed_curvature, u,
+                             mesh, mode)
         u = np.where(np.abs(u - self.d) <= s.snap, self.d, u)
         out: np.ndarray = (self.lower + self.span * u).astype(np.float32)
         return out
-
-    def _steps_one(self, u: np.ndarray, state: np.ndarray) -> np.ndarray:
-        """The steps of :meth:`_steps` for a batch of one frame (the live path), with the frame's
-        numbers as vectors and scalars and the active set's cached factors instead of the
-        batch's gathers and dense solves; tested against :meth:`_steps`. u (1, C) -> (1, C).
-
-        Every numpy call on these few dozen numbers costs about a microsecond whatever its
-        size, so the step is written in as few calls as the arithmetic allows: the step and
-        the trial move only the active controls, and the pull's cost is a dot product."""
-        s, d, fixed = self.settings, self.d, self._fixed
-        root_diag, factor, use_fixed = self.root_diag, self.wake, s.prior > 0.0
-        gradient = (self.bind(state) if self.bind is not None
-                    else lambda c: self.gradient(c, state))
-        lower, span = self.lower, self.span
-
-        def evaluate(x: np.ndarray) -> tuple[np.ndarray, float]:
-            gb, rb = gradient((lower + span * x).astype(np.float32)[None])
-            return gb[0].astype(np.float64), float(rb[0])
-
-        u0 = u[0].copy()
-        x = u0.copy()
-        g, rss = evaluate(x)
-        pulled = pull_mask(u0, d)
-        every_pulled = bool(pulled.all())
-        for _ in range(s.steps):
-            tau = root_diag * (factor * np.sqrt(max(rss, 0.0)))  # ``active_set`` on one frame
-            a = np.flatnonzero(free_controls(x, d, g, tau))
-            if a.size == 0:
-                break
-            lam = 0.0
-            if s.prior_sd > 0.0:
-                left = max(rss - self.factors.full_decrease(a, g), 0.0)
-                lam = left / max(self.coords - a.size, 1) / s.prior_sd**2
-            dx = x - u0
-            weight = lam * pulled + fixed if use_fixed else lam * pulled  # (C,) each pull
-            if every_pulled or pulled[a].all():  # the usual case: one ridge on every active one
-                step_a = self.factors.step_active(a, (g - weight * dx)[a], lam)
-            else:
-                step_a = solve_active(self.hessian, (g - weight * dx)[None], a_mask(a, x.size),
-                                      s.damping + s.prior, (lam * pulled)[None])[0, a]
-            if np.abs(step_a).max() < s.tol:
-                break
-            cost = rss + float(np.dot(weight, dx * dx))
-            share, took = 1.0, False
-            xa = x[a]
-            for _halving in range(s.backtrack + 1):
-                trial = x.copy()
-                trial[a] = np.minimum(np.maximum(xa + share * step_a, 0.0), 1.0)
-                g_new, r_new = evaluate(trial)
-                moved = trial - u0
-                if np.isfinite(r_new) and r_new + float(np.dot(weight, moved * moved)) <= cost:
-                    x, g, rss, took = trial, g_new, r_new, True
-                    break
-                share *= 0.5
-            if not took:  # no step lowered the cost: keep the controls
-                break
-        return x[None]
-
-    def _steps(self, u: np.ndarray, mesh: np.ndarray) -> np.ndarray:
-        """The damped, bounded, safeguarded steps on a batch: u (N, C) the network's answer in
-        normalised controls, mesh (N, ...) the frames' state -> (N, C) before the snap."""
-        s = self.settings
-        u0 = u.copy()
-        g, rss = self._evaluate(u, mesh)
-        pulled = pull_mask(u0, self.d)  # (N, C)
-        live = np.arange(u.shape[0])  # frames still refining; the others are done
-        fixed = s.prior * self.diag  # (C,) the older fixed pull
-        for _ in range(s.steps):
-            ul, gl, rl, dl = u[live], g[live], rss[live], u[live] - u0[live]
-            free = active_set(ul, self.d, gl, rl, self.diag, s.kappa, self.coords, s.wake_share)
-            lam = self.prior_weight(gl, rl, free)  # (n,) the adaptive pull, per frame
-            ridge = lam[:, None] * pulled[live]  # (n, C)
-            pull = gl - (ridge + fixed) * dl
-            step = solve_active(self.hessian, pull, free, s.damping + s.prior, ridge)
-            moving = np.abs(step).max(axis=1, initial=0.0) >= s.tol  # converged frames stop
-            live, ul, step, ridge, dl = live[moving], ul[moving], step[moving], ridge[moving], \
-                dl[moving]
-            if live.size == 0:
-                break
-            cost = rl[moving] + ((ridge + fixed) * dl**2).sum(axis=1)
-            pending = np.ones(live.size, dtype=bool)  # no lower cost found yet
-            share = 1.0
-            for _halving in range(s.backtrack + 1):
-                rows = live[pending]
-                trial = np.clip(ul[pending] + share * step[pending], 0.0, 1.0)
-                g_new, rss_new = self._evaluate(trial, np.take(mesh, rows, axis=0))
-                cost_new = rss_new + ((ridge[pending] + fixed) * (trial - u0[rows]) ** 2
-                                      ).sum(axis=1)
-                better = (cost_new <= cost[pending]) & np.isfinite(rss_new)
-                took = rows[better]
-                u[took], g[took], rss[took] = trial[better], g_new[better], rss_new[better]
-                pending[np.flatnonzero(pending)[better]] = False
-                if not pending.any():
-                    break
-                share *= 0.5
-            live = live[~pending]  # a frame whose cost no step lowered keeps its controls
-        return u
