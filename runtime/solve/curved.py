@@ -43,6 +43,49 @@ BindCurvatureFn = Callable[[np.ndarray], Callable[[np.ndarray, np.ndarray],
                                                   tuple[np.ndarray, np.ndarray, np.ndarray]]]
 
 
+class ActiveSystem:
+    """One frame's damped system on its active controls A, from sub (k, k) its curvature:
+    (sub + (damp - 1) diag(sub) + diag(ridge)) delta = rhs, and g^T sub^-1 g."""
+
+    def __init__(self, sub: np.ndarray, damp: float) -> None:
+        self.sub, self.damp = sub, float(damp)
+
+    def decrease(self, ga: np.ndarray) -> float:
+        """ga (k,) -> ga^T sub^-1 ga, what a full undamped step on A removes from |r|^2."""
+        return float(ga @ np.linalg.solve(self.sub, ga))
+
+    def step(self, rhs: np.ndarray, ridge: np.ndarray) -> np.ndarray:
+        """rhs, ridge (k,) -> delta (k,)."""
+        system = self.sub.copy()
+        k = np.arange(system.shape[0])
+        system[k, k] = self.sub[k, k] * self.damp + ridge
+        out: np.ndarray = np.linalg.solve(system, rhs)
+        return out
+
+
+class FactoredSystem(ActiveSystem):
+    """:class:`ActiveSystem` on a matrix that recurs (the bundle's fixed one), factored once:
+    sub^-1 and the eigendecomposition Q diag(e) Q^T of the damped matrix, so a step with the
+    same ridge r on every control is Q diag(1 / (e + r)) Q^T rhs (a ridge adds to every
+    eigenvalue and keeps the eigenvectors): matrix-vector products instead of solves."""
+
+    def __init__(self, sub: np.ndarray, damp: float) -> None:
+        super().__init__(sub, damp)
+        damped = sub.copy()
+        damped[np.diag_indices(sub.shape[0])] *= damp
+        self.inv = np.linalg.inv(sub)
+        self.eig, self.q = np.linalg.eigh(damped)
+
+    def decrease(self, ga: np.ndarray) -> float:
+        return float(ga @ (self.inv @ ga))
+
+    def step(self, rhs: np.ndarray, ridge: np.ndarray) -> np.ndarray:
+        if ridge.size and np.all(ridge == ridge[0]):
+            out: np.ndarray = self.q @ ((rhs @ self.q) / (self.eig + ridge[0]))
+            return out
+        return super().step(rhs, ridge)
+
+
 def one_hot(idx: np.ndarray, valid: np.ndarray, c: int) -> np.ndarray:
     """idx, valid (N, W) from ``gather_active`` -> (N, W, C) float32 tangents, one row per active
     control, zero rows on the padding."""
@@ -188,31 +231,33 @@ def curved_steps_one(ref: Refiner, run: Callable[[np.ndarray, np.ndarray],
     have = pulled > 0.0
     pos = np.zeros(c, np.int64)
     pos[held] = np.arange(held.size)
-    g, rss, h = evaluate(x, held)
+    g, rss, h = evaluate(x, held if mode != "fixed" else held[:0])
     for _ in range(s.steps):
         tau = root_diag * (factor * np.sqrt(max(rss, 0.0)))
         a = np.flatnonzero(free_controls(x, d, g, tau))
         if a.size == 0:
             break
-        if not have[a].all():  # a control woke: its matrix along the new set
-            g, rss, h = evaluate(x, a)
-            have[:] = False
-            have[a] = True
-            pos[a] = np.arange(a.size)
-        p = pos[a]
-        sub = h[p[:, None], p]
         k = np.arange(a.size)
-        sub[k, k] = np.maximum(sub[k, k], floor[a])
+        if mode == "fixed":  # the same matrix for every frame: its factors kept per active set
+            system = ref.fixed_system(a)
+        else:
+            if not have[a].all():  # a control woke: its matrix along the new set
+                g, rss, h = evaluate(x, a)
+                have[:] = False
+                have[a] = True
+                pos[a] = k
+            p = pos[a]
+            sub = h[p[:, None], p]
+            sub[k, k] = np.maximum(sub[k, k], floor[a])
+            system = ActiveSystem(sub, damp)
         ga = g[a]
         lam = 0.0
         if s.prior_sd > 0.0:
-            left = max(rss - float(ga @ np.linalg.solve(sub, ga)), 0.0)
+            left = max(rss - system.decrease(ga), 0.0)
             lam = left / max(ref.coords - a.size, 1) / s.prior_sd**2
         dx = x - u0
         weight = lam * pulled + fixed  # (C,) each control's pull
-        system = sub.copy()
-        system[k, k] = sub[k, k] * damp + lam * pulled[a]
-        step_a = np.linalg.solve(system, (g - weight * dx)[a])
+        step_a = system.step((g - weight * dx)[a], lam * pulled[a])
         if np.abs(step_a).max() < s.tol:
             break
         cost = rss + float(np.dot(weight, dx * dx))

@@ -73,11 +73,15 @@ from rigcast.runtime.solve.active import wake_factor
 from rigcast.runtime.solve.curved import (
     BindCurvatureFn,
     CurvatureFn,
+    FactoredSystem,
     curved_steps,
     curved_steps_one,
 )
 
 log = logging.getLogger(__name__)
+
+#: active sets whose fixed-matrix factors a refiner keeps (all dropped when full)
+SYSTEMS = 256
 
 #: (controls (N, C) float32, per-frame state (N, ...)) -> (gradient (N, C), residual_sq (N,)).
 #: The state is what ``Refiner.prepare`` made of the frames (the frames themselves without it).
@@ -246,6 +250,20 @@ class Refiner:
         # what the one-frame steps read on every step, made once per setting
         self.root_diag = np.sqrt(self.diag)
         self.wake = wake_factor(value.kappa, self.coords, value.wake_share)
+        self._systems: dict[bytes, FactoredSystem] = {}
+
+    def fixed_system(self, a: np.ndarray) -> FactoredSystem:
+        """The fixed matrix's system on active controls a (k,), factored once per set (a live
+        stream's active set changes rarely; at most ``SYSTEMS`` sets are kept)."""
+        key = a.tobytes()
+        hit = self._systems.get(key)
+        if hit is None:
+            if len(self._systems) >= SYSTEMS:
+                self._systems.clear()
+            s = self._settings
+            hit = FactoredSystem(self.hessian[a[:, None], a], 1.0 + s.damping + s.prior)
+            self._systems[key] = hit
+        return hit
 
     @property
     def _curvature(self) -> CurvatureFn:
