@@ -203,3 +203,23 @@ def test_gauss_newton_at_the_current_point_reaches_the_optimum_the_fixed_matrix_
 def test_curvature_settings_are_checked() -> None:
     with pytest.raises(RefineError, match="curvature"):
         RefineSettings(curvature="exact")
+
+
+def test_factored_system_matches_the_solves() -> None:
+    """The live path's factors of the fixed matrix (inverse, eigendecomposition with a ridge)
+    against the plain solves of ``ActiveSystem``, with one ridge on every control and without."""
+    from rigcast.runtime.solve.curved import ActiveSystem, FactoredSystem
+
+    rng = np.random.default_rng(21)
+    m = rng.standard_normal((7, 7))
+    sub = m @ m.T + 0.1 * np.eye(7)
+    plain, factored = ActiveSystem(sub, 1.01), FactoredSystem(sub, 1.01)
+    for _ in range(20):
+        rhs = rng.standard_normal(7)
+        same = np.full(7, rng.uniform(0.0, 3.0))
+        mixed = same * (rng.random(7) < 0.5)
+        for ridge in (same, mixed):
+            np.testing.assert_allclose(factored.step(rhs, ridge), plain.step(rhs, ridge),
+                                       rtol=1e-9, atol=1e-12)
+        np.testing.assert_allclose(factored.decrease(rhs), plain.decrease(rhs), rtol=1e-9)
+    assert not np.allclose(plain.step(rhs, same), plain.step(rhs, mixed))
