@@ -88,8 +88,8 @@ def _chain(c: int = 5, p: int = 5, parents: list[int] | None = None) -> Kinemati
 @pytest.mark.parametrize("parents", [None, [-1, 0, -1, 2], [-1, 0, 0, -1]])
 def test_chain_jacobian_and_vjp_equal_autograd(parents: list[int] | None) -> None:
     """The hand-written forward- and reverse-mode derivatives (what the refinement graphs
-    need) against torch.autograd's Jacobian of the chain's output: one serial chain, two
-    chains, and a joint with two children."""
+    need: the geometric Jacobian and its step-by-step twins) against torch.autograd's Jacobian
+    of the chain's output: one serial chain, two chains, and a joint with two children."""
     chain = _chain(parents=parents)
     u = torch.rand(6, 5, dtype=torch.float64, generator=torch.Generator().manual_seed(2))
     jac = torch.stack([torch.autograd.functional.jacobian(lambda x: chain(x[None])[0], row)
@@ -100,6 +100,10 @@ def test_chain_jacobian_and_vjp_equal_autograd(parents: list[int] | None) -> Non
     assert torch.allclose(got, jac.transpose(1, 2), atol=1e-10)
     back = torch.randn(6, 5, dtype=torch.float64, generator=torch.Generator().manual_seed(4))
     assert torch.allclose(chain.vjp(u, back), torch.einsum("npc,np->nc", jac, back), atol=1e-10)
+    # the step-by-step twins (forward and reverse mode through the prefix products)
+    assert torch.allclose(chain.jacobian_steps(u), jac.transpose(1, 2), atol=1e-10)
+    assert torch.allclose(chain.vjp_steps(u, back), torch.einsum("npc,np->nc", jac, back),
+                          atol=1e-10)
 
 
 def test_chain_features_are_the_forward_kinematics() -> None:

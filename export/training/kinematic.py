@@ -144,7 +144,57 @@ class KinematicChain(nn.Module):
         out: torch.Tensor = self.out(self.features(u))
         return out
 
+    def _twists(self, u: torch.Tensor) -> torch.Tensor:
+        """u (N, C) -> (N, J, J, 12) d F_k / d theta_j-scaled, the geometric Jacobian: turning
+        joint j moves everything below it about its world axis w_j = A_q a_j through its world
+        pivot c_j = A_q p_j + b_q (q its parent), so for k at or below j
+        dA_k = s_j [w_j]_x A_k and db_k = s_j w_j x (b_k - c_j) (zero elsewhere)."""
+        r, t, _, _ = self._parts(u)
+        n, j = u.shape[0], self.joint_count
+        eye = torch.eye(3, dtype=u.dtype)
+        root = (eye.expand(n, 3, 3), u.new_zeros((n, 3)))
+        ab: list[tuple[torch.Tensor, torch.Tensor]] = []
+        up: list[tuple[torch.Tensor, torch.Tensor]] = []
+        for k, q in enumerate(self._parents):
+            a, b = root if q < 0 else ab[q]
+            up.append((a, b))
+            ab.append((a @ r[:, k], b + (a @ t[:, k, :, None])[..., 0]))
+        a_k = torch.stack([x[0] for x in ab], 1)  # (N, J, 3, 3)
+        b_k = torch.stack([x[1] for x in ab], 1)  # (N, J, 3)
+        a_q = torch.stack([x[0] for x in up], 1)
+        b_q = torch.stack([x[1] for x in up], 1)
+        w = a_q @ (self.axis / self.axis.norm(dim=1, keepdim=True))[None, :, :, None]
+        centre = (a_q @ self.pivot[None, :, :, None])[..., 0] + b_q  # (N, J, 3)
+        sw = skew(w[..., 0]) * self.scale[:, None, None]  # (N, J, 3, 3): s_j [w_j]_x
+        below = np.zeros((j, j), np.float32)  # [j, k] = 1 when k is j or below it
+        for k, q in enumerate(self._parents):
+            below[k, k] = 1.0
+            while q >= 0:
+                below[q, k], q = 1.0, self._parents[q]
+        mask = torch.from_numpy(below).to(u.dtype)[None, :, :, None]
+        da = (sw[:, :, None] @ a_k[:, None]).reshape(n, j, j, 9)
+        db = (sw[:, :, None] @ (b_k[:, None] - centre[:, :, None])[..., None])[..., 0]
+        return torch.cat([da, db], 3) * mask
+
     def jacobian(self, u: torch.Tensor) -> torch.Tensor:
+        """d out / du for u (N, C) -> (N, C, P) from the geometric Jacobian (``_twists``): a
+        few batched ops whatever J (``jacobian_steps`` is its step-by-step twin)."""
+        n, j = u.shape[0], self.joint_count
+        feats = torch.cat([self._twists(u).reshape(n, j, 12 * j),
+                           torch.eye(j, dtype=u.dtype).expand(n, j, j)], 2)
+        jac = feats @ self.out.weight.T  # (N, J, 13J) -> (N, J, P)
+        return torch.einsum("jc,njp->ncp", self.select, jac)  # (N, C, P)
+
+    def vjp(self, u: torch.Tensor, back: torch.Tensor) -> torch.Tensor:
+        """(d out / du)^T back for u (N, C), back (N, P) -> (N, C) from the geometric Jacobian
+        (``vjp_steps`` is its reverse-mode twin)."""
+        n, j = u.shape[0], self.joint_count
+        full = back @ self.out.weight  # (N, 13J): adjoints of each F_k, then of u_J
+        g = full[:, : 12 * j].reshape(n, 1, j * 12)
+        cols = (self._twists(u).reshape(n, j, 12 * j) * g).sum(2)
+        return (cols + full[:, 12 * j :]) @ self.select  # (N, C)
+
+    def jacobian_steps(self, u: torch.Tensor) -> torch.Tensor:
         """d out / du for u (N, C) -> (N, C, P), in forward mode by hand (one tangent per
         control): dA_k = dA_q R_k + [c = k] A_q dR_k, db_k = db_q + dA_q t_k + [c = k] A_q dt_k,
         q = parent(k)."""
@@ -168,7 +218,7 @@ class KinematicChain(nn.Module):
         jac = torch.cat(feats, 2) @ self.out.weight.T  # (N, J, 13J) -> (N, J, P)
         return torch.einsum("jc,njp->ncp", self.select, jac)  # (N, C, P)
 
-    def vjp(self, u: torch.Tensor, back: torch.Tensor) -> torch.Tensor:
+    def vjp_steps(self, u: torch.Tensor, back: torch.Tensor) -> torch.Tensor:
         """(d out / du)^T back for u (N, C), back (N, P) -> (N, C), in reverse mode by hand."""
         r, t, dr, dt = self._parts(u)
         n, c = u.shape[0], self.joint_count
