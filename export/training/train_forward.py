@@ -77,7 +77,9 @@ class ForwardConfig:
     # face-linear and the zoo's blendshape, corrective and jaw-face kinds join none). Lantern
     # arm (12 skinned joints' angles): forward error 0.121 -> 0.0009 % of D; with the
     # refinement that differentiates the chain (4234c26), noise-free held-out poses' mean
-    # error 2.8e-3 -> 9.8e-4 and false activity 0.57 -> 0.11 controls per pose.
+    # error 2.8e-3 -> 9.8e-4 and false activity 0.57 -> 0.11 controls per pose (the lead's
+    # figures on a cached build; a full bench A/B at one commit is still to be run). Zoo
+    # chain rigs: twist angles (about a tube's own axis, rigid residual 0.15-0.21) stay out.
     chain: bool = True
 
 
