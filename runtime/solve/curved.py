@@ -1,4 +1,6 @@
-"""The refinement's steps with the curvature at the current point (bundles since it).
+"""The refinement's step loop (runtime/solve/refine.py describes each step), batched and for one
+frame, with the curvature of each step from a function: the bundle's fixed matrix, or the
+frame's own matrix at its current controls (bundles since it).
 
 A bundle's refinement graph can return, beside the gradient, the Gauss-Newton matrix
 J(u)^T G J(u) of the forward model's fit at the frame's current controls u, along the directions
@@ -9,11 +11,12 @@ whose mesh is not linear in its controls (correctives, skinned joints) the fixed
 point a full step the wrong way and converges slowly near the optimum; Gauss-Newton at the
 current point converges in a few steps near it (Nocedal & Wright, "Numerical Optimization",
 2nd ed. 2006, 10.3). The active set, the prior's pull, the damping, the bounds and the
-halvings are those of ``Refiner._steps``.
+halvings are the same whichever the curvature.
 
-``curvature`` sets when a frame's matrix is made again: "step", after every step that moved
-the frame (Gauss-Newton); "frame", once for the frame's first active set, then only when a
-control outside it wakes (a chord method with the frame's own matrix).
+The mode sets when a frame's matrix is made: "step", after every step that moved the frame
+(Gauss-Newton); "frame", once for the frame's first active set, then only when a control outside
+it wakes (a chord method with the frame's own matrix); "fixed", the bundle's matrix, the same
+for every frame (the chord method; the live path keeps its factors per active set).
 """
 
 from __future__ import annotations
@@ -128,7 +131,8 @@ class CurvatureStore:
 
 def curved_steps(ref: Refiner, curvature: CurvatureFn, u: np.ndarray, mesh: np.ndarray,
                  mode: str) -> np.ndarray:
-    """The steps of ``Refiner._steps`` with each frame's curvature at its current point.
+    """The bounded, damped, safeguarded steps on a batch, each frame's curvature from
+    ``curvature`` as ``mode`` says.
     u (N, C) the network's answer in normalised controls, mesh (N, ...) the frames' state ->
     (N, C) before the snap."""
     s = ref.settings
