@@ -166,3 +166,16 @@ def test_the_build_summary_warns_of_a_dead_output_in_one_line() -> None:
     warned = [line for line in lines if line.startswith("warning:") and "jaw_drop" in line]
     assert len(warned) == 1 and "-194" in warned[0]
     assert not [line for line in _reference_lines(ref) if "never moves" in line]
+
+
+def test_the_build_summary_says_when_the_refinement_uses_the_current_point() -> None:
+    from rigcast.commands.report import _reference_lines
+
+    ref = {"stabilised": True, "poses": 64, "rig_mean_err": 1e-4, "rig_max_err": 1e-3,
+           "lsq_mean_err": 2e-4, "lsq_max_err": 2e-3, "recoverable_controls": 46,
+           "unrecoverable": []}
+    said = [line for line in _reference_lines({**ref, "curvature": "step"})
+            if "current controls" in line]
+    assert len(said) == 1
+    assert not [line for line in _reference_lines({**ref, "curvature": "fixed"})
+                if "current controls" in line]

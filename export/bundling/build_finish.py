@@ -140,7 +140,7 @@ def finish(
     served = check_served(out_path, rig, check_x, float(fwd_rep.mean_err), check_controls)
     training.update(check_mean_err=served.rig_mean_err,
                     check_mean_err_pct_diag=served.rig_mean_err_pct_diag,
-                    reference=served.to_dict())
+                    reference={**served.to_dict(), "curvature": curvature})
     extra.update(fit_rms_train=served.fit_rms_mean, fit_rms_p99=served.fit_rms_p99)
     write_bundle(out_path, extra=extra, **parts)
     if served.worse_than_reference:
@@ -193,7 +193,7 @@ def finish(
         checkpoint=ckpt,
         forward_model=fwd,
         inverse_model=inv,
-        reference=served.to_dict(),
+        reference={**served.to_dict(), "curvature": curvature},
     )
 
 

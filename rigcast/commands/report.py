@@ -314,6 +314,9 @@ def _reference_lines(ref: Any) -> list[str]:
         f"{ref['rig_max_err']:.5g}; bounded linear least squares: mean {ref['lsq_mean_err']:.5g}, "
         f"max {ref['lsq_max_err']:.5g}",
     ]
+    if ref.get("curvature") == "step":
+        lines.append("refinement: Gauss-Newton at each frame's current controls (it lowered the "
+                     "held-out error by 10 % or more against the fixed matrix)")
     unrec = ref.get("unrecoverable") or []
     lines.append(f"controls recovered alone at 25-100% of their range: "
                  f"{ref.get('recoverable_controls')} of {ref.get('recoverable_controls', 0) + len(unrec)}")
