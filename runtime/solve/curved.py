@@ -129,10 +129,11 @@ class CurvatureStore:
         return out
 
 
-def curved_steps(ref: Refiner, curvature: CurvatureFn, u: np.ndarray, mesh: np.ndarray,
+def curved_steps(ref: Refiner, curvature: CurvatureFn | None, u: np.ndarray, mesh: np.ndarray,
                  mode: str) -> np.ndarray:
     """The bounded, damped, safeguarded steps on a batch, each frame's curvature from
-    ``curvature`` as ``mode`` says.
+    ``curvature`` as ``mode`` says ("fixed": the bundle's matrix ``ref.hessian``, gathered on
+    each frame's active controls, with no graph call; ``curvature`` may then be None).
     u (N, C) the network's answer in normalised controls, mesh (N, ...) the frames' state ->
     (N, C) before the snap."""
     s = ref.settings
@@ -141,18 +142,23 @@ def curved_steps(ref: Refiner, curvature: CurvatureFn, u: np.ndarray, mesh: np.n
     pulled = pull_mask(u0, ref.d)
     fixed = s.prior * ref.diag
     floor = 1e-6 * ref.diag  # a control whose effect vanishes here keeps a solvable system
+    chord = mode == "fixed"
     store = CurvatureStore(n, c)
-    # the first matrices along the controls the network moved: most frames' first active set
-    idx0, valid0 = gather_active(pulled > 0.0)
-    g, rss, h0 = curvature(ref.controls(u), mesh, one_hot(idx0, valid0, c))
-    g, rss = np.asarray(g, np.float64), np.asarray(rss, np.float64)
-    store.put(np.arange(n), idx0, valid0, np.asarray(h0, np.float64))
+    if chord:
+        g, rss = ref._evaluate(u, mesh)
+    else:  # the first matrices along the controls the network moved: most frames' first set
+        assert curvature is not None
+        idx0, valid0 = gather_active(pulled > 0.0)
+        g, rss, h0 = curvature(ref.controls(u), mesh, one_hot(idx0, valid0, c))
+        g, rss = np.asarray(g, np.float64), np.asarray(rss, np.float64)
+        store.put(np.arange(n), idx0, valid0, np.asarray(h0, np.float64))
     live = np.arange(n)
     for _ in range(s.steps):
         ul, gl, rl, dl = u[live], g[live], rss[live], u[live] - u0[live]
         free = active_set(ul, ref.d, gl, rl, ref.diag, s.kappa, ref.coords, s.wake_share)
-        need = (free & ~store.have[live]).any(axis=1)
-        if need.any():
+        need = (free & ~store.have[live]).any(axis=1) if not chord else None
+        if need is not None and need.any():  # a control woke: its frame's matrix along the set
+            assert curvature is not None
             rows = live[need]
             idx_n, valid_n = gather_active(free[need])
             _, _, h_n = curvature(ref.controls(u[rows]), np.take(mesh, rows, axis=0),
@@ -161,7 +167,9 @@ def curved_steps(ref: Refiner, curvature: CurvatureFn, u: np.ndarray, mesh: np.n
         idx, valid = gather_active(free)
         if idx.shape[1] == 0:
             break
-        sub = store.gather(live, idx)
+        # the fixed matrix's entries on the active pairs, as V H V^T with one-hot V gives them
+        sub = (ref.hessian[idx[:, :, None], idx[:, None, :]] if chord
+               else store.gather(live, idx))
         w = idx.shape[1]
         diag = sub[:, np.arange(w), np.arange(w)]
         sub[:, np.arange(w), np.arange(w)] = np.maximum(diag, floor[idx])

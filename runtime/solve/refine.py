@@ -270,14 +270,6 @@ class Refiner:
         assert self.curvature is not None
         return self.curvature
 
-    def _fixed_curvature(self, controls: np.ndarray, state: np.ndarray, tangents: np.ndarray
-                         ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """The gradient graph with the bundle's fixed matrix along the tangents (N, T, C):
-        V H V^T, the same for every frame (the chord method)."""
-        g, rss = self.gradient(controls, state)
-        t = tangents.astype(np.float64)
-        return g, rss, t @ self.hessian @ t.transpose(0, 2, 1)
-
     def _bound(self, state: np.ndarray, current: bool) -> Callable[
             [np.ndarray, np.ndarray], tuple[np.ndarray, np.ndarray, np.ndarray]]:
         """One frame's graph as ``curved_steps_one`` calls it: the bundle's curvature when
@@ -328,8 +320,7 @@ class Refiner:
                    else self._bound(mesh, current))
             u = curved_steps_one(self, run, u, mode)
         else:
-            u = curved_steps(self, self._curvature if current else self._fixed_curvature, u,
-                             mesh, mode)
+            u = curved_steps(self, self._curvature if current else None, u, mesh, mode)
         u = np.where(np.abs(u - self.d) <= s.snap, self.d, u)
         out: np.ndarray = (self.lower + self.span * u).astype(np.float32)
         return out
