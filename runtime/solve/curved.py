@@ -198,7 +198,7 @@ def curved_steps(ref: Refiner, curvature: CurvatureFn | None, u: np.ndarray, mes
             rows = live[pending]
             trial = np.clip(ul[pending] + share * step[pending], 0.0, 1.0)
             state = np.take(mesh, rows, axis=0)
-            if mode == "step":  # the trial's matrix along this step's set comes with it
+            if mode == "step" and curvature is not None:  # the trial's matrix comes with it
                 g_new, rss_new, h_new = curvature(ref.controls(trial), state,
                                                   one_hot(idx[pending], valid[pending], c))
             else:
