@@ -21,6 +21,7 @@ for every frame (the chord method; the live path keeps its factors per active se
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable
 from typing import TYPE_CHECKING
 
@@ -60,8 +61,9 @@ class ActiveSystem:
     def step(self, rhs: np.ndarray, ridge: np.ndarray) -> np.ndarray:
         """rhs, ridge (k,) -> delta (k,)."""
         system = self.sub.copy()
-        k = np.arange(system.shape[0])
-        system[k, k] = self.sub[k, k] * self.damp + ridge
+        diagonal = system.reshape(-1)[:: system.shape[0] + 1]  # a view of the diagonal
+        np.multiply(diagonal, self.damp, out=diagonal)
+        diagonal += ridge
         out: np.ndarray = np.linalg.solve(system, rhs)
         return out
 
@@ -223,49 +225,56 @@ def curved_steps_one(ref: Refiner, run: Callable[[np.ndarray, np.ndarray],
                      u: np.ndarray, mode: str) -> np.ndarray:
     """:func:`curved_steps` for a batch of one frame (the live path), on vectors, with the
     frame's graph bound once (``run``: controls (1, C), tangents (1, T, C) -> gradient, |r|^2 and
-    the matrix along them); tested against :func:`curved_steps`. u (1, C) -> (1, C)."""
-    s, d = ref.settings, ref.d
-    c = u.shape[1]
-    lower, span = ref.lower, ref.span
-    root_diag, factor, floor = ref.root_diag, ref.wake, 1e-6 * ref.diag
-    damp = 1.0 + s.damping + s.prior
-    eye = np.eye(c, dtype=np.float32)
+    the matrix along them); tested against :func:`curved_steps`. u (1, C) -> (1, C).
 
-    def evaluate(x: np.ndarray, a: np.ndarray) -> tuple[np.ndarray, float, np.ndarray]:
-        gb, rb, hb = run((lower + span * x).astype(np.float32)[None], eye[a][None])
+    The same arithmetic as the batch, with as few numpy calls as a step allows (each costs
+    about a microsecond whatever its size, and a live frame takes up to a dozen steps): the
+    frame's matrix is held with the controls it is along (``held``), so a step on the same
+    set takes it whole; a step's tangents are made once for its halvings."""
+    s, d = ref.settings, ref.d
+    lower, span = ref.lower, ref.span
+    root_diag, factor, floor = ref.root_diag, ref.wake, ref.floor
+    damp = 1.0 + s.damping + s.prior
+    eye = ref.eye
+    chord = mode == "fixed"
+    no_tangents = eye[:0][None]
+
+    def evaluate(x: np.ndarray, tangents: np.ndarray) -> tuple[np.ndarray, float, np.ndarray]:
+        gb, rb, hb = run((lower + span * x).astype(np.float32)[None], tangents)
         return gb[0].astype(np.float64), float(rb[0]), hb[0]
 
     u0 = u[0].copy()
-    x = u0.copy()
+    x = u0  # never written in place: each accepted trial is a new array
     pulled = pull_mask(u0, d)
     fixed = s.prior * ref.diag
-    held = np.flatnonzero(pulled)
-    have = pulled > 0.0
-    pos = np.zeros(c, np.int64)
-    pos[held] = np.arange(held.size)
-    g, rss, h = evaluate(x, held if mode != "fixed" else held[:0])
+    held = np.flatnonzero(pulled)  # the controls the frame's matrix h is along
+    g, rss, h = evaluate(x, no_tangents if chord else eye[held][None])
     for _ in range(s.steps):
-        tau = root_diag * (factor * np.sqrt(max(rss, 0.0)))
+        tau = root_diag * (factor * math.sqrt(max(rss, 0.0)))
         a = np.flatnonzero(free_controls(x, d, g, tau))
         if a.size == 0:
             break
-        k = np.arange(a.size)
-        if mode == "fixed":  # the same matrix for every frame: its factors kept per active set
-            system = ref.fixed_system(a)
+        if chord:  # the same matrix for every frame: its factors kept per active set
+            system: ActiveSystem = ref.fixed_system(a)
         else:
-            if not have[a].all():  # a control woke: its matrix along the new set
-                g, rss, h = evaluate(x, a)
-                have[:] = False
-                have[a] = True
-                pos[a] = k
-            p = pos[a]
-            sub = h[p[:, None], p]
-            sub[k, k] = np.maximum(sub[k, k], floor[a])
+            if a.size == held.size and np.array_equal(a, held):
+                sub = h.copy()
+            else:
+                pos = np.full(u0.shape[0], -1, np.int64)
+                pos[held] = np.arange(held.size)
+                p = pos[a]
+                if p.min() < 0:  # a control woke: its matrix along the new set
+                    g, rss, h = evaluate(x, eye[a][None])
+                    held = a
+                    sub = h.copy()
+                else:
+                    sub = h[p[:, None], p]
+            diagonal = sub.reshape(-1)[:: a.size + 1]  # a view: the floor set in place
+            np.maximum(diagonal, floor[a], out=diagonal)
             system = ActiveSystem(sub, damp)
-        ga = g[a]
         lam = 0.0
         if s.prior_sd > 0.0:
-            left = max(rss - system.decrease(ga), 0.0)
+            left = max(rss - system.decrease(g[a]), 0.0)
             lam = left / max(ref.coords - a.size, 1) / s.prior_sd**2
         dx = x - u0
         weight = lam * pulled + fixed  # (C,) each control's pull
@@ -275,18 +284,16 @@ def curved_steps_one(ref: Refiner, run: Callable[[np.ndarray, np.ndarray],
         cost = rss + float(np.dot(weight, dx * dx))
         share, took = 1.0, False
         xa = x[a]
+        tangents = eye[a][None] if mode == "step" else no_tangents
         for _halving in range(s.backtrack + 1):
             trial = x.copy()
             trial[a] = np.minimum(np.maximum(xa + share * step_a, 0.0), 1.0)
-            g_new, r_new, h_new = evaluate(trial, a if mode == "step" else a[:0])
+            g_new, r_new, h_new = evaluate(trial, tangents)
             moved = trial - u0
-            if np.isfinite(r_new) and r_new + float(np.dot(weight, moved * moved)) <= cost:
+            if math.isfinite(r_new) and r_new + float(np.dot(weight, moved * moved)) <= cost:
                 x, g, rss, took = trial, g_new, r_new, True
                 if mode == "step":  # its matrix along this step's set, at the new point
-                    h = h_new
-                    have[:] = False
-                    have[a] = True
-                    pos[a] = k
+                    h, held = h_new, a
                 break
             share *= 0.5
         if not took:

@@ -250,6 +250,8 @@ class Refiner:
         # what the one-frame steps read on every step, made once per setting
         self.root_diag = np.sqrt(self.diag)
         self.wake = wake_factor(value.kappa, self.coords, value.wake_share)
+        self.floor = 1e-6 * self.diag  # a control whose effect vanishes keeps a solvable system
+        self.eye = np.eye(self.diag.shape[0], dtype=np.float32)  # one-hot tangents' rows
         self._systems: dict[bytes, FactoredSystem] = {}
 
     def fixed_system(self, a: np.ndarray) -> FactoredSystem:
