@@ -418,3 +418,49 @@ def test_gauss_newton_matrix_matches_autograd() -> None:
     poses = rng.uniform(0, 3, (9, c))
     np.testing.assert_allclose(gauss_newton_matrix(fwd, idx, poses, chunk=4),
                                gauss_newton_matrix_naive(fwd, idx, poses), rtol=1e-4, atol=1e-6)
+
+
+@pytest.mark.parametrize("prior_sd", [0.02, 0.0])
+def test_the_fixed_matrix_gathered_is_the_matrix_sent_along_one_hot_tangents(
+        prior_sd: float) -> None:
+    """The chord steps gather the fixed matrix's entries on each frame's active pairs with no
+    graph call; their naive twin sends the same matrix as a curvature function, V H V^T along
+    one-hot tangents V, made once per frame and again when a control wakes (the "frame" mode,
+    which with a matrix that never changes is the chord method). The same controls bit for bit,
+    batched and for one frame, on noisy and clean frames where controls wake."""
+    c = 12
+    a, gradient = _linear_problem(21, c, coords=600)
+    rng = np.random.default_rng(22)
+    truth = _sparse_truth(rng, 32, c)
+    noisy = truth @ a.T + 0.02 * rng.standard_normal((32, a.shape[0])) * (np.arange(32) % 2)[:, None]
+    mesh = noisy.reshape(32, -1, 3).astype(np.float32)
+    guess = np.clip(truth + 0.1 * rng.standard_normal(truth.shape), 0, 1).astype(np.float32)
+    guess[::3, 0] = 0.0
+    guess[::4, [3, 4]] = 0.0  # missed controls: they wake
+    hessian = a.T @ a
+    calls = [0]
+
+    def along(controls: np.ndarray, state: np.ndarray, tangents: np.ndarray
+              ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        calls[0] += 1
+        g, rss = gradient(controls, state)
+        t = tangents.astype(np.float64)
+        return g, rss, t @ hessian @ t.transpose(0, 2, 1)
+
+    def bind_along(state: np.ndarray):
+        return lambda controls, tangents: along(controls, state, tangents)
+
+    settings = RefineSettings(prior_sd=prior_sd, curvature="fixed")
+    chord = Refiner(gradient, hessian, np.zeros(c), np.ones(c), np.zeros(c), a.shape[0],
+                    settings)
+    twin = Refiner(gradient, hessian, np.zeros(c), np.ones(c), np.zeros(c), a.shape[0],
+                   RefineSettings(prior_sd=prior_sd, curvature="frame"), curvature=along,
+                   bind_curvature=bind_along)
+    got = chord.refine(guess, mesh)
+    want = twin.refine(guess, mesh)
+    assert calls[0] > 1  # the twin made matrices for woken controls too
+    np.testing.assert_array_equal(got, want)
+    assert np.abs(got - guess).max() > 0.05  # the steps moved the controls
+    # and the one-frame path's factored chord system against the batch, to rounding
+    alone = np.concatenate([chord.refine(guess[i : i + 1], mesh[i : i + 1]) for i in range(32)])
+    np.testing.assert_allclose(alone, got, rtol=0, atol=1e-6)
