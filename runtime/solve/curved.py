@@ -38,13 +38,20 @@ if TYPE_CHECKING:
     from rigcast.runtime.solve.refine import Refiner
 
 #: (controls (N, C) float32, per-frame state (N, ...), tangents (N, T, C) float32) ->
-#: (gradient (N, C), residual_sq (N,), the Gauss-Newton matrix along the tangents (N, T, T))
-CurvatureFn = Callable[[np.ndarray, np.ndarray, np.ndarray],
-                       tuple[np.ndarray, np.ndarray, np.ndarray]]
-#: one frame's state (1, ...) -> (controls (1, C), tangents (1, T, C)) -> the same three, with
-#: what depends on the frame alone made once (the live path)
+#: (gradient (N, C), residual_sq (N,), the Gauss-Newton matrix along the tangents (N, T, T)),
+#: and from a moment-form graph a fourth, the basis weights z (N, R) at the controls
+CurvatureFn = Callable[[np.ndarray, np.ndarray, np.ndarray], tuple[np.ndarray, ...]]
+#: one frame's state (1, ...) -> (controls (1, C), tangents (1, T, C)) -> the same, with what
+#: depends on the frame alone made once (the live path)
 BindCurvatureFn = Callable[[np.ndarray], Callable[[np.ndarray, np.ndarray],
-                                                  tuple[np.ndarray, np.ndarray, np.ndarray]]]
+                                                  tuple[np.ndarray, ...]]]
+#: one frame's graph as the one-frame steps call it
+RunFn = Callable[[np.ndarray, np.ndarray], tuple[np.ndarray, ...]]
+
+
+def weights_of(out: tuple[np.ndarray, ...], at: int) -> np.ndarray | None:
+    """The basis weights an evaluation returned at place ``at`` (None when it gave none)."""
+    return out[at] if len(out) > at else None
 
 
 class ActiveSystem:
@@ -132,12 +139,12 @@ class CurvatureStore:
 
 
 def curved_steps(ref: Refiner, curvature: CurvatureFn | None, u: np.ndarray, mesh: np.ndarray,
-                 mode: str) -> np.ndarray:
+                 mode: str) -> tuple[np.ndarray, np.ndarray | None]:
     """The bounded, damped, safeguarded steps on a batch, each frame's curvature from
     ``curvature`` as ``mode`` says ("fixed": the bundle's matrix ``ref.hessian``, gathered on
     each frame's active controls, with no graph call; ``curvature`` may then be None).
     u (N, C) the network's answer in normalised controls, mesh (N, ...) the frames' state ->
-    (N, C) before the snap."""
+    ((N, C) before the snap, the basis weights (N, R) the graph made at them, or None)."""
     s = ref.settings
     n, c = u.shape
     u0 = u.copy()
@@ -147,13 +154,15 @@ def curved_steps(ref: Refiner, curvature: CurvatureFn | None, u: np.ndarray, mes
     chord = mode == "fixed"
     store = CurvatureStore(n, c)
     if chord:
-        g, rss = ref._evaluate(u, mesh)
+        g, rss, z = ref._evaluate(u, mesh)
     else:  # the first matrices along the controls the network moved: most frames' first set
         assert curvature is not None
         idx0, valid0 = gather_active(pulled > 0.0)
-        g, rss, h0 = curvature(ref.controls(u), mesh, one_hot(idx0, valid0, c))
-        g, rss = np.asarray(g, np.float64), np.asarray(rss, np.float64)
-        store.put(np.arange(n), idx0, valid0, np.asarray(h0, np.float64))
+        out = curvature(ref.controls(u), mesh, one_hot(idx0, valid0, c))
+        g, rss, z = np.asarray(out[0], np.float64), np.asarray(out[1], np.float64), \
+            weights_of(out, 3)
+        store.put(np.arange(n), idx0, valid0, np.asarray(out[2], np.float64))
+    z = None if z is None else np.array(z)  # its own: rows follow the frames that move
     live = np.arange(n)
     for _ in range(s.steps):
         ul, gl, rl, dl = u[live], g[live], rss[live], u[live] - u0[live]
@@ -163,8 +172,8 @@ def curved_steps(ref: Refiner, curvature: CurvatureFn | None, u: np.ndarray, mes
             assert curvature is not None
             rows = live[need]
             idx_n, valid_n = gather_active(free[need])
-            _, _, h_n = curvature(ref.controls(u[rows]), np.take(mesh, rows, axis=0),
-                                  one_hot(idx_n, valid_n, c))
+            h_n = curvature(ref.controls(u[rows]), np.take(mesh, rows, axis=0),
+                            one_hot(idx_n, valid_n, c))[2]
             store.put(rows, idx_n, valid_n, np.asarray(h_n, np.float64))
         idx, valid = gather_active(free)
         if idx.shape[1] == 0:
@@ -201,14 +210,17 @@ def curved_steps(ref: Refiner, curvature: CurvatureFn | None, u: np.ndarray, mes
             trial = np.clip(ul[pending] + share * step[pending], 0.0, 1.0)
             state = np.take(mesh, rows, axis=0)
             if mode == "step" and curvature is not None:  # the trial's matrix comes with it
-                g_new, rss_new, h_new = curvature(ref.controls(trial), state,
-                                                  one_hot(idx[pending], valid[pending], c))
+                out = curvature(ref.controls(trial), state,
+                                one_hot(idx[pending], valid[pending], c))
+                g_new, rss_new, h_new, z_new = out[0], out[1], out[2], weights_of(out, 3)
             else:
-                g_new, rss_new = ref._evaluate(trial, state)
+                g_new, rss_new, z_new = ref._evaluate(trial, state)
             cost_new = rss_new + ((ridge[pending] + fixed) * (trial - u0[rows]) ** 2).sum(axis=1)
             better = (cost_new <= cost[pending]) & np.isfinite(rss_new)
             took = rows[better]
             u[took], g[took], rss[took] = trial[better], g_new[better], rss_new[better]
+            if z is not None and z_new is not None:
+                z[took] = z_new[better]
             if mode == "step":  # moved: its matrix is the one made at the new point
                 store.put(took, idx[pending][better], valid[pending][better],
                           np.asarray(h_new, np.float64)[better])
@@ -217,15 +229,15 @@ def curved_steps(ref: Refiner, curvature: CurvatureFn | None, u: np.ndarray, mes
                 break
             share *= 0.5
         live = live[~pending]
-    return u
+    return u, z
 
 
-def curved_steps_one(ref: Refiner, run: Callable[[np.ndarray, np.ndarray],
-                                                 tuple[np.ndarray, np.ndarray, np.ndarray]],
-                     u: np.ndarray, mode: str) -> np.ndarray:
+def curved_steps_one(ref: Refiner, run: RunFn, u: np.ndarray, mode: str
+                     ) -> tuple[np.ndarray, np.ndarray | None]:
     """:func:`curved_steps` for a batch of one frame (the live path), on vectors, with the
-    frame's graph bound once (``run``: controls (1, C), tangents (1, T, C) -> gradient, |r|^2 and
-    the matrix along them); tested against :func:`curved_steps`. u (1, C) -> (1, C).
+    frame's graph bound once (``run``: controls (1, C), tangents (1, T, C) -> gradient, |r|^2,
+    the matrix along them[, the basis weights]); tested against :func:`curved_steps`.
+    u (1, C) -> ((1, C), the basis weights (1, R) at them or None).
 
     The same arithmetic as the batch, with as few numpy calls as a step allows (each costs
     about a microsecond whatever its size, and a live frame takes up to a dozen steps): the
@@ -239,16 +251,17 @@ def curved_steps_one(ref: Refiner, run: Callable[[np.ndarray, np.ndarray],
     chord = mode == "fixed"
     no_tangents = eye[:0][None]
 
-    def evaluate(x: np.ndarray, tangents: np.ndarray) -> tuple[np.ndarray, float, np.ndarray]:
-        gb, rb, hb = run((lower + span * x).astype(np.float32)[None], tangents)
-        return gb[0].astype(np.float64), float(rb[0]), hb[0]
+    def evaluate(x: np.ndarray, tangents: np.ndarray
+                 ) -> tuple[np.ndarray, float, np.ndarray, np.ndarray | None]:
+        out = run((lower + span * x).astype(np.float32)[None], tangents)
+        return out[0][0].astype(np.float64), float(out[1][0]), out[2][0], weights_of(out, 3)
 
     u0 = u[0].copy()
     x = u0  # never written in place: each accepted trial is a new array
     pulled = pull_mask(u0, d)
     fixed = s.prior * ref.diag
     held = np.flatnonzero(pulled)  # the controls the frame's matrix h is along
-    g, rss, h = evaluate(x, no_tangents if chord else eye[held][None])
+    g, rss, h, z = evaluate(x, no_tangents if chord else eye[held][None])
     for _ in range(s.steps):
         tau = root_diag * (factor * math.sqrt(max(rss, 0.0)))
         a = np.flatnonzero(free_controls(x, d, g, tau))
@@ -264,7 +277,7 @@ def curved_steps_one(ref: Refiner, run: Callable[[np.ndarray, np.ndarray],
                 pos[held] = np.arange(held.size)
                 p = pos[a]
                 if p.min() < 0:  # a control woke: its matrix along the new set
-                    g, rss, h = evaluate(x, eye[a][None])
+                    g, rss, h, _ = evaluate(x, eye[a][None])
                     held = a
                     sub = h.copy()
                 else:
@@ -288,14 +301,14 @@ def curved_steps_one(ref: Refiner, run: Callable[[np.ndarray, np.ndarray],
         for _halving in range(s.backtrack + 1):
             trial = x.copy()
             trial[a] = np.minimum(np.maximum(xa + share * step_a, 0.0), 1.0)
-            g_new, r_new, h_new = evaluate(trial, tangents)
+            g_new, r_new, h_new, z_new = evaluate(trial, tangents)
             moved = trial - u0
             if math.isfinite(r_new) and r_new + float(np.dot(weight, moved * moved)) <= cost:
-                x, g, rss, took = trial, g_new, r_new, True
+                x, g, rss, z, took = trial, g_new, r_new, z_new, True
                 if mode == "step":  # its matrix along this step's set, at the new point
                     h, held = h_new, a
                 break
             share *= 0.5
         if not took:
             break
-    return x[None]
+    return x[None], z

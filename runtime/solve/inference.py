@@ -143,6 +143,7 @@ class SolvePass:
 
     controls: np.ndarray
     moments: FrameMoments | None = None
+    weights: np.ndarray | None = None  # (N, R) z at the controls from the refinement, or None
 
 
 class MomentForm:
@@ -184,6 +185,18 @@ class MomentForm:
         """points (N, S, 3) float32 -> their FrameMoments."""
         mo, norm = self.project.run(self._outs, {PROJECT_POINTS: np.ascontiguousarray(points)})
         return FrameMoments.from_outputs(mo, norm)
+
+    def weights_at(self, controls: np.ndarray, made: np.ndarray | None) -> np.ndarray:
+        """:meth:`weights`, taking the rows the refinement already made (``made`` (N, R), from
+        ``Refiner.solve``: NaN rows and None are made here): the same numbers, since the graph
+        makes z from the controls alone, with one graph evaluation fewer."""
+        if made is None:
+            return self.weights(controls)
+        z = np.asarray(made, np.float64)
+        todo = np.isnan(z).any(axis=1)
+        if todo.any():
+            z[todo] = self.weights(controls[todo])
+        return z
 
     def weights(self, controls: np.ndarray) -> np.ndarray:
         """controls (N, C) float32 -> z (N, R) float64, the forward model on S = offset + A^T z."""
@@ -251,7 +264,8 @@ class InverseModel:
             return SolvePass(result)
         if self.moment_form is not None:
             fm = self.moment_form.moments(points[:, k:])
-            return SolvePass(self.refiner.refine(result, state=projection_state(fm)), fm)
+            solved, z = self.refiner.solve(result, state=projection_state(fm))
+            return SolvePass(solved, fm, z)
         return SolvePass(self.refiner.refine(result, points[:, k:] if points.shape[1] > k
                                              else points))
 
@@ -320,6 +334,9 @@ def _refiner(bundle: Bundle, threads: int, settings: RefineSettings | None
     form = (MomentForm(project, session, count, projected.rest, bundle.stable_indices,
                        bundle.neutral[bundle.stable_indices]) if moment else None)
     outs = [REFINE_PROJECTION, PROJECT_NORM]
+    # a moment-form graph's basis weights come with every evaluation (the graph makes them on
+    # the way to the gradient): the realignment takes those at the refined controls
+    extra = [REFINE_WEIGHTS] if moment else []
 
     def prepare(points: np.ndarray) -> np.ndarray:
         """points (N, S, 3) -> (N, R + 1) float64: the projection, then |y|^2."""
@@ -328,41 +345,41 @@ def _refiner(bundle: Bundle, threads: int, settings: RefineSettings | None
         proj, norm = project.run(outs, {PROJECT_POINTS: np.ascontiguousarray(points)})
         return np.concatenate([proj, norm[:, None]], axis=1, dtype=np.float64)
 
-    def gradient_projected(controls: np.ndarray, state: np.ndarray
-                           ) -> tuple[np.ndarray, np.ndarray]:
+    def gradient_projected(controls: np.ndarray, state: np.ndarray) -> tuple[np.ndarray, ...]:
         return bind(state)(controls)
 
-    def bind(state: np.ndarray) -> Callable[[np.ndarray], tuple[np.ndarray, np.ndarray]]:
+    def bind(state: np.ndarray) -> Callable[[np.ndarray], tuple[np.ndarray, ...]]:
         """The gradient on fixed frames: their projection in float32 and |y|^2 made once."""
         feed = {REFINE_PROJECTION: state[:, :-1].astype(np.float32)}
         if curved:
             feed[REFINE_TANGENTS] = np.zeros((state.shape[0], 0, c), np.float32)
         norm = state[:, -1]
+        wanted = [*names, *extra]
 
-        def run(controls: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        def run(controls: np.ndarray) -> tuple[np.ndarray, ...]:
             feed[REFINE_CONTROLS] = controls
-            g, quad = session.run(names, feed)
-            return g, norm + quad
+            g, quad, *z = session.run(wanted, feed)
+            return g, norm + quad, *z
 
         return run
 
     def curvature(controls: np.ndarray, state: np.ndarray, tangents: np.ndarray
-                  ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """The gradient, |r|^2 and the Gauss-Newton matrix along tangents (N, T, C)."""
+                  ) -> tuple[np.ndarray, ...]:
+        """The gradient, |r|^2 and the Gauss-Newton matrix along tangents (N, T, C) (and the
+        basis weights)."""
         return bind_curvature(state)(controls, tangents)
 
     def bind_curvature(state: np.ndarray) -> Callable[[np.ndarray, np.ndarray],
-                                                      tuple[np.ndarray, np.ndarray, np.ndarray]]:
+                                                      tuple[np.ndarray, ...]]:
         """``curvature`` on fixed frames: their projection and |y|^2 made once."""
         feed = {REFINE_PROJECTION: state[:, :-1].astype(np.float32)}
         norm = state[:, -1]
-        outs = [*names, REFINE_CURVATURE]
+        wanted = [*names, REFINE_CURVATURE, *extra]
 
-        def run(controls: np.ndarray, tangents: np.ndarray
-                ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        def run(controls: np.ndarray, tangents: np.ndarray) -> tuple[np.ndarray, ...]:
             feed[REFINE_CONTROLS], feed[REFINE_TANGENTS] = controls, tangents
-            g, quad, h = session.run(outs, feed)
-            return g, norm + quad, h
+            g, quad, h, *z = session.run(wanted, feed)
+            return g, norm + quad, h, *z
 
         return run
 

@@ -83,14 +83,17 @@ log = logging.getLogger(__name__)
 #: active sets whose fixed-matrix factors a refiner keeps (all dropped when full)
 SYSTEMS = 256
 
-#: (controls (N, C) float32, per-frame state (N, ...)) -> (gradient (N, C), residual_sq (N,)).
+#: (controls (N, C) float32, per-frame state (N, ...)) -> (gradient (N, C), residual_sq (N,)),
+#: and from a moment-form graph a third, the basis weights z (N, R) at the controls (the
+#: realignment's target, which the graph makes on the way: ``Refiner.solve`` hands it on).
 #: The state is what ``Refiner.prepare`` made of the frames (the frames themselves without it).
-GradientFn = Callable[[np.ndarray, np.ndarray], tuple[np.ndarray, np.ndarray]]
+GradientFn = Callable[[np.ndarray, np.ndarray], tuple[np.ndarray, ...]]
 #: frames' refinement vertices (N, S, 3) float32 -> per-frame state (N, ...)
 PrepareFn = Callable[[np.ndarray], np.ndarray]
 #: one frame's state (1, ...) -> the GradientFn on that frame, controls (1, C) float32 -> (gradient
-#: (1, C), residual_sq (1,)), with what depends on the frame alone made once (the live path)
-BindFn = Callable[[np.ndarray], Callable[[np.ndarray], tuple[np.ndarray, np.ndarray]]]
+#: (1, C), residual_sq (1,)[, z (1, R)]), with what depends on the frame alone made once (the
+#: live path)
+BindFn = Callable[[np.ndarray], Callable[[np.ndarray], tuple[np.ndarray, ...]]]
 
 
 #: when a step's curvature is made (runtime/solve/curved.py): the bundle's fixed matrix, the
@@ -273,7 +276,7 @@ class Refiner:
         return self.curvature
 
     def _bound(self, state: np.ndarray, current: bool) -> Callable[
-            [np.ndarray, np.ndarray], tuple[np.ndarray, np.ndarray, np.ndarray]]:
+            [np.ndarray, np.ndarray], tuple[np.ndarray, ...]]:
         """One frame's graph as ``curved_steps_one`` calls it: the bundle's curvature when
         ``current`` (unbound), else the gradient (bound once when the bundle allows) with the
         fixed matrix."""
@@ -283,11 +286,10 @@ class Refiner:
             lambda c: self.gradient(c, state))
         hessian = self.hessian
 
-        def run(controls: np.ndarray, tangents: np.ndarray
-                ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-            g, rss = gradient(controls)
+        def run(controls: np.ndarray, tangents: np.ndarray) -> tuple[np.ndarray, ...]:
+            out = gradient(controls)
             t = tangents[0].astype(np.float64)
-            return g, rss, (t @ hessian @ t.T)[None]
+            return out[0], out[1], (t @ hessian @ t.T)[None], *out[2:]
 
         return run
 
@@ -296,19 +298,30 @@ class Refiner:
         out: np.ndarray = (self.lower + self.span * u).astype(np.float32)
         return out
 
-    def _evaluate(self, u: np.ndarray, mesh: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        g, rss = self.gradient(self.controls(u), mesh)
-        return np.asarray(g, np.float64), np.asarray(rss, np.float64)
+    def _evaluate(self, u: np.ndarray, mesh: np.ndarray
+                  ) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
+        """u (N, C) -> (gradient (N, C) float64, |r|^2 (N,) float64, z (N, R) or None)."""
+        out = self.gradient(self.controls(u), mesh)
+        return (np.asarray(out[0], np.float64), np.asarray(out[1], np.float64),
+                out[2] if len(out) > 2 else None)
 
     def refine(self, controls: np.ndarray, mesh: np.ndarray | None = None, *,
                state: np.ndarray | None = None) -> np.ndarray:
         """controls (N, C) the network's answer; mesh (N, S, 3) the vertices the refinement
         fits, in the neutral's frame, or ``state`` what ``prepare`` makes of them, already
         made -> (N, C) float32."""
+        return self.solve(controls, mesh, state=state)[0]
+
+    def solve(self, controls: np.ndarray, mesh: np.ndarray | None = None, *,
+              state: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray | None]:
+        """:meth:`refine`, with the basis weights z (N, R) float32 the graph made at the
+        controls it returns (what ``inference.MomentForm.weights`` would make of them, without
+        another evaluation), or None when the graph gives none or no step ran. A frame the snap
+        moved after its last evaluation has a row of NaN: its weights are still to be made."""
         s = self.settings
         u = np.clip((np.asarray(controls, np.float64) - self.lower) / self.span, 0.0, 1.0)
         if s.steps == 0 or u.shape[0] == 0:
-            return np.asarray(controls, np.float32)
+            return np.asarray(controls, np.float32), None
         if state is not None:
             mesh = state
         elif self.prepare is not None:
@@ -320,9 +333,14 @@ class Refiner:
         if u.shape[0] == 1:  # the live path: the frame's graph bound once
             run = (self.bind_curvature(mesh) if current and self.bind_curvature is not None
                    else self._bound(mesh, current))
-            u = curved_steps_one(self, run, u, mode)
+            u, z = curved_steps_one(self, run, u, mode)
         else:
-            u = curved_steps(self, self._curvature if current else None, u, mesh, mode)
-        u = np.where(np.abs(u - self.d) <= s.snap, self.d, u)
-        out: np.ndarray = (self.lower + self.span * u).astype(np.float32)
-        return out
+            u, z = curved_steps(self, self._curvature if current else None, u, mesh, mode)
+        snapped = np.where(np.abs(u - self.d) <= s.snap, self.d, u)
+        if z is not None:
+            moved = (snapped != u).any(axis=1)
+            if moved.any():
+                z = np.array(z, np.float32)
+                z[moved] = np.nan
+        out: np.ndarray = (self.lower + self.span * snapped).astype(np.float32)
+        return out, z

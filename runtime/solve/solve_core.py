@@ -235,8 +235,9 @@ def solve_points(model: SolveModel, frames: np.ndarray, points: np.ndarray,
     else:  # inverse.solve_pass with the rough refiner: only the realignment reads it
         net = inverse.network(points[:, : inverse.k])
         fm = inverse.moment_form.moments(points[:, inverse.k :])
-        first = SolvePass(rough.refine(net, state=projection_state(fm))
-                          if np.isfinite(net).all() else net, fm)
+        solved, z = (rough.solve(net, state=projection_state(fm)) if np.isfinite(net).all()
+                     else (net, None))
+        first = SolvePass(solved, fm, z)
     _check_finite(first.controls, first_frame)
     if rigid is None or passes <= 0:
         return first.controls, rigid
@@ -264,8 +265,9 @@ def _realign_moments(model: SolveModel, frames: np.ndarray, points: np.ndarray, 
         target = np.empty((frames.shape[0], extra.size, 3), np.float32)
         target[:, : stable_home.shape[0]] = stable_home
     rough = model.rough.get() if model.rough is not None else None
+    made = first.weights  # the basis weights the refinement made at its answer
     for done in range(1, passes + 1):
-        z = form.weights(solved)
+        z = form.weights_at(solved, made)
         if form.rest is not None:
             target[:, stable_home.shape[0] :] = form.rest_targets(z)
         fit = realign_fit(first.moments, form.constants, z, extra_source=source,
@@ -273,13 +275,14 @@ def _realign_moments(model: SolveModel, frames: np.ndarray, points: np.ndarray, 
         linear, shift = uncentre(fit, form.constants.centre)
         moved = (net @ linear.transpose(0, 2, 1) + shift[:, None]).astype(np.float32)
         scaled = fit.scale[:, None, None] * fit.rotation
+        made = None
         if done == passes or rough is None:
             solved = inverse.solve_moved(moved, first.moments, scaled, fit.translation)
         else:  # inverse.solve_moved with the rough refiner: the next realignment reads it
             solved = inverse.network(moved)
             if np.isfinite(solved).all():
-                solved = rough.refine(solved, state=moved_state(first.moments, form.constants,
-                                                                scaled, fit.translation))
+                solved, made = rough.solve(solved, state=moved_state(
+                    first.moments, form.constants, scaled, fit.translation))
         _check_finite(solved, first_frame)
     return solved, compose(rigid, linear, shift)
 
