@@ -8,6 +8,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from rigcast.runtime.solve.align import RigidBatch, fit_rigid_batch
 from rigcast.runtime.solve.stages import (
+    GATHER_SLICE,
     clamp,
     clamp_naive,
     fit_error,
@@ -39,6 +40,20 @@ def test_gather_inputs_equals_its_naive_twin(seed: int, b: int, posed: bool) -> 
                                atol=1e-5)
     if not posed:
         np.testing.assert_array_equal(got, frames[:, indices])
+
+
+def test_gather_inputs_in_slices_gives_the_whole_batch_bits() -> None:
+    """A batch longer than GATHER_SLICE is gathered and moved slice by slice (for the cache):
+    the same bits as moving it whole, and its naive twin's numbers."""
+    rng = np.random.default_rng(5)
+    b = 2 * GATHER_SLICE + 7
+    frames = rng.normal(size=(b, 300, 3)).astype(np.float32)
+    indices = rng.choice(300, size=90, replace=False)
+    rigid = _rigid(rng, b)
+    got = gather_inputs(frames, indices, rigid)
+    np.testing.assert_array_equal(got, rigid.apply(np.take(frames, indices, axis=1)))
+    np.testing.assert_allclose(got, gather_inputs_naive(frames, indices, rigid), rtol=1e-5,
+                               atol=1e-5)
 
 
 @settings(max_examples=30, deadline=None)

@@ -257,7 +257,7 @@ def _realign_moments(model: SolveModel, frames: np.ndarray, points: np.ndarray, 
     # the frames' vertices stabilised and centred in one move
     centring = RigidBatch(rigid.rotation, rigid.translation - form.constants.centre,
                           rigid.scale, rigid.mse)
-    source = centring.apply(np.take(frames, extra, axis=1))
+    source = gather_inputs(frames, extra, centring)
     net = points[:, : inverse.k]
     solved = first.controls
     target: np.ndarray = stable_home
