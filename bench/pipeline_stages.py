@@ -8,12 +8,17 @@ server's per-frame code (protocol decode, then runtime/solve/pipeline.py StreamS
 core on a batch of one: stabilise, infer (with the bundle's refinement steps unless
 ``--no-refine``), filter, clamp, publish with the head pose on a PUB socket with no subscriber)
 back to back, the first 500 frames being warm-up; ``--realign N`` sets the stream's realignment
-passes (default 1, the server's). It prints per-stage medians and p99 in
-microseconds. Set beside bench/latency.py, it separates what the code costs from what waking up
-and crossing the sockets costs: the paced server's stage medians there include cold caches after
+passes (default 1, the server's). It prints per-stage medians and p99 in microseconds, and
+beside them the frame's thread CPU time (``time.thread_time_ns`` around decode and
+``process``: what the frame costs the core it runs on, which a machine loaded by others
+disturbs far less than the wall clock) and each graph's onnxruntime calls and thread time per
+frame (the graphs' arithmetic; the rest is the Python and numpy around them). Set beside
+bench/latency.py, it separates what the code costs from what waking up and crossing the
+sockets costs: the paced server's stage medians there include cold caches after
 each 8 ms idle gap and the ZeroMQ I/O thread's work on the same core. ``--out DIR`` writes
 DIR/pipeline_stages.json as {"runs": [{"vertices", "frames", "refine", "median_us": {...},
-"p99_us": {...}}]}.
+"p99_us": {...}, "thread_us": {"median", "p99"}, "graphs": {name: {"calls_per_frame",
+"thread_us_per_frame"}}}]}.
 """
 
 from __future__ import annotations
@@ -38,6 +43,28 @@ from rigcast.runtime.solve.pipeline import StreamState, load_stream_model
 WARMUP = 500
 
 
+def count_sessions(model: Any) -> dict[str, list[int]]:
+    """Wraps ``run`` of the model's onnxruntime sessions (on the session objects): the returned
+    {graph: [calls, thread ns]} counts them from then on."""
+    inverse = model.inverse
+    found = {"inverse": inverse.session, "forward": model.forward.session}
+    if inverse.moment_form is not None:
+        found["project"] = inverse.moment_form.project
+        found["refine"] = inverse.moment_form.refine
+    counts: dict[str, list[int]] = {name: [0, 0] for name in found}
+    for name, session in found.items():
+        def timed(*args: Any, _run: Any = session.run, _into: list[int] = counts[name],
+                  **kwargs: Any) -> Any:
+            start = time.thread_time_ns()
+            try:
+                return _run(*args, **kwargs)
+            finally:
+                _into[0] += 1
+                _into[1] += time.thread_time_ns() - start
+        session.run = timed
+    return counts
+
+
 def measure(vertices: int, frames: int, work: Path, refine: bool = True,
             realign: int = 1) -> dict[str, Any]:
     path = build_synthetic_bundle(work / f"bench_{vertices}_{refine}.rcb", vertices=vertices,
@@ -55,10 +82,15 @@ def measure(vertices: int, frames: int, work: Path, refine: bool = True,
     pub.setsockopt(zmq.SNDHWM, 1000)
     pub.bind("tcp://127.0.0.1:*")
     rows = []
+    cpu = []
+    counts: dict[str, list[int]] = {}
     try:
         for i in range(frames + WARMUP):
+            if i == WARMUP:
+                counts = count_sessions(model)
             wire = protocol.encode_mesh("bench", i, i * 8_333_333, meshes[i % len(meshes)])
             t0 = time.perf_counter_ns()
+            c0 = time.thread_time_ns()
             header = protocol.decode_header(wire[0])
             mesh = protocol.decode_mesh(header, wire[1], expected_vertices=vertices,
                                         max_bytes=1 << 26)
@@ -66,14 +98,21 @@ def measure(vertices: int, frames: int, work: Path, refine: bool = True,
             result = state.process(mesh, time.time_ns(), t0, t1 - t0, pub.send_multipart)
             if i >= WARMUP:
                 rows.append(result.stage_ns)
+                cpu.append(time.thread_time_ns() - c0)
     finally:
         pub.close()
         ctx.term()
     us = np.asarray(rows, dtype=np.float64) / 1e3
     med = dict(zip(STAGES, np.median(us, axis=0).tolist(), strict=True))
     p99 = dict(zip(STAGES, np.percentile(us, 99, axis=0).tolist(), strict=True))
+    thread_us = np.asarray(cpu, dtype=np.float64) / 1e3
+    graphs = {name: {"calls_per_frame": n / frames, "thread_us_per_frame": ns / 1e3 / frames}
+              for name, (n, ns) in counts.items()}
     return {"vertices": vertices, "frames": frames, "refine": refine, "realign": realign,
-            "median_us": med, "p99_us": p99}
+            "median_us": med, "p99_us": p99,
+            "thread_us": {"median": float(np.median(thread_us)),
+                          "p99": float(np.percentile(thread_us, 99))},
+            "graphs": graphs}
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -96,6 +135,11 @@ def main(argv: list[str] | None = None) -> int:
                 cells = ", ".join(f"{s} {run[key][s]:.1f}" for s in STAGES)
                 print(f"V={v} refine={'off' if args.no_refine else 'on'} realign={args.realign} "
                       f"{label} (us): {cells}")
+            graphs = ", ".join(f"{g} {d['calls_per_frame']:.2f} calls {d['thread_us_per_frame']:.0f}"
+                               for g, d in run["graphs"].items())
+            print(f"V={v} frame thread CPU (us): median {run['thread_us']['median']:.1f}, p99 "
+                  f"{run['thread_us']['p99']:.1f}; onnxruntime per frame (calls, thread us): "
+                  f"{graphs}")
     if args.out is not None:
         args.out.mkdir(parents=True, exist_ok=True)
         (args.out / "pipeline_stages.json").write_text(json.dumps({"runs": runs}, indent=2))
