@@ -164,7 +164,10 @@ def curved_steps(ref: Refiner, curvature: CurvatureFn | None, u: np.ndarray, mes
         store.put(np.arange(n), idx0, valid0, np.asarray(out[2], np.float64))
     z = None if z is None else np.array(z)  # its own: rows follow the frames that move
     live = np.arange(n)
-    for _ in range(s.steps):
+    for number in range(s.steps):
+        # the trial's matrix is read by the next step only: the last step's trials go without
+        # (the graph then skips the curvature, and the other outputs are the same)
+        curved = mode == "step" and number < s.steps - 1
         ul, gl, rl, dl = u[live], g[live], rss[live], u[live] - u0[live]
         free = active_set(ul, ref.d, gl, rl, ref.diag, s.kappa, ref.coords, s.wake_share)
         need = (free & ~store.have[live]).any(axis=1) if not chord else None
@@ -209,7 +212,7 @@ def curved_steps(ref: Refiner, curvature: CurvatureFn | None, u: np.ndarray, mes
             rows = live[pending]
             trial = np.clip(ul[pending] + share * step[pending], 0.0, 1.0)
             state = np.take(mesh, rows, axis=0)
-            if mode == "step" and curvature is not None:  # the trial's matrix comes with it
+            if curved and curvature is not None:  # the trial's matrix comes with it
                 out = curvature(ref.controls(trial), state,
                                 one_hot(idx[pending], valid[pending], c))
                 g_new, rss_new, h_new, z_new = out[0], out[1], out[2], weights_of(out, 3)
@@ -221,7 +224,7 @@ def curved_steps(ref: Refiner, curvature: CurvatureFn | None, u: np.ndarray, mes
             u[took], g[took], rss[took] = trial[better], g_new[better], rss_new[better]
             if z is not None and z_new is not None:
                 z[took] = z_new[better]
-            if mode == "step":  # moved: its matrix is the one made at the new point
+            if curved:  # moved: its matrix is the one made at the new point
                 store.put(took, idx[pending][better], valid[pending][better],
                           np.asarray(h_new, np.float64)[better])
             pending[np.flatnonzero(pending)[better]] = False
@@ -262,7 +265,7 @@ def curved_steps_one(ref: Refiner, run: RunFn, u: np.ndarray, mode: str
     fixed = s.prior * ref.diag
     held = np.flatnonzero(pulled)  # the controls the frame's matrix h is along
     g, rss, h, z = evaluate(x, no_tangents if chord else eye[held][None])
-    for _ in range(s.steps):
+    for number in range(s.steps):
         tau = root_diag * (factor * math.sqrt(max(rss, 0.0)))
         a = np.flatnonzero(free_controls(x, d, g, tau))
         if a.size == 0:
@@ -297,7 +300,9 @@ def curved_steps_one(ref: Refiner, run: RunFn, u: np.ndarray, mode: str
         cost = rss + float(np.dot(weight, dx * dx))
         share, took = 1.0, False
         xa = x[a]
-        tangents = eye[a][None] if mode == "step" else no_tangents
+        # the trial's matrix is read by the next step only (none after the last)
+        curved = mode == "step" and number < s.steps - 1
+        tangents = eye[a][None] if curved else no_tangents
         for _halving in range(s.backtrack + 1):
             trial = x.copy()
             trial[a] = np.minimum(np.maximum(xa + share * step_a, 0.0), 1.0)
@@ -305,7 +310,7 @@ def curved_steps_one(ref: Refiner, run: RunFn, u: np.ndarray, mode: str
             moved = trial - u0
             if math.isfinite(r_new) and r_new + float(np.dot(weight, moved * moved)) <= cost:
                 x, g, rss, z, took = trial, g_new, r_new, z_new, True
-                if mode == "step":  # its matrix along this step's set, at the new point
+                if curved:  # its matrix along this step's set, at the new point
                     h, held = h_new, a
                 break
             share *= 0.5
