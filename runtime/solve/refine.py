@@ -286,8 +286,12 @@ class Refiner:
             lambda c: self.gradient(c, state))
         hessian = self.hessian
 
+        none = np.zeros((1, 0, 0))  # the matrix along no tangents (the chord steps send none)
+
         def run(controls: np.ndarray, tangents: np.ndarray) -> tuple[np.ndarray, ...]:
             out = gradient(controls)
+            if tangents.shape[1] == 0:
+                return out[0], out[1], none, *out[2:]
             t = tangents[0].astype(np.float64)
             return out[0], out[1], (t @ hessian @ t.T)[None], *out[2:]
 
