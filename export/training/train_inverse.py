@@ -3,13 +3,21 @@
 Loss per batch of clean meshes ``x`` (B, V, 3):
 
     c    = inverse(x[:, K] + noise)            noise ~ N(0, sigma^2), sigma = noise_frac * diagonal
-    loss = mean_v w_v |forward(c)_v - x_v|^2 / scale^2  +  l1 * mean |c - default| / range
+    loss = mean_v w_v |forward(c)_v - x_v|^2 / scale^2  +  mean_c l1_c |c - default| / range
            (+ supervised, general mode only: BCE(u(c), u(c_true)) with a weight decaying from
               ``supervised`` to ``supervised_floor``)
            (+ consistency * mean ((c - c') / range)^2,   c' = inverse(x[:, K] + noise'), a second,
               independent draw of the same noise; or, in mesh space, the weighted mean of
               |forward(c) - forward(c')|^2 / scale^2)
 
+- sparsity by mesh effect: the mesh loss is normalised by ``scale``, the RMS motion of the input
+  vertices, which the rig's largest control sets. One shared L1 coefficient then pulls control c
+  towards rest by l1 / (2 C E_c) of its range (E_c its mesh loss curvature, ``l1_coefficients``):
+  on the demo face, beside a jaw that moves 65 % of the vertices by 4.9 % of the diagonal (RMS),
+  that pull was 40 % of the range for the median control and 4.5 ranges for a nostril, so only
+  the supervised floor kept small, local shapes alive, and they died when the jaw opened (the
+  "lost expressions" of issue 12). With ``shrink`` > 0 each control gets its own coefficient so
+  that the pull is at most ``shrink`` of its range (``l1_coefficients``).
 - general mode: batches mix the rig's sampled meshes with fresh random poses rendered through the
   frozen forward model (cheap augmentation); labels are known there, so an early, linearly
   decaying supervised term on normalised controls speeds convergence; after its decay it keeps a
@@ -88,6 +96,10 @@ class InverseConfig:
     # 0.019, +25 %; 10 in mesh space: 0.034, +25 % (a small mesh effect is charged little).
     consistency: float = 0.0
     consistency_space: Literal["mesh", "controls"] = "controls"
+    # Sparsity by mesh effect (module docstring): when > 0, no control is pulled towards rest by
+    # more than this share of its range; a control the shared ``l1`` would pull further gets a
+    # smaller coefficient of its own (0: ``l1`` for every control).
+    shrink: float = 0.02  # measured on the demo face and zoo rigs (the closing note of 2026-12-05)
     seed: int = 0
     max_seconds: float | None = None  # a time budget; None: the fixed schedule (see above)
 
@@ -215,6 +227,9 @@ def train_inverse(
     fresh = round(config.fresh_fraction * config.batch) if rates is not None else 0
     idx_t = torch.as_tensor(input_indices, dtype=torch.long)
     span_t, def_t = torch.from_numpy(hi - lo), torch.from_numpy(defaults)
+    l1_c = torch.from_numpy(l1_coefficients(
+        forward, loss_idx, scale, config.l1, config.shrink, config.noise_frac * diagonal(neutral)
+    ))
     opt = torch.optim.Adam(model.parameters(), lr=config.lr)
     sched = one_cycle(opt, config.lr, config.steps)
     inv_s2 = 1.0 / (scale * scale)
@@ -256,7 +271,7 @@ def train_inverse(
         pred = fwd_sub(c)
         diff = pred - x[:, loss_t]
         loss = (weights * diff.pow(2).sum(-1)).mean() * inv_s2 / 3.0
-        loss = loss + config.l1 * ((c - def_t).abs() / span_t).mean()
+        loss = loss + (l1_c * (c - def_t).abs() / span_t).mean()
         objective = float(loss.detach())  # the mesh-space loss, without the supervised term
         if config.consistency > 0.0:
             # a second, independent noise draw on the same poses must give the same answer
@@ -317,6 +332,40 @@ def train_inverse(
         report.seconds,
     )
     return model, report
+
+
+def l1_coefficients(
+    forward: ForwardApproximator,
+    vertices: np.ndarray,
+    scale: float,
+    l1: float,
+    shrink: float,
+    noise: float = 0.0,
+) -> np.ndarray:
+    """(C,) float32 L1 coefficients of the loss's sparsity term.
+
+    With ``shrink`` 0 every control gets ``l1``. Otherwise control c gets min(l1, 2 C shrink E_c), where
+    E_c = mean over ``vertices`` (L,) of |W_c,v|^2 / (3 scale^2) is the mesh loss's curvature
+    along c's normalised axis (W: the forward model's exact linear part, per range). Against a
+    loss a E_c (u - u*)^2 + (coef / C) |u|, the minimiser is the soft threshold u* - coef /
+    (2 C E_c): no control is pulled towards rest by more than ``shrink`` of its range, and one
+    that ``l1`` pulls less keeps ``l1``. (A single ``l1`` shrinks control c by l1 / (2 C E_c): the
+    largest control sets ``scale``, so beside a jaw a nostril's pull passes its whole range.)
+
+    Controls the input noise hides keep ``l1``: with the loss measured against the training's
+    noise (sigma = ``noise``) instead of ``scale``, the shared coefficient's pull is
+    l1 (sigma / scale)^2 / (2 C E_c), the maximum a posteriori shift for a Laplace prior and a
+    Gaussian likelihood; where that reaches the whole range, no frame tells the control from
+    noise (its mesh effect is below what the noise lets through, or others make it), and a
+    smaller coefficient would only let it follow the noise. Floored at 1e-6 l1."""
+    c = forward.control_count
+    if shrink == 0.0:
+        return np.full(c, l1, np.float32)
+    w = forward.linear_weight.detach().numpy().reshape(c, -1, 3)[:, vertices]
+    e = np.mean(np.sum(np.asarray(w, np.float64) ** 2, axis=-1), axis=1) / (3.0 * scale * scale)
+    coef = np.clip(2.0 * c * shrink * e, 1e-6 * l1, l1)
+    hidden = l1 * (noise / scale) ** 2 >= 2.0 * c * e
+    return np.where(hidden, l1, coef).astype(np.float32)
 
 
 def _augment(
