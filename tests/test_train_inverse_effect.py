@@ -7,7 +7,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 from rigcast.export.training import train
-from rigcast.export.training.train_inverse import input_scale, l1_coefficients
+from rigcast.export.training.sparsity import HIDDEN_SNR, hidden_by_noise, l1_coefficients
+from rigcast.export.training.train_common import TrainError
+from rigcast.export.training.train_inverse import input_scale
 from rigcast.runtime.schema import Control, ControlSchema
 
 SMALL = 4  # controls 1..4: small local bumps; control 0: a large shape moving every vertex
@@ -87,13 +89,38 @@ def test_no_control_is_pulled_further_than_the_cap(model: tuple) -> None:
 def test_controls_hidden_by_the_noise_keep_the_shared_coefficient(model: tuple) -> None:
     fwd, neutral, shapes, scale = model
     everything = np.arange(neutral.shape[0])
-    e = _curvatures(shapes, scale)
-    # a noise at which the small shapes' maximum a posteriori pull, l1 (sigma / scale)^2 /
-    # (2 C E_c), passes their range, while the large shape's stays far inside it
-    sigma = scale * np.sqrt(2.0 * (1 + SMALL) * e[1:].max() / 0.05) * 1.5
+    # naive twin of the signal-to-noise ratio: each shape's whole-range motion against white
+    # noise of sigma per coordinate, sqrt(sum_v |W_c,v|^2) / sigma
+    energy = np.sqrt((shapes.astype(np.float64) ** 2).sum(axis=(1, 2)))
+    sigma = energy[1:].max() / HIDDEN_SNR * 1.2  # the small shapes under the 3-sigma line
+    assert energy[0] / sigma > 10 * HIDDEN_SNR  # ... the large one far above it
+    assert hidden_by_noise(fwd, everything, sigma).tolist() == [False] + [True] * SMALL
     coef = l1_coefficients(fwd, everything, scale, 0.05, 0.01, noise=sigma)
     np.testing.assert_allclose(coef[1:], 0.05)
     quiet = l1_coefficients(fwd, everything, scale, 0.05, 0.01, noise=sigma / 100.0)
+    assert not hidden_by_noise(fwd, everything, sigma / 100.0).any()
     assert quiet[1:].max() < 0.05 / 10.0
 
 
+def test_vertex_weights_enter_the_curvature(model: tuple) -> None:
+    fwd, neutral, shapes, scale = model
+    everything = np.arange(neutral.shape[0])
+    # the loss weighs vertices (a region mask): the pull along a control is set by its weighted
+    # curvature, so doubling the weight of shape 1's vertices halves its coefficient's need
+    weights = np.ones(neutral.shape[0])
+    weights[np.abs(shapes[1]).sum(-1) > 1e-6] = 2.0
+    plain = l1_coefficients(fwd, everything, scale, 0.05, 0.01).astype(np.float64)
+    heavy = l1_coefficients(fwd, everything, scale, 0.05, 0.01, weights=weights)
+    assert heavy[1] == pytest.approx(2.0 * plain[1], rel=1e-3)
+    np.testing.assert_allclose(heavy[2:], plain[2:], rtol=0.02)
+
+
+@pytest.mark.parametrize("shrink", [-0.01, 1.5, float("nan")])
+def test_a_bad_shrink_is_named(model: tuple, shrink: float) -> None:
+    fwd, neutral, shapes, _ = model
+    c = _poses(40, 2)
+    x = neutral[None] + np.einsum("bc,cvk->bvk", c, shapes)
+    _, _, schema = _rig()
+    with pytest.raises(TrainError, match="shrink"):
+        train.train_inverse(fwd, x, np.arange(8), schema.defaults,
+                            train.InverseConfig(steps=2, shrink=shrink), controls=c)

@@ -17,7 +17,8 @@ Loss per batch of clean meshes ``x`` (B, V, 3):
   that pull was 40 % of the range for the median control and 4.5 ranges for a nostril, so only
   the supervised floor kept small, local shapes alive, and they died when the jaw opened (the
   "lost expressions" of issue 12). With ``shrink`` > 0 each control gets its own coefficient so
-  that the pull is at most ``shrink`` of its range (``l1_coefficients``).
+  that the pull is at most ``shrink`` of its range, except for controls the input noise hides,
+  which keep ``l1`` (``sparsity.l1_coefficients``).
 - general mode: batches mix the rig's sampled meshes with fresh random poses rendered through the
   frozen forward model (cheap augmentation); labels are known there, so an early, linearly
   decaying supervised term on normalised controls speeds convergence; after its decay it keeps a
@@ -58,6 +59,7 @@ import numpy as np
 import torch
 import torch.nn.functional as F
 from rigcast.export.training.models import ForwardApproximator, InverseNetwork
+from rigcast.export.training.sparsity import l1_coefficients
 from rigcast.export.training.train_common import (
     PROBE_STEPS,
     TORCH_THREADS,
@@ -96,9 +98,9 @@ class InverseConfig:
     # 0.019, +25 %; 10 in mesh space: 0.034, +25 % (a small mesh effect is charged little).
     consistency: float = 0.0
     consistency_space: Literal["mesh", "controls"] = "controls"
-    # Sparsity by mesh effect (module docstring): when > 0, no control is pulled towards rest by
-    # more than this share of its range; a control the shared ``l1`` would pull further gets a
-    # smaller coefficient of its own (0: ``l1`` for every control).
+    # Sparsity by mesh effect (module docstring, sparsity.py): when > 0, no control is pulled
+    # towards rest by more than this share of its range, except controls the training's noise
+    # hides, which keep ``l1``; 0: ``l1`` for every control.
     shrink: float = 0.02  # measured on the demo face and zoo rigs (the closing note of 2026-12-05)
     seed: int = 0
     max_seconds: float | None = None  # a time budget; None: the fixed schedule (see above)
@@ -186,6 +188,10 @@ def train_inverse(
             "inverse consistency must be >= 0 in space 'mesh' or 'controls', got "
             f"{config.consistency!r} in {config.consistency_space!r}"
         )
+    if not 0.0 <= config.shrink <= 1.0:
+        raise TrainError(
+            f"inverse shrink must be a share of the range in [0, 1], got {config.shrink!r}"
+        )
     if mode == "take" and init is None:
         raise TrainError("take mode fine-tunes an existing inverse; pass init=")
     neutral = forward.neutral.numpy().reshape(-1, 3)
@@ -228,7 +234,7 @@ def train_inverse(
     idx_t = torch.as_tensor(input_indices, dtype=torch.long)
     span_t, def_t = torch.from_numpy(hi - lo), torch.from_numpy(defaults)
     l1_c = torch.from_numpy(l1_coefficients(
-        forward, loss_idx, scale, config.l1, config.shrink, config.noise_frac * diagonal(neutral)
+        forward, loss_idx, scale, config.l1, config.shrink, noise=sigma, weights=weights.numpy()
     ))
     opt = torch.optim.Adam(model.parameters(), lr=config.lr)
     sched = one_cycle(opt, config.lr, config.steps)
@@ -332,40 +338,6 @@ def train_inverse(
         report.seconds,
     )
     return model, report
-
-
-def l1_coefficients(
-    forward: ForwardApproximator,
-    vertices: np.ndarray,
-    scale: float,
-    l1: float,
-    shrink: float,
-    noise: float = 0.0,
-) -> np.ndarray:
-    """(C,) float32 L1 coefficients of the loss's sparsity term.
-
-    With ``shrink`` 0 every control gets ``l1``. Otherwise control c gets min(l1, 2 C shrink E_c), where
-    E_c = mean over ``vertices`` (L,) of |W_c,v|^2 / (3 scale^2) is the mesh loss's curvature
-    along c's normalised axis (W: the forward model's exact linear part, per range). Against a
-    loss a E_c (u - u*)^2 + (coef / C) |u|, the minimiser is the soft threshold u* - coef /
-    (2 C E_c): no control is pulled towards rest by more than ``shrink`` of its range, and one
-    that ``l1`` pulls less keeps ``l1``. (A single ``l1`` shrinks control c by l1 / (2 C E_c): the
-    largest control sets ``scale``, so beside a jaw a nostril's pull passes its whole range.)
-
-    Controls the input noise hides keep ``l1``: with the loss measured against the training's
-    noise (sigma = ``noise``) instead of ``scale``, the shared coefficient's pull is
-    l1 (sigma / scale)^2 / (2 C E_c), the maximum a posteriori shift for a Laplace prior and a
-    Gaussian likelihood; where that reaches the whole range, no frame tells the control from
-    noise (its mesh effect is below what the noise lets through, or others make it), and a
-    smaller coefficient would only let it follow the noise. Floored at 1e-6 l1."""
-    c = forward.control_count
-    if shrink == 0.0:
-        return np.full(c, l1, np.float32)
-    w = forward.linear_weight.detach().numpy().reshape(c, -1, 3)[:, vertices]
-    e = np.mean(np.sum(np.asarray(w, np.float64) ** 2, axis=-1), axis=1) / (3.0 * scale * scale)
-    coef = np.clip(2.0 * c * shrink * e, 1e-6 * l1, l1)
-    hidden = l1 * (noise / scale) ** 2 >= 2.0 * c * e
-    return np.where(hidden, l1, coef).astype(np.float32)
 
 
 def _augment(
