@@ -16,9 +16,10 @@ frame (the graphs' arithmetic; the rest is the Python and numpy around them). Se
 bench/latency.py, it separates what the code costs from what waking up and crossing the
 sockets costs: the paced server's stage medians there include cold caches after
 each 8 ms idle gap and the ZeroMQ I/O thread's work on the same core. ``--out DIR`` writes
-DIR/pipeline_stages.json as {"runs": [{"vertices", "frames", "refine", "median_us": {...},
-"p99_us": {...}, "thread_us": {"median", "p99"}, "graphs": {name: {"calls_per_frame",
-"thread_us_per_frame"}}}]}.
+DIR/pipeline_stages.json as {"runs": [{"vertices", "frames", "refine", "realign",
+"median_us": {...}, "p99_us": {...}, "thread_us": {"median", "p99"}, "graphs": {name:
+{"calls_per_frame", "thread_us_per_frame"}}}]} (the graphs' figures are means over the measured
+frames; the thread time's are quantiles).
 """
 
 from __future__ import annotations

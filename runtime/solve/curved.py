@@ -1,6 +1,7 @@
 """The refinement's step loop (runtime/solve/refine.py describes each step), batched and for one
-frame, with the curvature of each step from a function: the bundle's fixed matrix, or the
-frame's own matrix at its current controls (bundles since it).
+frame, with the curvature of each step either the bundle's fixed matrix (gathered on the active
+pairs with no graph call in batch, factored once per active set live) or the frame's own matrix
+at its current controls (bundles since it).
 
 A bundle's refinement graph can return, beside the gradient, the Gauss-Newton matrix
 J(u)^T G J(u) of the forward model's fit at the frame's current controls u, along the directions
@@ -14,9 +15,10 @@ current point converges in a few steps near it (Nocedal & Wright, "Numerical Opt
 halvings are the same whichever the curvature.
 
 The mode sets when a frame's matrix is made: "step", after every step that moved the frame
-(Gauss-Newton); "frame", once for the frame's first active set, then only when a control outside
-it wakes (a chord method with the frame's own matrix); "fixed", the bundle's matrix, the same
-for every frame (the chord method; the live path keeps its factors per active set).
+(Gauss-Newton; the last step's trials go without one, as no step reads it); "frame", once for
+the frame's first active set, then only when a control outside it wakes (a chord method with
+the frame's own matrix); "fixed", the bundle's matrix, the same for every frame (the chord
+method; the live path keeps its factors per active set).
 """
 
 from __future__ import annotations

@@ -192,7 +192,7 @@ class MomentForm:
         makes z from the controls alone, with one graph evaluation fewer."""
         if made is None:
             return self.weights(controls)
-        z = np.asarray(made, np.float64)
+        z = np.array(made, np.float64)  # a copy: the NaN rows are filled in place
         todo = np.isnan(z).any(axis=1)
         if todo.any():
             z[todo] = self.weights(controls[todo])

@@ -54,10 +54,11 @@ Each step then:
 Finally, controls within ``snap`` of their default (share of the range) return to it exactly.
 Frames are independent: a batch of many (``rigcast solve``) gathers each frame's active system
 and solves them in one batched call; a batch of one (live) takes the same steps on vectors, and
-is tested to give the batch's controls. Both are in runtime/solve/curved.py, which takes the
-curvature of each step from a function: the bundle's fixed matrix H along the active controls
-(the chord method above), or the frame's own matrix at its current controls where the bundle's
-graph gives it and the settings ask for it (``RefineSettings.curvature``).
+is tested to give the batch's controls. Both are in runtime/solve/curved.py; each step's
+curvature is the bundle's fixed matrix H on the active controls (the chord method above,
+gathered from H with no graph call in batch, factored once per active set live), or the frame's
+own matrix at its current controls where the bundle's graph gives it and the settings ask for it
+(``RefineSettings.curvature``).
 """
 
 from __future__ import annotations
