@@ -55,6 +55,7 @@ from rigcast.runtime.schema import ControlSchema
 from rigcast.runtime.serve.config import filter_defaults
 from rigcast.runtime.solve.batch import BatchSolver, SolveOptions
 from rigcast.runtime.solve.inference import ForwardModel
+from rigcast.runtime.solve.manifold import ManifoldConfig, flag_off_manifold
 from rigcast.runtime.solve.one_euro import OneEuroFilter, OneEuroParams
 from rigcast.runtime.solve.refine import RefineSettings
 
@@ -81,6 +82,7 @@ class Sizes:
     zoo_max_controls: int
     cache: str | None = None  # a str, so the sizes stay JSON in the report
     refine_current: bool = False
+    build_set: tuple[str, ...] = ()  # "inverse.consistency=30": build settings changed (A/B)
 
 
 @dataclass(frozen=True)
@@ -107,15 +109,43 @@ def _quick_config() -> Any:
                 inverse=make(InverseConfig, steps=250, max_seconds=15.0))
 
 
-def build(rig: Rig, path: Path, quick: bool, cache: Path | None = None
-          ) -> tuple[Path, Any, float, float]:
-    """A bundle from the default build (tiny training with ``quick``): (bundle path, torch
-    forward model or None, the build's forward % of D, build seconds). With ``cache``, a build
-    of the same rig and settings is reused (its seconds are then the original build's)."""
+def with_settings(config: Any, assignments: tuple[str, ...]) -> Any:
+    """The build config (None: the default) with ``section.field=value`` assignments applied,
+    e.g. ``inverse.consistency=30`` (values parsed as JSON, else kept as strings): an A/B of a
+    build setting on the same rigs and seeds, with nothing else changed."""
+    from rigcast.export.bundling.build import BuildConfig
+
+    config = config if config is not None else BuildConfig()
+    for item in assignments:
+        key, sep, raw = item.partition("=")
+        parts = key.strip().split(".")
+        if not sep or len(parts) != 2:
+            raise SystemExit(f"--set wants section.field=value, got {item!r}")
+        try:
+            value = json.loads(raw)
+        except json.JSONDecodeError:
+            value = raw
+        section = getattr(config, parts[0], None)
+        if not dataclasses.is_dataclass(section) or parts[1] not in {
+                f.name for f in dataclasses.fields(section)}:
+            raise SystemExit(f"--set: the build config has no setting {key!r}")
+        config = dataclasses.replace(config, **{parts[0]: dataclasses.replace(
+            section, **{parts[1]: value})})  # type: ignore[type-var]
+    return config
+
+
+def build(rig: Rig, path: Path, quick: bool, cache: Path | None = None,
+          assignments: tuple[str, ...] = ()) -> tuple[Path, Any, float, float]:
+    """A bundle from the default build (tiny training with ``quick``; ``assignments`` changed,
+    see ``with_settings``): (bundle path, torch forward model or None, the build's forward % of
+    D, build seconds). With ``cache``, a build of the same rig and settings is reused (its seconds
+    are then the original build's)."""
     from rigcast.export.bundling.build import build_bundle
 
     t0 = time.perf_counter()
     config = _quick_config() if quick else None
+    if assignments:
+        config = with_settings(config, assignments)
     result = build_bundle(rig, path, config, cache_dir=cache, progress=_Progress())
     seconds = float(result.seconds) if result.cached else time.perf_counter() - t0
     model = getattr(result, "forward_model", None)
@@ -172,13 +202,42 @@ def filter_controls(controls: np.ndarray, times_s: np.ndarray, schema: ControlSc
     return np.asarray(out, dtype=np.float32)
 
 
-def solve_nlls_logged(rig: Rig, observed: np.ndarray, warm: bool, what: str) -> Solved:
+def solve_nlls_logged(rig: Rig, observed: np.ndarray, warm: bool, what: str,
+                      cache: Path | None = None) -> Solved:
+    """Per-frame NLLS through the real rig. With ``cache`` (a folder), the result is kept under
+    a key of the rig's fingerprint, the observed meshes and the start, and reused: the reference
+    is deterministic, and it is the run's slowest part, so an A/B of build settings on the same
+    rigs pays for it once."""
+    import hashlib
+
+    path = None
+    if cache is not None:
+        key = hashlib.sha256(f"{rig.fingerprint()}|{warm}|{observed.shape}".encode()
+                             + np.ascontiguousarray(observed, np.float32).tobytes()).hexdigest()
+        path = cache / "nlls" / f"{key[:24]}.npz"
+        if path.is_file():
+            with np.load(path) as z:
+                say(f"  nlls {what}: reused {path.name}")
+                return Solved(z["controls"], float(z["per_frame_s"]))
+
     def progress(done: int, total: int) -> None:
         if done % 100 == 0 or done == total:
             say(f"  nlls {what}: {done}/{total}")
 
     sol = solve_nlls(rig, observed, warm_start=warm, progress=progress)
+    if path is not None:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        np.savez(path, controls=sol.controls, per_frame_s=sol.per_frame_s)
     return Solved(sol.controls, sol.per_frame_s)
+
+
+def reference_flags(rig: Rig, solved: Solved, observed: np.ndarray, floor: float) -> np.ndarray:
+    """(T,) bool: the runtime's off-manifold rule (manifold.flag_off_manifold, the bundle's
+    floor) fed each frame's worst vertex of the observed mesh against the real rig at the
+    reference's controls. What the rule can do at best: a planted bump the rig can explain
+    (many controls, a bump inside their span) leaves no residual for any solve to flag."""
+    fit = metrics.vertex_error(rig.evaluate(solved.controls), observed).per_frame_max
+    return flag_off_manifold(fit, ManifoldConfig(floor=floor))
 
 
 def take_weights(schema: ControlSchema) -> np.ndarray:
@@ -271,9 +330,9 @@ def run_rig(name: str, out: Path, sizes: Sizes) -> dict[str, Any]:
     diag = metrics.bbox_diagonal(rig.neutral)
     say(f"{name}: {rig.vertex_count} vertices, {rig.control_count} controls, "
         f"linear={rig.linear}, rigid region={entry['rigid_region']}")
+    cache = Path(sizes.cache) if sizes.cache else None
     path, forward, build_pct, build_s = build(rig, out / "bundles" / f"{name}.rigcast",
-                                              sizes.quick,
-                                              Path(sizes.cache) if sizes.cache else None)
+                                              sizes.quick, cache, sizes.build_set)
     say(f"{name}: built in {build_s:.1f}s")
     bundle = load_bundle(path)
     solver = BatchSolver(bundle)
@@ -293,7 +352,7 @@ def run_rig(name: str, out: Path, sizes: Sizes) -> dict[str, Any]:
                                                              filtered=True)}
     lsq = solve_lsq(lin, take.vertices, s.lower, s.upper)
     tk["lsq"] = Solved(lsq.controls, lsq.per_frame_s)
-    tk["nlls"] = solve_nlls_logged(rig, take.vertices, True, "take")
+    tk["nlls"] = solve_nlls_logged(rig, take.vertices, True, "take", cache)
     if sizes.optim and forward is not None:
         opt = optimise_frames(forward, take.vertices, s.lower, s.upper, s.defaults,
                               steps=sizes.optim_steps)
@@ -304,11 +363,13 @@ def run_rig(name: str, out: Path, sizes: Sizes) -> dict[str, Any]:
     lsq = solve_lsq(lin, mesh_c, s.lower, s.upper)
     cl["lsq"] = Solved(lsq.controls, lsq.per_frame_s)
     n_nlls = min(sizes.nlls_clean_poses, len(truth_c))
-    cl["nlls"] = solve_nlls_logged(rig, mesh_c[:n_nlls], False, "clean poses")
+    cl["nlls"] = solve_nlls_logged(rig, mesh_c[:n_nlls], False, "clean poses", cache)
 
     say(f"{name}: recoverability ({rig.control_count} controls)")
     rec = fidelity.recoverability(rig, lambda m: solve_batch(solver, m).controls, fwd_err)
     off = fidelity.off_manifold_score(tk["inverse"].off_manifold, take.off_manifold)
+    off_ref = fidelity.off_manifold_score(
+        reference_flags(rig, tk["nlls"], take.vertices, solver.model.floor), take.off_manifold)
     entry |= {
         "linear": bool(rig.linear),
         "vertices": rig.vertex_count,
@@ -335,6 +396,8 @@ def run_rig(name: str, out: Path, sizes: Sizes) -> dict[str, Any]:
         "lost_controls": rec.lost,
         "offmanifold_recall": off.recall,
         "offmanifold_false_rate": off.false_rate,
+        "nlls_offmanifold_recall": off_ref.recall,
+        "nlls_offmanifold_false_rate": off_ref.false_rate,
         "offmanifold_head_recall": None,
         "offmanifold_head_false_rate": None,
     }
@@ -417,6 +480,10 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--refine-current", action="store_true",
                     help="solve with the runtime's current refinement defaults instead of those "
                     "each bundle recorded (re-scores cached builds after a runtime change)")
+    ap.add_argument("--set", dest="build_set", action="append", default=[],
+                    metavar="SECTION.FIELD=VALUE",
+                    help="change one build setting for every rig (repeatable), e.g. "
+                    "inverse.consistency=30: an A/B on the same seeds")
     ap.add_argument("--dry-run", action="store_true", help="print the rigs and seeds, then stop")
     args = ap.parse_args(argv)
     names = [n for n in args.rigs.split(",") if n]
@@ -436,12 +503,13 @@ def main(argv: list[str] | None = None) -> int:
         sizes = Sizes(take_frames=120, clean_poses=min(args.clean_poses, 48), nlls_clean_poses=16,
                       optim_steps=60, quick=True, optim=args.optim, zoo_max_vertices=1200,
                       zoo_max_controls=12, cache=cache,
-                      refine_current=args.refine_current)
+                      refine_current=args.refine_current, build_set=tuple(args.build_set))
     else:
         sizes = Sizes(take_frames=args.take_frames, clean_poses=args.clean_poses,
                       nlls_clean_poses=args.nlls_clean_poses, optim_steps=250, quick=False,
                       optim=args.optim, zoo_max_vertices=20000, zoo_max_controls=150,
-                      cache=cache, refine_current=args.refine_current)
+                      cache=cache, refine_current=args.refine_current,
+                      build_set=tuple(args.build_set))
     say(f"zoo seeds this run: {seeds} (replay with --zoo-seeds {','.join(map(str, seeds))})")
     print(f"zoo seeds: {seeds}", flush=True)
     if args.dry_run:

@@ -205,7 +205,9 @@ def report_md(rigs: dict[str, dict[str, Any]], meta: dict[str, Any]) -> str:
             f"({e['forward_mean_err_pct_diag']:.4f}% of D). Take: {e['take_frames']} frames, "
             f"{e['take_off_manifold_frames']} off-manifold; noise floor "
             f"{e['noise_floor_mean_err']:.4g}. Off-manifold recall {e['offmanifold_recall']:.2f}, "
-            f"false rate {e['offmanifold_false_rate']:.4f}; with head motion: "
+            f"false rate {e['offmanifold_false_rate']:.4f} (the same rule on per-frame NLLS's "
+            f"residual: {e.get('nlls_offmanifold_recall', float('nan')):.2f}, "
+            f"{e.get('nlls_offmanifold_false_rate', float('nan')):.4f}); with head motion: "
             f"{e.get('offmanifold_head_recall')}, {e.get('offmanifold_head_false_rate')}.",
             "",
             "| acceptance check | value | limit | result | ground truth on the same check |",
