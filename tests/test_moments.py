@@ -217,3 +217,26 @@ def test_realignment_with_the_rest_of_the_mesh_equals_the_all_vertex_fit(tmp_pat
         diff[label] = float(np.abs(moments - every).max())  # controls in [0, 1]
     assert diff["rest"] < 1e-4
     assert diff["no rest"] > 1e-3
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_weights_at_fills_only_the_missing_rows_and_leaves_the_refinements_alone(
+        tmp_path: Path, dtype: type) -> None:
+    """``MomentForm.weights_at`` takes the refinement's basis weights where it made them and
+    makes the NaN rows (or all rows, given None) from the controls: the same numbers as
+    ``weights`` on every row, and the caller's array is not written to."""
+    path = build_synthetic_bundle(tmp_path / "m.rcb", refine="projected", seed=3)
+    form = open_model(load_bundle(path), label="m", threads=1).inverse.moment_form
+    assert form is not None
+    rng = np.random.default_rng(3)
+    controls = rng.uniform(0.0, 1.0, (6, 8)).astype(np.float32)
+    whole = form.weights(controls)
+    made = whole.astype(dtype)  # float64: the copy must not alias the caller's rows
+    made[[1, 4]] = np.nan
+    before = made.copy()
+    got = form.weights_at(controls, made)
+    np.testing.assert_array_equal(made, before)  # no NaN row filled in the caller's array
+    assert np.isfinite(got).all() and got.dtype == np.float64
+    np.testing.assert_array_equal(got[[1, 4]], whole[[1, 4]])
+    np.testing.assert_allclose(got, whole, rtol=1e-6, atol=1e-6)
+    np.testing.assert_array_equal(form.weights_at(controls, None), whole)
