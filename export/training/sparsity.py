@@ -26,6 +26,15 @@ from rigcast.export.training.models import ForwardApproximator
 HIDDEN_SNR = 3.0
 
 
+def squared_effect(forward: ForwardApproximator, vertices: np.ndarray) -> np.ndarray:
+    """(C, L) |W_c,v|^2: each control's whole-range motion at each of ``vertices`` (L,), squared,
+    from the forward model's linear part."""
+    c = forward.control_count
+    w = np.asarray(forward.linear_weight.detach().numpy(), np.float64).reshape(c, -1, 3)
+    out: np.ndarray = np.sum(w[:, np.asarray(vertices)] ** 2, axis=-1)
+    return out
+
+
 def mesh_curvatures(
     forward: ForwardApproximator,
     vertices: np.ndarray,
@@ -34,9 +43,7 @@ def mesh_curvatures(
 ) -> np.ndarray:
     """(C,) E_c = mean over ``vertices`` (L,) of w_v |W_c,v|^2 / (3 scale^2); weights: (L,) the
     loss's vertex weights (None: all 1)."""
-    c = forward.control_count
-    w = np.asarray(forward.linear_weight.detach().numpy(), np.float64).reshape(c, -1, 3)
-    sq = np.sum(w[:, np.asarray(vertices)] ** 2, axis=-1)  # (C, L)
+    sq = squared_effect(forward, vertices)
     if weights is not None:
         sq = sq * np.asarray(weights, np.float64)[None, :]
     return np.mean(sq, axis=1) / (3.0 * scale * scale)
@@ -48,11 +55,9 @@ def hidden_by_noise(
     """(C,) bool: control c's whole-range motion over ``vertices`` (L,), as a signal-to-noise
     ratio against white noise of ``noise`` per coordinate, sqrt(sum_v |W_c,v|^2) / noise, is at
     most ``HIDDEN_SNR``: no single frame tells it from the noise."""
-    c = forward.control_count
     if noise <= 0.0:
-        return np.zeros(c, bool)
-    w = np.asarray(forward.linear_weight.detach().numpy(), np.float64).reshape(c, -1, 3)
-    energy = np.sum(w[:, np.asarray(vertices)] ** 2, axis=(1, 2))
+        return np.zeros(forward.control_count, bool)
+    energy = np.sum(squared_effect(forward, vertices), axis=1)
     return np.asarray(np.sqrt(energy) / noise <= HIDDEN_SNR)
 
 
