@@ -1,25 +1,33 @@
 """The live pipeline's own cost per frame, in one process, with no network and warm caches.
 
     python bench/pipeline_stages.py [--vertices 5000 20000] [--frames 3000] [--no-refine]
-                                    [--realign N] [--out DIR]
+                                    [--realign N] [--inverse trained untrained] [--out DIR]
 
-For each vertex count it builds the same synthetic bundle as bench/latency.py and runs the
-server's per-frame code (protocol decode, then runtime/solve/pipeline.py StreamState.process, the solve
-core on a batch of one: stabilise, infer (with the bundle's refinement steps unless
-``--no-refine``), filter, clamp, publish with the head pose on a PUB socket with no subscriber)
-back to back, the first 500 frames being warm-up; ``--realign N`` sets the stream's realignment
-passes (default 1, the server's). It prints per-stage medians and p99 in microseconds, and
+For each vertex count it builds the same synthetic bundles as bench/latency.py, the trained
+inverse (the headline, what a user gets; kept in ``--cache`` between runs) and the untrained one
+(the worst case: the refinement runs all its steps), and on each, with bench/latency.py's frames
+(rig poses with sensor noise and head motion), runs the server's per-frame code (protocol
+decode, then runtime/solve/pipeline.py StreamState.process, the solve core on a batch of one:
+stabilise, infer (with the bundle's refinement steps unless ``--no-refine``), filter, clamp,
+publish with the head pose on a PUB socket with no subscriber) back to back, the first 500
+frames being warm-up; ``--realign N`` sets the stream's realignment passes (default 1, the
+server's). It prints per-stage medians and p99 in microseconds, and
 beside them the frame's thread CPU time (``time.thread_time_ns`` around decode and
 ``process``: what the frame costs the core it runs on, which a machine loaded by others
 disturbs far less than the wall clock) and each graph's onnxruntime calls and thread time per
 frame (the graphs' arithmetic; the rest is the Python and numpy around them). Set beside
 bench/latency.py, it separates what the code costs from what waking up and crossing the
-sockets costs: the paced server's stage medians there include cold caches after
-each 8 ms idle gap and the ZeroMQ I/O thread's work on the same core. ``--out DIR`` writes
-DIR/pipeline_stages.json as {"runs": [{"vertices", "frames", "refine", "realign",
-"median_us": {...}, "p99_us": {...}, "thread_us": {"median", "p99"}, "graphs": {name:
-{"calls_per_frame", "thread_us_per_frame"}}}]} (the graphs' figures are means over the measured
-frames; the thread time's are quantiles).
+sockets costs: the paced server's stage medians there include cold caches after each 8 ms idle
+gap and the ZeroMQ I/O thread's work on the same core. The refinement graph's calls per frame
+say what the refinement does: one evaluation at the network's answer in each solve (two with
+the realignment), then one per step and halving tried.
+``--out DIR`` writes DIR/pipeline_stages.json as {"runs": [{"vertices", "frames", "refine",
+"realign", "inverse", "median_us": {...}, "p99_us": {...}, "thread_us": {"median", "p99"},
+"graphs": {name: {"calls_per_frame", "thread_us_per_frame"}}, "untrained": {"inverse",
+"median_us", "p99_us", "thread_us", "graphs"}}]}: the headline bundle's figures at the top level
+(``inverse`` names it: "trained" unless only the untrained row was asked for), the untrained
+row's under ``"untrained"`` (the graphs' figures are means over the measured frames; the thread
+time's are quantiles).
 """
 
 from __future__ import annotations
@@ -34,8 +42,7 @@ from typing import Any
 
 import numpy as np
 import zmq
-from latency import CONTROLS, HIDDEN, INPUTS, SEED, STABLE  # bench/latency.py, beside this file
-from rigcast.export.bundling.synthetic_bundle import build_synthetic_bundle, make_synthetic_rig
+from latency import CACHE, INVERSES, bench_bundle, make_meshes  # bench/latency.py, beside this
 from rigcast.runtime.messaging import protocol
 from rigcast.runtime.serve.config import StreamConfig
 from rigcast.runtime.serve.telemetry import STAGES
@@ -67,16 +74,31 @@ def count_sessions(model: Any) -> dict[str, list[int]]:
 
 
 def measure(vertices: int, frames: int, work: Path, refine: bool = True,
-            realign: int = 1) -> dict[str, Any]:
-    path = build_synthetic_bundle(work / f"bench_{vertices}_{refine}.rcb", vertices=vertices,
-                                  controls=CONTROLS, inputs=INPUTS, stable=STABLE,
-                                  inverse="mlp", hidden=HIDDEN, seed=SEED, refine=refine)
+            realign: int = 1, inverses: tuple[str, ...] = INVERSES, cache: Path | None = CACHE,
+            train_steps: int | None = None) -> dict[str, Any]:
+    """One vertex count: the first of ``inverses`` at the top level, the others under their
+    names."""
+    meshes = make_meshes(vertices)
+    rows = {}
+    for inverse in inverses:
+        path, _ = bench_bundle(vertices, inverse, work, cache, train_steps, refine=refine,
+                               fit_rms=None)
+        rows[inverse] = {"inverse": inverse, **measure_bundle(path, meshes, frames, realign)}
+    head, *rest = inverses
+    run = {"vertices": vertices, "frames": frames, "refine": refine, "realign": realign,
+           **rows[head]}
+    for inverse in rest:
+        run[inverse] = rows[inverse]
+    return run
+
+
+def measure_bundle(path: Path, meshes: list[np.ndarray], frames: int, realign: int
+                   ) -> dict[str, Any]:
+    """The per-frame code on one bundle: stage medians and p99, thread time, graphs."""
+    vertices = meshes[0].shape[0]
     model = load_stream_model(path, threads=1, threshold=None, factor=3.0)
     state = StreamState(StreamConfig(stream="bench", bundle=path, realign=realign), model,
                         window=1000)
-    rig = make_synthetic_rig(vertices, CONTROLS, inputs=INPUTS, stable=STABLE, seed=SEED)
-    rng = np.random.default_rng(SEED)
-    meshes = rig.evaluate(rng.uniform(0, 1, (32, CONTROLS)).astype(np.float32))
     ctx = zmq.Context()
     pub = ctx.socket(zmq.PUB)
     pub.setsockopt(zmq.LINGER, 0)
@@ -109,11 +131,22 @@ def measure(vertices: int, frames: int, work: Path, refine: bool = True,
     thread_us = np.asarray(cpu, dtype=np.float64) / 1e3
     graphs = {name: {"calls_per_frame": n / frames, "thread_us_per_frame": ns / 1e3 / frames}
               for name, (n, ns) in counts.items()}
-    return {"vertices": vertices, "frames": frames, "refine": refine, "realign": realign,
-            "median_us": med, "p99_us": p99,
+    return {"median_us": med, "p99_us": p99,
             "thread_us": {"median": float(np.median(thread_us)),
                           "p99": float(np.percentile(thread_us, 99))},
             "graphs": graphs}
+
+
+def print_row(vertices: int, row: dict[str, Any], args: argparse.Namespace) -> None:
+    tag = (f"V={vertices} {row['inverse']} refine={'off' if args.no_refine else 'on'} "
+           f"realign={args.realign}")
+    for label, key in (("median", "median_us"), ("p99", "p99_us")):
+        cells = ", ".join(f"{s} {row[key][s]:.1f}" for s in STAGES)
+        print(f"{tag} {label} (us): {cells}")
+    graphs = ", ".join(f"{g} {d['calls_per_frame']:.2f} calls {d['thread_us_per_frame']:.0f}"
+                       for g, d in row["graphs"].items())
+    print(f"{tag} frame thread CPU (us): median {row['thread_us']['median']:.1f}, p99 "
+          f"{row['thread_us']['p99']:.1f}; onnxruntime per frame (calls, thread us): {graphs}")
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -125,22 +158,23 @@ def main(argv: list[str] | None = None) -> int:
                     help="a bundle without the refinement graph (the inverse network alone)")
     ap.add_argument("--realign", type=int, default=1,
                     help="the stream's realignment passes (StreamConfig.realign)")
+    ap.add_argument("--inverse", nargs="+", choices=INVERSES, default=list(INVERSES),
+                    help="the bundles' inverse networks, the first the headline (default: "
+                    "trained, then untrained, the worst case)")
+    ap.add_argument("--cache", type=Path, default=CACHE,
+                    help="where the trained inverse is kept between runs (default %(default)s)")
+    ap.add_argument("--train-steps", type=int, default=None,
+                    help="the trained inverse's steps (default: the build's; smoke runs only)")
     args = ap.parse_args(argv)
     runs = []
     with tempfile.TemporaryDirectory(prefix="rigcast-stages-") as tmp:
         for v in args.vertices:
             run = measure(v, args.frames, Path(tmp), refine=not args.no_refine,
-                          realign=args.realign)
+                          realign=args.realign, inverses=tuple(args.inverse), cache=args.cache,
+                          train_steps=args.train_steps)
             runs.append(run)
-            for label, key in (("median", "median_us"), ("p99", "p99_us")):
-                cells = ", ".join(f"{s} {run[key][s]:.1f}" for s in STAGES)
-                print(f"V={v} refine={'off' if args.no_refine else 'on'} realign={args.realign} "
-                      f"{label} (us): {cells}")
-            graphs = ", ".join(f"{g} {d['calls_per_frame']:.2f} calls {d['thread_us_per_frame']:.0f}"
-                               for g, d in run["graphs"].items())
-            print(f"V={v} frame thread CPU (us): median {run['thread_us']['median']:.1f}, p99 "
-                  f"{run['thread_us']['p99']:.1f}; onnxruntime per frame (calls, thread us): "
-                  f"{graphs}")
+            for row in (run, *(run[inv] for inv in args.inverse[1:])):
+                print_row(v, row, args)
     if args.out is not None:
         args.out.mkdir(parents=True, exist_ok=True)
         (args.out / "pipeline_stages.json").write_text(json.dumps({"runs": runs}, indent=2))

@@ -365,6 +365,7 @@ def build_synthetic_bundle(
     name: str = "synthetic",
     rigid_region: bool = True,
     refine: bool | Literal["inputs", "projected", "projected-plain"] = False,
+    inverse_onnx: bytes | None = None,
 ) -> Path:
     """Write a synthetic bundle to ``path`` and return the path.
 
@@ -373,9 +374,12 @@ def build_synthetic_bundle(
     so the solve costs what a built bundle's does: True or "projected" the projected form
     (``projected_refine_graph`` in the moment form, what builds write), "projected-plain" the
     earlier float64 projection, "inputs" the older input-vertex form (``refine_graph``).
+    ``inverse_onnx``: an inverse graph to use instead of ``inverse`` (a trained one,
+    export/bundling/synthetic_trained.py); the manifest then records the inverse as "trained".
     """
     rig = make_synthetic_rig(vertices, controls, inputs=inputs, stable=stable, seed=seed)
-    extra: dict[str, object] = {"synthetic": {"inverse": inverse, "seed": seed},
+    kind = inverse if inverse_onnx is None else "trained"
+    extra: dict[str, object] = {"synthetic": {"inverse": kind, "seed": seed},
                                 "stabilise": {"rigid_region": rigid_region}}
     if fit_rms is not None:
         extra["training"] = {"inverse_fit_rms": float(fit_rms)}
@@ -393,7 +397,8 @@ def build_synthetic_bundle(
         faces=rig.faces,
         stable_indices=rig.stable_indices,
         input_indices=rig.input_indices,
-        inverse_onnx=inverse_graph(rig, inverse, hidden=hidden, seed=seed),
+        inverse_onnx=(inverse_graph(rig, inverse, hidden=hidden, seed=seed)
+                      if inverse_onnx is None else inverse_onnx),
         forward_onnx=forward_graph(rig),
         extra=extra,
         refine_onnx=refine_bytes,

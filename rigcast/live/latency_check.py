@@ -13,11 +13,11 @@ another (pinned to CPU 0); this process only starts them and writes the report:
    (never more than one frame in flight).
 
 Meshes are the bundle's own rig poses (its forward model at every control a little active,
-``latency_probe.pose_meshes``, bench/latency.py's recipe) with a little rigid head motion, so
-stabilisation does real work. Platform-specific steps (CPU
-pinning, the server's memory from /proc) run where available and are skipped with one line
-elsewhere. ``write_report`` writes report.md, latency.json and, with matplotlib, a histogram
-and latency over time.
+``latency_probe.pose_meshes``, bench/latency.py's recipe) with sensor noise (0.15 % of the
+bounding-box diagonal) and a little rigid head motion, so stabilisation does real work.
+Platform-specific steps (CPU pinning, the server's memory from /proc) run where available and
+are skipped with one line elsewhere. ``write_report`` writes report.md, latency.json and, with
+matplotlib, a histogram and latency over time.
 """
 
 from __future__ import annotations
@@ -109,7 +109,8 @@ class LatencyResult:
 
 def bundle_meshes(bundle_path: Path, count: int = 32, seed: int = 1) -> tuple[list[np.ndarray], int]:
     """``count`` meshes (V, 3) float32 of the bundle's rig (its forward model, at
-    ``latency_probe.pose_meshes``'s controls with its head motion); and the control count."""
+    ``latency_probe.pose_meshes``'s controls with its noise and head motion); and the control
+    count."""
     from rigcast.runtime.bundle import load_bundle
     from rigcast.runtime.solve.inference import ForwardModel
 
