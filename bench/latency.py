@@ -45,7 +45,8 @@ floor's fields, the headline bundle's server fields at the top level (``inverse`
 "trained" unless only the untrained row was asked for), with ``ratio_p50_vs_floor`` and
 ``ratio_p99_vs_floor_p99`` against the floor of the same run, and the untrained row's server
 fields, ratios included, under ``"untrained"`` (against the same floor); ``trained_inverse``
-says how the trained network was made (steps, seconds, held-out mesh error, cached) and
+says how the trained network was made (steps, the training's seconds, its held-out mesh error
+through the rig, whether it came from the cache) and
 ``noise_frac`` the frames' noise.
 
     python bench/latency.py --duration 60 --out bench/out

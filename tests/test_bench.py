@@ -78,8 +78,9 @@ def test_latency_bench_writes_every_named_field(tmp_path: Path) -> None:
                       timeout=400.0)
     (rerun,) = json.loads((tmp_path / "b" / "latency.json").read_text())["runs"]
     assert "server (untrained)" not in again.stdout and "untrained" not in rerun
-    assert rerun["trained_inverse"]["cached"] is True and rerun["trained_inverse"]["seconds"] == 0
-    assert rerun["trained_inverse"]["mean_err"] == made["mean_err"]
+    assert rerun["trained_inverse"]["cached"] is True
+    for key in ("steps", "seconds", "mean_err"):  # how the cached network was made
+        assert rerun["trained_inverse"][key] == made[key], key
 
 
 QUALITY_FIELDS = ("inverse_mean_err", "lsq_mean_err", "nlls_mean_err", "inverse_jitter",

@@ -55,7 +55,7 @@ class TrainedInverse:
     """An exported inverse graph and how it was made."""
 
     onnx: bytes
-    seconds: float  # the training's wall-clock time (0 when read from the cache)
+    seconds: float  # the training's wall-clock time when it ran (also when read from the cache)
     steps: int
     mean_err: float  # InverseReport.mean_err on the held-out samples, mesh units
     mean_err_pct_diag: float
@@ -130,7 +130,7 @@ def trained_inverse(rig: SyntheticRig, cache: Path | None, config: InverseConfig
     graph, meta = cache / f"inverse-{key}.onnx", cache / f"inverse-{key}.json"
     if graph.exists() and meta.exists():
         info = json.loads(meta.read_text())
-        return TrainedInverse(graph.read_bytes(), 0.0, int(info["steps"]),
+        return TrainedInverse(graph.read_bytes(), float(info["seconds"]), int(info["steps"]),
                               float(info["mean_err"]), float(info["mean_err_pct_diag"]),
                               cached=True)
     out = train_synthetic_inverse(rig, config, samples=samples, others=others, seed=seed)
