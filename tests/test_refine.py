@@ -88,8 +88,9 @@ def test_solve_active_matches_its_naive_twin() -> None:
                                rtol=1e-10, atol=1e-12)
 
 
+@pytest.mark.parametrize("wake", ["given", "alone"])
 @pytest.mark.parametrize("prior_sd", [0.02, 0.0])
-def test_one_frame_takes_the_steps_a_batch_takes(prior_sd: float) -> None:
+def test_one_frame_takes_the_steps_a_batch_takes(prior_sd: float, wake: str) -> None:
     """The live path (a batch of one: ``curved_steps_one``) against the batch path on the same
     frames, noisy and clean, with a network answer that is off and misses controls: the same
     controls to rounding."""
@@ -103,7 +104,7 @@ def test_one_frame_takes_the_steps_a_batch_takes(prior_sd: float) -> None:
     guess = np.clip(truth + 0.1 * rng.standard_normal(truth.shape), 0, 1).astype(np.float32)
     guess[::3, 0] = 0.0
     refiner = Refiner(gradient, a.T @ a, np.zeros(c), np.ones(c), np.zeros(c), a.shape[0],
-                      RefineSettings(prior_sd=prior_sd))
+                      RefineSettings(prior_sd=prior_sd, wake=wake))
     batch = refiner.refine(guess, mesh)
     alone = np.concatenate([refiner.refine(guess[i : i + 1], mesh[i : i + 1])
                             for i in range(24)])

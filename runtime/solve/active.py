@@ -1,7 +1,9 @@
 """The refinement's active set and its small linear systems (runtime/solve/refine.py runs them).
 
 Which controls take part in a Gauss-Newton step (``active_set``: away from the default, or at it
-with a gradient that the noise does not explain, and never pushed past a bound), how strongly the
+with a gradient that the noise does not explain, and never pushed past a bound; ``given_moved_set``
+the same test on what an at-rest control adds to the moved ones, batched, and
+``given_moved_one`` for one frame with its moved set's parts made once), how strongly the
 prior pulls each one (``pull_mask``), and the damped, ridged systems on each frame's active
 controls, gathered (``gather_active``) and solved in one batched call (``solve_gathered``; its
 per-frame twin is in tests/test_refine.py).
@@ -70,4 +72,77 @@ def solve_gathered(sub: np.ndarray, rhs: np.ndarray, valid: np.ndarray, damping:
     sub[:, np.arange(w), np.arange(w)] = np.where(valid, diag * (1.0 + damping) + ridge, 1.0)
     step = np.linalg.solve(sub, np.where(valid, rhs, 0.0)[..., None])[..., 0]
     out: np.ndarray = np.where(valid, step, 0.0)
+    return out
+
+
+def given_moved_set(u: np.ndarray, d: np.ndarray, g: np.ndarray, rss: np.ndarray,
+                    hessian: np.ndarray, factor: float) -> np.ndarray:
+    """``active_set`` with each at-rest control tested on what it adds to the moved ones.
+
+    u (N, C) normalised controls; d (C,) defaults; g (N, C) gradient J^T r; rss (N,) |r|^2;
+    hessian (C, C) the curvature; factor: ``wake_factor``. -> (N, C) bool.
+
+    The moved controls M (|u - d| > 1e-6) can take up part of an at-rest control's mesh effect:
+    a joint's bend put on its two neighbours, which together make nearly its mesh. Then its
+    gradient alone, g_c^2 / H_cc, is a sliver of |r|^2, though adding it to M would remove
+    nearly all of it. What a full Gauss-Newton step on M and c removes beyond the step on M
+    alone is n_c^2 / S_c, with n_c = g_c - H_cM H_MM^-1 g_M and S_c = H_cc - H_cM H_MM^-1 H_Mc
+    (the Schur complement; the partial F-test of forward stepwise regression, Hastie, Tibshirani
+    & Friedman, "The Elements of Statistical Learning", 2nd ed. 2009, 3.3.2). c wakes when
+    n_c^2 > factor^2 S_c |r_M|^2, |r_M|^2 = |r|^2 - g_M^T H_MM^-1 g_M what the step on M
+    leaves; with nothing moved this is ``active_set``'s test. For white noise n_c / sqrt(S_c)
+    over the noise's std is a standard normal, as g_c / sqrt(H_cc) is, so the false-wake rate
+    stays. A control on a bound whose conditional gradient points outwards stays out."""
+    u, g = np.asarray(u, np.float64), np.asarray(g, np.float64)
+    moved = np.abs(u - d) > 1e-6
+    idx, valid = gather_active(moved)
+    diag = np.diagonal(hessian)
+    if idx.shape[1] == 0:
+        num, schur, left = g, np.broadcast_to(diag, g.shape), np.asarray(rss, np.float64)
+    else:
+        w = idx.shape[1]
+        pair = valid[:, :, None] & valid[:, None, :]
+        sub = np.where(pair, hessian[idx[:, :, None], idx[:, None, :]], 0.0)
+        sub[:, np.arange(w), np.arange(w)] = np.where(valid, sub[:, np.arange(w), np.arange(w)],
+                                                      1.0)
+        cross = np.where(valid[:, :, None], hessian[idx], 0.0)  # (N, W, C) H_Mc
+        g_m = np.where(valid, np.take_along_axis(g, idx, axis=1), 0.0)
+        # x (N, W, 1 + C) = H_MM^-1 [g_M, H_Mc]
+        x = np.linalg.solve(sub, np.concatenate([g_m[..., None], cross], axis=2))
+        left = np.maximum(np.asarray(rss, np.float64) - (g_m * x[:, :, 0]).sum(axis=1), 0.0)
+        num = g - np.einsum("nwc,nw->nc", cross, x[:, :, 0])  # sum_w H_wc (H_MM^-1 g_M)_w
+        schur = diag - np.einsum("nwc,nwc->nc", cross, x[:, :, 1:])  # sum_w H_wc (H_MM^-1 H_Mc)_w
+    schur = np.maximum(schur, 1e-6 * diag)
+    wake = ~moved & (num * num > factor * factor * schur * left[:, None])
+    push = np.where(moved, g, num)
+    out: np.ndarray = (moved | wake) & ~np.where(push > 0.0, u >= 1.0, (u <= 0.0) & (push < 0.0))
+    return out
+
+
+def given_moved_parts(hessian: np.ndarray, moved: np.ndarray
+                      ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """What ``given_moved_one`` reads for a moved set, made once per set: hessian (C, C), moved
+    (W,) indices -> (H_MM^-1 (W, W), H_MM^-1 H_Mc (W, C), the Schur complements S_c (C,),
+    floored at 1e-6 H_cc)."""
+    inv = np.linalg.inv(hessian[moved[:, None], moved])
+    p = inv @ hessian[moved]
+    diag = np.diagonal(hessian)
+    schur = np.maximum(diag - np.einsum("wc,wc->c", hessian[moved], p), 1e-6 * diag)
+    return inv, p, schur
+
+
+def given_moved_one(u: np.ndarray, d: np.ndarray, g: np.ndarray, rss: float, moved: np.ndarray,
+                    parts: tuple[np.ndarray, np.ndarray, np.ndarray], factor: float
+                    ) -> np.ndarray:
+    """``given_moved_set`` for one frame, with the moved set's parts made once
+    (``given_moved_parts``): u, g (C,), d (C,), moved (W,) indices (at least one) -> (C,) bool."""
+    inv, p, schur = parts
+    gm = g[moved]
+    left = max(rss - float(gm @ (inv @ gm)), 0.0)
+    num = g - gm @ p
+    push = num.copy()
+    push[moved] = g[moved]
+    free = num * num > (factor * factor * left) * schur
+    free[moved] = True
+    out: np.ndarray = free & ~np.where(push > 0.0, u >= 1.0, (u <= 0.0) & (push < 0.0))
     return out

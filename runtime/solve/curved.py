@@ -32,6 +32,8 @@ from rigcast.runtime.solve.active import (
     active_set,
     free_controls,
     gather_active,
+    given_moved_one,
+    given_moved_set,
     pull_mask,
     solve_gathered,
 )
@@ -171,7 +173,8 @@ def curved_steps(ref: Refiner, curvature: CurvatureFn | None, u: np.ndarray, mes
         # (the graph then skips the curvature, and the other outputs are the same)
         curved = mode == "step" and number < s.steps - 1
         ul, gl, rl, dl = u[live], g[live], rss[live], u[live] - u0[live]
-        free = active_set(ul, ref.d, gl, rl, ref.diag, s.kappa, ref.coords, s.wake_share)
+        free = (given_moved_set(ul, ref.d, gl, rl, ref.hessian, ref.wake) if s.wake == "given"
+                else active_set(ul, ref.d, gl, rl, ref.diag, s.kappa, ref.coords, s.wake_share))
         need = (free & ~store.have[live]).any(axis=1) if not chord else None
         if need is not None and need.any():  # a control woke: its frame's matrix along the set
             assert curvature is not None
@@ -254,6 +257,7 @@ def curved_steps_one(ref: Refiner, run: RunFn, u: np.ndarray, mode: str
     damp = 1.0 + s.damping + s.prior
     eye = ref.eye
     chord = mode == "fixed"
+    given = s.wake == "given"
     no_tangents = eye[:0][None]
 
     def evaluate(x: np.ndarray, tangents: np.ndarray
@@ -268,8 +272,13 @@ def curved_steps_one(ref: Refiner, run: RunFn, u: np.ndarray, mode: str
     held = np.flatnonzero(pulled)  # the controls the frame's matrix h is along
     g, rss, h, z = evaluate(x, no_tangents if chord else eye[held][None])
     for number in range(s.steps):
-        tau = root_diag * (factor * math.sqrt(max(rss, 0.0)))
-        a = np.flatnonzero(free_controls(x, d, g, tau))
+        moved = np.flatnonzero(np.abs(x - d) > 1e-6) if given else None
+        if moved is not None and moved.size:
+            a = np.flatnonzero(given_moved_one(x, d, g, rss, moved, ref.given_parts(moved),
+                                               factor))
+        else:
+            tau = root_diag * (factor * math.sqrt(max(rss, 0.0)))
+            a = np.flatnonzero(free_controls(x, d, g, tau))
         if a.size == 0:
             break
         if chord:  # the same matrix for every frame: its factors kept per active set

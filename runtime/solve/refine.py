@@ -28,6 +28,12 @@ Each step then:
    and the forward model's diffuse error explain little, and waking on significance alone
    woke controls to soak up that error (false activity) and noise (jitter).
    At-rest controls therefore stay exactly at rest, and a lost expression is brought back.
+   Both tests are taken on what the control adds to the controls already moved (``wake``
+   "given", ``active.given_moved_set``): g_c and H_cc become the conditional gradient and
+   curvature given them (a Schur complement), |r|^2 what a step on them would leave. Where
+   the network put a joint's bend on its two neighbours, which together make nearly its mesh,
+   the joint's own gradient explained 0.2-8 % of the residual and it was never woken; given
+   its neighbours it explains nearly all of it (see ``RefineSettings``).
 2. **Step.** A maximum a posteriori step with a Gaussian prior of standard deviation
    ``prior_sd`` (share of the range) around the network's answer u0:
 
@@ -70,7 +76,7 @@ from typing import Any
 
 import numpy as np
 from rigcast.runtime.errors import RigcastError
-from rigcast.runtime.solve.active import wake_factor
+from rigcast.runtime.solve.active import given_moved_parts, wake_factor
 from rigcast.runtime.solve.curved import (
     BindCurvatureFn,
     CurvatureFn,
@@ -100,6 +106,10 @@ BindFn = Callable[[np.ndarray], Callable[[np.ndarray], tuple[np.ndarray, ...]]]
 #: when a step's curvature is made (runtime/solve/curved.py): the bundle's fixed matrix, the
 #: frame's own once, or at every step (bundles whose graph gives it; older ones keep "fixed")
 CURVATURES = ("fixed", "frame", "step")
+#: how an at-rest control is tested for waking (runtime/solve/active.py): on its gradient alone
+#: ("alone", ``active_set``) or on what it adds to the controls already moved ("given",
+#: ``given_moved_set``)
+WAKES = ("alone", "given")
 
 
 class RefineError(RigcastError, ValueError):
@@ -151,7 +161,17 @@ class RefineSettings:
     frames) of the two faces and three zoo rigs: error against the clean mesh within 0.5 %,
     jitter within 0.03 of the per-frame optimiser's. "frame" (the frame's own matrix, made
     again only when a control wakes) was as good on the zoo rigs, worse on the arm (1.5e-3).
-    The cost on a live frame of the demo face: 954 -> 1,258 us median (loaded machine)."""
+    The cost on a live frame of the demo face: 954 -> 1,258 us median (loaded machine).
+    ``wake`` (see WAKES): "given" tests an at-rest control on what it adds to the moved ones;
+    "alone" (before) on its own gradient. On zoo chain rig 294487 the network put a joint's bend
+    on its two neighbours (c2_j01_x at -11.7: c2_j00_x -4.8, c2_j02_x -7.5); the joint alone
+    explained 0.2-8 % of the residual, under ``wake_share``, and stayed at 0 while the wrong
+    answer left 6-8 % of the probe's mean displacement (46-139x the forward model's error): 3
+    controls lost alone, none with "given"; noise-free held-out poses (300) 4.5e-4 -> 9.7e-5
+    (worst frame 9.9e-3 -> 4.8e-4), false activity 0.37 -> 0; a noisy take 0.46 -> 0.37x the
+    per-frame optimiser's error, jitter 1.06 -> 0.76x.
+    Zoo jaw_face 576132 unchanged (clean 6.42e-6 -> 6.48e-6, false activity 0.003, take 0.48x,
+    jitter 1.10 -> 1.09x). Same bundles, 300 poses, 300-frame take, /tmp/helper-30/ab.py."""
 
     steps: int = 5
     kappa: float = 4.0
@@ -163,6 +183,7 @@ class RefineSettings:
     backtrack: int = 6
     tol: float = 1e-3
     curvature: str = "step"
+    wake: str = "given"
 
     def __post_init__(self) -> None:
         if not isinstance(self.steps, int) or not 0 <= self.steps <= 50:
@@ -171,6 +192,8 @@ class RefineSettings:
             value = getattr(self, name)
             if not (np.isfinite(value) and value >= 0):
                 raise RefineError(f"refine {name} must be finite and >= 0, got {value!r}")
+        if self.wake not in WAKES:
+            raise RefineError(f"refine wake must be one of {WAKES}, got {self.wake!r}")
         if self.curvature not in CURVATURES:
             raise RefineError(f"refine curvature must be one of {CURVATURES}, got "
                               f"{self.curvature!r}")
@@ -182,7 +205,8 @@ class RefineSettings:
     def from_manifest(cls, section: Mapping[str, Any]) -> RefineSettings:
         """The settings a bundle's manifest ``refine`` section records. A bundle built before the
         adaptive prior has no ``prior_sd``, ``backtrack`` or ``tol``: it keeps the steps it was
-        checked with (no adaptive prior, no halving, the old stopping rule)."""
+        checked with (no adaptive prior, no halving, the old stopping rule). One built before
+        ``wake`` takes the default: the test reads only the fixed matrix every bundle has."""
         names = {f.name for f in fields(cls)}
         unknown = sorted(set(section) - names)
         if unknown:
@@ -257,6 +281,7 @@ class Refiner:
         self.floor = 1e-6 * self.diag  # a control whose effect vanishes keeps a solvable system
         self.eye = np.eye(self.diag.shape[0], dtype=np.float32)  # one-hot tangents' rows
         self._systems: dict[bytes, FactoredSystem] = {}
+        self._given: dict[bytes, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
 
     def fixed_system(self, a: np.ndarray) -> FactoredSystem:
         """The fixed matrix's system on active controls a (k,), factored once per set (a live
@@ -269,6 +294,18 @@ class Refiner:
             s = self._settings
             hit = FactoredSystem(self.hessian[a[:, None], a], 1.0 + s.damping + s.prior)
             self._systems[key] = hit
+        return hit
+
+    def given_parts(self, moved: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """``active.given_moved_parts`` of the fixed matrix on moved controls (W,), made once
+        per set (a live stream's moved set changes rarely; at most ``SYSTEMS`` sets kept)."""
+        key = moved.tobytes()
+        hit = self._given.get(key)
+        if hit is None:
+            if len(self._given) >= SYSTEMS:
+                self._given.clear()
+            hit = given_moved_parts(self.hessian, moved)
+            self._given[key] = hit
         return hit
 
     @property
