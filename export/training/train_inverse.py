@@ -92,11 +92,13 @@ class InverseConfig:
     clip_norm: float = 1.0  # gradient-norm clip before each Adam step (0 = off); median norm on
     # face-linear's first 80 steps: 0.71, max 10.6
     loss_vertices: int = 1536  # mesh loss on this many fixed random moving vertices (0 = all)
-    # Noise consistency (module docstring). Off by default until checked on more rigs: on zoo
-    # 342431 (the cached build, 300 fine-tune steps, network alone) 30 in controls cut the take's
-    # jitter 0.054 -> 0.029 (per-frame non-linear least squares 0.069) for +7 % take error; 100:
-    # 0.019, +25 %; 10 in mesh space: 0.034, +25 % (a small mesh effect is charged little).
-    consistency: float = 0.0
+    # Noise consistency (module docstring), in normalised controls. 30 by default: the take's
+    # jitter against per-frame non-linear least squares (bench/quality.py, the full solve as
+    # served), 0 -> 30, with the other section-3 figures held: demo face 0.37 -> 0.10, zoo-899926
+    # 1.08 -> 0.54, fresh zoo-576132 (jaw face) 1.16 -> 0.62 (take error 0.56 -> 0.55 x, none
+    # lost either way). Earlier, network alone on zoo 342431: 100 cut more (0.054 -> 0.019) for
+    # +25 % take error; 10 in mesh space: 0.034, +25 % (a small mesh effect is charged little).
+    consistency: float = 30.0
     consistency_space: Literal["mesh", "controls"] = "controls"
     # Sparsity by mesh effect (module docstring, sparsity.py): when > 0, no control is pulled
     # towards rest by more than this share of its range, except controls the training's noise
