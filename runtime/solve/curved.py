@@ -173,7 +173,9 @@ def curved_steps(ref: Refiner, curvature: CurvatureFn | None, u: np.ndarray, mes
         # (the graph then skips the curvature, and the other outputs are the same)
         curved = mode == "step" and number < s.steps - 1
         ul, gl, rl, dl = u[live], g[live], rss[live], u[live] - u0[live]
-        free = (given_moved_set(ul, ref.d, gl, rl, ref.hessian, ref.wake) if s.wake == "given"
+        # from the network's answer: at-rest controls tested on what they add to the moved ones
+        free = (given_moved_set(ul, ref.d, gl, rl, ref.hessian, ref.wake)
+                if s.wake == "given" and number == 0
                 else active_set(ul, ref.d, gl, rl, ref.diag, s.kappa, ref.coords, s.wake_share))
         need = (free & ~store.have[live]).any(axis=1) if not chord else None
         if need is not None and need.any():  # a control woke: its frame's matrix along the set
@@ -272,7 +274,7 @@ def curved_steps_one(ref: Refiner, run: RunFn, u: np.ndarray, mode: str
     held = np.flatnonzero(pulled)  # the controls the frame's matrix h is along
     g, rss, h, z = evaluate(x, no_tangents if chord else eye[held][None])
     for number in range(s.steps):
-        moved = np.flatnonzero(np.abs(x - d) > 1e-6) if given else None
+        moved = np.flatnonzero(np.abs(x - d) > 1e-6) if given and number == 0 else None
         if moved is not None and moved.size:
             a = np.flatnonzero(given_moved_one(x, d, g, rss, moved, ref.given_parts(moved),
                                                factor))
