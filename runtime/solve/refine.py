@@ -178,7 +178,10 @@ class RefineSettings:
     cost the demo face's batch 12 % of its frames per CPU-second (a moved set of 17 of 46
     controls on average, 42 at most: a small solve per frame and step), and at the first
     step nothing measurable (822 -> 826). On zoo-294487, first step only: none lost, clean
-    1.2e-4 (worst frame 6.3e-3), false activity 0.007, take 0.37x, jitter 0.78x."""
+    1.2e-4 (worst frame 6.3e-3), false activity 0.007, take 0.37x, jitter 0.78x; the demo face
+    (none lost either way) clean 4.65e-6 -> 4.52e-6, false activity 0.217 -> 0.213, take
+    0.350 -> 0.351x, jitter 0.312 -> 0.327x; zoo-576132 take 0.483 -> 0.485x, jitter 1.098
+    -> 1.089x, clean and false activity as before."""
 
     steps: int = 5
     kappa: float = 4.0
