@@ -255,7 +255,9 @@ def test_round_trip_gltf_rig_to_bundle_to_solve(tmp_path: Path) -> None:
         samples=1024, check_samples=32, sparsity=SparsityConfig(dense_fraction=0.6),
         # A fixed schedule: a time budget made this test's accuracy depend on machine load.
         forward=ForwardConfig(hidden=(64,), components=12, epochs=30),
-        inverse=InverseConfig(hidden=(128,), steps=1500, l1=0.003),
+        # No noise-consistency pass (checked in test_train_inverse_consistency.py): its second
+        # network pass per step took this build past the test timeout at load 7 on 2 cores.
+        inverse=InverseConfig(hidden=(128,), steps=1500, l1=0.003, consistency=0.0),
     )
     result = build_bundle(rig, tmp_path / "sheet.rcb", config)
     bundle = load_bundle(result.bundle_path)

@@ -138,7 +138,10 @@ def bundle(rig, tmp_path_factory: pytest.TempPathFactory) -> Path:
         samples=1500, check_samples=32, workers=2,
         # A fixed schedule (no time budget), so the figure does not depend on machine load.
         forward=ForwardConfig(hidden=(64,), components=12, epochs=30),
-        inverse=InverseConfig(hidden=(128,), steps=1500, l1=0.001))
+        # No noise-consistency pass: it is checked in test_train_inverse_consistency.py, and its
+        # second network pass per step made this build slow under load (the figure here is the
+        # .blend round trip's).
+        inverse=InverseConfig(hidden=(128,), steps=1500, l1=0.001, consistency=0.0))
     path = tmp_path_factory.mktemp("bundle") / "tamsin_blend.rcb"
     return build_bundle(rig, path, config).bundle_path
 
