@@ -182,7 +182,7 @@ class RefineSettings:
     (none lost either way) clean 4.65e-6 -> 4.52e-6, false activity 0.217 -> 0.213, take
     0.350 -> 0.351x, jitter 0.312 -> 0.327x; zoo-576132 take 0.483 -> 0.485x, jitter 1.098
     -> 1.089x, clean and false activity as before; zoo chain 236895 (66 controls, twist axes,
-    its forward model 20x worse than 294487's: 3.3e-3 mean) lost 25 -> 21, clean 2.8e-3 ->
+    its forward model about 200x worse than 294487's: 3.3e-3 mean) lost 25 -> 21, clean 2.8e-3 ->
     2.6e-3, take 0.46 -> 0.41x, but false activity 9.2 -> 11.3 and jitter 0.42 -> 0.53x."""
 
     steps: int = 5
