@@ -80,6 +80,17 @@ INVERSES = ("trained", "untrained")
 CACHE = Path(".rigcast-cache") / "bench"
 
 
+def add_inverse_options(parser: argparse.ArgumentParser) -> None:
+    """The bundles' inverse options, shared with bench/pipeline_stages.py."""
+    parser.add_argument("--inverse", nargs="+", choices=INVERSES, default=list(INVERSES),
+                        help="the bundles' inverse networks, the first the headline (default: "
+                        "trained, then untrained, the worst case)")
+    parser.add_argument("--cache", type=Path, default=CACHE,
+                        help="where the trained inverse is kept between runs (default %(default)s)")
+    parser.add_argument("--train-steps", type=int, default=None,
+                        help="the trained inverse's steps (default: the build's; smoke runs only)")
+
+
 # --- client process --------------------------------------------------------------------------
 
 def make_meshes(vertices: int, count: int = 32) -> list[np.ndarray]:
@@ -317,13 +328,7 @@ def main() -> None:
                         help="CurveZMQ on (server, echo and client), floor and server alike")
     parser.add_argument("--realign", type=int, default=1,
                         help="the server's realignment passes (serve --realign; default 1, its own)")
-    parser.add_argument("--inverse", nargs="+", choices=INVERSES, default=list(INVERSES),
-                        help="the bundles' inverse networks, the first the headline (default: "
-                        "trained, then untrained, the worst case)")
-    parser.add_argument("--cache", type=Path, default=CACHE,
-                        help="where the trained inverse is kept between runs (default %(default)s)")
-    parser.add_argument("--train-steps", type=int, default=None,
-                        help="the trained inverse's steps (default: the build's; smoke runs only)")
+    add_inverse_options(parser)
     parser.add_argument("--out", type=Path, default=None)
     parser.add_argument("--curve-keys", type=Path, default=None, help=argparse.SUPPRESS)
     parser.add_argument("--mode", default="server", help=argparse.SUPPRESS)

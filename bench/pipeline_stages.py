@@ -42,7 +42,13 @@ from typing import Any
 
 import numpy as np
 import zmq
-from latency import CACHE, INVERSES, bench_bundle, make_meshes  # bench/latency.py, beside this
+from latency import (  # bench/latency.py, beside this
+    CACHE,
+    INVERSES,
+    add_inverse_options,
+    bench_bundle,
+    make_meshes,
+)
 from rigcast.runtime.messaging import protocol
 from rigcast.runtime.serve.config import StreamConfig
 from rigcast.runtime.serve.telemetry import STAGES
@@ -158,13 +164,7 @@ def main(argv: list[str] | None = None) -> int:
                     help="a bundle without the refinement graph (the inverse network alone)")
     ap.add_argument("--realign", type=int, default=1,
                     help="the stream's realignment passes (StreamConfig.realign)")
-    ap.add_argument("--inverse", nargs="+", choices=INVERSES, default=list(INVERSES),
-                    help="the bundles' inverse networks, the first the headline (default: "
-                    "trained, then untrained, the worst case)")
-    ap.add_argument("--cache", type=Path, default=CACHE,
-                    help="where the trained inverse is kept between runs (default %(default)s)")
-    ap.add_argument("--train-steps", type=int, default=None,
-                    help="the trained inverse's steps (default: the build's; smoke runs only)")
+    add_inverse_options(ap)
     args = ap.parse_args(argv)
     runs = []
     with tempfile.TemporaryDirectory(prefix="rigcast-stages-") as tmp:
