@@ -114,10 +114,10 @@ def test_one_frame_takes_the_steps_a_batch_takes(prior_sd: float, wake: str) -> 
 
 @pytest.mark.parametrize("batch", [1, 16])
 def test_a_control_the_network_left_at_rest_comes_back_on_a_noisy_mesh(batch: int) -> None:
-    """The prior pulls only the controls the network moved: one it left at rest while the mesh
-    shows it (a missed expression) has no pull back to rest once woken, so it returns even under
-    noise, where the pull of the Gaussian prior held it near 0. Controls the network moved are
-    still tempered."""
+    """Bundles built with ``pull`` "moved": the prior pulls only the controls the network moved,
+    so one it left at rest while the mesh shows it (a missed expression) has no pull back to rest
+    once woken, and it returns even under noise, where the pull of the Gaussian prior held it
+    near 0. Controls the network moved are still tempered."""
     c = 12
     a, _ = _linear_problem(13, c, coords=900)
     a[:, 5] *= np.sqrt(0.5) / np.linalg.norm(a[:, 5])  # a small expression: |a_5|^2 = 0.5
@@ -134,11 +134,50 @@ def test_a_control_the_network_left_at_rest_comes_back_on_a_noisy_mesh(batch: in
     guess = truth.copy()
     guess[:, 5] = 0.0  # missed
     guess[:, [2, 7]] += 0.03  # a little off
-    refiner = Refiner(gradient, a.T @ a, np.zeros(c), np.ones(c), np.zeros(c), a.shape[0])
+    refiner = Refiner(gradient, a.T @ a, np.zeros(c), np.ones(c), np.zeros(c), a.shape[0],
+                      RefineSettings(pull="moved", prior_sd=0.02))
     got = refiner.refine(guess.astype(np.float32), noisy.astype(np.float32))
     assert np.abs(got[:, 5] - truth[:, 5]).max() < 0.05
     others = np.setdiff1d(np.arange(c), [2, 5, 7])
     assert np.abs(got[:, others]).max() < 0.01  # at-rest controls stay at rest
+
+
+@pytest.mark.parametrize("batch", [1, 64])
+def test_the_prior_holds_a_control_the_capture_drift_woke(batch: int) -> None:
+    """``pull`` "all" (the default): a control the network left at rest, woken on a noisy frame
+    by a smooth drift that looks like its shape, is held towards rest by the prior; with "moved"
+    it followed the drift (the jitter of woken controls on the chain rigs). On a clean mesh the
+    pull vanishes, so a missed expression still comes back whole."""
+    c = 12
+    a, _ = _linear_problem(21, c, coords=900)
+    a[:, 7] /= np.linalg.norm(a[:, 7])  # a small shape: |a_7|^2 = 1, against noise 0.01 x 900
+
+    def gradient(controls: np.ndarray, mesh: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        r = mesh.reshape(mesh.shape[0], -1) - controls.astype(np.float64) @ a.T
+        return (r @ a).astype(np.float32), (r * r).sum(axis=1).astype(np.float32)
+
+    rng = np.random.default_rng(22)
+    truth = np.zeros((batch, c))
+    truth[:, 2] = rng.uniform(0.4, 0.8, batch)
+    drift = 0.6 * a[:, 7] + 0.8 * rng.standard_normal(900) / 30.0  # partly its shape
+    amp = rng.uniform(0.2, 0.3, batch)
+    noisy = truth @ a.T + 0.01 * rng.standard_normal((batch, 900)) + amp[:, None] * drift
+    guess = truth.astype(np.float32)
+    frames = noisy.reshape(batch, -1, 3).astype(np.float32)
+
+    def woken(pull: str) -> float:
+        refiner = Refiner(gradient, a.T @ a, np.zeros(c), np.ones(c), np.zeros(c), a.shape[0],
+                          RefineSettings(pull=pull))
+        return float(np.abs(refiner.refine(guess, frames)[:, 7]).mean())
+
+    held, followed = woken("all"), woken("moved")
+    assert followed > 0.03, followed  # the drift did wake it
+    assert held < 0.5 * followed, (held, followed)
+    missed = truth.copy()
+    missed[:, 7] = 0.5
+    clean = (missed @ a.T).reshape(batch, -1, 3).astype(np.float32)
+    refiner = Refiner(gradient, a.T @ a, np.zeros(c), np.ones(c), np.zeros(c), a.shape[0])
+    assert np.abs(refiner.refine(guess, clean)[:, 7] - 0.5).max() < 0.01
 
 
 def test_settings_changed_after_construction_reach_the_one_frame_path() -> None:
@@ -249,7 +288,10 @@ def test_settings_from_a_manifest_keep_what_a_bundle_was_built_with() -> None:
     old = RefineSettings.from_manifest({"steps": 3, "kappa": 4.0, "wake_share": 0.5,
                                         "prior": 0.5, "damping": 1.0, "snap": 0.002})
     assert (old.prior_sd, old.backtrack, old.prior, old.steps) == (0.0, 0, 0.5, 3)
+    assert old.pull == "moved"  # built before the prior held every control
     assert RefineSettings.from_manifest(asdict(RefineSettings())) == RefineSettings()
+    with pytest.raises(ValueError, match="pull"):
+        RefineSettings(pull="some")
     with pytest.raises(ValueError, match="unknown refine setting"):
         RefineSettings.from_manifest({"steps": 3, "gain": 2.0})
     with pytest.raises(ValueError, match="prior_sd"):

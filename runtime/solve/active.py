@@ -27,10 +27,12 @@ def active_set(u: np.ndarray, d: np.ndarray, g: np.ndarray, rss: np.ndarray,
     return free_controls(u, d, g, tau)
 
 
-def pull_mask(u0: np.ndarray, d: np.ndarray) -> np.ndarray:
+def pull_mask(u0: np.ndarray, d: np.ndarray, pull: str = "moved") -> np.ndarray:
     """u0 (..., C) the network's answer, d (C,) defaults -> (..., C) float64, 1 where the prior
-    pulls towards the network's answer (the controls it moved), 0 where it left a control at
-    rest (no pull: see ``RefineSettings``)."""
+    pulls towards the network's answer, else 0: with ``pull`` "moved" the controls it moved (no
+    pull where it left a control at rest), with "all" every control (see ``RefineSettings``)."""
+    if pull == "all":
+        return np.ones(np.shape(u0), np.float64)
     out: np.ndarray = (np.abs(u0 - d) > 1e-6).astype(np.float64)
     return out
 

@@ -152,7 +152,7 @@ def curved_steps(ref: Refiner, curvature: CurvatureFn | None, u: np.ndarray, mes
     s = ref.settings
     n, c = u.shape
     u0 = u.copy()
-    pulled = pull_mask(u0, ref.d)
+    pulled = pull_mask(u0, ref.d, s.pull)
     fixed = s.prior * ref.diag
     floor = 1e-6 * ref.diag  # a control whose effect vanishes here keeps a solvable system
     chord = mode == "fixed"
@@ -161,7 +161,7 @@ def curved_steps(ref: Refiner, curvature: CurvatureFn | None, u: np.ndarray, mes
         g, rss, z = ref._evaluate(u, mesh)
     else:  # the first matrices along the controls the network moved: most frames' first set
         assert curvature is not None
-        idx0, valid0 = gather_active(pulled > 0.0)
+        idx0, valid0 = gather_active(np.abs(u0 - ref.d) > 1e-6)  # the moved controls
         out = curvature(ref.controls(u), mesh, one_hot(idx0, valid0, c))
         g, rss, z = np.asarray(out[0], np.float64), np.asarray(out[1], np.float64), \
             weights_of(out, 3)
@@ -269,9 +269,9 @@ def curved_steps_one(ref: Refiner, run: RunFn, u: np.ndarray, mode: str
 
     u0 = u[0].copy()
     x = u0  # never written in place: each accepted trial is a new array
-    pulled = pull_mask(u0, d)
+    pulled = pull_mask(u0, d, s.pull)
     fixed = s.prior * ref.diag
-    held = np.flatnonzero(pulled)  # the controls the frame's matrix h is along
+    held = np.flatnonzero(np.abs(u0 - d) > 1e-6)  # the controls the frame's matrix h is along
     g, rss, h, z = evaluate(x, no_tangents if chord else eye[held][None])
     for number in range(s.steps):
         moved = np.flatnonzero(np.abs(x - d) > 1e-6) if given and number == 0 else None
