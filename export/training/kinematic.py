@@ -32,9 +32,18 @@ e.g. Craig, "Introduction to Robotics", ch. 3.)
 from __future__ import annotations
 
 import logging
+from collections.abc import Callable
 
 import numpy as np
 import torch
+from rigcast.export.training.joint_fit import (
+    blend_residual,
+    joint_groups,
+    joint_order,
+    rotation_fit,
+    same_joint,
+    turned_vertices,
+)
 from torch import nn
 
 log = logging.getLogger(__name__)
@@ -247,55 +256,16 @@ class KinematicChain(nn.Module):
         return (torch.stack(cols[::-1], 1) + full[:, 12 * c :]) @ self.select  # (N, C)
 
 
-def _kabsch(x: np.ndarray, y: np.ndarray, w: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Weighted Kabsch (Umeyama 1991, without scale): x, y (V, 3), w (V,) summing to 1 ->
-    (R (3, 3), t (3,)) minimising sum_v w_v |y_v - R x_v - t|^2."""
-    mx, my = w @ x, w @ y
-    u, _, vt = np.linalg.svd((x - mx).T @ ((y - my) * w[:, None]))
-    d = np.sign(np.linalg.det(vt.T @ u.T)) or 1.0
-    r = vt.T @ np.diag([1.0, 1.0, d]) @ u.T
-    return r, my - r @ mx
-
-
-def rotation_fit(source: np.ndarray, target: np.ndarray, passes: int = 2
-                 ) -> tuple[np.ndarray, np.ndarray, float]:
-    """The rotation about an axis that best moves ``source`` (V, 3) onto ``target`` (V, 3),
-    each vertex weighted by its squared displacement (the vertices that move carry the fit).
-    -> (axis-angle vector (3,), a pivot on the axis (3,), the first fit's weighted residual RMS
-    relative to the displacement's, 1.0 when nothing moves). Then ``passes`` refits on the
-    vertices that first fit within a tenth of their displacement: a joint's own vertices, not
-    the blend region between it and its parent, which bends (the axis and pivot come out
-    exact on a chain skinned with blend regions, where one fit over all is off)."""
-    x, y = np.asarray(source, np.float64), np.asarray(target, np.float64)
-    d2 = np.square(y - x).sum(axis=1)
-    total = float(d2.sum())
-    if not total > 0.0:
-        return np.zeros(3), x.mean(axis=0), 1.0
-    w = d2 / total
-    r, t = _kabsch(x, y, w)
-    resid = float(np.sqrt((w * np.square(y - x @ r.T - t).sum(axis=1)).sum() / (w @ d2)))
-    for _ in range(passes):
-        keep = np.square(y - x @ r.T - t).sum(axis=1) <= 0.01 * d2
-        if keep.sum() < 3 or not float(d2[keep].sum()) > 0.0:
-            break
-        wk = np.where(keep, d2, 0.0)
-        r, t = _kabsch(x, y, wk / wk.sum())
-    angle = float(np.arccos(np.clip((np.trace(r) - 1.0) / 2.0, -1.0, 1.0)))
-    vec = np.array([r[2, 1] - r[1, 2], r[0, 2] - r[2, 0], r[1, 0] - r[0, 1]])
-    centre = w @ x
-    if angle < 1e-6 or np.linalg.norm(vec) < 1e-12:
-        return np.zeros(3), centre, resid
-    axis = vec / np.linalg.norm(vec)
-    pivot = np.linalg.lstsq(np.eye(3) - r, t, rcond=None)[0]
-    pivot = pivot + axis * float((centre - pivot) @ axis)
-    return axis * angle, pivot, resid
-
-
 #: Largest relative residual of a control's rotation fit (weighted RMS misfit over weighted RMS
 #: displacement) for it to join the chain. Measured on the demo rigs: the lantern arm's joints
 #: 0.0000-0.0015 (rigid up to the blend region), the face's skinned jaw with its correctives
 #: 0.18, its blendshapes 0.25 and more. A rule of thumb between them.
 RIGID_TOL = 0.1
+#: Largest ``joint_fit.blend_residual`` for a further angle of a joint in the chain to join it.
+#: Measured: zoo-236895's twists 0.000-0.032, its last joints' bends up to 0.10 (no vertex follows
+#: them alone; they join by ``RIGID_TOL``); blendshapes fit as far-pivot turns 0.001-0.99 but
+#: never move a joint's vertices. A rule of thumb.
+BLEND_TOL = 0.05
 #: Smallest rotation (radians) of a control alone at its far bound for it to join the chain.
 MIN_ANGLE = 0.01
 #: A joint's parent is the latest earlier joint that moves all but this share of its squared
@@ -322,19 +292,26 @@ def parents_from_motion(d2: np.ndarray) -> np.ndarray:
 
 
 def chain_from_anchors(u: np.ndarray, offsets: np.ndarray, neutral: np.ndarray, rest: np.ndarray,
-                       outputs: int, seed: int = 0) -> KinematicChain | None:
+                       outputs: int, seed: int = 0,
+                       samples: tuple[np.ndarray, Callable[[np.ndarray], np.ndarray]] | None = None
+                       ) -> KinematicChain | None:
     """A chain over the controls that turn the mesh rigidly, started from their anchors.
 
     u (C + 1, C), offsets (C + 1, 3V): the rest pose then each control alone at its far bound
     (``sampling.anchor_poses``), normalised, as offsets from ``neutral`` (V, 3); rest (C,) the
     rest pose in u. Each control's rotation about an axis is fitted to its anchor
-    (``rotation_fit``); those within ``RIGID_TOL`` join the chain in schema order with that
-    axis, pivot and angle per unit of u, each under the parent ``parents_from_motion`` finds.
-    None when no control turns the mesh (a blendshape face: its forward model is then exactly
-    the MLP's)."""
+    (``joint_fit.rotation_fit``); those within ``RIGID_TOL`` join the chain with that axis,
+    pivot and angle per unit of u, each under the parent ``parents_from_motion`` finds. So does
+    a further angle of a joint that joined (it moves the same vertices) when one skinned joint
+    explains it (``joint_fit.blend_residual`` within ``BLEND_TOL``): a twist about a tube's own
+    axis, whose blend region carries most of its motion (zoo-236895's 18 twists, 0.13-0.26 by
+    the first test). samples: (u (N, C) normalised, rows -> (M, V, 3) those samples' vertices),
+    the rig's samples, from which each joint's angles take the order they compose in
+    (``joint_fit.joint_order``; schema order without them). None when no control turns the
+    mesh (a blendshape face: its forward model is then exactly the MLP's)."""
     v = neutral.shape[0]
     base = np.asarray(neutral, np.float64) + np.asarray(offsets[0], np.float64).reshape(v, 3)
-    picked, axes, pivots, scales, motion = [], [], [], [], []
+    fits = []
     for c in range(u.shape[1]):
         step = float(u[c + 1, c] - rest[c])
         if abs(step) < 1e-6:
@@ -344,17 +321,36 @@ def chain_from_anchors(u: np.ndarray, offsets: np.ndarray, neutral: np.ndarray, 
         rotvec, pivot, resid = rotation_fit(base, moved)
         angle = float(np.linalg.norm(rotvec))
         log.debug("chain: control %d turns %.3g rad, rigid residual %.3g", c, angle, resid)
-        if angle < MIN_ANGLE or resid > RIGID_TOL:
+        if angle < MIN_ANGLE:
             continue
+        fits.append((c, rotvec, pivot, resid, step, moved))
+    d2 = {f[0]: np.square(f[5] - base).sum(axis=1) for f in fits}
+    rigid = [f[0] for f in fits if f[3] <= RIGID_TOL]
+    picked, axes, pivots, scales, own = [], [], [], [], []
+    for c, rotvec, pivot, resid, step, moved in fits:
+        if resid > RIGID_TOL and not (
+                any(same_joint(d2[k], d2[c]) for k in rigid)
+                and blend_residual(base, moved, rotvec, pivot) <= BLEND_TOL):
+            continue
+        angle = float(np.linalg.norm(rotvec))
         picked.append(c)
-        motion.append(np.square(moved - base).sum(axis=1))
         axes.append(rotvec / angle)
         pivots.append(pivot)
         scales.append(angle / step)
+        own.append(turned_vertices(base, moved, rotvec, pivot))
     if not picked:
         return None
+    motion = np.array([d2[c] for c in picked])
+    parents = parents_from_motion(motion)
+    if samples is not None:
+        groups = joint_groups(motion, parents)
+        angles = (samples[0][:, picked] - rest[picked]) * np.array(scales)
+        order = [k for g in joint_order(groups, parents, np.array(axes), np.array(pivots),
+                                        angles, np.array(own), base, samples[1]) for k in g]
+        picked, axes, pivots, scales = ([x[k] for k in order]
+                                        for x in (picked, axes, pivots, scales))
+        parents = parents_from_motion(motion[order])
     length = float(np.linalg.norm(neutral.max(axis=0) - neutral.min(axis=0))) or 1.0
-    parents = parents_from_motion(np.array(motion))
     log.info("forward: kinematic chain over %d of %d controls, %d root(s)", len(picked),
              u.shape[1], int((parents < 0).sum()))
     return KinematicChain(np.array(pivots), rest, outputs, length, seed=seed,

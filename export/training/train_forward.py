@@ -81,8 +81,10 @@ class ForwardConfig:
     # figures on a cached build; a full bench A/B at one commit is still to be run). Zoo
     # chain rigs, forward held-out mean % of D (4000 samples, 40 epochs, f2f55de): seed 48
     # (2 tubes, 18 angles, 14 in the chain) 0.212 -> 0.053 (one serial chain through both
-    # tubes: 0.205), seed 80 (3 tubes on a hub, 10 angles) 0.047 -> 0.0013. Twist angles
-    # (about a tube's own axis, rigid residual 0.15-0.21) stay out of the chain.
+    # tubes: 0.205), seed 80 (3 tubes on a hub, 10 angles) 0.047 -> 0.0013. A twist (about a
+    # tube's own axis) joins as a further angle of its joint, and each joint's angles compose
+    # in the order the samples show (export/training/joint_fit.py): zoo-236895 (22 joints x 3
+    # angles) the chain alone by least squares, held-out mean 0.196 -> 0.031 % of D.
     chain: bool = True
 
 
@@ -219,8 +221,10 @@ def train_forward(
     del offs
     chain = None
     if config.chain and ua is not None and basis.shape[0] > 0:
+        rows = train_idx  # the samples' vertices, read only for the rows the chain asks for
         chain = chain_from_anchors(ua, oa, np.asarray(neutral, np.float32),
-                                   np.median(u, axis=0), basis.shape[0], seed=config.seed)
+                                   np.median(u, axis=0), basis.shape[0], seed=config.seed,
+                                   samples=(u_all[rows], lambda r: vertices[rows[r]]))
     model = ForwardApproximator(neutral, lo, hi, weight, bias, basis, hidden=config.hidden,
                                 chain=chain)
     if model.correction is not None:
