@@ -63,6 +63,13 @@ def _ort_errors() -> tuple[type[BaseException], ...]:
 
 ORT_ERRORS: tuple[type[BaseException], ...] = _ort_errors()
 
+#: the run options every call passes, made once: without them onnxruntime's binding makes a
+#: default set on each call, about 1 us of a 13 us refinement-graph call (a live frame makes
+#: about nine calls). Run reads them and never writes them, so the batch pool's threads share
+#: them.
+RUN_OPTIONS = ort.RunOptions()
+RUN_OPTIONS.log_severity_level = 3
+
 
 def open_session(onnx_bytes: bytes, *, threads: int) -> ort.InferenceSession:
     """An InferenceSession on the CPU provider with explicit threading; BundleError if invalid."""
@@ -156,7 +163,8 @@ class MomentForm:
         self.project, self.refine = project, refine
         self.tangents = REFINE_TANGENTS in {i.name for i in refine.get_inputs()}
         table, centre = project.run([PROJECT_CONSTANTS, PROJECT_CENTRE],
-                                    {PROJECT_POINTS: np.zeros((1, count, 3), np.float32)})
+                                    {PROJECT_POINTS: np.zeros((1, count, 3), np.float32)},
+                                    RUN_OPTIONS)
         self.constants = BasisConstants.from_outputs(table, centre)
         self._outs = [PROJECT_MOMENTS, PROJECT_NORM]
         r = self.constants.colsum.shape[0]
@@ -183,7 +191,8 @@ class MomentForm:
 
     def moments(self, points: np.ndarray) -> FrameMoments:
         """points (N, S, 3) float32 -> their FrameMoments."""
-        mo, norm = self.project.run(self._outs, {PROJECT_POINTS: np.ascontiguousarray(points)})
+        mo, norm = self.project.run(self._outs, {PROJECT_POINTS: np.ascontiguousarray(points)},
+                                    RUN_OPTIONS)
         return FrameMoments.from_outputs(mo, norm)
 
     def weights_at(self, controls: np.ndarray, made: np.ndarray | None) -> np.ndarray:
@@ -205,7 +214,7 @@ class MomentForm:
                 REFINE_PROJECTION: np.zeros((controls.shape[0], r), np.float32)}
         if self.tangents:
             feed[REFINE_TANGENTS] = np.zeros((controls.shape[0], 0, controls.shape[1]), np.float32)
-        z = self.refine.run([REFINE_WEIGHTS], feed)[0]
+        z = self.refine.run([REFINE_WEIGHTS], feed, RUN_OPTIONS)[0]
         return np.asarray(z, np.float64)
 
 
@@ -250,7 +259,8 @@ class InverseModel:
     def network(self, points: np.ndarray) -> np.ndarray:
         """The inverse graph alone: the K input points (N, K, 3) float32 -> controls (N, C)."""
         out: np.ndarray = self.session.run(self._outputs,
-                                           {INVERSE_INPUT: np.ascontiguousarray(points)})[0]
+                                           {INVERSE_INPUT: np.ascontiguousarray(points)},
+                                           RUN_OPTIONS)[0]
         return out
 
     def solve_pass(self, points: np.ndarray) -> SolvePass:
@@ -315,7 +325,8 @@ def _refiner(bundle: Bundle, threads: int, settings: RefineSettings | None
     chosen = settings or refine_settings(bundle)
     if projected is None:
         def gradient(controls: np.ndarray, mesh: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-            g, rss = session.run(names, {REFINE_CONTROLS: controls, REFINE_MESH: mesh})
+            g, rss = session.run(names, {REFINE_CONTROLS: controls, REFINE_MESH: mesh},
+                                 RUN_OPTIONS)
             return g, rss
 
         return Refiner(gradient, bundle.refine_hessian, schema.lower, schema.upper,
@@ -342,7 +353,8 @@ def _refiner(bundle: Bundle, threads: int, settings: RefineSettings | None
         """points (N, S, 3) -> (N, R + 1) float64: the projection, then |y|^2."""
         if form is not None:
             return projection_state(form.moments(points))
-        proj, norm = project.run(outs, {PROJECT_POINTS: np.ascontiguousarray(points)})
+        proj, norm = project.run(outs, {PROJECT_POINTS: np.ascontiguousarray(points)},
+                                 RUN_OPTIONS)
         return np.concatenate([proj, norm[:, None]], axis=1, dtype=np.float64)
 
     def gradient_projected(controls: np.ndarray, state: np.ndarray) -> tuple[np.ndarray, ...]:
@@ -358,7 +370,7 @@ def _refiner(bundle: Bundle, threads: int, settings: RefineSettings | None
 
         def run(controls: np.ndarray) -> tuple[np.ndarray, ...]:
             feed[REFINE_CONTROLS] = controls
-            g, quad, *z = session.run(wanted, feed)
+            g, quad, *z = session.run(wanted, feed, RUN_OPTIONS)
             return g, norm + quad, *z
 
         return run
@@ -378,7 +390,7 @@ def _refiner(bundle: Bundle, threads: int, settings: RefineSettings | None
 
         def run(controls: np.ndarray, tangents: np.ndarray) -> tuple[np.ndarray, ...]:
             feed[REFINE_CONTROLS], feed[REFINE_TANGENTS] = controls, tangents
-            g, quad, h, *z = session.run(wanted, feed)
+            g, quad, h, *z = session.run(wanted, feed, RUN_OPTIONS)
             return g, norm + quad, h, *z
 
         return run
@@ -405,5 +417,6 @@ class ForwardModel:
 
     def evaluate(self, controls: np.ndarray) -> np.ndarray:
         """controls (N, C) float32 -> vertices (N, V, 3) float32."""
-        result: np.ndarray = self.session.run(self._outputs, {FORWARD_INPUT: controls})[0]
+        result: np.ndarray = self.session.run(self._outputs, {FORWARD_INPUT: controls},
+                                              RUN_OPTIONS)[0]
         return result
