@@ -27,6 +27,7 @@ the vertices explicitly.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 from rigcast.runtime.solve.align import RigidBatch, _umeyama_batch
@@ -46,6 +47,14 @@ class BasisConstants:
     oc_sum: np.ndarray
     count: float
     centre: np.ndarray
+
+    @cached_property
+    def basis_terms(self) -> np.ndarray:
+        """(12, R): cross_r flattened over colsum_r, column r (``moved_state``'s basis terms in
+        one product), made once."""
+        r = self.colsum.shape[0]
+        return np.ascontiguousarray(np.concatenate([self.cross.reshape(r, 9), self.colsum],
+                                                   axis=1).T)
 
     @classmethod
     def from_outputs(cls, table: np.ndarray, centre: np.ndarray) -> BasisConstants:
@@ -78,11 +87,14 @@ class FrameMoments:
     @classmethod
     def from_outputs(cls, moments: np.ndarray, norm_sq: np.ndarray) -> FrameMoments:
         """moments (N, 3, 3R + 4) = y^T [A' | oc | 1] per frame; norm_sq (N,) = |y|^2."""
-        mo = np.asarray(moments, np.float64)
+        mo = np.asarray(moments)
         n, r = mo.shape[0], (mo.shape[2] - 4) // 3
-        return cls(m=mo[:, :, : 3 * r].reshape(n, 3, r, 3).transpose(0, 2, 1, 3),
-                   q=mo[:, :, 3 * r : 3 * r + 3], s=mo[:, :, 3 * r + 3],
-                   yy=np.asarray(norm_sq, np.float64))
+        # m in float64 and in its own order in one pass: its (R, 9) rows are then a view for
+        # the realignment's products (a transposed view made every reshape copy it)
+        m = np.empty((n, r, 3, 3))
+        m[...] = mo[:, :, : 3 * r].reshape(n, 3, r, 3).transpose(0, 2, 1, 3)
+        tail = mo[:, :, 3 * r :].astype(np.float64)
+        return cls(m=m, q=tail[:, :, :3], s=tail[:, :, 3], yy=np.asarray(norm_sq, np.float64))
 
     def take(self, rows: np.ndarray) -> FrameMoments:
         return FrameMoments(self.m[rows], self.q[rows], self.s[rows], self.yy[rows])
@@ -114,23 +126,20 @@ def moved_state(fm: FrameMoments, const: BasisConstants, linear: np.ndarray,
     n, r = fm.m.shape[:2]
     d = lin - _EYE3
     # Each contraction as one matmul on flattened 3 x 3 blocks (a batch of one frame pays
-    # numpy's per-call cost, not the arithmetic): <L, m_r^T> = m_r.flat . L^T.flat. The row
-    # sums are np.add.reduce, what ndarray.sum calls, without its Python wrapper.
-    lin_t = lin.transpose(0, 2, 1).reshape(n, 9, 1)
-    p = (np.matmul(fm.m.reshape(n, r, 9), lin_t)[..., 0]
-         + d.transpose(0, 2, 1).reshape(n, 9) @ const.cross.reshape(r, 9).T
-         + t @ const.colsum.T)
-    lin_flat, d_flat = lin.reshape(n, 9), d.reshape(n, 9)
-    add = np.add.reduce
-    s2 = add(lin_flat * lin_flat, axis=1) / 3.0
-    x = np.matmul(lin.transpose(0, 2, 1), d)  # L^T (L - I)
-    lin_s = np.matmul(lin, fm.s[..., None])[..., 0]  # L s_y
+    # numpy's per-call cost, not the arithmetic): <L, m_r^T> = m_r.flat . L^T.flat, and the
+    # basis's two terms in one product, [(L - I)^T.flat, t] . [cross_r.flat, colsum_r].
+    lin_t = lin.transpose(0, 2, 1)
+    p = np.matmul(fm.m.reshape(n, r, 9), lin_t.reshape(n, 9, 1))[..., 0]
+    p += np.concatenate([d.transpose(0, 2, 1).reshape(n, 9), t], axis=1) @ const.basis_terms
+    # |y'|^2 with 2 t . (L s_y + (L - I) oc_sum) = 2 t . (L (s_y + oc_sum) - oc_sum) in one dot
+    # and the scale's and the scatter's terms as one: tr(L^T L) |y|^2 / 3 + <(L - I) scatter,
+    # L - I> + 2 <L^T (L - I), q>
+    moved = np.matmul(lin, (fm.s + const.oc_sum)[..., None])[..., 0] - const.oc_sum
+    x = np.matmul(lin_t, d)  # L^T (L - I)
     d_sc = np.matmul(d, const.scatter)  # (L - I) scatter
-    yy = (s2 * fm.yy + 2.0 * add(x.reshape(n, 9) * fm.q.reshape(n, 9), axis=1)
-          + 2.0 * add(t * lin_s, axis=1)
-          + add(d_sc.reshape(n, 9) * d_flat, axis=1)
-          + 2.0 * add(t * (d @ const.oc_sum), axis=1)
-          + const.count * add(t * t, axis=1))
+    add = np.add.reduce
+    yy = (add(lin * lin, axis=(1, 2)) * (fm.yy / 3.0) + add(d_sc * d + 2.0 * x * fm.q, axis=(1, 2))
+          + add(t * (2.0 * moved + const.count * t), axis=1))
     out: np.ndarray = np.concatenate([p, yy[:, None]], axis=1)
     return out
 
@@ -148,10 +157,11 @@ def realign_fit(fm: FrameMoments, const: BasisConstants, weights: np.ndarray, *,
     c = const
     n_frames, r = fm.m.shape[:2]
     sum_s = fm.s + c.oc_sum  # (N, 3): sum of x - centre
-    sum_t = c.oc_sum + z @ c.colsum  # sum of target - centre
+    on_basis = z @ c.basis_terms.T  # (N, 12): sum_r z_r cross_r flat, then sum_r z_r colsum_r
+    sum_t = c.oc_sum + on_basis[:, 9:]  # sum of target - centre
     # sum (t - centre)(x - centre)^T; the two weighted sums over r as matmuls on flat 3 x 3s
     weighted = (np.matmul(z[:, None], fm.m.reshape(n_frames, r, 9))[:, 0]
-                + z @ c.cross.reshape(r, 9))  # (N, 9): [k, j] of sum_r z_r (m_r + cross_r)
+                + on_basis[:, :9])  # (N, 9): [k, j] of sum_r z_r (m_r + cross_r)
     cross = fm.q.transpose(0, 2, 1) + c.scatter + weighted.reshape(n_frames, 3, 3
                                                                    ).transpose(0, 2, 1)
     n = c.count  # pairs per frame, the same for every frame
