@@ -274,7 +274,7 @@ def _realign_moments(model: SolveModel, frames: np.ndarray, points: np.ndarray, 
                           extra_target=target, scale=scale, centred=True)
         linear, shift = uncentre(fit, form.constants.centre)
         moved = (net @ linear.transpose(0, 2, 1) + shift[:, None]).astype(np.float32)
-        scaled = fit.scale[:, None, None] * fit.rotation
+        scaled = linear  # uncentre's L = s R: the centred move's linear part as well
         made = None
         if done == passes or rough is None:
             solved = inverse.solve_moved(moved, first.moments, scaled, fit.translation)
