@@ -178,6 +178,11 @@ def test_realigned_solve_in_moment_form_matches_the_all_vertex_realignment(tmp_p
         path = build_synthetic_bundle(tmp_path / f"{form}.rcb", refine=form, seed=13)
         model = open_model(load_bundle(path), label=form, threads=1)
         assert (model.inverse.moment_form is not None) == (form == "projected")
+        # the synthetic network's answer is rough (3 % of the range off): a looser prior than
+        # the default 0.7 % lets the fit, and so the realignment's target, move away from it
+        assert model.inverse.refiner is not None
+        model.inverse.refiner.settings = dataclasses.replace(model.inverse.refiner.settings,
+                                                             prior_sd=0.02)
         points, rigid = stabilise_frames(model, frames, stabilise=True, scale=False)
         for passes in (0, 1):
             solved, _ = solve_points(model, frames, points, rigid, passes=passes, scale=False)
@@ -188,6 +193,9 @@ def test_realigned_solve_in_moment_form_matches_the_all_vertex_realignment(tmp_p
     # the older path is the one realign() keeps for bundles before the moment form
     path = build_synthetic_bundle(tmp_path / "plain.rcb", refine="projected-plain", seed=13)
     model = open_model(load_bundle(path), label="plain", threads=1)
+    assert model.inverse.refiner is not None
+    model.inverse.refiner.settings = dataclasses.replace(model.inverse.refiner.settings,
+                                                         prior_sd=0.02)
     points, rigid = stabilise_frames(model, frames, stabilise=True, scale=False)
     assert rigid is not None
     first = model.inverse.solve(points)
