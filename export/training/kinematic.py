@@ -40,6 +40,7 @@ from rigcast.export.training.joint_fit import (
     blend_residual,
     joint_groups,
     joint_order,
+    polish_turn,
     rotation_fit,
     same_joint,
     turned_vertices,
@@ -325,13 +326,16 @@ def chain_from_anchors(u: np.ndarray, offsets: np.ndarray, neutral: np.ndarray, 
             continue
         fits.append((c, rotvec, pivot, resid, step, moved))
     d2 = {f[0]: np.square(f[5] - base).sum(axis=1) for f in fits}
+    turn = {f[0]: (f[1] / np.linalg.norm(f[1]), f[2]) for f in fits}
+    length = float(np.linalg.norm(neutral.max(axis=0) - neutral.min(axis=0))) or 1.0
     rigid = [f[0] for f in fits if f[3] <= RIGID_TOL]
     picked, axes, pivots, scales, own = [], [], [], [], []
     for c, rotvec, pivot, resid, step, moved in fits:
         if resid > RIGID_TOL and not (
-                any(same_joint(d2[k], d2[c]) for k in rigid)
+                any(same_joint(d2[k], d2[c], turn[k], turn[c], length) for k in rigid)
                 and blend_residual(base, moved, rotvec, pivot) <= BLEND_TOL):
             continue
+        rotvec, pivot = polish_turn(base, moved, rotvec, pivot)
         angle = float(np.linalg.norm(rotvec))
         picked.append(c)
         axes.append(rotvec / angle)
@@ -343,14 +347,13 @@ def chain_from_anchors(u: np.ndarray, offsets: np.ndarray, neutral: np.ndarray, 
     motion = np.array([d2[c] for c in picked])
     parents = parents_from_motion(motion)
     if samples is not None:
-        groups = joint_groups(motion, parents)
+        groups = joint_groups(motion, parents, np.array(axes), np.array(pivots), length)
         angles = (samples[0][:, picked] - rest[picked]) * np.array(scales)
         order = [k for g in joint_order(groups, parents, np.array(axes), np.array(pivots),
                                         angles, np.array(own), base, samples[1]) for k in g]
         picked, axes, pivots, scales = ([x[k] for k in order]
                                         for x in (picked, axes, pivots, scales))
         parents = parents_from_motion(motion[order])
-    length = float(np.linalg.norm(neutral.max(axis=0) - neutral.min(axis=0))) or 1.0
     log.info("forward: kinematic chain over %d of %d controls, %d root(s)", len(picked),
              u.shape[1], int((parents < 0).sum()))
     return KinematicChain(np.array(pivots), rest, outputs, length, seed=seed,
