@@ -238,6 +238,7 @@ def _blendshape_gltf(path: Path) -> Path:
 # The same for export/training/train.py's float(loss) on a tensor that requires grad.
 @pytest.mark.filterwarnings("ignore:The given NumPy array is not writable")
 @pytest.mark.filterwarnings("ignore:Converting a tensor with requires_grad")
+@pytest.mark.timeout(900)  # a whole build: 308 s at load 7 on 2 cores, over the 300 s default
 def test_round_trip_gltf_rig_to_bundle_to_solve(tmp_path: Path) -> None:
     from rigcast.export.bundling.build import BuildConfig, build_bundle
     from rigcast.export.data.sampling import SparsityConfig
