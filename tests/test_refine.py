@@ -180,6 +180,33 @@ def test_the_prior_holds_a_control_the_capture_drift_woke(batch: int) -> None:
     assert np.abs(refiner.refine(guess, clean)[:, 7] - 0.5).max() < 0.01
 
 
+@pytest.mark.parametrize("batch", [1, 8])
+def test_the_forward_models_own_error_is_not_taken_for_noise(batch: int) -> None:
+    """``model_floor``: a clean frame whose residual is the forward model's own error (here a
+    fixed field the model cannot make, of the size the build measured) must not raise the
+    pull, so an expression the network shrank comes back; without the floor the pull reads
+    that error as sensor noise and holds the network's answer."""
+    c = 12
+    a, gradient = _linear_problem(31, c, coords=900)
+    rng = np.random.default_rng(32)
+    truth = np.zeros((batch, c))
+    truth[:, 4] = 0.8
+    misfit = rng.standard_normal(900)
+    misfit -= a @ np.linalg.lstsq(a, misfit, rcond=None)[0]  # no control makes it
+    misfit *= 0.1 / np.sqrt(np.mean(misfit**2))  # per coordinate
+    frames = (truth @ a.T + misfit).reshape(batch, -1, 3).astype(np.float32)
+    guess = (truth * 0.7).astype(np.float32)  # the network shrank it
+
+    def got(floor: bool) -> float:
+        refiner = Refiner(gradient, a.T @ a, np.zeros(c), np.ones(c), np.zeros(c), a.shape[0],
+                          RefineSettings(model_floor=floor))
+        refiner.model_error = 0.1**2
+        return float(np.abs(refiner.refine(guess, frames)[:, 4] - 0.8).max())
+
+    assert got(True) < 0.01
+    assert got(False) > 0.05
+
+
 def test_settings_changed_after_construction_reach_the_one_frame_path() -> None:
     """The one-frame path reads constants made per setting: settings set on a live refiner
     (as bench/quality.py does) must give what a refiner built with them gives."""
@@ -288,7 +315,7 @@ def test_settings_from_a_manifest_keep_what_a_bundle_was_built_with() -> None:
     old = RefineSettings.from_manifest({"steps": 3, "kappa": 4.0, "wake_share": 0.5,
                                         "prior": 0.5, "damping": 1.0, "snap": 0.002})
     assert (old.prior_sd, old.backtrack, old.prior, old.steps) == (0.0, 0, 0.5, 3)
-    assert old.pull == "moved"  # built before the prior held every control
+    assert old.pull == "moved" and not old.model_floor  # built before either
     assert RefineSettings.from_manifest(asdict(RefineSettings())) == RefineSettings()
     with pytest.raises(ValueError, match="pull"):
         RefineSettings(pull="some")

@@ -199,7 +199,8 @@ def curved_steps(ref: Refiner, curvature: CurvatureFn | None, u: np.ndarray, mes
         if s.prior_sd > 0.0:
             left = np.maximum(rl - (g_w * solve_gathered(sub, g_w, valid, 0.0,
                                                          np.zeros(valid.shape))).sum(axis=1), 0.0)
-            lam = left / np.maximum(ref.coords - free.sum(axis=1), 1) / s.prior_sd**2
+            lam = np.maximum(left / np.maximum(ref.coords - free.sum(axis=1), 1)
+                             - ref.model_var, 0.0) / s.prior_sd**2
         ridge = lam[:, None] * pulled[live]  # (n, C)
         pull = gl - (ridge + fixed) * dl
         step = np.zeros((live.size, c))
@@ -304,7 +305,7 @@ def curved_steps_one(ref: Refiner, run: RunFn, u: np.ndarray, mode: str
         lam = 0.0
         if s.prior_sd > 0.0:
             left = max(rss - system.decrease(g[a]), 0.0)
-            lam = left / max(ref.coords - a.size, 1) / s.prior_sd**2
+            lam = max(left / max(ref.coords - a.size, 1) - ref.model_var, 0.0) / s.prior_sd**2
         dx = x - u0
         weight = lam * pulled + fixed  # (C,) each control's pull
         step_a = system.step((g - weight * dx)[a], lam * pulled[a])

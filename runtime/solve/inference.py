@@ -241,6 +241,12 @@ class InverseModel:
         self.point_indices = np.asarray(bundle.input_indices, np.int64)
         if bundle.refine_onnx is not None and bundle.refine_hessian is not None:
             self.refiner, self.moment_form = _refiner(bundle, threads, refine)
+            fit = bundle.manifest.get("fit_rms_train")  # the build's check: the served
+            # solve's per-pose RMS fit on held-out clean poses, over all V vertices
+            if self.refiner is not None and isinstance(fit, int | float) and fit > 0:
+                # its mean square put on the S vertices the refinement reads, per coordinate
+                share = bundle.vertex_count / max(self.refiner.coords / 3.0, 1.0)
+                self.refiner.model_error = float(fit) ** 2 * max(share, 1.0) / 3.0
             if bundle.refine_projection is not None:
                 self.point_indices = np.concatenate([self.point_indices,
                                                      bundle.refine_projection.indices])
