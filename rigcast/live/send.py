@@ -25,6 +25,13 @@ from typing import Any
 
 import numpy as np
 
+# Loaded with this module, not on stream_take's first np.random call: Cython's memoryview code in
+# numpy.random's extension modules registers with collections.abc inside a bare `except: pass`,
+# and a Ctrl-C that lands while those modules load runs its handler there and is swallowed. As a
+# lazy import that window opened just after "serves ...", when an operator (or a test) presses
+# Ctrl-C: `send` then went on streaming (9 of 30 SIGINTs just after it, on a loaded 2-core machine).
+import numpy.random
+
 from rigcast.errors import EXIT_OK, MismatchError
 from rigcast.runtime.errors import EXIT_USAGE, RigcastError
 from rigcast.runtime.messaging.client import MeshSender
