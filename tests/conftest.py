@@ -65,8 +65,10 @@ def running_server(config: ServerConfig, timeout_s: float = 10.0) -> Iterator[Se
     finally:
         server.request_stop()
         thread.join(timeout_s)
-        server.ctx.term()
+        # A server thread that did not stop still holds its sockets: terminating the context
+        # would hang until pytest-timeout instead of reporting it.
         assert not thread.is_alive(), "server thread did not stop"
+        server.ctx.term()
 
 
 class Peer:
@@ -150,6 +152,21 @@ def server_process(args: list[str], tmp_path: Path, timeout_s: float = 30.0
         for stream in (proc.stdout, proc.stderr):
             if stream is not None:
                 stream.close()
+
+
+def wait_for_controls(output: str, stream: str, timeout_s: float = 30.0) -> None:
+    """Return once the server publishing on ``output`` publishes controls of ``stream`` (a
+    sender's frames flow), or fail after ``timeout_s``: a wait on the event itself, where a fixed
+    sleep is too short on a loaded machine."""
+    ctx = zmq.Context()
+    try:
+        sub = ctx.socket(zmq.SUB)
+        sub.setsockopt(zmq.LINGER, 0)
+        sub.setsockopt(zmq.SUBSCRIBE, b"ctl." + stream.encode())
+        sub.connect(output)
+        assert sub.poll(int(timeout_s * 1000)), f"no controls of {stream!r} in {timeout_s} s"
+    finally:
+        ctx.destroy(linger=0)
 
 
 def rig_mesh(rig: SyntheticRig, controls: np.ndarray) -> np.ndarray:

@@ -15,7 +15,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from conftest import tiny_rig
+from conftest import tiny_rig, wait_for_controls
 
 from rigcast.writers.animation_out import read_csv, read_json
 
@@ -142,9 +142,11 @@ def test_serve_send_record_and_watch_together(
         recorder = start_rigcast("record", "-o", str(out), "--frames", "30", "--from",
                                  ends["output"], "--to", ends["input"], "--stream", "tiny")
         sender = start_rigcast("send", str(tiny_take), "--to", ends["input"], "--from",
-                               ends["output"], "--fps", "60", "--loop", "--duration", "4",
+                               ends["output"], "--fps", "60", "--loop", "--duration", "6",
                                "--corrupt-rate", "0.1", "--seed", "3")
-        time.sleep(1.0)
+        # The watch's one snapshot needs controls: it starts once frames flow, and the sender
+        # goes on long enough for a slow start of the watch on a loaded machine.
+        wait_for_controls(ends["output"], "tiny")
         watch = rigcast("watch", "--once", "--from", ends["output"], "--to", ends["input"],
                         timeout=30)
         send_out, send_err = sender.communicate(timeout=30)

@@ -16,7 +16,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from conftest import server_process, tiny_rig
+from conftest import server_process, tiny_rig, wait_for_controls
 
 _STARTED: list[subprocess.Popen[str]] = []
 
@@ -138,6 +138,7 @@ def test_record_saves_what_it_has_and_exits_130(tmp_path: Path, tiny_bundle: Pat
                          ends["input"])
         record.wait_for("Ctrl-C stops")
         sender.wait_for("serves")
+        wait_for_controls(ends["output"], "tiny")
         time.sleep(1.0)  # frames arrive at 60 fps meanwhile
         code, err = record.interrupt(times, gap_s=0.01)
         sender.interrupt()

@@ -91,7 +91,7 @@ def _published(ready: Path, meshes: np.ndarray, times: np.ndarray) -> list[
     sub = ctx.socket(zmq.SUB)
     for sock in (dealer, sub):
         sock.setsockopt(zmq.LINGER, 0)
-        sock.setsockopt(zmq.RCVTIMEO, 5000)
+        sock.setsockopt(zmq.RCVTIMEO, 30_000)  # a bound for a stuck server, not a deadline
     try:
         sub.setsockopt(zmq.SUBSCRIBE, b"")
         sub.connect(endpoints["output"])
