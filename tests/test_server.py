@@ -355,7 +355,7 @@ def test_reload_swaps_atomically_while_frames_flow(tiny_bundle: Path, tmp_path: 
                 peer.dealer.send_multipart(protocol.encode_mesh(
                     "a", i, t0 + i * STEP_NS, meshes[i % len(meshes)]))
                 sent.append(i)
-                received.extend(controls_of(peer, "a", 1, timeout_s=2.0))
+                received.extend(controls_of(peer, "a", 1, timeout_s=10.0))
                 i += 1
 
         def wait_for(count: int) -> None:
@@ -411,21 +411,27 @@ def test_reload_refuses_bad_or_incompatible_bundles(tiny_bundle: Path, other_bun
 
 
 def _flags_and_events(peer: Peer, meshes: list[np.ndarray]) -> tuple[dict[int, bool], list[dict]]:
-    """Send meshes one at a time (each after the previous frame's controls came back)."""
+    """Send meshes one at a time, each once the previous frame's controls came back and
+    telemetry says its fit error ran (the fit runs after the publish, within its time share; a
+    frame sent before it would replace the unfitted frame, which a fixed pause cannot rule out
+    on a loaded machine)."""
     t0 = time.time_ns()
     flags: dict[int, bool] = {}
     events: list[dict] = []
     for i, mesh in enumerate(meshes):
         peer.dealer.send_multipart(protocol.encode_mesh("a", i, t0 + i * STEP_NS, mesh))
-        deadline = time.monotonic() + 3
-        while time.monotonic() < deadline and i not in flags:
+        deadline = time.monotonic() + 10
+        fitted = False
+        while time.monotonic() < deadline and not (i in flags and fitted):
             frames = peer.recv_pub(0.2)
             if frames and frames[0] == b"ctl.a":
                 msg = protocol.decode_controls(frames)
                 flags[msg.frame] = msg.has(protocol.FLAG_OFF_MANIFOLD)
             elif frames and frames[0] == protocol.TOPIC_EVENTS:
                 events.append(protocol.decode_header(frames[1]))
-        time.sleep(0.01)  # the fit error of frame i runs after its publish
+            elif frames and frames[0] == b"tel.a":
+                fitted = protocol.decode_header(frames[1])["fit_error"]["frame"] == i
+        assert i in flags and fitted, f"frame {i}: no controls or no fit within 10 s"
     while (tail := peer.recv_pub(0.05)) is not None:
         if tail[0] == protocol.TOPIC_EVENTS:
             events.append(protocol.decode_header(tail[1]))

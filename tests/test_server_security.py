@@ -115,9 +115,13 @@ def test_curve_server_serves_authorised_keys_only(tiny_bundle: Path, keys: dict[
             for sock in (stranger, plain):
                 sock.send(protocol.encode_schema_request("a"), zmq.NOBLOCK)
                 sock.send_multipart(protocol.encode_mesh("a", 100 + i, t0 + i, mesh), zmq.NOBLOCK)
+        # The subscriber's CURVE handshake may end after the actor's: wait for its first message
+        # (telemetry), so frame 1 is not published before the subscription is live.
+        assert sub.recv(10_000) is not None, "the authorised subscriber received nothing"
         actor.send("a", 1, mesh)
         got = []
-        while (msg := sub.recv(2000)) is not None and not got:
+        end = time.monotonic() + 10
+        while not got and (msg := sub.recv(int((end - time.monotonic()) * 1000))) is not None:
             if isinstance(msg, protocol.ControlsMessage):
                 got.append(msg.frame)
         assert got == [1], "the authorised sender's frame was not served"
@@ -300,7 +304,7 @@ def test_a_zip_bomb_is_refused_from_its_directory_while_frames_flow(
             assert _peak_rss_mb(proc.pid) - before < 32
             mesh = tiny_rig(TINY).neutral
             peer.dealer.send_multipart(protocol.encode_mesh("a", 1, time.time_ns(), mesh))
-            assert [m.frame for m in _controls(peer.sub, "a", 2.0)][:1] == [1]
+            assert _frames_until(peer.sub, "a", 1, 10.0) == [1]
         finally:
             peer.close()
 
@@ -375,7 +379,7 @@ def test_one_peer_cannot_make_the_server_hold_a_huge_multipart_message(
             t0 = time.time_ns()
             for i in range(3):
                 peer.dealer.send_multipart(protocol.encode_mesh("a", i, t0 + i * STEP_NS, mesh))
-                assert [m.frame for m in _controls(peer.sub, "a", 1.0)] == [i]
+                assert _frames_until(peer.sub, "a", i, 10.0) == [i]
             grew = _peak_rss_mb(proc.pid) - before
             assert grew < 64, f"peak RSS grew {grew:.0f} MB"
         finally:
@@ -417,12 +421,14 @@ def test_a_stream_takes_frames_from_one_sender_at_a_time(tiny_bundle: Path) -> N
         assert err is not None and err["reason"] == "stream_owned", err
         assert _controls(owner.sub, "a", 0.3) == []
         # Once the owner has been silent for owner_timeout_s, another sender may claim it.
-        end = time.monotonic() + 5
+        end = time.monotonic() + 10
         served: list[int] = []
         while not served and time.monotonic() < end:
             intruder.send_multipart(protocol.encode_mesh("a", 2000, time.time_ns(), mesh))
             served = [m.frame for m in _controls(owner.sub, "a", 0.2)]
-        assert served == [2000]
+        # The intruder's frame, from one try or more (a loaded machine may publish a try after
+        # its 0.2 s window, beside the next one).
+        assert served and set(served) == {2000}, served
         intruder.close(0)
 
 
@@ -430,21 +436,24 @@ def test_made_up_streams_expire_and_free_the_limit(tiny_bundle: Path) -> None:
     """Old server: with --accept-any-stream, 15 made-up ids filled the 16-stream limit for good
     and locked out a real actor; streams never expired."""
     mesh = tiny_rig(TINY).neutral
+    # The refusal below must come while the made-up streams live: stream_idle_s leaves a loaded
+    # machine 2 s for it (with 0.5 s, and idle streams looked for every second, an idle check
+    # could expire them first).
     config = server_config({"a": tiny_bundle}, accept_any_stream=True, max_streams=4,
-                           stream_idle_s=0.5)
+                           stream_idle_s=2.0)
     with running_server(config) as server, peer_for(server) as peer:
         for i in range(3):
             peer.dealer.send_multipart(protocol.encode_mesh(f"junk{i}", 0, time.time_ns(), mesh))
-        assert len(_controls(peer.sub, "junk2", 1.0)) == 1
+        assert _frames_until(peer.sub, "junk2", 0, 10.0) == [0]
         peer.dealer.send_multipart(protocol.encode_mesh("actor", 0, time.time_ns(), mesh))
         err = _reply(peer.dealer)
-        assert err is not None and err["reason"] == "unknown_stream"
-        end = time.monotonic() + 5
+        assert err is not None and err["reason"] == "unknown_stream", (err, set(server.streams))
+        end = time.monotonic() + 15
         while len(server.streams) > 1 and time.monotonic() < end:
             peer.recv_pub(0.1)
         assert set(server.streams) == {"a"}
         peer.dealer.send_multipart(protocol.encode_mesh("actor", 1, time.time_ns(), mesh))
-        assert [m.frame for m in _controls(peer.sub, "actor", 1.0)] == [1]
+        assert _frames_until(peer.sub, "actor", 1, 10.0) == [1]
 
 
 def test_idle_connections_cannot_lock_out_a_new_client(tiny_bundle: Path, tmp_path: Path) -> None:
