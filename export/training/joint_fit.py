@@ -220,7 +220,8 @@ def _turns(rotvecs: np.ndarray, pivots: np.ndarray, angles: np.ndarray
 
 def joint_order(groups: list[list[int]], parents: np.ndarray, axes: np.ndarray,
                 pivots: np.ndarray, angles: np.ndarray, own: np.ndarray, source: np.ndarray,
-                positions: Callable[[np.ndarray], np.ndarray]) -> list[list[int]]:
+                positions: Callable[[np.ndarray], np.ndarray],
+                moved: np.ndarray | None = None) -> list[list[int]]:
     """Each joint's angles in the order that composes them as the rig does.
 
     groups: ``joint_groups``; parents (J,); axes, pivots (J, 3) each angle's unit axis and
@@ -229,6 +230,16 @@ def joint_order(groups: list[list[int]], parents: np.ndarray, axes: np.ndarray,
     two or more angles (root first), on the samples that move two or more of them and nothing
     below it, every order is tried (the joints above composed as already chosen) and the one
     that best carries the joint's own vertices onto the samples' is kept. -> groups reordered.
+
+    moved (J, V) bool, each angle's moved vertices at its anchor: when given, a joint with
+    fewer than ``MIN_ORDER_SAMPLES`` such samples is judged on its own segment (its vertices
+    that no joint below it moves at all) over every sample that moves two of its angles,
+    whatever moves below. On a long chain the samples that move two angles of a joint near
+    the root and nothing below it are few or none, and the schema's order stayed: zoo-156277
+    (one tube, 32 joints x 3 angles listed x, z, y, composed x, y, z) kept a wrong order at 21
+    of its 32 joints, and the chain alone, by least squares on 4,000 samples, missed by 0.43 %
+    of D on held-out ones (0.017 % in the rig's order). Joints with enough samples are judged
+    as before (five 12-joint zoo chains: the same chains).
     """
     j = len(parents)
     group_of = np.zeros(j, np.int64)
@@ -246,8 +257,13 @@ def joint_order(groups: list[list[int]], parents: np.ndarray, axes: np.ndarray,
     for g, members in enumerate(groups):
         if len(members) < 2:
             continue
-        rows = np.flatnonzero((moving[:, members].sum(axis=1) >= 2) & ~moving[:, below[g]].any(1))
+        two = moving[:, members].sum(axis=1) >= 2
         verts = np.flatnonzero(own[members].any(axis=0))
+        rows = np.flatnonzero(two & ~moving[:, below[g]].any(1))
+        if len(rows) < MIN_ORDER_SAMPLES and moved is not None and below[g].any():
+            segment = np.flatnonzero(own[members].any(axis=0) & ~moved[below[g]].any(axis=0))
+            if len(segment) >= 3:
+                verts, rows = segment, np.flatnonzero(two)
         if len(rows) < MIN_ORDER_SAMPLES or len(verts) < 3:
             continue
         path: list[int] = []  # the joints above, root first, in their chosen orders
