@@ -248,3 +248,30 @@ def test_weights_at_fills_only_the_missing_rows_and_leaves_the_refinements_alone
     np.testing.assert_array_equal(got[[1, 4]], whole[[1, 4]])
     np.testing.assert_allclose(got, whole, rtol=1e-6, atol=1e-6)
     np.testing.assert_array_equal(form.weights_at(controls, None), whole)
+
+
+def test_rest_targets_into_a_buffer_equal_the_naive_mesh(tmp_path: Path) -> None:
+    """``MomentForm.rest_targets`` (the forward model on the rest of the mesh, less the centre)
+    against its naive twin, offset + basis^T z - centre frame by frame in float64, and the same
+    bits whether it makes its array, writes into the realignment's target rows (a strided view)
+    or into an array whose rows no flat view reaches (a transposed one)."""
+    path = build_synthetic_bundle(tmp_path / "m.rcb", refine="projected", seed=5)
+    form = open_model(load_bundle(path), label="m", threads=1).inverse.moment_form
+    assert form is not None and form.rest is not None
+    rest = form.rest
+    rng = np.random.default_rng(5)
+    z = rng.normal(0.0, 1.0, (3, rest.basis.shape[0]))
+    made = form.rest_targets(z)
+    w = rest.indices.shape[0]
+    centre = form.constants.centre
+    for n in range(3):
+        naive = (rest.offset.astype(np.float64) + z[n] @ rest.basis.astype(np.float64)
+                 ).reshape(w, 3) - centre
+        np.testing.assert_allclose(made[n], naive, rtol=1e-5, atol=1e-5)
+    target = np.zeros((3, 4 + w, 3), np.float32)
+    got = form.rest_targets(z, out=target[:, 4:])
+    np.testing.assert_array_equal(target[:, 4:], made)
+    assert np.shares_memory(got, target) and not target[:, :4].any()
+    transposed = np.zeros((3, w, 3), np.float32, order="F")
+    form.rest_targets(z, out=transposed)
+    np.testing.assert_array_equal(transposed, made)

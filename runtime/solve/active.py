@@ -157,7 +157,7 @@ def given_moved_one(u: np.ndarray, d: np.ndarray, g: np.ndarray, rss: float, mov
     left = max(rss - float(gm @ (inv @ gm)), 0.0)
     num = g - gm @ p
     push = num.copy()
-    push[moved] = g[moved]
+    push[moved] = gm
     free = num * num > (factor * factor * left) * schur
     free[moved] = True
     out: np.ndarray = free & ~np.where(push > 0.0, u >= 1.0, (u <= 0.0) & (push < 0.0))

@@ -52,6 +52,10 @@ BindCurvatureFn = Callable[[np.ndarray], Callable[[np.ndarray, np.ndarray],
 #: one frame's graph as the one-frame steps call it
 RunFn = Callable[[np.ndarray, np.ndarray], tuple[np.ndarray, ...]]
 
+#: active sets whose fixed-matrix factors, given-moved parts and tangents a refiner keeps (all
+#: dropped when full)
+SYSTEMS = 256
+
 
 def weights_of(out: tuple[np.ndarray, ...], at: int) -> np.ndarray | None:
     """The basis weights an evaluation returned at place ``at`` (None when it gave none)."""
@@ -243,6 +247,20 @@ def curved_steps(ref: Refiner, curvature: CurvatureFn | None, u: np.ndarray, mes
     return u, z
 
 
+def tangents_along(ref: Refiner, a: np.ndarray) -> np.ndarray:
+    """a (k,) controls -> (1, k, C) float32 one-hot tangents along them, read-only, made once
+    per set (``ref.tangent_cache``, emptied when it holds ``SYSTEMS`` sets)."""
+    key = a.tobytes()
+    hit = ref.tangent_cache.get(key)
+    if hit is None:
+        if len(ref.tangent_cache) >= SYSTEMS:
+            ref.tangent_cache.clear()
+        hit = ref.eye[a][None]
+        hit.setflags(write=False)
+        ref.tangent_cache[key] = hit
+    return hit
+
+
 def curved_steps_one(ref: Refiner, run: RunFn, u: np.ndarray, mode: str
                      ) -> tuple[np.ndarray, np.ndarray | None]:
     """:func:`curved_steps` for a batch of one frame (the live path), on vectors, with the
@@ -253,7 +271,9 @@ def curved_steps_one(ref: Refiner, run: RunFn, u: np.ndarray, mode: str
     The same arithmetic as the batch, with as few numpy calls as a step allows (each costs
     about a microsecond whatever its size, and a live frame takes up to a dozen steps): the
     frame's matrix is held with the controls it is along (``held``), so a step on the same
-    set takes it whole; a step's tangents are made once for its halvings."""
+    set takes it whole; the tangents are made once per active set (``tangents_along``); the
+    first step, from the network's answer, has no pull yet to add to its gradient or cost;
+    the frame's own matrix is damped in place after the noise estimate's solve has read it."""
     s, d = ref.settings, ref.d
     lower, span = ref.lower, ref.span
     root_diag, factor, floor = ref.root_diag, ref.wake, ref.floor
@@ -263,63 +283,79 @@ def curved_steps_one(ref: Refiner, run: RunFn, u: np.ndarray, mode: str
     given = s.wake == "given"
     no_tangents = eye[:0][None]
 
+    controls = np.empty((1, lower.shape[0]), np.float32)  # what each evaluation sends
+    scaled = np.empty(lower.shape[0])
+
     def evaluate(x: np.ndarray, tangents: np.ndarray
                  ) -> tuple[np.ndarray, float, np.ndarray, np.ndarray | None]:
-        out = run((lower + span * x).astype(np.float32)[None], tangents)
+        np.add(lower, np.multiply(span, x, out=scaled), out=controls[0])  # float64, then cast
+        out = run(controls, tangents)
         return out[0][0].astype(np.float64), float(out[1][0]), out[2][0], weights_of(out, 3)
 
     u0 = u[0].copy()
     x = u0  # never written in place: each accepted trial is a new array
-    pulled = pull_mask(u0, d, s.pull)
+    pulled = ref.pulled_all if s.pull == "all" else pull_mask(u0, d, s.pull)
     fixed = s.prior * ref.diag
     held = np.flatnonzero(np.abs(u0 - d) > 1e-6)  # the controls the frame's matrix h is along
-    g, rss, h, z = evaluate(x, no_tangents if chord else eye[held][None])
+    g, rss, h, z = evaluate(x, no_tangents if chord else tangents_along(ref, held))
     for number in range(s.steps):
-        moved = np.flatnonzero(np.abs(x - d) > 1e-6) if given and number == 0 else None
-        if moved is not None and moved.size:
-            a = np.flatnonzero(given_moved_one(x, d, g, rss, moved, ref.given_parts(moved),
+        if given and number == 0 and held.size:  # x is u0: the moved controls are held's
+            a = np.flatnonzero(given_moved_one(x, d, g, rss, held, ref.given_parts(held),
                                                factor))
         else:
             tau = root_diag * (factor * math.sqrt(max(rss, 0.0)))
             a = np.flatnonzero(free_controls(x, d, g, tau))
         if a.size == 0:
             break
+        ga = g[a]
+        system: ActiveSystem | None = None
         if chord:  # the same matrix for every frame: its factors kept per active set
-            system: ActiveSystem = ref.fixed_system(a)
+            system = ref.fixed_system(a)
         else:
-            if a.size == held.size and np.array_equal(a, held):
+            if a.size == held.size and (a == held).all():
                 sub = h.copy()
             else:
                 pos = np.full(u0.shape[0], -1, np.int64)
                 pos[held] = np.arange(held.size)
                 p = pos[a]
                 if p.min() < 0:  # a control woke: its matrix along the new set
-                    g, rss, h, _ = evaluate(x, eye[a][None])
+                    g, rss, h, _ = evaluate(x, tangents_along(ref, a))
+                    ga = g[a]
                     held = a
                     sub = h.copy()
                 else:
                     sub = h[p[:, None], p]
             diagonal = sub.reshape(-1)[:: a.size + 1]  # a view: the floor set in place
             np.maximum(diagonal, floor[a], out=diagonal)
-            system = ActiveSystem(sub, damp)
         lam = 0.0
         if s.prior_sd > 0.0:
-            left = max(rss - system.decrease(g[a]), 0.0)
+            decrease = (system.decrease(ga) if system is not None
+                        else float(ga @ np.linalg.solve(sub, ga)))
+            left = max(rss - decrease, 0.0)
             lam = max(left / max(ref.coords - a.size, 1) - ref.model_var, 0.0) / s.prior_sd**2
-        dx = x - u0
         weight = lam * pulled + fixed  # (C,) each control's pull
-        step_a = system.step((g - weight * dx)[a], lam * pulled[a])
+        if number == 0 and math.isfinite(lam):  # x is u0: no pull yet, the cost is the fit's
+            rhs, cost = ga, rss
+        else:
+            dx = x - u0
+            rhs, cost = (g - weight * dx)[a], rss + float(np.dot(weight, dx * dx))
+        if system is not None:
+            step_a = system.step(rhs, lam * pulled[a])
+        else:  # ActiveSystem.step on sub itself, which no one reads after this
+            np.multiply(diagonal, damp, out=diagonal)
+            diagonal += lam * pulled[a]
+            step_a = np.linalg.solve(sub, rhs)
         if np.abs(step_a).max() < s.tol:
             break
-        cost = rss + float(np.dot(weight, dx * dx))
         share, took = 1.0, False
         xa = x[a]
         # the trial's matrix is read by the next step only (none after the last)
         curved = mode == "step" and number < s.steps - 1
-        tangents = eye[a][None] if curved else no_tangents
+        tangents = tangents_along(ref, a) if curved else no_tangents
         for _halving in range(s.backtrack + 1):
             trial = x.copy()
-            trial[a] = np.minimum(np.maximum(xa + share * step_a, 0.0), 1.0)
+            trial[a] = np.minimum(np.maximum(xa + (step_a if share == 1.0 else share * step_a),
+                                             0.0), 1.0)
             g_new, r_new, h_new, z_new = evaluate(trial, tangents)
             moved = trial - u0
             if math.isfinite(r_new) and r_new + float(np.dot(weight, moved * moved)) <= cost:

@@ -27,24 +27,28 @@ def rotation_to_quaternion(rotation: np.ndarray) -> np.ndarray:
     Shepperd's method (J. Guidance and Control 1(3), 1978): take the largest of the four squared
     components from the trace and the diagonal, then the others from off-diagonal sums.
     """
-    m = np.asarray(rotation, dtype=np.float64)
-    tr = m[0, 0] + m[1, 1] + m[2, 2]
-    candidates = np.array([tr, m[0, 0], m[1, 1], m[2, 2]])
-    i = int(np.argmax(candidates))
+    # on Python floats (the same IEEE arithmetic as numpy's scalars, without their cost)
+    (m00, m01, m02), (m10, m11, m12), (m20, m21, m22) = np.asarray(rotation, np.float64).tolist()
+    tr = m00 + m11 + m22
+    candidates = (tr, m00, m11, m22)
+    if math.isnan(tr + m00 + m11 + m22):  # np.argmax's choice where a NaN is among them
+        i = int(np.argmax(candidates))
+    else:  # the first largest, as np.argmax
+        i = max(range(4), key=candidates.__getitem__)
     if i == 0:
         s = 2.0 * math.sqrt(1.0 + tr)
-        q = [0.25 * s, (m[2, 1] - m[1, 2]) / s, (m[0, 2] - m[2, 0]) / s, (m[1, 0] - m[0, 1]) / s]
+        q = [0.25 * s, (m21 - m12) / s, (m02 - m20) / s, (m10 - m01) / s]
     elif i == 1:
-        s = 2.0 * math.sqrt(1.0 + m[0, 0] - m[1, 1] - m[2, 2])
-        q = [(m[2, 1] - m[1, 2]) / s, 0.25 * s, (m[0, 1] + m[1, 0]) / s, (m[0, 2] + m[2, 0]) / s]
+        s = 2.0 * math.sqrt(1.0 + m00 - m11 - m22)
+        q = [(m21 - m12) / s, 0.25 * s, (m01 + m10) / s, (m02 + m20) / s]
     elif i == 2:
-        s = 2.0 * math.sqrt(1.0 + m[1, 1] - m[0, 0] - m[2, 2])
-        q = [(m[0, 2] - m[2, 0]) / s, (m[0, 1] + m[1, 0]) / s, 0.25 * s, (m[1, 2] + m[2, 1]) / s]
+        s = 2.0 * math.sqrt(1.0 + m11 - m00 - m22)
+        q = [(m02 - m20) / s, (m01 + m10) / s, 0.25 * s, (m12 + m21) / s]
     else:
-        s = 2.0 * math.sqrt(1.0 + m[2, 2] - m[0, 0] - m[1, 1])
-        q = [(m[1, 0] - m[0, 1]) / s, (m[0, 2] + m[2, 0]) / s, (m[1, 2] + m[2, 1]) / s, 0.25 * s]
+        s = 2.0 * math.sqrt(1.0 + m22 - m00 - m11)
+        q = [(m10 - m01) / s, (m02 + m20) / s, (m12 + m21) / s, 0.25 * s]
     out = np.array(q)
-    out /= np.linalg.norm(out)
+    out /= math.sqrt(out.dot(out))  # np.linalg.norm's arithmetic for a vector
     return out if out[0] >= 0 else -out
 
 

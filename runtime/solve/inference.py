@@ -182,12 +182,20 @@ class MomentForm:
         self.stable_home = (np.zeros((0, 3), np.float32) if stable_home is None
                             else (np.asarray(stable_home, np.float32) - centre))
 
-    def rest_targets(self, z: np.ndarray) -> np.ndarray:
+    def rest_targets(self, z: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
         """z (N, R) basis weights -> the forward model on the rest of the mesh less the centre
-        (N, W, 3) float32 (offset + basis^T z - centre; ``rest`` must be set)."""
+        (N, W, 3) float32 (offset + basis^T z - centre; ``rest`` must be set), into ``out``
+        (N, W, 3) float32 when given (no temporary)."""
         assert self.rest is not None
-        flat = np.matmul(z.astype(np.float32), self.rest.basis) + self._rest_offset
-        return flat.reshape(z.shape[0], -1, 3)
+        n = z.shape[0]
+        if out is None:
+            out = np.empty((n, self.rest.indices.shape[0], 3), np.float32)
+        flat = out.reshape(n, -1)  # a view when out's rows are contiguous, else a copy
+        np.matmul(z.astype(np.float32), self.rest.basis, out=flat)
+        flat += self._rest_offset
+        if not np.may_share_memory(flat, out):  # reshape made a copy: put it back
+            out[...] = flat.reshape(out.shape)
+        return out
 
     def moments(self, points: np.ndarray) -> FrameMoments:
         """points (N, S, 3) float32 -> their FrameMoments."""

@@ -81,6 +81,7 @@ import numpy as np
 from rigcast.runtime.errors import RigcastError
 from rigcast.runtime.solve.active import given_moved_parts, wake_factor
 from rigcast.runtime.solve.curved import (
+    SYSTEMS,
     BindCurvatureFn,
     CurvatureFn,
     FactoredSystem,
@@ -90,8 +91,6 @@ from rigcast.runtime.solve.curved import (
 
 log = logging.getLogger(__name__)
 
-#: active sets whose fixed-matrix factors a refiner keeps (all dropped when full)
-SYSTEMS = 256
 
 #: (controls (N, C) float32, per-frame state (N, ...)) -> (gradient (N, C), residual_sq (N,)),
 #: and from a moment-form graph a third, the basis weights z (N, R) at the controls (the
@@ -332,8 +331,11 @@ class Refiner:
         self.wake = wake_factor(value.kappa, self.coords, value.wake_share)
         self.floor = 1e-6 * self.diag  # a control whose effect vanishes keeps a solvable system
         self.eye = np.eye(self.diag.shape[0], dtype=np.float32)  # one-hot tangents' rows
+        self.pulled_all = np.ones(self.diag.shape[0])  # active.pull_mask's "all", read-only
+        self.pulled_all.setflags(write=False)
         self._systems: dict[bytes, FactoredSystem] = {}
         self._given: dict[bytes, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
+        self.tangent_cache: dict[bytes, np.ndarray] = {}  # curved.tangents_along's
 
     def fixed_system(self, a: np.ndarray) -> FactoredSystem:
         """The fixed matrix's system on active controls a (k,), factored once per set (a live
@@ -413,7 +415,9 @@ class Refiner:
         another evaluation), or None when the graph gives none or no step ran. A frame the snap
         moved after its last evaluation has a row of NaN: its weights are still to be made."""
         s = self.settings
-        u = np.clip((np.asarray(controls, np.float64) - self.lower) / self.span, 0.0, 1.0)
+        # np.clip's numbers with two ufunc calls (its wrapper costs more than both on one frame)
+        u = np.minimum(np.maximum((np.asarray(controls, np.float64) - self.lower) / self.span,
+                                  0.0), 1.0)
         if s.steps == 0 or u.shape[0] == 0:
             return np.asarray(controls, np.float32), None
         if state is not None:

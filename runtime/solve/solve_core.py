@@ -269,7 +269,7 @@ def _realign_moments(model: SolveModel, frames: np.ndarray, points: np.ndarray, 
     for done in range(1, passes + 1):
         z = form.weights_at(solved, made)
         if form.rest is not None:
-            target[:, stable_home.shape[0] :] = form.rest_targets(z)
+            form.rest_targets(z, out=target[:, stable_home.shape[0] :])
         fit = realign_fit(first.moments, form.constants, z, extra_source=source,
                           extra_target=target, scale=scale, centred=True)
         linear, shift = uncentre(fit, form.constants.centre)
@@ -313,8 +313,9 @@ def infer(model: SolveModel, inputs: np.ndarray, first_frame: int = 0) -> np.nda
 
 
 def _check_finite(solved: np.ndarray, first_frame: int) -> None:
-    finite = np.isfinite(solved).all(axis=1)
-    if not finite.all():
+    finite = np.isfinite(solved)
+    if not finite.all():  # the frame only on failure: one reduction on the usual path
+        finite = finite.all(axis=1)
         raise FloatingPointError(f"frame {first_frame + int(np.argmin(finite))}: the inverse "
                                  "returned NaN or Inf (the mesh is far outside anything the "
                                  "bundle was trained on)")
