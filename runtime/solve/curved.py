@@ -294,7 +294,8 @@ def curved_steps_one(ref: Refiner, run: RunFn, u: np.ndarray, mode: str
 
     u0 = u[0].copy()
     x = u0  # never written in place: each accepted trial is a new array
-    pulled = ref.pulled_all if s.pull == "all" else pull_mask(u0, d, s.pull)
+    every = s.pull == "all"  # the pull's mask all ones: lam * 1 is lam, so a scalar does
+    pulled = ref.pulled_all if every else pull_mask(u0, d, s.pull)
     fixed = s.prior * ref.diag
     held = np.flatnonzero(np.abs(u0 - d) > 1e-6)  # the controls the frame's matrix h is along
     g, rss, h, z = evaluate(x, no_tangents if chord else tangents_along(ref, held))
@@ -333,7 +334,7 @@ def curved_steps_one(ref: Refiner, run: RunFn, u: np.ndarray, mode: str
                         else float(ga @ np.linalg.solve(sub, ga)))
             left = max(rss - decrease, 0.0)
             lam = max(left / max(ref.coords - a.size, 1) - ref.model_var, 0.0) / s.prior_sd**2
-        weight = lam * pulled + fixed  # (C,) each control's pull
+        weight = fixed + lam if every else lam * pulled + fixed  # (C,) each control's pull
         if number == 0 and math.isfinite(lam):  # x is u0: no pull yet, the cost is the fit's
             rhs, cost = ga, rss
         else:
@@ -343,7 +344,7 @@ def curved_steps_one(ref: Refiner, run: RunFn, u: np.ndarray, mode: str
             step_a = system.step(rhs, lam * pulled[a])
         else:  # ActiveSystem.step on sub itself, which no one reads after this
             np.multiply(diagonal, damp, out=diagonal)
-            diagonal += lam * pulled[a]
+            diagonal += lam if every else lam * pulled[a]
             step_a = np.linalg.solve(sub, rhs)
         if np.abs(step_a).max() < s.tol:
             break

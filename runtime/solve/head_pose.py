@@ -66,8 +66,8 @@ class HeadPose:
     def from_stabiliser(cls, stabiliser: RigidTransform) -> HeadPose:
         """The pose undone by ``stabiliser`` (the fit taking the frame onto the neutral)."""
         pose = stabiliser.inverse()
-        w, x, y, z = (float(v) for v in rotation_to_quaternion(pose.rotation))
-        tx, ty, tz = (float(v) for v in pose.translation)
+        w, x, y, z = rotation_to_quaternion(pose.rotation).tolist()
+        tx, ty, tz = pose.translation.tolist()
         return cls((w, x, y, z), (tx, ty, tz), float(pose.scale), pose.angle_deg)
 
     def to_wire(self) -> dict[str, Any]:
