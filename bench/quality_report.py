@@ -26,7 +26,8 @@ def acceptance(name: str, e: dict[str, Any]) -> dict[str, dict[str, Any]]:
     """{check: {value, limit, pass}} for one rig's entry ``e``.
 
     The older jitter and active checks also carry ``truth`` and ``truth_passes``: the ground
-    truth's own figure against the same limit (when the truth fails, no faithful solve passes).
+    truth's own figure against the same limit (when the truth fails, no faithful solve passes);
+    the off-manifold checks on the take carry the best per-frame fit's (``nlls_offmanifold_*``).
     """
     checks: dict[str, dict[str, Any]] = {}
     d = e["bbox_diagonal"]
@@ -42,8 +43,15 @@ def acceptance(name: str, e: dict[str, Any]) -> dict[str, dict[str, Any]]:
     checks[s3 + "inverse_false_active <= 0.3"] = _check(e["inverse_false_active"], 0.3)
     checks[s3 + "inverse_jitter_vs_truth <= 0.5 x nlls_jitter_vs_truth"] = _check(
         e["inverse_jitter_vs_truth"], 0.5 * e["nlls_jitter_vs_truth"])
-    checks[s3 + "offmanifold_recall >= 0.9"] = _check(e["offmanifold_recall"], 0.9, ">=")
-    checks[s3 + "offmanifold_false_rate <= 0.01"] = _check(e["offmanifold_false_rate"], 0.01)
+    # The best per-frame fit's residual under the same rule is the reference: a planted bump
+    # that the rig's controls explain (local shapes inside the bump) leaves nothing to flag for
+    # any solve, and then the check is ill-posed on that rig (its ``truth`` fails).
+    checks[s3 + "offmanifold_recall >= 0.9"] = _check(e["offmanifold_recall"], 0.9, ">=") | {
+        "truth": float(e["nlls_offmanifold_recall"]),
+        "truth_passes": bool(e["nlls_offmanifold_recall"] >= 0.9)}
+    checks[s3 + "offmanifold_false_rate <= 0.01"] = _check(e["offmanifold_false_rate"], 0.01) | {
+        "truth": float(e["nlls_offmanifold_false_rate"]),
+        "truth_passes": bool(e["nlls_offmanifold_false_rate"] <= 0.01)}
     if e.get("offmanifold_head_recall") is not None:
         checks[s3 + "offmanifold_head_recall >= 0.9"] = _check(e["offmanifold_head_recall"], 0.9,
                                                                 ">=")
@@ -107,8 +115,12 @@ def rig_table(name: str, e: dict[str, Any]) -> list[str]:
                  f"unrecoverable: {e['unrecoverable'] or 'none'}")
     for k, c in e["acceptance"].items():
         if k.startswith(SECTION3):
+            ref = ""
+            if "truth" in c:
+                ref = (f"; reference {c['truth']:.4g}"
+                       f"{'' if c['truth_passes'] else ' also fails: ill-posed on this rig'}")
             lines.append(f"  {'PASS' if c['pass'] else 'FAIL'}  {k[len(SECTION3):]}: "
-                         f"{c['value']:.4g} (limit {c['limit']:.4g})")
+                         f"{c['value']:.4g} (limit {c['limit']:.4g}{ref})")
     if e.get("head_motion_note"):
         lines.append(f"  note: {e['head_motion_note']}")
     return lines
@@ -210,7 +222,8 @@ def report_md(rigs: dict[str, dict[str, Any]], meta: dict[str, Any]) -> str:
             f"{e.get('nlls_offmanifold_false_rate', float('nan')):.4f}); with head motion: "
             f"{e.get('offmanifold_head_recall')}, {e.get('offmanifold_head_false_rate')}.",
             "",
-            "| acceptance check | value | limit | result | ground truth on the same check |",
+            "| acceptance check | value | limit | result | reference on the same check "
+            "(the truth; nlls for off-manifold) |",
             "| --- | --- | --- | --- | --- |",
         ]
         for k, c in e["acceptance"].items():

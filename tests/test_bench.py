@@ -117,6 +117,9 @@ def test_quality_bench_quick_run_scores_builtin_and_zoo_rigs(tmp_path: Path) -> 
         assert nlls["limit"] == 0.8 * entry["nlls_mean_err"]
         assert nlls["pass"] is (entry["inverse_mean_err"] <= nlls["limit"])
         assert checks["§3 inverse_false_active <= 0.3"]["value"] == entry["inverse_false_active"]
+        recall = checks["§3 offmanifold_recall >= 0.9"]
+        assert recall["truth"] == entry["nlls_offmanifold_recall"]
+        assert recall["truth_passes"] is (entry["nlls_offmanifold_recall"] >= 0.9)
     # head motion only where a rigid region makes it separable
     assert arm["offmanifold_head_recall"] is None and "no rigid region" in arm["head_motion_note"]
     assert 0 <= zoo["offmanifold_head_recall"] <= 1
