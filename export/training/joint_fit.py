@@ -258,10 +258,11 @@ def joint_order(groups: list[list[int]], parents: np.ndarray, axes: np.ndarray,
         if len(members) < 2:
             continue
         two = moving[:, members].sum(axis=1) >= 2
-        verts = np.flatnonzero(own[members].any(axis=0))
+        mine = own[members].any(axis=0)  # the joint's own vertices
+        verts = np.flatnonzero(mine)
         rows = np.flatnonzero(two & ~moving[:, below[g]].any(1))
         if len(rows) < MIN_ORDER_SAMPLES and moved is not None and below[g].any():
-            segment = np.flatnonzero(own[members].any(axis=0) & ~moved[below[g]].any(axis=0))
+            segment = np.flatnonzero(mine & ~moved[below[g]].any(axis=0))
             if len(segment) >= 3:
                 verts, rows = segment, np.flatnonzero(two)
         if len(rows) < MIN_ORDER_SAMPLES or len(verts) < 3:
